@@ -1,0 +1,80 @@
+"""Store layout: every result variable, its inner dimension, dtype, units, long name and flags.
+
+This module is the contract between the runner (which returns one value per variable for a
+point) and the store (which lays out one array per variable over the sweep dims plus the
+variable's inner dim). Inner dims: ``assembly`` (one entry per assembly, padded with the fill
+value up to the largest count in the grid), ``snapshot`` (weight snapshots during hold) and
+``time_bin`` (binned population rate trace, padded to the longest point).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+SCHEMA_VERSION = "1.0"
+
+STATUS_FLAGS: tuple[str, ...] = ("pending", "done", "failed")
+OUTCOME_FLAGS: tuple[str, ...] = ("stable", "runaway", "silent")
+ENGINE_FLAGS: tuple[str, ...] = ("cython", "numpy", "standalone")
+FLAG_FILL = -1
+INNER_DIMS: tuple[str, ...] = ("assembly", "snapshot", "time_bin")
+
+
+@dataclass(frozen=True)
+class Variable:
+    """One per-point result variable of the store."""
+
+    name: str
+    units: str
+    long_name: str
+    inner: str | None = None
+    dtype: str = "float64"
+    flags: tuple[str, ...] = ()
+
+    @property
+    def fill(self) -> float | int:
+        """Value an unwritten or padded entry holds."""
+        return FLAG_FILL if self.flags or self.dtype.startswith("int") else np.nan
+
+
+VARIABLES: tuple[Variable, ...] = (
+    Variable("outcome", "1", "network outcome over the whole run", dtype="int8", flags=OUTCOME_FLAGS),
+    Variable("predicted_outcome", "1", "outcome predicted by the theory prescreen", dtype="int8",
+             flags=OUTCOME_FLAGS),
+    Variable("engine", "1", "Brian2 code generation target used", dtype="int8", flags=ENGINE_FLAGS),
+    Variable("seed", "1", "random seed of the point (from base_seed and point id)", dtype="int64"),
+    Variable("runaway_onset_s", "s", "first time the smoothed E rate stayed above the runaway threshold"),
+    Variable("recalled_count", "1", "assemblies with recall_quality at or above the recall threshold",
+             dtype="int32"),
+    Variable("rate_exc_baseline_hz", "Hz", "mean excitatory rate over the settle phase"),
+    Variable("rate_inh_baseline_hz", "Hz", "mean inhibitory rate over the settle phase"),
+    Variable("isi_cv_exc", "1", "mean ISI coefficient of variation of excitatory cells over the settle phase"),
+    Variable("rate_exc_hold_end_hz", "Hz", "mean excitatory rate over the last smoothing window of the hold phase"),
+    Variable("imprint_contrast", "1", "assembly_contrast at the end of imprinting (learned assemblies)"),
+    Variable("wall_time_s", "s", "wall-clock time of the point's simulation"),
+    Variable("simulated_time_s", "s", "biological time simulated (shorter than planned after an early abort)"),
+    Variable("n_synapses", "1", "number of synapses in the network", dtype="int64"),
+    Variable("recall_quality", "1", "Pearson r over uncued E cells between recall-window spike count and "
+             "membership of the cued assembly", inner="assembly"),
+    Variable("persistence", "1", "recall_quality in the window after the cue ends", inner="assembly"),
+    Variable("completion", "1", "fraction of uncued members active in the recall window", inner="assembly"),
+    Variable("spurious", "1", "fraction of non-member E cells active in the recall window", inner="assembly"),
+    Variable("cross_talk", "1", "largest recall_quality of any other assembly while this one is cued",
+             inner="assembly"),
+    Variable("weight_correlation", "1", "Pearson r between E->E weights at a hold snapshot and at hold start",
+             inner="snapshot"),
+    Variable("assembly_contrast", "1", "mean within-assembly E->E weight / mean other E->E weight",
+             inner="snapshot"),
+    Variable("snapshot_time_s", "s", "simulated time of each weight snapshot", inner="snapshot"),
+    Variable("rate_exc_hz", "Hz", "binned excitatory population rate", inner="time_bin"),
+    Variable("rate_inh_hz", "Hz", "binned inhibitory population rate", inner="time_bin"),
+)
+
+BY_NAME: dict[str, Variable] = {v.name: v for v in VARIABLES}
+
+# Written last for each point, so a crash never leaves a point that looks done but is not.
+STATUS = Variable("status", "1", "run status of the point", dtype="int8", flags=STATUS_FLAGS)
+ERROR = "error"  # per-point error text for failed points (string variable, '' when none)
+POINT_ID = "point_id"  # per-point hash of the resolved config (string variable)

@@ -1,0 +1,90 @@
+"""Run points on Dask distributed: a local cluster by default, or an existing scheduler.
+
+Each point is one Dask task that returns its results to the client process (the single
+writer). A task never raises for a simulation error: it returns a :class:`TaskFailure` so the
+writer can record the error text; a worker that dies (segfault, out of memory) surfaces as an
+exception from ``Future.result`` and is recorded the same way.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import traceback
+from collections.abc import Iterable, Iterator
+from dataclasses import dataclass
+from typing import Any
+
+from dask.distributed import Client, LocalCluster, as_completed
+
+from sweeps.errors import CapsweepError
+
+
+@dataclass(frozen=True)
+class TaskFailure:
+    """What a task returns instead of results when its point failed."""
+
+    error: str
+
+
+def simulate_task(config: dict[str, Any], seed: int) -> dict[str, Any] | TaskFailure:
+    """Worker-side entry: run one point, turning any exception into a TaskFailure."""
+    from brian2 import BrianLogger
+
+    from runners.point import run_point
+
+    BrianLogger.log_level_error()
+    try:
+        return run_point(config, seed)
+    except Exception as exc:  # noqa: BLE001 - every failure is recorded, none may kill the sweep
+        summary = f"{type(exc).__name__}: {exc}"
+        return TaskFailure(summary + "\n" + traceback.format_exc(limit=6))
+
+
+@contextlib.contextmanager
+def dask_client(workers: int, scheduler: str = "") -> Iterator[Client]:
+    """A Dask client: attached to ``scheduler`` if given, else on a fresh LocalCluster.
+
+    The local cluster runs ``workers`` processes with one thread each (Brian2 simulations are
+    single-threaded and hold the GIL, so processes, not threads, give parallelism).
+    """
+    if scheduler:
+        try:
+            client = Client(scheduler, timeout="10s")
+        except (OSError, TimeoutError) as exc:
+            raise CapsweepError(
+                f"cannot reach the Dask scheduler at {scheduler!r} ({exc}); check the address "
+                "(e.g. tcp://host:8786) or omit --scheduler to start a local cluster"
+            ) from None
+        with client:
+            yield client
+        return
+    with LocalCluster(
+        n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=":0",
+        silence_logs=50,
+    ) as cluster, Client(cluster) as client:
+        yield client
+
+
+def run_tasks(
+    client: Client, jobs: Iterable[tuple[Any, dict[str, Any], int]]
+) -> Iterator[tuple[Any, dict[str, Any] | TaskFailure]]:
+    """Submit ``(tag, config, seed)`` jobs and yield ``(tag, result)`` as each finishes.
+
+    Tasks carry ``pure=False`` so that repeated submissions are never merged, and one retry is
+    allowed for a worker that died. Results come back in completion order.
+    """
+    futures = {}
+    for tag, config, seed in jobs:
+        future = client.submit(simulate_task, config, seed, pure=False, retries=1)
+        futures[future] = tag
+    try:
+        for future in as_completed(futures):
+            tag = futures.pop(future)
+            try:
+                result = future.result()
+            except Exception as exc:  # noqa: BLE001 - a dead worker is a failed point, not a dead sweep
+                result = TaskFailure(f"worker lost: {type(exc).__name__}: {exc}")
+            yield tag, result
+    finally:
+        for future in futures:
+            future.cancel()

@@ -1,0 +1,188 @@
+"""The ``capsweep`` command line: a thin typer layer, one library function per command.
+
+User errors (bad sweep file, foreign or locked store, bad filter) print one line on stderr and
+exit non-zero without a traceback.
+"""
+
+from __future__ import annotations
+
+import functools
+import sys
+from collections.abc import Callable
+from enum import Enum
+from pathlib import Path
+from typing import Any
+
+import typer
+from rich.console import Console
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn, TimeRemainingColumn
+
+from sweeps.errors import CapsweepError
+
+app = typer.Typer(
+    add_completion=False, no_args_is_help=True, pretty_exceptions_enable=False,
+    help="Sweep plastic spiking-network memory models: Brian2 points on Dask, one Zarr store, capacity answers.",
+)
+err = Console(stderr=True)
+out = Console()
+
+
+class TableFormat(str, Enum):
+    table = "table"
+    csv = "csv"
+    json = "json"
+
+
+def user_errors(command: Callable[..., Any]) -> Callable[..., Any]:
+    """Turn CapsweepError into one line on stderr and its exit code; Ctrl-C into exit 130."""
+
+    @functools.wraps(command)
+    def wrapper(*args: Any, **kwargs: Any) -> Any:
+        try:
+            return command(*args, **kwargs)
+        except CapsweepError as exc:
+            typer.echo(f"capsweep: error: {exc}", err=True)
+            raise typer.Exit(exc.exit_code) from None
+        except KeyboardInterrupt:
+            typer.echo("capsweep: interrupted; results stored so far are kept. Rerun the same command to resume.",
+                       err=True)
+            raise typer.Exit(130) from None
+
+    return wrapper
+
+
+@app.command()
+@user_errors
+def run(
+    sweep_file: Path = typer.Argument(..., help="TOML sweep file"),
+    store: Path = typer.Option(None, "--store", help="Zarr store directory (default: [sweep].store)"),
+    workers: int = typer.Option(None, "--workers", min=1, help="local Dask worker processes"),
+    scheduler: str = typer.Option(None, "--scheduler", help="address of a running Dask scheduler"),
+    engine: str = typer.Option(None, "--engine", help="override execution.engine: cython, numpy or standalone"),
+    retry_failed: bool = typer.Option(False, "--retry-failed", help="run failed points again"),
+) -> None:
+    """Run every point of SWEEP_FILE not yet done, writing each result into the store as it arrives."""
+    from sweeps.launch import RunOptions, run_sweep
+
+    if engine is not None and engine not in ("cython", "numpy", "standalone"):
+        raise CapsweepError(f"--engine {engine!r} is not allowed: expected one of cython, numpy, standalone")
+    options = RunOptions(store=store, workers=workers, scheduler=scheduler, engine=engine, retry_failed=retry_failed)
+    with _ProgressView() as view:
+        final = run_sweep(sweep_file, options, on_event=view.update)
+    _print_run_summary(final)
+    if final.failed:
+        raise typer.Exit(1)
+
+
+class _ProgressView:
+    """Renders launch.Progress events as a rich progress bar with failures and ETA."""
+
+    def __init__(self) -> None:
+        self.bar = Progress(
+            TextColumn("[bold]points"), BarColumn(), MofNCompleteColumn(),
+            TextColumn("failed {task.fields[failed]}"), TimeElapsedColumn(), TextColumn("ETA"),
+            TimeRemainingColumn(), console=err,
+        )
+        self.task: Any = None
+        self.dashboard_shown = False
+
+    def __enter__(self) -> "_ProgressView":
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        if self.task is not None:
+            self.bar.stop()
+
+    def update(self, progress: Any) -> None:
+        """Show ``progress`` (a launch.Progress)."""
+        if self.task is None:
+            err.print(f"{progress.total} points: {progress.already_done} stored before, {progress.to_run} to run")
+            self.bar.start()
+            self.task = self.bar.add_task("run", total=progress.to_run, failed=0)
+        if progress.dashboard and not self.dashboard_shown:
+            self.bar.console.print(f"Dask dashboard: {progress.dashboard}")
+            self.dashboard_shown = True
+        self.bar.update(self.task, completed=progress.finished, failed=progress.failed)
+
+
+def _print_run_summary(progress: Any) -> None:
+    outcomes = ", ".join(f"{k} {v}" for k, v in sorted(progress.outcomes.items())) or "none"
+    err.print(
+        f"ran {progress.finished} of {progress.to_run} points in {progress.elapsed_s:.1f} s "
+        f"({progress.failed} failed; outcomes: {outcomes}); {progress.already_done} were already stored"
+    )
+
+
+@app.command()
+@user_errors
+def status(store: Path = typer.Argument(..., help="Zarr store directory")) -> None:
+    """Counts of points by status and outcome, and the base network's plausibility."""
+    from results_schema.store import open_dataset
+    from sweeps.query import plausibility, status_counts
+
+    ds = open_dataset(store)
+    counts = status_counts(ds)
+    out.print(f"store {store}: sweep {ds.attrs.get('sweep_name', '?')!r}, {int(ds['status'].size)} points")
+    out.print("status:  " + ", ".join(f"{k} {v}" for k, v in counts["status"].items()))
+    out.print("outcome: " + ", ".join(f"{k} {v}" for k, v in counts["outcome"].items()) + "  (done points)")
+    check = plausibility(ds)
+    out.print(
+        f"baseline E rate {check.rate_exc_hz[0]:.2f}-{check.rate_exc_hz[1]:.2f} Hz, "
+        f"I rate {check.rate_inh_hz[0]:.2f}-{check.rate_inh_hz[1]:.2f} Hz, "
+        f"ISI CV {check.isi_cv[0]:.2f}-{check.isi_cv[1]:.2f}"
+    )
+    for warning in check.warnings:
+        out.print(f"warning: {warning}")
+
+
+SUMMARY_COLUMNS = (
+    "outcome", "recalled_count", "recall_quality_min", "runaway_onset_s", "rate_exc_baseline_hz",
+    "weight_correlation_end", "assembly_contrast_end", "wall_time_s",
+)
+
+
+@app.command()
+@user_errors
+def query(
+    store: Path = typer.Argument(..., help="Zarr store directory"),
+    where: str = typer.Option(None, "--where", help='pandas filter, e.g. \'outcome == "stable" and beta > 0\''),
+    fmt: TableFormat = typer.Option(TableFormat.table, "--format", help="table, csv or json"),
+    everything: bool = typer.Option(False, "--all", help="every point, not only the stable ones"),
+) -> None:
+    """List configurations with their outcome and metrics (default: the stable ones)."""
+    from results_schema.store import open_dataset
+    from sweeps.query import DEFAULT_WHERE, point_table, select, sweep_dims
+
+    ds = open_dataset(store)
+    rows = select(point_table(ds), "" if everything else (where or DEFAULT_WHERE))
+    if fmt is TableFormat.table:
+        rows = rows[[*sweep_dims(ds), *SUMMARY_COLUMNS]]
+    _emit(rows, fmt)
+
+
+@app.command()
+@user_errors
+def capacity(
+    store: Path = typer.Argument(..., help="Zarr store directory"),
+    fmt: TableFormat = typer.Option(TableFormat.table, "--format", help="table, csv or json"),
+) -> None:
+    """Largest assembly count stored stably and fully recalled, per cell of the other axes."""
+    from results_schema.store import open_dataset
+    from sweeps.query import capacity_table
+
+    _emit(capacity_table(open_dataset(store)), fmt)
+
+
+def _emit(frame: Any, fmt: TableFormat) -> None:
+    if fmt is TableFormat.csv:
+        sys.stdout.write(frame.to_csv(index=False))
+    elif fmt is TableFormat.json:
+        sys.stdout.write(frame.to_json(orient="records", indent=1) + "\n")
+    elif frame.empty:
+        out.print("no matching points")
+    else:
+        out.print(frame.to_string(index=False, float_format=lambda x: f"{x:.3g}"), markup=False, highlight=False)
+
+
+if __name__ == "__main__":
+    app()

@@ -1,0 +1,151 @@
+"""Expand a :class:`~sweeps.sweepfile.Sweep` into points: grid index, config, stable id, seed.
+
+A point is the base config with its axis values applied. Its id is a hash of the fully
+resolved config (execution settings excluded) and its replicate number, and its seed derives
+from ``base_seed`` and that id, so results never depend on execution order or worker count.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import itertools
+import json
+import math
+from dataclasses import dataclass
+from typing import Any, Callable
+
+import numpy as np
+
+from results_schema.store import GridSpec
+from runners.protocol import total_duration_s
+from sweeps.errors import ConfigError
+from sweeps.registry import nest
+from sweeps.sweepfile import Sweep
+
+
+@dataclass(frozen=True)
+class Point:
+    """One simulation of the sweep."""
+
+    index: tuple[int, ...]  # position along each axis, then the replicate number
+    labels: dict[str, Any]  # axis name -> value, plus "replicate"
+    config: dict[str, Any]  # nested, fully resolved config
+    point_id: str
+    seed: int
+
+
+def identity_config(flat: dict[str, Any]) -> dict[str, Any]:
+    """The part of a flat config that defines a point's science (execution settings left out)."""
+    return {k: v for k, v in sorted(flat.items()) if not k.startswith("execution.")}
+
+
+def point_id(flat: dict[str, Any], replicate: int) -> str:
+    """16-hex-digit id: SHA-256 of the resolved science config and the replicate number."""
+    blob = json.dumps({"config": identity_config(flat), "replicate": replicate}, sort_keys=True)
+    return hashlib.sha256(blob.encode()).hexdigest()[:16]
+
+
+def point_seed(base_seed: int, pid: str) -> int:
+    """Seed in [0, 2**31) derived from ``base_seed`` and the point id."""
+    digest = hashlib.sha256(f"{base_seed}/{pid}".encode()).digest()
+    return int.from_bytes(digest[:4], "little") & 0x7FFFFFFF
+
+
+def grid_shape(sweep: Sweep) -> tuple[int, ...]:
+    """Number of entries along each axis, then replicates."""
+    return tuple(len(a.values) for a in sweep.axes) + (sweep.replicates,)
+
+
+def expand(sweep: Sweep) -> list[Point]:
+    """All points of ``sweep`` in grid order; raises ConfigError if any point is inconsistent."""
+    points = []
+    for index in itertools.product(*(range(n) for n in grid_shape(sweep))):
+        *cell, replicate = index
+        flat = dict(sweep.base)
+        labels: dict[str, Any] = {}
+        for axis, i in zip(sweep.axes, cell):
+            flat[axis.key] = axis.values[i]
+            labels[axis.name] = axis.values[i]
+        labels["replicate"] = replicate
+        check_consistency(flat, f"{sweep.source}: point {_describe(labels)}")
+        pid = point_id(flat, replicate)
+        points.append(Point(index, labels, nest(flat), pid, point_seed(sweep.base_seed, pid)))
+    return points
+
+
+def _describe(labels: dict[str, Any]) -> str:
+    return ", ".join(f"{k}={v}" for k, v in labels.items())
+
+
+_RULES: tuple[tuple[Callable[[dict[str, Any]], bool], str], ...] = (
+    (lambda f: f["network.indegree_exc"] <= f["network.n_exc"],
+     "network.indegree_exc ({network.indegree_exc}) must not exceed network.n_exc ({network.n_exc})"),
+    (lambda f: f["network.indegree_inh"] <= n_inh(f),
+     "network.indegree_inh ({network.indegree_inh}) must not exceed the inhibitory count "
+     "round(network.n_exc x network.inh_per_exc)"),
+    (lambda f: f["assemblies.size"] <= f["network.n_exc"],
+     "assemblies.size ({assemblies.size}) must not exceed network.n_exc ({network.n_exc})"),
+    (lambda f: f["assemblies.overlap"] != "disjoint"
+     or f["assemblies.count"] * f["assemblies.size"] <= f["network.n_exc"],
+     "disjoint assemblies need assemblies.count x assemblies.size ({assemblies.count} x {assemblies.size}) "
+     "<= network.n_exc ({network.n_exc}); use fewer or smaller assemblies, or assemblies.overlap = 'random'"),
+    (lambda f: f["network.v_reset_mv"] < f["network.v_threshold_mv"],
+     "network.v_reset_mv ({network.v_reset_mv}) must be below network.v_threshold_mv ({network.v_threshold_mv})"),
+    (lambda f: f["protocol.cue_skip_s"] < f["protocol.cue_duration_s"],
+     "protocol.cue_skip_s ({protocol.cue_skip_s}) must be shorter than protocol.cue_duration_s "
+     "({protocol.cue_duration_s})"),
+)
+
+
+def n_inh(flat: dict[str, Any]) -> int:
+    """Inhibitory cell count implied by a flat config."""
+    return max(1, round(flat["network.n_exc"] * flat["network.inh_per_exc"]))
+
+
+def check_consistency(flat: dict[str, Any], where: str) -> None:
+    """Raise ConfigError if keys that are valid alone contradict each other."""
+    for ok, message in _RULES:
+        if not ok(flat):
+            for key, value in flat.items():
+                message = message.replace("{" + key + "}", str(value))
+            raise ConfigError(f"{where}: {message}")
+
+
+def fingerprint(sweep: Sweep) -> str:
+    """Hash of everything that fixes the grid: axes, replicates, base seed and base science config."""
+    blob = json.dumps(
+        {
+            "axes": [[a.name, a.key, list(a.values)] for a in sweep.axes],
+            "replicates": sweep.replicates,
+            "base_seed": sweep.base_seed,
+            "base": identity_config(sweep.base),
+        },
+        sort_keys=True,
+    )
+    return hashlib.sha256(blob.encode()).hexdigest()[:16]
+
+
+def grid_spec(sweep: Sweep, points: list[Point], attrs: dict[str, Any]) -> GridSpec:
+    """Store layout of ``sweep``: axes, replicates and inner-dim sizes over all ``points``."""
+    bin_s = sweep.base["detection.trace_bin_ms"] / 1000.0
+    longest = max(total_duration_s(p.config) for p in points)
+    return GridSpec(
+        axes=sweep.axes,
+        replicates=sweep.replicates,
+        n_assembly=max(1, max(p.config["assemblies"]["count"] for p in points)),
+        n_snapshot=sweep.base["protocol.snapshots"],
+        n_time_bin=int(math.ceil(longest / bin_s - 1e-9)),
+        time_bin_s=bin_s,
+        fingerprint=fingerprint(sweep),
+        attrs=attrs,
+    )
+
+
+def id_and_seed_arrays(sweep: Sweep, points: list[Point]) -> tuple[np.ndarray, np.ndarray]:
+    """Point ids (str) and seeds (int64) laid out over the grid shape."""
+    ids = np.empty(grid_shape(sweep), dtype=object)
+    seeds = np.zeros(grid_shape(sweep), dtype=np.int64)
+    for p in points:
+        ids[p.index] = p.point_id
+        seeds[p.index] = p.seed
+    return ids.astype(str), seeds

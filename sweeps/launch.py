@@ -1,0 +1,143 @@
+"""Run a sweep: open or create its store, lock it, run every point not yet done, write as they arrive.
+
+This is the library function behind ``capsweep run``. It never prints: it reports through an
+``on_event`` callback that receives :class:`Progress` snapshots.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from results_schema.layout import STATUS_FLAGS
+from results_schema.lock import store_lock
+from results_schema.store import ResultStore, create_store
+from runners.dask_backend import TaskFailure, dask_client, run_tasks
+from results_schema.definitions import DEFINITIONS
+from sweeps.expand import Point, expand, fingerprint, grid_spec, id_and_seed_arrays
+from sweeps.sweepfile import Sweep, load_sweep
+
+DONE = STATUS_FLAGS.index("done")
+FAILED = STATUS_FLAGS.index("failed")
+
+
+@dataclass
+class Progress:
+    """Where a run stands; passed to the ``on_event`` callback after every change."""
+
+    total: int  # points in the grid
+    to_run: int  # points this run submits
+    already_done: int  # points done before this run started
+    finished: int = 0  # points this run has stored (done or failed)
+    failed: int = 0
+    outcomes: dict[str, int] = field(default_factory=dict)
+    dashboard: str = ""
+    started_at: float = field(default_factory=time.monotonic)
+    last: str = ""  # description of the last stored point
+
+    @property
+    def elapsed_s(self) -> float:
+        """Wall time since the run started, in seconds."""
+        return time.monotonic() - self.started_at
+
+
+@dataclass(frozen=True)
+class RunOptions:
+    """Command-line overrides of the sweep file's [execution] table."""
+
+    store: Path | None = None
+    workers: int | None = None
+    scheduler: str | None = None
+    engine: str | None = None
+    retry_failed: bool = False
+
+
+def run_sweep(
+    sweep_file: str | Path,
+    options: RunOptions = RunOptions(),
+    on_event: Callable[[Progress], None] = lambda p: None,
+) -> Progress:
+    """Run the points of ``sweep_file`` whose status is not done; return the final Progress."""
+    sweep = load_sweep(sweep_file, store=options.store)
+    points = expand(sweep)
+    store = open_or_create(sweep, points)
+    with store_lock(sweep.store):
+        todo = pending(points, store, options.retry_failed)
+        progress = Progress(total=len(points), to_run=len(todo), already_done=len(points) - len(todo))
+        if todo:
+            _execute(sweep, todo, store, options, progress, on_event)
+        on_event(progress)
+    return progress
+
+
+def open_or_create(sweep: Sweep, points: list[Point]) -> ResultStore:
+    """Open the sweep's store (refusing one built from another grid) or lay out a new one."""
+    if not Path(sweep.store).exists():
+        ids, seeds = id_and_seed_arrays(sweep, points)
+        create_store(sweep.store, grid_spec(sweep, points, _root_attrs(sweep)), ids, seeds)
+    return ResultStore.open(sweep.store, fingerprint=fingerprint(sweep))
+
+
+def _root_attrs(sweep: Sweep) -> dict[str, Any]:
+    return {
+        "sweep_name": sweep.name,
+        "sweep_file": str(sweep.source),
+        "sweep_text": sweep.text,
+        "sweep_sha256": sweep.text_sha256,
+        "replicates": sweep.replicates,
+        "base_seed": sweep.base_seed,
+        "created_by": "capsweep run",
+        "created_utc": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
+        "metric_definitions": DEFINITIONS,
+    }
+
+
+def pending(points: list[Point], store: ResultStore, retry_failed: bool) -> list[Point]:
+    """Points still to run: not done, and not failed unless ``retry_failed``."""
+    status = store.status()
+    skip = {DONE} if retry_failed else {DONE, FAILED}
+    return [p for p in points if int(status[p.index]) not in skip]
+
+
+def _execute(
+    sweep: Sweep,
+    todo: list[Point],
+    store: ResultStore,
+    options: RunOptions,
+    progress: Progress,
+    on_event: Callable[[Progress], None],
+) -> None:
+    execution = todo[0].config["execution"]
+    workers = options.workers or execution["workers"]
+    scheduler = options.scheduler if options.scheduler is not None else execution["scheduler"]
+    jobs = [(p, _with_engine(p.config, options.engine), p.seed) for p in todo]
+    with dask_client(workers, scheduler) as client:
+        progress.dashboard = client.dashboard_link or ""
+        on_event(progress)
+        for point, result in run_tasks(client, jobs):
+            _store_result(store, point, result, progress)
+            on_event(progress)
+
+
+def _with_engine(config: dict[str, Any], engine: str | None) -> dict[str, Any]:
+    if engine is None:
+        return config
+    return {**config, "execution": {**config["execution"], "engine": engine}}
+
+
+def _store_result(store: ResultStore, point: Point, result: Any, progress: Progress) -> None:
+    progress.finished += 1
+    where = ", ".join(f"{k}={v}" for k, v in point.labels.items())
+    if isinstance(result, TaskFailure):
+        store.write_failure(point.index, result.error)
+        progress.failed += 1
+        progress.last = f"{where}: failed ({result.error.splitlines()[0]})"
+        return
+    store.write_point(point.index, result)
+    outcome = str(result["outcome"])
+    progress.outcomes[outcome] = progress.outcomes.get(outcome, 0) + 1
+    progress.last = f"{where}: {outcome}"

@@ -1,0 +1,212 @@
+"""The one registry of model-config keys: default, unit, allowed range, description.
+
+Every key a sweep file may set under ``[network]``, ``[assemblies]``, ``[plasticity.*]``,
+``[protocol]``, ``[detection]`` and ``[execution]`` is declared here and nowhere else.
+Units live in the key names (``_ms``, ``_s``, ``_hz``, ``_mv``); weights are in units of
+the leak conductance (``g_leak``), which makes them dimensionless.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+from sweeps.errors import ConfigError
+
+
+@dataclass(frozen=True)
+class Key:
+    """One config key: where it lives, its default and what values it accepts."""
+
+    path: str
+    default: Any
+    unit: str
+    description: str
+    low: float | None = None
+    high: float | None = None
+    choices: tuple[str, ...] = ()
+    sweepable: bool = True
+
+    @property
+    def kind(self) -> type:
+        """Python type of the value (bool, int, float or str)."""
+        return type(self.default)
+
+    def allowed(self) -> str:
+        """Human-readable statement of what values this key accepts."""
+        if self.choices:
+            return "one of " + ", ".join(repr(c) for c in self.choices)
+        if self.kind is bool:
+            return "true or false"
+        kind = {int: "an integer", float: "a number", str: "a string"}[self.kind]
+        if self.low is not None and self.high is not None:
+            return f"{kind} from {self.low:g} to {self.high:g}"
+        if self.low is not None:
+            return f"{kind} >= {self.low:g}"
+        return kind
+
+    def check(self, value: Any, where: str = "") -> Any:
+        """Return ``value`` coerced to this key's type, or raise ConfigError naming the key."""
+        place = f" in {where}" if where else ""
+        bad = ConfigError(
+            f"{self.path} = {value!r}{place} is not allowed: expected {self.allowed()}"
+            f" ({self.unit}). {self.description}."
+        )
+        if self.kind is bool:
+            if not isinstance(value, bool):
+                raise bad
+            return value
+        if isinstance(value, bool):
+            raise bad
+        if self.kind is int:
+            if isinstance(value, float) and value.is_integer():
+                value = int(value)
+            if not isinstance(value, int):
+                raise bad
+        elif self.kind is float:
+            if not isinstance(value, (int, float)):
+                raise bad
+            value = float(value)
+        elif not isinstance(value, str):
+            raise bad
+        if self.choices and value not in self.choices:
+            raise bad
+        if self.low is not None and value < self.low:
+            raise bad
+        if self.high is not None and value > self.high:
+            raise bad
+        return value
+
+
+def _k(path: str, default: Any, unit: str, description: str, **kw: Any) -> Key:
+    return Key(path, default, unit, description, **kw)
+
+
+KEYS: tuple[Key, ...] = (
+    # --- network: sizes, connectivity, neuron model, background drive
+    _k("network.n_exc", 800, "1", "Number of excitatory cells", low=20, high=50000),
+    _k("network.inh_per_exc", 0.25, "1", "Inhibitory cells per excitatory cell", low=0.01, high=2.0),
+    _k("network.indegree_exc", 80, "1", "Excitatory inputs per cell (fixed in-degree)", low=1, high=10000),
+    _k("network.indegree_inh", 20, "1", "Inhibitory inputs per cell (fixed in-degree)", low=1, high=10000),
+    _k("network.delay_ms", 1.5, "ms", "Synaptic delay", low=0.1, high=20.0),
+    _k("network.tau_m_ms", 20.0, "ms", "Membrane time constant", low=1.0, high=200.0),
+    _k("network.e_leak_mv", -70.0, "mV", "Leak reversal potential", low=-100.0, high=-30.0),
+    _k("network.v_threshold_mv", -50.0, "mV", "Spike threshold", low=-80.0, high=0.0),
+    _k("network.v_reset_mv", -60.0, "mV", "Reset potential", low=-100.0, high=-30.0),
+    _k("network.refractory_exc_ms", 5.0, "ms", "Excitatory refractory period", low=0.0, high=50.0),
+    _k("network.refractory_inh_ms", 2.0, "ms", "Inhibitory refractory period", low=0.0, high=50.0),
+    _k("network.e_exc_mv", 0.0, "mV", "Excitatory reversal potential", low=-30.0, high=50.0),
+    _k("network.e_inh_mv", -80.0, "mV", "Inhibitory reversal potential", low=-120.0, high=-50.0),
+    _k("network.tau_exc_ms", 5.0, "ms", "Excitatory conductance decay", low=0.5, high=100.0),
+    _k("network.tau_inh_ms", 10.0, "ms", "Inhibitory conductance decay", low=0.5, high=100.0),
+    _k("network.adapt_jump", 0.0, "g_leak", "Adaptation conductance jump per spike (0 = no adaptation)", low=0.0, high=10.0),
+    _k("network.adapt_tau_ms", 100.0, "ms", "Adaptation conductance decay", low=1.0, high=5000.0),
+    _k("network.w_e_to_e", 0.05, "g_leak", "Initial E->E weight", low=0.0, high=10.0),
+    _k("network.w_e_to_i", 0.10, "g_leak", "E->I weight", low=0.0, high=10.0),
+    _k("network.w_i_to_e", 0.90, "g_leak", "Initial I->E weight", low=0.0, high=50.0),
+    _k("network.w_i_to_i", 0.30, "g_leak", "I->I weight", low=0.0, high=50.0),
+    _k("network.drive_inputs", 100, "1", "Poisson background inputs per cell", low=0, high=100000),
+    _k("network.drive_weight", 0.06, "g_leak", "Weight of each background input", low=0.0, high=10.0),
+    _k("network.drive_rate_exc_hz", 18.0, "Hz", "Background rate per input onto E cells", low=0.0, high=1000.0),
+    _k("network.drive_rate_inh_hz", 13.0, "Hz", "Background rate per input onto I cells", low=0.0, high=1000.0),
+    _k("network.dt_ms", 0.1, "ms", "Integration time step (Euler)", low=0.005, high=1.0, sweepable=False),
+    # --- assemblies
+    _k("assemblies.count", 4, "1", "Number of cell assemblies", low=0, high=1000),
+    _k("assemblies.size", 120, "1", "Excitatory cells per assembly", low=2, high=50000),
+    _k("assemblies.overlap", "disjoint", "1", "Membership policy: disjoint groups or independent random draws",
+       choices=("disjoint", "random")),
+    _k("assemblies.imprint", "prewired", "1", "How assemblies come to exist",
+       choices=("prewired", "learned")),
+    _k("assemblies.prewire_gain", 5.0, "1", "Within-assembly E->E weight as a multiple of w_e_to_e (prewired)",
+       low=0.0, high=100.0),
+    # --- plasticity: every term switchable, every coefficient sweepable
+    _k("plasticity.triplet.enabled", True, "1", "Minimal triplet STDP on E->E"),
+    _k("plasticity.triplet.a_ltp", 0.02, "g_leak", "Triplet LTP amplitude A", low=0.0, high=1.0),
+    _k("plasticity.triplet.b_ltd", 0.004, "g_leak", "Pair LTD amplitude B", low=0.0, high=1.0),
+    _k("plasticity.triplet.tau_plus_ms", 16.8, "ms", "Presynaptic trace decay", low=0.1, high=1000.0),
+    _k("plasticity.triplet.tau_minus_ms", 33.7, "ms", "Postsynaptic trace decay", low=0.1, high=1000.0),
+    _k("plasticity.triplet.tau_slow_ms", 100.0, "ms", "Slow postsynaptic trace decay", low=0.1, high=10000.0),
+    _k("plasticity.triplet.w_max", 0.5, "g_leak", "Upper clip of E->E weights", low=0.0, high=100.0),
+    _k("plasticity.heterosynaptic.enabled", True, "1", "Heterosynaptic term on E->E"),
+    _k("plasticity.heterosynaptic.beta", 0.03, "1", "Heterosynaptic coefficient beta", low=0.0, high=10.0),
+    _k("plasticity.heterosynaptic.w_ref_mode", "fixed", "1", "Reference weight: fixed at the initial weight, or consolidating",
+       choices=("fixed", "consolidating")),
+    _k("plasticity.heterosynaptic.tau_consolidation_s", 1200.0, "s", "Time constant of the consolidating reference weight",
+       low=0.1, high=1e6),
+    _k("plasticity.transmitter.enabled", True, "1", "Transmitter-induced term on E->E"),
+    _k("plasticity.transmitter.delta", 1e-4, "g_leak", "Weight increment per presynaptic spike", low=0.0, high=1.0),
+    _k("plasticity.inhibitory.enabled", True, "1", "Inhibitory STDP on I->E"),
+    _k("plasticity.inhibitory.eta", 5e-3, "g_leak", "Inhibitory learning rate", low=0.0, high=1.0),
+    _k("plasticity.inhibitory.rho0_hz", 3.0, "Hz", "Target excitatory rate", low=0.0, high=200.0),
+    _k("plasticity.inhibitory.tau_ms", 20.0, "ms", "Inhibitory STDP trace decay", low=0.1, high=1000.0),
+    _k("plasticity.inhibitory.w_max", 3.0, "g_leak", "Upper clip of I->E weights", low=0.0, high=100.0),
+    # --- protocol (plasticity stays on in every phase)
+    _k("protocol.settle_s", 1.0, "s", "Settle phase duration", low=0.0, high=1e5),
+    _k("protocol.imprint_rate_hz", 600.0, "Hz", "Extra Poisson rate onto members while imprinting (learned)", low=0.0, high=1e5),
+    _k("protocol.imprint_weight", 0.1, "g_leak", "Weight of the imprinting input", low=0.0, high=10.0),
+    _k("protocol.imprint_on_s", 1.0, "s", "Stimulus on-time per presentation (learned)", low=0.001, high=1e4),
+    _k("protocol.imprint_off_s", 1.0, "s", "Pause after each presentation (learned)", low=0.0, high=1e4),
+    _k("protocol.imprint_repeats", 4, "1", "Presentations per assembly (learned)", low=1, high=10000),
+    _k("protocol.hold_s", 10.0, "s", "Hold phase: background only, plasticity on", low=0.0, high=1e6),
+    _k("protocol.snapshots", 5, "1", "Weight snapshots spread over the hold phase", low=2, high=1000, sweepable=False),
+    _k("protocol.cue_fraction", 0.5, "1", "Fraction of an assembly's members cued", low=0.01, high=1.0),
+    _k("protocol.cue_duration_s", 0.2, "s", "Cue duration", low=0.01, high=100.0),
+    _k("protocol.cue_rate_hz", 2000.0, "Hz", "Extra Poisson rate onto cued cells", low=0.0, high=1e5),
+    _k("protocol.cue_weight", 0.1, "g_leak", "Weight of the cue input", low=0.0, high=10.0),
+    _k("protocol.cue_gap_s", 0.5, "s", "Background-only gap after each cue", low=0.05, high=100.0),
+    _k("protocol.cue_skip_s", 0.02, "s", "Start of the cue period left out of the recall window", low=0.0, high=10.0),
+    _k("protocol.persistence_window_s", 0.1, "s", "Window after cue end scored as persistence", low=0.01, high=100.0),
+    # --- detection
+    _k("detection.smoothing_s", 0.5, "s", "Window of the smoothed excitatory rate", low=0.01, high=100.0),
+    _k("detection.runaway_factor", 4.0, "1", "Runaway threshold as a multiple of the baseline E rate", low=1.0, high=1000.0),
+    _k("detection.runaway_floor_hz", 10.0, "Hz", "Lowest runaway threshold", low=0.0, high=1000.0),
+    _k("detection.runaway_hold_s", 1.0, "s", "Time above threshold before runaway is declared", low=0.0, high=1000.0),
+    _k("detection.silence_hz", 0.1, "Hz", "E rate below which a point counts as silent", low=0.0, high=100.0),
+    _k("detection.recall_threshold", 0.5, "1", "recall_quality at or above which an assembly counts as recalled",
+       low=-1.0, high=1.0),
+    _k("detection.active_factor", 3.0, "1", "A cell is active when its window rate exceeds this multiple of the baseline E rate",
+       low=1.0, high=1000.0),
+    _k("detection.active_floor_hz", 5.0, "Hz", "Lowest rate that counts as active", low=0.0, high=1000.0),
+    _k("detection.trace_bin_ms", 10.0, "ms", "Bin width of the stored population rate trace", low=0.1, high=10000.0,
+       sweepable=False),
+    # --- execution (never part of a point's identity)
+    _k("execution.engine", "cython", "1", "Brian2 code generation target",
+       choices=("cython", "numpy", "standalone"), sweepable=False),
+    _k("execution.workers", 2, "1", "Local Dask worker processes", low=1, high=1024, sweepable=False),
+    _k("execution.scheduler", "", "1", "Address of a running Dask scheduler ('' = start a local cluster)",
+       sweepable=False),
+    _k("execution.abort_on_runaway", True, "1", "Stop a point's simulation soon after runaway onset", sweepable=False),
+)
+
+BY_PATH: dict[str, Key] = {k.path: k for k in KEYS}
+SECTIONS: tuple[str, ...] = ("network", "assemblies", "plasticity", "protocol", "detection", "execution")
+
+
+def defaults() -> dict[str, Any]:
+    """Flat mapping ``dotted.path -> default`` of every key."""
+    return {k.path: k.default for k in KEYS}
+
+
+def lookup(path: str, where: str = "") -> Key:
+    """Return the Key at ``path`` or raise ConfigError listing the valid keys nearest to it."""
+    if path in BY_PATH:
+        return BY_PATH[path]
+    prefix = path
+    valid: list[str] = []
+    while not valid and "." in prefix:
+        prefix = prefix.rsplit(".", 1)[0]
+        valid = [p for p in BY_PATH if p.startswith(prefix + ".")]
+    place = f" in {where}" if where else ""
+    raise ConfigError(f"unknown key {path!r}{place}; valid keys here: {', '.join(valid or BY_PATH)}")
+
+
+def nest(flat: dict[str, Any]) -> dict[str, Any]:
+    """Turn ``{'a.b.c': v}`` into ``{'a': {'b': {'c': v}}}``."""
+    tree: dict[str, Any] = {}
+    for path, value in flat.items():
+        node = tree
+        *parents, leaf = path.split(".")
+        for part in parents:
+            node = node.setdefault(part, {})
+        node[leaf] = value
+    return tree

@@ -1,0 +1,141 @@
+"""Sweep-file validation through the CLI, and grid expansion properties.
+
+Every bad input must give one message naming the key (or file), the value and what is allowed,
+a non-zero exit and no traceback, before anything is run or stored.
+"""
+
+from __future__ import annotations
+
+import math
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from typer.testing import CliRunner
+
+from sweeps.cli import app
+from sweeps.expand import expand, grid_shape, point_id
+from sweeps.registry import KEYS, defaults
+from sweeps.sweepfile import parse_sweep
+
+GOOD = """
+[sweep]
+name = "odour-check"
+store = "{store}"
+replicates = 2
+[[sweep.axis]]
+name = "n_assemblies"
+key = "assemblies.count"
+values = [1, 2]
+[network]
+n_exc = 200
+[assemblies]
+size = 40
+"""
+
+
+def run_cli(tmp_path: Path, text: str) -> tuple[int, str]:
+    """Run ``capsweep run`` on ``text``; return (exit code, stderr+stdout)."""
+    sweep = tmp_path / "sweep.toml"
+    sweep.write_text(text.replace("{store}", str(tmp_path / "store.zarr")))
+    result = CliRunner().invoke(app, ["run", str(sweep)])
+    return result.exit_code, result.output
+
+
+@pytest.mark.parametrize(
+    ("edit", "needles"),
+    [
+        (("n_exc = 200", "n_excc = 200"), ["network.n_excc", "network.n_exc", "valid keys"]),
+        (("n_exc = 200", "n_exc = 5"), ["network.n_exc = 5", "from 20 to 50000"]),
+        (("n_exc = 200", 'n_exc = "many"'), ["network.n_exc = 'many'", "an integer"]),
+        (("size = 40", 'overlap = "sometimes"'), ["assemblies.overlap", "'disjoint', 'random'"]),
+        (("replicates = 2", "replicates = 0"), ["sweep.replicates = 0", "integer >= 1"]),
+        (('key = "assemblies.count"', 'key = "assemblies.cout"'), ["assemblies.cout", "assemblies.count"]),
+        (("values = [1, 2]", "values = [1, 1]"), ["repeat"]),
+        (("values = [1, 2]", "values = []"), ["non-empty list"]),
+        (("values = [1, 2]", "values = [1, -3]"), ["assemblies.count = -3", "from 0 to 1000"]),
+        (('name = "n_assemblies"', 'name = "replicate"'), ["'replicate'", "identifier"]),
+        (("[network]", "[netwerk]"), ["[netwerk]", "[network]"]),
+        (("values = [1, 2]", "values = [1, 2]\nunit = 3"), ["unknown key 'unit'", "name, key, values"]),
+        (('store = "{store}"', "store = "), ["not valid TOML"]),
+        (("values = [1, 2]", "values = [1, 6]"), ["6 x 40", "network.n_exc (200)", "n_assemblies=6"]),
+        (('key = "assemblies.count"', 'key = "network.dt_ms"'), ["network.dt_ms cannot be swept"]),
+    ],
+)
+def test_bad_sweep_file_gives_one_clear_message(tmp_path: Path, edit: tuple[str, str], needles: list[str]) -> None:
+    code, output = run_cli(tmp_path, GOOD.replace(*edit))
+    assert code == 2
+    assert output.startswith("capsweep: error:")
+    for needle in needles:
+        assert needle in output, output
+    assert "Traceback" not in output
+    assert not (tmp_path / "store.zarr").exists(), "a bad sweep file must not create a store"
+
+
+def test_missing_sweep_file_is_named(tmp_path: Path) -> None:
+    result = CliRunner().invoke(app, ["run", str(tmp_path / "nope.toml")])
+    assert result.exit_code == 2
+    assert "nope.toml" in result.output and "Traceback" not in result.output
+
+
+def test_error_in_a_real_process_has_no_traceback(tmp_path: Path) -> None:
+    """The console script path, not only the in-process runner, stays traceback-free."""
+    sweep = tmp_path / "sweep.toml"
+    sweep.write_text(GOOD.replace("n_exc = 200", "n_exc = 20.5"))
+    proc = subprocess.run(
+        [sys.executable, "-m", "sweeps.cli", "run", str(sweep)], capture_output=True, text=True, timeout=120
+    )
+    assert proc.returncode == 2
+    assert "network.n_exc = 20.5" in proc.stderr and "Traceback" not in proc.stderr
+
+
+axis_values = st.lists(st.integers(min_value=1, max_value=6), min_size=1, max_size=4, unique=True)
+
+
+@settings(max_examples=25, deadline=None)
+@given(counts=axis_values, betas=st.lists(st.sampled_from([0.0, 0.01, 0.03, 0.05, 0.1]), min_size=1,
+                                          max_size=3, unique=True), replicates=st.integers(1, 3))
+def test_expansion_counts_ids_and_seeds(counts: list[int], betas: list[float], replicates: int) -> None:
+    text = f"""
+[sweep]
+name = "prop"
+store = "x.zarr"
+replicates = {replicates}
+[[sweep.axis]]
+name = "n_assemblies"
+key = "assemblies.count"
+values = {counts}
+[[sweep.axis]]
+name = "beta"
+key = "plasticity.heterosynaptic.beta"
+values = {betas}
+[assemblies]
+size = 50
+"""
+    sweep = parse_sweep(text)
+    points = expand(sweep)
+    assert len(points) == math.prod([len(counts), len(betas), replicates]) == math.prod(grid_shape(sweep))
+    assert len({p.point_id for p in points}) == len(points)
+    assert len({p.seed for p in points}) == len(points)
+    again = expand(parse_sweep(text))
+    assert [(p.point_id, p.seed) for p in again] == [(p.point_id, p.seed) for p in points]
+    for p in points:
+        assert p.config["assemblies"]["count"] == p.labels["n_assemblies"]
+        assert p.config["plasticity"]["heterosynaptic"]["beta"] == p.labels["beta"]
+
+
+def test_point_id_ignores_execution_settings_and_axis_order() -> None:
+    """Ids depend on the science config only: worker count or engine must not change them."""
+    flat = defaults()
+    changed = {**flat, "execution.workers": 7, "execution.engine": "numpy"}
+    assert point_id(flat, 0) == point_id(changed, 0)
+    assert point_id(flat, 0) != point_id(flat, 1)
+    assert point_id(flat, 0) != point_id({**flat, "plasticity.triplet.a_ltp": 0.021}, 0)
+
+
+def test_every_key_default_is_allowed() -> None:
+    for key in KEYS:
+        assert key.check(key.default) == key.default, key.path
