@@ -173,6 +173,22 @@ def capacity(
     _emit(capacity_table(open_dataset(store)), fmt)
 
 
+@app.command()
+@user_errors
+def plot(
+    store: Path = typer.Argument(..., help="Zarr store directory"),
+    out_dir: Path = typer.Option(Path("plots"), "--out", help="folder for the PNG files"),
+    x: str = typer.Option(None, "--x", help="axis across the stability map (default: the first axis)"),
+    y: str = typer.Option(None, "--y", help="axis up the stability map (default: the second axis)"),
+) -> None:
+    """Write PNGs: stability map, capacity curves, rate traces and weight drift."""
+    from results_schema.store import open_dataset
+    from sweeps.plots import all_plots
+
+    for path in all_plots(open_dataset(store), out_dir, x, y):
+        out.print(str(path), markup=False, highlight=False)
+
+
 def _emit(frame: Any, fmt: TableFormat) -> None:
     if fmt is TableFormat.csv:
         sys.stdout.write(frame.to_csv(index=False))

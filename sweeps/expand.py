@@ -64,8 +64,9 @@ def expand(sweep: Sweep) -> list[Point]:
         flat = dict(sweep.base)
         labels: dict[str, Any] = {}
         for axis, i in zip(sweep.axes, cell):
-            flat[axis.key] = axis.values[i]
-            labels[axis.name] = axis.values[i]
+            value = axis.values[i]
+            flat.update(sweep.variants[axis.name][value] if axis.name in sweep.variants else {axis.key: value})
+            labels[axis.name] = value
         labels["replicate"] = replicate
         check_consistency(flat, f"{sweep.source}: point {_describe(labels)}")
         pid = point_id(flat, replicate)
@@ -116,6 +117,7 @@ def fingerprint(sweep: Sweep) -> str:
     blob = json.dumps(
         {
             "axes": [[a.name, a.key, list(a.values)] for a in sweep.axes],
+            "variants": sweep.variants,
             "replicates": sweep.replicates,
             "base_seed": sweep.base_seed,
             "base": identity_config(sweep.base),

@@ -13,6 +13,7 @@ import pandas as pd
 import xarray as xr
 
 from results_schema.layout import STATUS
+from results_schema.store import flag_labels
 from sweeps.errors import CapsweepError
 
 DEFAULT_WHERE = 'status == "done" and outcome == "stable"'
@@ -34,12 +35,8 @@ def axis_keys(ds: xr.Dataset) -> dict[str, str]:
 
 
 def labelled(ds: xr.Dataset, name: str) -> xr.DataArray:
-    """A flag variable as its labels (``status``/``outcome``/...), unwritten entries as ''."""
-    meanings = ds[name].attrs["flag_meanings"].split()
-    values = ds[name].values.astype(int)
-    table = np.array(meanings + [""], dtype=object)
-    codes = np.where((values >= 0) & (values < len(meanings)), values, len(meanings))
-    return xr.DataArray(table[codes], coords=ds[name].coords, dims=ds[name].dims)
+    """A flag variable of ``ds`` as its labels (``status``/``outcome``/...), unwritten entries as ''."""
+    return flag_labels(ds[name])
 
 
 def point_table(ds: xr.Dataset) -> pd.DataFrame:

@@ -17,7 +17,7 @@ from typing import Any
 from results_schema.layout import INNER_DIMS
 from results_schema.store import Axis
 from sweeps.errors import ConfigError
-from sweeps.registry import BY_PATH, SECTIONS, defaults, lookup
+from sweeps.registry import BY_PATH, SECTIONS, Key, defaults, lookup
 
 SWEEP_KEYS = {
     "name": "sweep name (a non-empty string)",
@@ -26,7 +26,13 @@ SWEEP_KEYS = {
     "base_seed": "seed all point seeds derive from (integer >= 0)",
     "axis": "array of tables [[sweep.axis]] with name, key, values",
 }
-AXIS_KEYS = {"name": "dim name", "key": "config key it sets", "values": "list of values"}
+AXIS_KEYS = {
+    "name": "dim name",
+    "key": "config key it sets",
+    "values": "list of values",
+    "variants": "table of named variants, each a table of config overrides (instead of key and values)",
+}
+VARIANT_KEY = "variants"  # the Axis.key of an axis over named variants
 _DIM_NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
 _RESERVED_DIMS = set(INNER_DIMS) | {"replicate"}
 
@@ -43,6 +49,7 @@ class Sweep:
     base: dict[str, Any] = field(repr=False)
     text: str = field(repr=False)
     source: Path = Path("<memory>")
+    variants: dict[str, dict[str, dict[str, Any]]] = field(default_factory=dict, repr=False)
 
     @property
     def text_sha256(self) -> str:
@@ -74,8 +81,13 @@ def parse_sweep(text: str, source: Path = Path("<memory>"), store: str | Path | 
         )
     base = _base_config(doc, source)
     head = _sweep_table(doc, source)
-    axes = tuple(_axis(raw, i, source) for i, raw in enumerate(head.get("axis", [])))
+    parsed = [_axis(raw, i, source) for i, raw in enumerate(head.get("axis", []))]
+    axes = tuple(axis for axis, _ in parsed)
     _check_axis_names(axes, source)
+    touched = {key for _, table in parsed for overrides in table.values() for key in overrides}
+    clash = sorted(touched & {a.key for a in axes})
+    if clash:
+        raise ConfigError(f"{source}: {clash[0]} is set both by an axis and by a variant; set it in one place")
     return Sweep(
         name=head["name"],
         store=Path(store) if store is not None else Path(head["store"]),
@@ -83,6 +95,7 @@ def parse_sweep(text: str, source: Path = Path("<memory>"), store: str | Path | 
         base_seed=head["base_seed"],
         axes=axes,
         base=base,
+        variants={axis.name: table for axis, table in parsed if table},
         text=text,
         source=source,
     )
@@ -138,38 +151,73 @@ def _flatten(node: Any, prefix: str, source: Path) -> list[tuple[str, Any]]:
     return items
 
 
-def _axis(raw: Any, position: int, source: Path) -> Axis:
+def _axis(raw: Any, position: int, source: Path) -> tuple[Axis, dict[str, dict[str, Any]]]:
+    """One ``[[sweep.axis]]``: an Axis, plus its variant overrides (empty for a key axis)."""
     where = f"{source}: sweep.axis #{position + 1}"
     if not isinstance(raw, dict):
-        raise ConfigError(f"{where} must be a table with name, key, values")
+        raise ConfigError(f"{where} must be a table with name, key, values (or name, variants)")
     for key in raw:
         if key not in AXIS_KEYS:
             raise ConfigError(f"{where}: unknown key {key!r}; valid keys: {', '.join(AXIS_KEYS)}")
-    missing = [k for k in AXIS_KEYS if k not in raw]
-    if missing:
-        raise ConfigError(f"{where}: missing {', '.join(missing)} (each axis needs name, key, values)")
-    name, key, values = raw["name"], raw["key"], raw["values"]
+    name = raw.get("name")
     if not isinstance(name, str) or not _DIM_NAME.match(name) or name in _RESERVED_DIMS:
         raise ConfigError(
             f"{where}: name {name!r} is not allowed: a Python-style identifier other than "
             + ", ".join(sorted(_RESERVED_DIMS))
         )
-    spec = lookup(key, where=where) if isinstance(key, str) else None
-    if spec is None:
+    if "variants" in raw:
+        return _variant_axis(raw, name, where)
+    missing = [k for k in ("key", "values") if k not in raw]
+    if missing:
+        raise ConfigError(f"{where}: missing {', '.join(missing)} (each axis needs name, key, values, "
+                          "or name and variants)")
+    key, values = raw["key"], raw["values"]
+    if not isinstance(key, str):
         raise ConfigError(f"{where}: key must be a dotted config key such as 'assemblies.count'")
-    if not spec.sweepable:
-        raise ConfigError(f"{where}: {key} cannot be swept (it is fixed for the whole sweep)")
+    spec = _sweepable(key, where)
     if not isinstance(values, list) or not values:
         raise ConfigError(f"{where}: values must be a non-empty list of {spec.allowed()}")
     checked = tuple(spec.check(v, where=f"{where} ({name})") for v in values)
     if len(set(checked)) != len(checked):
         raise ConfigError(f"{where}: values of axis {name!r} repeat: {list(values)}")
-    return Axis(name=name, key=key, values=checked)
+    return Axis(name=name, key=key, values=checked), {}
+
+
+def _sweepable(key: str, where: str) -> Key:
+    spec = lookup(key, where=where)
+    if not spec.sweepable:
+        raise ConfigError(f"{where}: {key} cannot be swept (it is fixed for the whole sweep)")
+    return spec
+
+
+def _variant_axis(raw: dict[str, Any], name: str, where: str) -> tuple[Axis, dict[str, dict[str, Any]]]:
+    """An axis over named variants: ``variants = { full = {}, triplet_only = {"a.b" = v, ...} }``."""
+    extra = sorted(set(raw) & {"key", "values"})
+    table = raw["variants"]
+    if extra or not isinstance(table, dict) or not table:
+        raise ConfigError(f"{where}: an axis with variants takes name and a non-empty variants table only "
+                          "(each variant a table of 'dotted.key' = value overrides)")
+    checked: dict[str, dict[str, Any]] = {}
+    for label, overrides in table.items():
+        if not isinstance(overrides, dict):
+            raise ConfigError(f"{where}: variant {label!r} must be a table of 'dotted.key' = value overrides")
+        place = f"{where} (variant {label})"
+        checked[label] = {k: _sweepable(k, place).check(v, where=place) for k, v in _leaves(overrides)}
+    return Axis(name=name, key=VARIANT_KEY, values=tuple(checked)), checked
+
+
+def _leaves(node: dict[str, Any], prefix: str = "") -> list[tuple[str, Any]]:
+    """``[(dotted.key, value)]`` of a table whose keys may be quoted dotted paths or nested tables."""
+    items: list[tuple[str, Any]] = []
+    for key, value in node.items():
+        path = f"{prefix}.{key}" if prefix else key
+        items += _leaves(value, path) if isinstance(value, dict) else [(path, value)]
+    return items
 
 
 def _check_axis_names(axes: tuple[Axis, ...], source: Path) -> None:
     for attr in ("name", "key"):
-        labels = [getattr(a, attr) for a in axes]
+        labels = [getattr(a, attr) for a in axes if a.key != VARIANT_KEY or attr == "name"]
         repeated = sorted({x for x in labels if labels.count(x) > 1})
         if repeated:
             raise ConfigError(f"{source}: two axes share the {attr} {repeated[0]!r}; each axis needs its own")

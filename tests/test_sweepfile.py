@@ -17,6 +17,7 @@ from hypothesis import strategies as st
 from typer.testing import CliRunner
 
 from sweeps.cli import app
+from sweeps.errors import ConfigError
 from sweeps.expand import expand, grid_shape, point_id
 from sweeps.registry import KEYS, defaults
 from sweeps.sweepfile import parse_sweep
@@ -139,3 +140,49 @@ def test_point_id_ignores_execution_settings_and_axis_order() -> None:
 def test_every_key_default_is_allowed() -> None:
     for key in KEYS:
         assert key.check(key.default) == key.default, key.path
+
+
+VARIANTS = """
+[sweep]
+name = "rules"
+store = "x.zarr"
+[[sweep.axis]]
+name = "rule"
+[sweep.axis.variants]
+full = {}
+triplet_only = { "plasticity.heterosynaptic.enabled" = false, "plasticity.transmitter.enabled" = false }
+[[sweep.axis]]
+name = "n_assemblies"
+key = "assemblies.count"
+values = [1, 2]
+[assemblies]
+size = 50
+"""
+
+
+def test_variant_axis_applies_its_overrides() -> None:
+    points = expand(parse_sweep(VARIANTS))
+    by_rule = {(p.labels["rule"], p.labels["n_assemblies"]): p.config["plasticity"] for p in points}
+    assert len(points) == 4
+    assert by_rule[("full", 2)]["heterosynaptic"]["enabled"] is True
+    assert by_rule[("triplet_only", 1)]["heterosynaptic"]["enabled"] is False
+    assert by_rule[("triplet_only", 1)]["transmitter"]["enabled"] is False
+    assert by_rule[("triplet_only", 1)]["triplet"]["enabled"] is True
+
+
+@pytest.mark.parametrize(
+    ("edit", "needle"),
+    [
+        (('"plasticity.transmitter.enabled" = false', '"plasticity.transmiter.enabled" = false'),
+         "plasticity.transmiter.enabled"),
+        (('"plasticity.transmitter.enabled" = false', '"plasticity.transmitter.enabled" = 3'), "true or false"),
+        (('key = "assemblies.count"\nvalues = [1, 2]', 'key = "plasticity.heterosynaptic.enabled"\nvalues = [true]'),
+         "both by an axis and by a variant"),
+    ],
+)
+def test_bad_variant_is_named(edit: tuple[str, str], needle: str) -> None:
+    text = VARIANTS.replace(*edit)
+    assert text != VARIANTS
+    with pytest.raises(ConfigError) as info:
+        parse_sweep(text)
+    assert needle in str(info.value)

@@ -1,0 +1,132 @@
+"""PNG pictures of a store: stability map, capacity curves, rate traces, weight drift.
+
+All functions read a dataset opened with plain xarray and write one PNG (matplotlib, Agg).
+"""
+
+from __future__ import annotations
+
+import itertools
+from pathlib import Path
+
+import matplotlib
+
+matplotlib.use("Agg")
+import matplotlib.pyplot as plt  # noqa: E402
+import numpy as np  # noqa: E402
+import xarray as xr  # noqa: E402
+
+from sweeps.query import COUNT_KEY, QueryError, axis_keys, labelled  # noqa: E402
+
+OUTCOME_COLOURS = {"stable": "tab:green", "runaway": "tab:red", "silent": "tab:grey"}
+
+
+def success(ds: xr.Dataset) -> xr.DataArray:
+    """1 where a point is done, stable and recalled every one of its assemblies, else 0."""
+    ok = (labelled(ds, "status") == "done") & (labelled(ds, "outcome") == "stable")
+    scored = ds["recall_quality"].notnull().sum("assembly")
+    return (ok & (ds["recalled_count"] >= scored)).astype(float)
+
+
+def stability_map(ds: xr.Dataset, path: Path, x: str | None = None, y: str | None = None) -> Path:
+    """Heat map of the fraction of points stable with full recall over two axes (others averaged)."""
+    axes = list(axis_keys(ds))
+    x = x or (axes[0] if axes else "replicate")
+    y = y or (axes[1] if len(axes) > 1 else "replicate")
+    for name in (x, y):
+        if name not in ds.dims:
+            raise QueryError(f"--x/--y {name!r} is not a sweep axis; axes: {', '.join(axes + ['replicate'])}")
+    frac = success(ds).mean([d for d in success(ds).dims if d not in (x, y)]).transpose(y, x)
+    runaway = (labelled(ds, "outcome") == "runaway").astype(float)
+    runaway = runaway.mean([d for d in runaway.dims if d not in (x, y)]).transpose(y, x)
+    fig, ax = plt.subplots(figsize=(1.2 + 0.9 * frac.sizes[x], 1.2 + 0.7 * frac.sizes[y]))
+    image = ax.imshow(frac.values, origin="lower", cmap="viridis", vmin=0, vmax=1, aspect="auto")
+    for (i, j), value in np.ndenumerate(frac.values):
+        label = f"{value:.2f}\nR {runaway.values[i, j]:.2f}"
+        ax.text(j, i, label, ha="center", va="center", fontsize=7, color="white" if value < 0.6 else "black")
+    ax.set_xticks(range(frac.sizes[x]), [str(v) for v in ds[x].values])
+    ax.set_yticks(range(frac.sizes[y]), [str(v) for v in ds[y].values])
+    ax.set_xlabel(_axis_label(ds, x))
+    ax.set_ylabel(_axis_label(ds, y))
+    ax.set_title("fraction stable with full recall (R = fraction runaway)", fontsize=9)
+    fig.colorbar(image, ax=ax, label="fraction of points")
+    return _save(fig, path)
+
+
+def capacity_curves(ds: xr.Dataset, path: Path) -> Path:
+    """Fraction of replicates stable with full recall against assembly count, one line per other cell."""
+    keys = axis_keys(ds)
+    count = next((d for d, k in keys.items() if k == COUNT_KEY), None)
+    if count is None:
+        raise QueryError(f"capacity curves need an axis over {COUNT_KEY}")
+    frac = success(ds).mean("replicate")
+    others = [d for d in frac.dims if d != count]
+    fig, ax = plt.subplots(figsize=(5.5, 3.8))
+    for combo in itertools.product(*(range(frac.sizes[d]) for d in others)):
+        line = frac.isel(dict(zip(others, combo)))
+        label = ", ".join(f"{d}={ds[d].values[i]}" for d, i in zip(others, combo)) or "all"
+        ax.plot(ds[count].values, line.values, marker="o", label=label)
+    ax.set_xlabel(_axis_label(ds, count))
+    ax.set_ylabel("fraction stable with all recalled")
+    ax.set_ylim(-0.05, 1.05)
+    ax.legend(fontsize=7, loc="best")
+    ax.set_title("capacity curves", fontsize=9)
+    return _save(fig, path)
+
+
+def rate_traces(ds: xr.Dataset, path: Path, per_outcome: int = 6) -> Path:
+    """Excitatory population rate against time, a few points per outcome, one panel per outcome."""
+    outcome = labelled(ds, "outcome").values.ravel()
+    traces = ds["rate_exc_hz"].values.reshape(outcome.size, -1)
+    t = ds["time_bin"].values
+    shown = [o for o in OUTCOME_COLOURS if np.any(outcome == o)] or ["stable"]
+    fig, axs = plt.subplots(len(shown), 1, figsize=(7, 2.2 * len(shown)), sharex=True, squeeze=False)
+    for ax, name in zip(axs[:, 0], shown):
+        for row in np.flatnonzero(outcome == name)[:per_outcome]:
+            ax.plot(t, traces[row], lw=0.7, color=OUTCOME_COLOURS[name], alpha=0.8)
+        ax.set_ylabel("E rate (Hz)")
+        ax.set_title(f"{name} points (up to {per_outcome})", fontsize=9)
+    axs[-1, 0].set_xlabel("time (s)")
+    return _save(fig, path)
+
+
+def weight_drift(ds: xr.Dataset, path: Path) -> Path:
+    """Weight correlation with hold start against snapshot time, coloured by outcome."""
+    outcome = labelled(ds, "outcome").values.ravel()
+    corr = ds["weight_correlation"].values.reshape(outcome.size, -1)
+    times = ds["snapshot_time_s"].values.reshape(outcome.size, -1)
+    fig, ax = plt.subplots(figsize=(5.5, 3.8))
+    for row, name in enumerate(outcome):
+        if name in OUTCOME_COLOURS:
+            ax.plot(times[row], corr[row], color=OUTCOME_COLOURS[name], alpha=0.6, marker=".")
+    for name, colour in OUTCOME_COLOURS.items():
+        ax.plot([], [], color=colour, label=name)
+    ax.set_xlabel("time (s)")
+    ax.set_ylabel("corr(w(t), w(hold start))")
+    ax.legend(fontsize=7)
+    ax.set_title("E->E weight drift during hold", fontsize=9)
+    return _save(fig, path)
+
+
+def all_plots(ds: xr.Dataset, out_dir: Path, x: str | None = None, y: str | None = None) -> list[Path]:
+    """Write every picture that fits the store into ``out_dir``; return their paths."""
+    out_dir.mkdir(parents=True, exist_ok=True)
+    paths = [
+        stability_map(ds, out_dir / "stability_map.png", x, y),
+        rate_traces(ds, out_dir / "rate_traces.png"),
+        weight_drift(ds, out_dir / "weight_drift.png"),
+    ]
+    if any(k == COUNT_KEY for k in axis_keys(ds).values()):
+        paths.append(capacity_curves(ds, out_dir / "capacity_curves.png"))
+    return paths
+
+
+def _axis_label(ds: xr.Dataset, dim: str) -> str:
+    key = ds[dim].attrs.get("config_key", "")
+    return f"{dim} ({key})" if key else dim
+
+
+def _save(fig: plt.Figure, path: Path) -> Path:
+    fig.tight_layout()
+    fig.savefig(path, dpi=120)
+    plt.close(fig)
+    return path
