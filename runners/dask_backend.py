@@ -27,17 +27,22 @@ class TaskFailure:
 
 
 def simulate_task(config: dict[str, Any], seed: int) -> dict[str, Any] | TaskFailure:
-    """Worker-side entry: run one point, turning any exception into a TaskFailure."""
+    """Worker-side entry: run one point (and its prescreen if asked), exceptions become a TaskFailure."""
     from brian2 import BrianLogger
 
     from runners.point import run_point
 
     BrianLogger.log_level_error()
     try:
-        return run_point(config, seed)
+        result = run_point(config, seed)
     except Exception as exc:  # noqa: BLE001 - every failure is recorded, none may kill the sweep
         summary = f"{type(exc).__name__}: {exc}"
         return TaskFailure(summary + "\n" + traceback.format_exc(limit=6))
+    if config["execution"]["prescreen"]:
+        from runners.theory import predict
+
+        result["predicted_outcome"] = predict(config).outcome
+    return result
 
 
 @contextlib.contextmanager

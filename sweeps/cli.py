@@ -60,13 +60,16 @@ def run(
     scheduler: str = typer.Option(None, "--scheduler", help="address of a running Dask scheduler"),
     engine: str = typer.Option(None, "--engine", help="override execution.engine: cython, numpy or standalone"),
     retry_failed: bool = typer.Option(False, "--retry-failed", help="run failed points again"),
+    prescreen: bool = typer.Option(None, "--prescreen/--no-prescreen",
+                                   help="store the theory prediction beside each point (default: execution.prescreen)"),
 ) -> None:
     """Run every point of SWEEP_FILE not yet done, writing each result into the store as it arrives."""
     from sweeps.launch import RunOptions, run_sweep
 
     if engine is not None and engine not in ("cython", "numpy", "standalone"):
         raise CapsweepError(f"--engine {engine!r} is not allowed: expected one of cython, numpy, standalone")
-    options = RunOptions(store=store, workers=workers, scheduler=scheduler, engine=engine, retry_failed=retry_failed)
+    options = RunOptions(store=store, workers=workers, scheduler=scheduler, engine=engine, prescreen=prescreen,
+                         retry_failed=retry_failed)
     with _ProgressView() as view:
         final = run_sweep(sweep_file, options, on_event=view.update)
     _print_run_summary(final)
@@ -187,6 +190,26 @@ def plot(
 
     for path in all_plots(open_dataset(store), out_dir, x, y):
         out.print(str(path), markup=False, highlight=False)
+
+
+@app.command("prescreen")
+@user_errors
+def prescreen_command(
+    sweep_file: Path = typer.Argument(..., help="TOML sweep file"),
+    plots: Path = typer.Option(None, "--plots", help="folder for transfer-curve and drift-curve PNGs per cell"),
+    workers: int = typer.Option(None, "--workers", min=1, help="local Dask worker processes"),
+    scheduler: str = typer.Option(None, "--scheduler", help="address of a running Dask scheduler"),
+    fmt: TableFormat = typer.Option(TableFormat.table, "--format", help="table, csv or json"),
+) -> None:
+    """Predict each grid cell's outcome from mean-field theory, without simulating."""
+    from sweeps.prescreen import prescreen_sweep
+
+    with Progress(TextColumn("[bold]cells"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
+                  console=err) as bar:
+        task = bar.add_task("prescreen", total=None)
+        table = prescreen_sweep(sweep_file, workers, scheduler, plots,
+                                on_done=lambda done, total: bar.update(task, completed=done, total=total))
+    _emit(table.drop(columns=["reasons"]) if fmt is TableFormat.table else table, fmt)
 
 
 def _emit(frame: Any, fmt: TableFormat) -> None:

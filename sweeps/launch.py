@@ -53,6 +53,7 @@ class RunOptions:
     workers: int | None = None
     scheduler: str | None = None
     engine: str | None = None
+    prescreen: bool | None = None
     retry_failed: bool = False
 
 
@@ -114,7 +115,7 @@ def _execute(
     execution = todo[0].config["execution"]
     workers = options.workers or execution["workers"]
     scheduler = options.scheduler if options.scheduler is not None else execution["scheduler"]
-    jobs = [(p, _with_engine(p.config, options.engine), p.seed) for p in todo]
+    jobs = [(p, _with_execution(p.config, options), p.seed) for p in todo]
     with dask_client(workers, scheduler) as client:
         progress.dashboard = client.dashboard_link or ""
         on_event(progress)
@@ -123,10 +124,11 @@ def _execute(
             on_event(progress)
 
 
-def _with_engine(config: dict[str, Any], engine: str | None) -> dict[str, Any]:
-    if engine is None:
-        return config
-    return {**config, "execution": {**config["execution"], "engine": engine}}
+def _with_execution(config: dict[str, Any], options: RunOptions) -> dict[str, Any]:
+    """``config`` with the command line's engine and prescreen choices applied."""
+    chosen = {"engine": options.engine, "prescreen": options.prescreen}
+    overrides = {k: v for k, v in chosen.items() if v is not None}
+    return {**config, "execution": {**config["execution"], **overrides}}
 
 
 def _store_result(store: ResultStore, point: Point, result: Any, progress: Progress) -> None:

@@ -175,6 +175,8 @@ KEYS: tuple[Key, ...] = (
     _k("execution.workers", 2, "1", "Local Dask worker processes", low=1, high=1024, sweepable=False),
     _k("execution.scheduler", "", "1", "Address of a running Dask scheduler ('' = start a local cluster)",
        sweepable=False),
+    _k("execution.prescreen", False, "1", "Store the theory prescreen's predicted outcome beside each simulated one",
+       sweepable=False),
     _k("execution.abort_on_runaway", True, "1", "Stop a point's simulation soon after runaway onset", sweepable=False),
 )
 

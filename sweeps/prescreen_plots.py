@@ -1,0 +1,106 @@
+"""Figures of the theory prescreen: rate transfer curves and plasticity drift (PNG, matplotlib Agg)."""
+
+from __future__ import annotations
+
+from dataclasses import replace
+from pathlib import Path
+
+import matplotlib
+
+matplotlib.use("Agg")
+import matplotlib.pyplot as plt  # noqa: E402
+import numpy as np  # noqa: E402
+
+from runners import theory  # noqa: E402
+
+
+def _mark_fixed_points(ax, curve: theory.TransferCurve, color: str) -> None:
+    for fp in curve.fixed_points:
+        face = color if fp.stable else "white"
+        ax.plot(fp.rate_hz, fp.rate_hz, "o", ms=8, mfc=face, mec=color, mew=1.5, zorder=3)
+        ax.annotate(f"{fp.rate_hz:.1f} Hz", (fp.rate_hz, fp.rate_hz), textcoords="offset points",
+                    xytext=(8, -14) if fp.stable else (-10, 10), ha="left" if fp.stable else "right",
+                    fontsize=8, color=color)
+
+
+def plot_transfer(cfg: dict, path: str | Path) -> Path:
+    """Rate transfer curves vs the identity with fixed points (filled = stable, open = unstable).
+
+    Left: whole E population (all E clamped at the input rate, I solved). Right: the focal
+    assembly's members (co-members clamped at the input rate, rest solved), at the initial
+    within weight and at w_max. Rates in Hz.
+    """
+    rates = theory.population_rates(cfg, with_cue=False)
+    fig, axes = plt.subplots(1, 2, figsize=(10, 4.2))
+    ax = axes[0]
+    curve = rates.background_curve
+    ax.plot(curve.input_hz, curve.output_hz, color="C0", label="mean E output")
+    _mark_fixed_points(ax, curve, "C0")
+    zoom = max(20.0, 3.0 * max(fp.rate_hz for fp in curve.fixed_points))
+    ax.set_xlim(0, zoom)
+    ax.set_ylim(0, zoom)
+    ax.set_title("Background (initial weights), low-rate range")
+    ax.set_xlabel("presynaptic E rate (Hz)")
+    ax.set_ylabel("output E rate (Hz)")
+    ax = axes[1]
+    if rates.assembly_curve is not None:
+        w0 = theory.initial_weights(cfg)
+        w_max = cfg["plasticity"]["triplet"]["w_max"]
+        on_hz = theory.active_threshold_hz(cfg, rates.background_exc_hz)
+        at_max = theory.population_rates(cfg, replace(w0, within=w_max), with_cue=False, active_hz=on_hz)
+        for curve, color, label in ((rates.assembly_curve, "C1", f"within w = {w0.within:g}"),
+                                    (at_max.assembly_curve, "C3", f"within w = w_max = {w_max:g}")):
+            ax.plot(curve.input_hz, curve.output_hz, color=color, label=label)
+            _mark_fixed_points(ax, curve, color)
+        ax.axhline(on_hz, color="grey", ls=":", lw=1, label=f"active threshold {on_hz:.1f} Hz")
+    else:
+        ax.text(0.5, 0.5, "no assemblies", ha="center", transform=ax.transAxes)
+    ax.set_title("Assembly members (other groups solved)")
+    ax.set_xlabel("co-member rate (Hz)")
+    ax.set_ylabel("member output rate (Hz)")
+    for ax in axes:
+        lim = ax.get_xlim()
+        ax.plot(lim, lim, "k--", lw=1, label="identity")
+        ax.set_xlim(0, lim[1])
+        ax.set_ylim(0, lim[1])
+        ax.legend(fontsize=8, loc="upper left")
+    fig.tight_layout()
+    return _save(fig, path)
+
+
+def plot_drift(cfg: dict, path: str | Path, rate_pre_hz: float | None = None,
+               ratios: tuple[float, ...] = (0.5, 1.0, 1.5, 2.0), max_rate_hz: float = 100.0) -> Path:
+    """Rate-form E->E drift (g_leak/s) vs post rate at a few w/w_ref, zero crossings marked.
+
+    ``rate_pre_hz`` defaults to 10 Hz. w_ref is the initial E->E weight. The vertical line is
+    the BCM-like threshold of the triplet part. The y axis is symlog so the LTD dip shows.
+    """
+    pre = 10.0 if rate_pre_hz is None else rate_pre_hz
+    w_ref = cfg["network"]["w_e_to_e"]
+    post = np.linspace(0.0, max_rate_hz, 800)
+    fig, ax = plt.subplots(figsize=(7, 4.5))
+    for i, ratio in enumerate(ratios):
+        w = ratio * w_ref
+        drift = [theory.rule_drift(cfg, pre, r, w, w_ref) for r in post]
+        ax.plot(post, drift, color=f"C{i}", label=f"w/w_ref = {ratio:g}")
+        for x in theory.drift_zero_crossings(cfg, pre, w, w_ref, max_rate_hz):
+            ax.plot(x, 0.0, "o", color=f"C{i}", ms=6)
+    theta = theory.bcm_threshold_hz(cfg)
+    if np.isfinite(theta) and theta <= max_rate_hz:
+        ax.axvline(theta, color="grey", ls=":", label=f"BCM-like threshold {theta:.1f} Hz")
+    ax.axhline(0.0, color="k", lw=0.8)
+    ax.set_yscale("symlog", linthresh=1e-4)
+    ax.set_xlabel("postsynaptic rate (Hz)")
+    ax.set_ylabel("mean drift dw/dt (g_leak / s)")
+    ax.set_title(f"E->E rule drift, presynaptic rate {pre:g} Hz, w_ref = {w_ref:g} g_leak")
+    ax.legend(fontsize=8)
+    fig.tight_layout()
+    return _save(fig, path)
+
+
+def _save(fig, path: str | Path) -> Path:
+    out = Path(path)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    fig.savefig(out, dpi=110)
+    plt.close(fig)
+    return out
