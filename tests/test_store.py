@@ -1,0 +1,323 @@
+"""Result store and lock: a real Zarr v3 directory in tmp_path, read back with plain xarray."""
+
+from __future__ import annotations
+
+import os
+import socket
+import subprocess
+import sys
+import warnings
+from datetime import datetime
+from pathlib import Path
+
+import numpy as np
+import pytest
+import xarray as xr
+import zarr
+
+from results_schema import layout
+from results_schema.lock import LOCK_NAME, store_lock
+from results_schema.store import Axis, GridSpec, ResultStore, create_store, flag_labels, open_dataset
+from sweeps.errors import StoreError
+
+AXES = (
+    Axis("n_assemblies", "assemblies.count", (1, 2, 4)),
+    Axis("beta", "plasticity.heterosynaptic.beta", (0.0, 0.05)),
+    Axis("imprint", "assemblies.imprint", ("prewired", "learned")),
+)
+REPLICATES = 2
+SHAPE = (3, 2, 2, REPLICATES)
+GRID = GridSpec(axes=AXES, replicates=REPLICATES, n_assembly=4, n_snapshot=3, n_time_bin=50, time_bin_s=0.01,
+                fingerprint="grid-a", attrs={"sweep_name": "odour-capacity-test", "sweep_file": "[sweep]\n"})
+SEEDS = np.arange(np.prod(SHAPE), dtype=np.int64).reshape(SHAPE) * 7919 + 2**40
+POINT_IDS = np.array([f"odour-{i:03d}" for i in range(np.prod(SHAPE))], dtype=object).reshape(SHAPE)
+
+
+def make_store(tmp_path: Path) -> Path:
+    path = tmp_path / "odour.zarr"
+    create_store(path, GRID, POINT_IDS, SEEDS)
+    return path
+
+
+def plain_open(path: Path, **kwargs) -> xr.Dataset:
+    """xr.open_zarr as a user would call it, with every warning turned into an error.
+
+    Tests after the first pass chunks=None (no dask graph of one task per point and variable).
+    """
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        return xr.open_zarr(path, **kwargs).load()
+
+
+def point_result(n_assemblies: int, recalled: int) -> dict:
+    """A result as the runner returns it: flags as labels, inner arrays shorter than their dims."""
+    return {
+        "outcome": "runaway", "engine": "cython", "runaway_onset_s": 7.5, "recalled_count": recalled,
+        "rate_exc_baseline_hz": 2.8, "rate_inh_baseline_hz": 7.4, "isi_cv_exc": 0.9, "rate_exc_hold_end_hz": 15.5,
+        "imprint_contrast": np.nan, "wall_time_s": 12.25, "simulated_time_s": 9.0, "n_synapses": 80000,
+        "recall_quality": np.linspace(0.9, 0.6, n_assemblies), "persistence": np.full(n_assemblies, 0.1),
+        "completion": np.full(n_assemblies, 0.8), "spurious": np.full(n_assemblies, 0.02),
+        "cross_talk": np.full(n_assemblies, 0.05), "weight_correlation": [1.0, 0.97],
+        "assembly_contrast": [5.0, 4.8], "snapshot_time_s": [1.0, 5.5],
+        "rate_exc_hz": np.arange(30, dtype=float), "rate_inh_hz": np.arange(30, dtype=float) * 2,
+    }
+
+
+def test_template_opens_with_plain_xarray(tmp_path):
+    ds = plain_open(make_store(tmp_path))  # exactly xr.open_zarr(path)
+    assert dict(ds.sizes) == {"n_assemblies": 3, "beta": 2, "imprint": 2, "replicate": 2,
+                              "assembly": 4, "snapshot": 3, "time_bin": 50}
+    assert ds.n_assemblies.values.tolist() == [1, 2, 4]
+    assert ds.beta.values.tolist() == [0.0, 0.05]
+    assert ds.imprint.values.tolist() == ["prewired", "learned"]
+    assert ds.replicate.values.tolist() == [0, 1]
+    assert ds.beta.attrs["config_key"] == "plasticity.heterosynaptic.beta"
+    np.testing.assert_allclose(ds.time_bin.values, np.arange(50) * 0.01)
+    assert ds.time_bin.attrs["units"] == "s"
+    expected = {v.name for v in layout.VARIABLES} | {layout.STATUS.name, layout.ERROR, layout.POINT_ID}
+    assert set(ds.data_vars) == expected
+    for name in expected | set(ds.coords):
+        assert ds[name].attrs["units"] and ds[name].attrs["long_name"], name
+    for var in layout.VARIABLES:
+        assert ds[var.name].dims == ("n_assemblies", "beta", "imprint", "replicate",
+                                     *((var.inner,) if var.inner else ())), var.name
+        assert ds[var.name].attrs["units"] == var.units
+        if var.name != "seed":
+            assert ds[var.name].isnull().all(), var.name  # fill decodes to NaN
+    outcome = ds.outcome
+    assert outcome.attrs["flag_meanings"].split() == list(layout.OUTCOME_FLAGS)
+    assert list(outcome.attrs["flag_values"]) == list(range(len(layout.OUTCOME_FLAGS)))
+    assert outcome.encoding["_FillValue"] == layout.FLAG_FILL
+    assert ds.status.dtype == np.int8 and (ds.status == layout.STATUS_FLAGS.index("pending")).all()
+    assert ds.status.attrs["flag_meanings"].split() == list(layout.STATUS_FLAGS)
+    assert (ds.error == "").all()
+    np.testing.assert_array_equal(ds.seed.values, SEEDS)
+    assert ds.seed.dtype == np.int64
+    assert ds.point_id.values.tolist() == POINT_IDS.tolist()
+
+
+def test_template_root_attrs_and_point_chunks(tmp_path):
+    path = make_store(tmp_path)
+    ds = plain_open(path, chunks=None)
+    assert ds.attrs["capsweep_schema_version"] == layout.SCHEMA_VERSION
+    assert ds.attrs["capsweep_fingerprint"] == "grid-a"
+    assert ds.attrs["sweep_name"] == "odour-capacity-test" and ds.attrs["sweep_file"] == "[sweep]\n"
+    created = datetime.fromisoformat(ds.attrs["created_utc"])
+    assert created.utcoffset().total_seconds() == 0
+    assert ds.attrs["version_zarr"] == zarr.__version__ and ds.attrs["version_xarray"] == xr.__version__
+    for name in ("capsweep", "brian2", "numpy", "dask"):
+        assert ds.attrs[f"version_{name}"], name
+    group = zarr.open_group(path, mode="r")
+    assert group["rate_exc_hz"].chunks == (1, 1, 1, 1, 50)  # one point per chunk, whole inner dim
+    assert group["recall_quality"].chunks == (1, 1, 1, 1, 4)
+    assert group["status"].chunks == (1, 1, 1, 1)
+
+
+def test_write_point_reads_back_padded(tmp_path):
+    path = make_store(tmp_path)
+    store = ResultStore.open(path, fingerprint="grid-a")
+    store.write_point((1, 0, 1, 1), point_result(n_assemblies=2, recalled=2))
+    ds = plain_open(path, chunks=None)
+    point = ds.isel(n_assemblies=1, beta=0, imprint=1, replicate=1)
+    assert int(point.status) == layout.STATUS_FLAGS.index("done")
+    assert flag_labels(point.outcome).item() == "runaway" and flag_labels(point.engine).item() == "cython"
+    assert np.isnan(point.predicted_outcome)
+    assert float(point.runaway_onset_s) == 7.5 and int(point.recalled_count) == 2
+    assert int(point.n_synapses) == 80000 and np.isnan(point.imprint_contrast)
+    np.testing.assert_allclose(point.recall_quality.values, [0.9, 0.6, np.nan, np.nan])
+    np.testing.assert_allclose(point.snapshot_time_s.values, [1.0, 5.5, np.nan])
+    np.testing.assert_allclose(point.rate_inh_hz.values[:30], np.arange(30) * 2.0)
+    assert np.isnan(point.rate_inh_hz.values[30:]).all()
+    assert point.error.item() == ""
+    others = ds.status.values.copy()
+    others[1, 0, 1, 1] = layout.STATUS_FLAGS.index("pending")
+    assert (others == 0).all()
+    assert ds.rate_exc_hz.isnull().sum() == ds.rate_exc_hz.size - 30  # no other point touched
+
+
+def test_interrupted_write_reads_as_pending(tmp_path):
+    """Data written but the process died before the status write: the point must not look done."""
+    path = make_store(tmp_path)
+    store = ResultStore.open(path)
+    store._write_values((0, 0, 0, 0), {"wall_time_s": 3.5, "recalled_count": 1})
+    reopened = ResultStore.open(path)
+    assert reopened.status()[0, 0, 0, 0] == layout.STATUS_FLAGS.index("pending")
+    ds = plain_open(path, chunks=None)
+    assert float(ds.wall_time_s[0, 0, 0, 0]) == 3.5  # the data did reach the disk
+    assert int(ds.status[0, 0, 0, 0]) == layout.STATUS_FLAGS.index("pending")
+
+
+def test_write_that_fails_midway_leaves_the_point_pending(tmp_path):
+    """A data write that fails (here: a file where a chunk folder must go) must stop before status."""
+    path = make_store(tmp_path)
+    (path / "rate_exc_hz" / "c").write_text("blocks every rate_exc_hz chunk")
+    store = ResultStore.open(path)
+    with pytest.raises(OSError):
+        store.write_point((0, 0, 0, 0), point_result(1, 1))
+    assert ResultStore.open(path).status()[0, 0, 0, 0] == layout.STATUS_FLAGS.index("pending")
+
+
+def test_failure_carries_error_text_and_clears_results(tmp_path):
+    path = make_store(tmp_path)
+    store = ResultStore.open(path)
+    store._write_values((2, 1, 0, 0), {"wall_time_s": 3.5})  # left over from an interrupted attempt
+    store.write_failure((2, 1, 0, 0), "BrianObjectException: odour cue group has no members")
+    ds = plain_open(path, chunks=None)
+    point = ds.isel(n_assemblies=2, beta=1, imprint=0, replicate=0)
+    assert int(point.status) == layout.STATUS_FLAGS.index("failed")
+    assert point.error.item() == "BrianObjectException: odour cue group has no members"
+    assert np.isnan(point.wall_time_s) and point.rate_exc_hz.isnull().all()
+    assert int(point.seed) == SEEDS[2, 1, 0, 0]
+
+
+def test_prediction_survives_the_point_write(tmp_path):
+    path = make_store(tmp_path)
+    store = ResultStore.open(path)
+    store.write_prediction((0, 1, 0, 1), "silent")
+    assert store.status()[0, 1, 0, 1] == layout.STATUS_FLAGS.index("pending")
+    store.write_point((0, 1, 0, 1), point_result(1, 0))
+    point = plain_open(path, chunks=None).isel(n_assemblies=0, beta=1, imprint=0, replicate=1)
+    assert flag_labels(point.predicted_outcome).item() == "silent"
+    assert flag_labels(point.outcome).item() == "runaway"
+
+
+def test_write_point_rejects_results_that_break_the_layout(tmp_path):
+    store = ResultStore.open(make_store(tmp_path))
+    with pytest.raises(ValueError, match="exploded"):
+        store.write_point((0, 0, 0, 0), {**point_result(1, 1), "outcome": "exploded"})
+    with pytest.raises(ValueError, match="rate_exc_hz"):
+        store.write_point((0, 0, 0, 0), {**point_result(1, 1), "rate_exc_hz": np.zeros(51)})
+    with pytest.raises(ValueError, match="missing"):
+        store.write_point((0, 0, 0, 0), {k: v for k, v in point_result(1, 1).items() if k != "isi_cv_exc"})
+    with pytest.raises(ValueError, match="seed"):
+        store.write_point((0, 0, 0, 0), {**point_result(1, 1), "seed": int(SEEDS[0, 0, 0, 0]) + 1})
+    with pytest.raises(IndexError):
+        store.write_point((3, 0, 0, 0), point_result(1, 1))
+    assert (store.status() == layout.STATUS_FLAGS.index("pending")).all()
+
+
+def test_open_refuses_missing_foreign_and_mismatched_stores(tmp_path):
+    missing = tmp_path / "nowhere.zarr"
+    with pytest.raises(StoreError, match=str(missing)):
+        ResultStore.open(missing)
+    path = make_store(tmp_path)
+    with pytest.raises(StoreError, match=str(path)) as mismatch:
+        ResultStore.open(path, fingerprint="grid-b")
+    assert "grid-a" in str(mismatch.value) and "grid-b" in str(mismatch.value)
+    foreign = tmp_path / "foreign.zarr"
+    zarr.create_group(foreign, zarr_format=3)
+    with pytest.raises(StoreError, match="not a capsweep result store"):
+        ResultStore.open(foreign)
+    with pytest.raises(StoreError, match="not a capsweep result store"):
+        open_dataset(foreign)
+    zarr.open_group(path, mode="r+", use_consolidated=False).attrs["capsweep_schema_version"] = "0.9"
+    with pytest.raises(StoreError, match="schema version 0.9"):
+        ResultStore.open(path)
+
+
+def test_open_gives_back_the_grid(tmp_path):
+    store = ResultStore.open(make_store(tmp_path), fingerprint="grid-a")
+    assert store.axes == AXES
+    assert store.sweep_dims == ("n_assemblies", "beta", "imprint", "replicate")
+    assert store.shape == SHAPE and store.seed((1, 1, 0, 1)) == SEEDS[1, 1, 0, 1]
+
+
+def test_create_refuses_an_existing_path_and_leaves_it_intact(tmp_path):
+    path = make_store(tmp_path)
+    ResultStore.open(path).write_point((0, 0, 0, 0), point_result(1, 1))
+    other = GridSpec(**{**GRID.__dict__, "fingerprint": "grid-b"})
+    with pytest.raises(StoreError, match="already exists"):
+        create_store(path, other, POINT_IDS, SEEDS)
+    reopened = ResultStore.open(path, fingerprint="grid-a")
+    assert reopened.status()[0, 0, 0, 0] == layout.STATUS_FLAGS.index("done")
+    plain_dir = tmp_path / "notes"
+    plain_dir.mkdir()
+    (plain_dir / "odour-log.txt").write_text("keep me")
+    with pytest.raises(StoreError, match="already exists"):
+        create_store(plain_dir, GRID, POINT_IDS, SEEDS)
+    assert [p.name for p in plain_dir.iterdir()] == ["odour-log.txt"]
+
+
+def test_create_rejects_ids_of_the_wrong_shape_without_leaving_a_directory(tmp_path):
+    with pytest.raises(ValueError, match="point_ids"):
+        create_store(tmp_path / "bad.zarr", GRID, POINT_IDS[..., :1], SEEDS)
+    assert not (tmp_path / "bad.zarr").exists()
+
+
+def dead_pid() -> int:
+    """Pid of a process that has exited and been reaped."""
+    child = subprocess.Popen([sys.executable, "-c", "pass"])
+    child.wait()
+    return child.pid
+
+
+def write_lock(path: Path, host: str, pid: int) -> Path:
+    lock = path / LOCK_NAME
+    lock.write_text(f'{{"host": "{host}", "pid": {pid}, "since": "2026-12-01T10:00:00+00:00"}}')
+    return lock
+
+
+def test_lock_refuses_a_second_holder(tmp_path):
+    path = make_store(tmp_path)
+    with store_lock(path):
+        with pytest.raises(StoreError) as refused:
+            with store_lock(path):
+                pass
+    message = str(refused.value)
+    assert f"pid {os.getpid()}" in message and socket.gethostname() in message
+    assert str(path / LOCK_NAME) in message
+    assert not (path / LOCK_NAME).exists()
+
+
+def test_lock_held_by_a_live_process_is_respected(tmp_path):
+    path = make_store(tmp_path)
+    sleeper = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(30)"])
+    try:
+        lock = write_lock(path, socket.gethostname(), sleeper.pid)
+        with pytest.raises(StoreError, match=f"pid {sleeper.pid}"):
+            with store_lock(path):
+                pass
+        assert lock.exists()
+    finally:
+        sleeper.kill()
+        sleeper.wait()
+
+
+def test_stale_lock_of_a_dead_process_is_taken_over(tmp_path):
+    path = make_store(tmp_path)
+    lock = write_lock(path, socket.gethostname(), dead_pid())
+    with store_lock(path):
+        assert f'"pid": {os.getpid()}' in lock.read_text()
+    assert not lock.exists()
+
+
+def test_lock_from_another_host_is_never_taken_over(tmp_path):
+    path = make_store(tmp_path)
+    write_lock(path, "olfactory-node-7", dead_pid())
+    with pytest.raises(StoreError, match="olfactory-node-7"):
+        with store_lock(path):
+            pass
+
+
+@pytest.mark.parametrize("interrupt", [RuntimeError, KeyboardInterrupt])
+def test_lock_is_released_when_the_block_raises(tmp_path, interrupt):
+    path = make_store(tmp_path)
+    with pytest.raises(interrupt):
+        with store_lock(path):
+            raise interrupt()
+    assert not (path / LOCK_NAME).exists()
+    with store_lock(path):
+        pass
+
+
+def test_lock_leaves_the_store_readable(tmp_path):
+    path = make_store(tmp_path)
+    with store_lock(path):
+        ResultStore.open(path).write_point((0, 0, 0, 0), point_result(1, 1))
+        assert int(plain_open(path, chunks=None).status[0, 0, 0, 0]) == layout.STATUS_FLAGS.index("done")
+
+
+def test_lock_on_a_missing_store_names_it(tmp_path):
+    with pytest.raises(StoreError, match="nowhere.zarr"):
+        with store_lock(tmp_path / "nowhere.zarr"):
+            pass
