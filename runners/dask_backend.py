@@ -14,7 +14,7 @@ from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
 from typing import Any
 
-from dask.distributed import Client, LocalCluster, as_completed
+from dask.distributed import Client, LocalCluster, WorkerPlugin, as_completed
 
 from sweeps.errors import CapsweepError
 
@@ -45,6 +45,19 @@ def simulate_task(config: dict[str, Any], seed: int) -> dict[str, Any] | TaskFai
     return result
 
 
+class ImportBrian2(WorkerPlugin):
+    """Import Brian2 in each worker's main thread at start-up.
+
+    Brian2 installs a SIGINT handler when first imported, which Python allows only in the main
+    thread; tasks run in a worker's executor thread, so the import must happen here first.
+    """
+
+    name = "capsweep-import-brian2"
+
+    def setup(self, worker: Any) -> None:
+        import brian2  # noqa: F401
+
+
 @contextlib.contextmanager
 def dask_client(workers: int, scheduler: str = "") -> Iterator[Client]:
     """A Dask client: attached to ``scheduler`` if given, else on a fresh LocalCluster.
@@ -61,12 +74,14 @@ def dask_client(workers: int, scheduler: str = "") -> Iterator[Client]:
                 "(e.g. tcp://host:8786) or omit --scheduler to start a local cluster"
             ) from None
         with client:
+            client.register_plugin(ImportBrian2())
             yield client
         return
     with LocalCluster(
         n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=":0",
         silence_logs=50,
     ) as cluster, Client(cluster) as client:
+        client.register_plugin(ImportBrian2())
         yield client
 
 

@@ -6,7 +6,6 @@ This is the library function behind ``capsweep run``. It never prints: it report
 
 from __future__ import annotations
 
-import datetime as dt
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -92,7 +91,6 @@ def _root_attrs(sweep: Sweep) -> dict[str, Any]:
         "replicates": sweep.replicates,
         "base_seed": sweep.base_seed,
         "created_by": "capsweep run",
-        "created_utc": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
         "metric_definitions": DEFINITIONS,
     }
 
