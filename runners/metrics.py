@@ -1,0 +1,154 @@
+"""Point metrics: pure numpy over spike times (s), cell indices and weights. No Brian2 here.
+
+Conventions: times in seconds, rates in Hz, windows half-open ``[t0, t1)``. A rate trace is a
+1-D array of population rates (Hz per cell) in consecutive bins of ``bin_s`` seconds starting at
+t = 0; the value of bin ``b`` belongs to time ``(b + 1) * bin_s`` (its end) once smoothed.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+OUTCOMES = ("stable", "runaway", "silent")
+
+
+def window_counts(times: np.ndarray, cells: np.ndarray, n_cells: int, t0: float, t1: float) -> np.ndarray:
+    """Spike count of each of ``n_cells`` cells in ``[t0, t1)`` (s)."""
+    sel = (times >= t0) & (times < t1)
+    return np.bincount(cells[sel], minlength=n_cells).astype(float)
+
+
+def mean_rate(times: np.ndarray, n_cells: int, t0: float, t1: float) -> float:
+    """Mean rate per cell (Hz) over ``[t0, t1)``; NaN for an empty window."""
+    if t1 <= t0 or n_cells == 0:
+        return float("nan")
+    return float(np.count_nonzero((times >= t0) & (times < t1)) / (n_cells * (t1 - t0)))
+
+
+def binned_rate(times: np.ndarray, n_cells: int, bin_s: float, duration_s: float) -> np.ndarray:
+    """Population rate (Hz per cell) in bins of ``bin_s`` s covering ``[0, duration_s)``.
+
+    Spike times on a bin edge (up to float rounding, 1e-6 of a bin) count in the later bin.
+    A last, partial bin is divided by its actual length.
+    """
+    n_bins = int(np.ceil(duration_s / bin_s - 1e-9))
+    index = np.floor(np.asarray(times) / bin_s + 1e-6).astype(int)
+    counts = np.bincount(index[index < n_bins], minlength=n_bins)
+    edges = np.minimum(np.arange(n_bins + 1) * bin_s, duration_s)
+    return counts / (n_cells * np.diff(edges))
+
+
+def smoothed_rate(rate_hz: np.ndarray, bin_s: float, window_s: float, exclude: np.ndarray) -> np.ndarray:
+    """Causal moving average (Hz) of a rate trace over ``window_s`` s, skipping excluded bins.
+
+    Entry ``b`` averages the bins in ``((b + 1) * bin_s - window_s, (b + 1) * bin_s]`` that are
+    not excluded; NaN where every bin of the window is excluded.
+    """
+    width = max(int(round(window_s / bin_s)), 1)
+    keep = ~exclude
+    kernel = np.ones(width)
+    total = np.convolve(np.where(keep, rate_hz, 0.0), kernel)[: len(rate_hz)]
+    count = np.convolve(keep.astype(float), kernel)[: len(rate_hz)]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(count > 0, total / np.maximum(count, 1), np.nan)
+
+
+def runaway_threshold(baseline_hz: float, factor: float, floor_hz: float) -> float:
+    """Runaway threshold (Hz): ``max(factor * baseline, floor)``; the floor when baseline is NaN."""
+    return float(floor_hz) if not np.isfinite(baseline_hz) else float(max(factor * baseline_hz, floor_hz))
+
+
+def runaway_onset(rate_hz: np.ndarray, bin_s: float, window_s: float, threshold_hz: float,
+                  hold_s: float, exclude: np.ndarray, start_s: float) -> float:
+    """First time (s) at which the smoothed rate is above threshold and stays there for ``hold_s``.
+
+    Candidate times are bin ends ``(b + 1) * bin_s >= start_s`` of bins not excluded (cue
+    periods). The smoothed rate (see :func:`smoothed_rate`) must be ``>= threshold_hz`` at the
+    candidate and at every non-excluded bin end up to ``hold_s`` later, and the trace must reach
+    that far. NaN if no such time.
+    """
+    smooth = smoothed_rate(rate_hz, bin_s, window_s, exclude)
+    ends = (np.arange(len(rate_hz)) + 1) * bin_s
+    valid = ~exclude & np.isfinite(smooth)
+    low = valid & (smooth < threshold_hz)
+    hold_bins = int(round(hold_s / bin_s))
+    idx = np.arange(len(rate_hz))
+    next_low = np.minimum.accumulate(np.where(low, idx, len(rate_hz))[::-1])[::-1]
+    ok = valid & ~low & (ends >= start_s - 1e-9) & (idx + hold_bins < len(rate_hz)) & (next_low > idx + hold_bins)
+    if ok.any():
+        return float(ends[np.argmax(ok)])
+    return float("nan")
+
+
+def isi_cv(times: np.ndarray, cells: np.ndarray, t0: float, t1: float) -> float:
+    """Mean ISI coefficient of variation (std/mean of intervals) over cells with >= 3 spikes in ``[t0, t1)``.
+
+    NaN if no cell has 3 spikes.
+    """
+    sel = (times >= t0) & (times < t1)
+    order = np.lexsort((times[sel], cells[sel]))
+    t, c = times[sel][order], cells[sel][order]
+    cvs = []
+    for cell in np.unique(c):
+        isi = np.diff(t[c == cell])
+        if len(isi) >= 2 and isi.mean() > 0:
+            cvs.append(isi.std() / isi.mean())
+    return float(np.mean(cvs)) if cvs else float("nan")
+
+
+def _pearson(x: np.ndarray, y: np.ndarray) -> float:
+    if len(x) < 2 or np.ptp(x) == 0 or np.ptp(y) == 0:
+        return float("nan")
+    return float(np.corrcoef(x, y)[0, 1])
+
+
+def recall_quality(counts: np.ndarray, members: np.ndarray, cued: np.ndarray) -> float:
+    """Pearson r, over cells not cued, between window spike count and membership (boolean masks).
+
+    NaN when counts or membership are constant over those cells (e.g. no spikes at all).
+    """
+    uncued = ~cued
+    return _pearson(counts[uncued], members[uncued].astype(float))
+
+
+def completion(counts: np.ndarray, window_s: float, members: np.ndarray, cued: np.ndarray,
+               active_hz: float) -> float:
+    """Fraction of uncued members whose window rate (counts / window_s, Hz) exceeds ``active_hz``."""
+    pool = members & ~cued
+    return float(np.mean(counts[pool] / window_s > active_hz)) if pool.any() else float("nan")
+
+
+def spurious(counts: np.ndarray, window_s: float, members: np.ndarray, active_hz: float) -> float:
+    """Fraction of non-member cells whose window rate (Hz) exceeds ``active_hz``."""
+    pool = ~members
+    return float(np.mean(counts[pool] / window_s > active_hz)) if pool.any() else float("nan")
+
+
+def cross_talk(counts: np.ndarray, memberships: np.ndarray, k: int, cued: np.ndarray) -> float:
+    """Largest recall_quality of any assembly j != k in the window where assembly k is cued.
+
+    ``memberships`` is a boolean (count, n_cells) matrix; ``cued`` the cued mask of assembly k.
+    NaN with a single assembly.
+    """
+    others = [recall_quality(counts, memberships[j], cued) for j in range(len(memberships)) if j != k]
+    return float(np.nanmax(others)) if others and not np.all(np.isnan(others)) else float("nan")
+
+
+def weight_correlation(w: np.ndarray, w0: np.ndarray) -> float:
+    """Pearson r between two weight vectors over the same synapses (NaN if either is constant)."""
+    return _pearson(w, w0)
+
+
+def assembly_contrast(w: np.ndarray, within: np.ndarray) -> float:
+    """Mean within-assembly weight / mean of the other weights (``within`` is a boolean mask)."""
+    if not within.any() or within.all():
+        return float("nan")
+    other = w[~within].mean()
+    return float(w[within].mean() / other) if other > 0 else float("nan")
+
+
+def outcome(onset_s: float, rate_before_recall_hz: float, silence_hz: float) -> str:
+    """'runaway' if an onset was found, else 'silent' if the rate (Hz) is below silence_hz, else 'stable'."""
+    if np.isfinite(onset_s):
+        return "runaway"
+    return "silent" if rate_before_recall_hz < silence_hz else "stable"

@@ -1,0 +1,98 @@
+"""Protocol phases of one point: settle -> (imprint) -> hold -> recall, on the integration grid.
+
+Times are kept as whole integration steps (``network.dt_ms``) so that phase boundaries, cue
+windows and snapshots are exact. Plasticity is on in every phase. Stimuli are described by a
+rate table (Hz) over time and *channels*: channel ``k`` is the imprint input of assembly ``k``
+(learned mode), channel ``count + k`` the cue input of assembly ``k``.
+
+Order of the imprint phase: assemblies are presented in turn (0, 1, ..., count-1), and this
+round is repeated ``imprint_repeats`` times; each presentation is ``imprint_on_s`` of input
+followed by ``imprint_off_s`` of background. Recall: each assembly is cued in turn for
+``cue_duration_s``, followed by ``cue_gap_s`` of background.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from functools import reduce
+
+import numpy as np
+
+
+@dataclass(frozen=True)
+class Schedule:
+    """Phase boundaries of one point, in integration steps of ``dt_s`` seconds."""
+
+    dt_s: float
+    settle_end: int
+    imprint_windows: tuple[tuple[int, int, int], ...]  # (assembly, start, stop)
+    imprint_end: int
+    hold_end: int
+    snapshots: tuple[int, ...]
+    cue_windows: tuple[tuple[int, int, int], ...]  # (assembly, start, stop)
+    end: int
+
+    def seconds(self, step: int) -> float:
+        """Simulated time (s) of a step index."""
+        return step * self.dt_s
+
+
+def _steps(seconds: float, dt_s: float) -> int:
+    return int(round(seconds / dt_s))
+
+
+def schedule(cfg: dict) -> Schedule:
+    """Phase boundaries of the point described by ``cfg`` (no early abort)."""
+    dt = cfg["network"]["dt_ms"] * 1e-3
+    pr, count = cfg["protocol"], cfg["assemblies"]["count"]
+    t = _steps(pr["settle_s"], dt)
+    settle_end = t
+    imprint = []
+    if cfg["assemblies"]["imprint"] == "learned":
+        on, off = _steps(pr["imprint_on_s"], dt), _steps(pr["imprint_off_s"], dt)
+        for _ in range(pr["imprint_repeats"]):
+            for k in range(count):
+                imprint.append((k, t, t + on))
+                t += on + off
+    imprint_end = t
+    hold_end = t + _steps(pr["hold_s"], dt)
+    n_snap = pr["snapshots"]
+    snaps = tuple(imprint_end + round(i * (hold_end - imprint_end) / (n_snap - 1)) for i in range(n_snap))
+    cue, gap = _steps(pr["cue_duration_s"], dt), _steps(pr["cue_gap_s"], dt)
+    cues = tuple((k, hold_end + k * (cue + gap), hold_end + k * (cue + gap) + cue) for k in range(count))
+    end = hold_end + count * (cue + gap)
+    return Schedule(dt, settle_end, tuple(imprint), imprint_end, hold_end, snaps, cues, end)
+
+
+def total_duration_s(cfg: dict) -> float:
+    """Planned simulated duration (s) of a point, without early abort."""
+    s = schedule(cfg)
+    return s.seconds(s.end)
+
+
+def stimulus_table(cfg: dict, sched: Schedule) -> tuple[np.ndarray, int]:
+    """Extra input rate (Hz) per time row and channel, and the row length in integration steps.
+
+    The row length is the greatest common divisor of all stimulus boundaries, so the table is
+    exact and small. Shape: ``(rows, 2 * count)``; rows cover ``[0, end)``.
+    """
+    count = cfg["assemblies"]["count"]
+    windows = [(k, a, b) for k, a, b in sched.imprint_windows] + [(count + k, a, b) for k, a, b in sched.cue_windows]
+    edges = [sched.end] + [e for _, a, b in windows for e in (a, b)]
+    row = reduce(math.gcd, [e for e in edges if e > 0], 0) or 1
+    table = np.zeros((max(sched.end // row, 1), 2 * count))
+    pr = cfg["protocol"]
+    for channel, a, b in windows:
+        table[a // row: b // row, channel] = pr["imprint_rate_hz"] if channel < count else pr["cue_rate_hz"]
+    return table, row
+
+
+def cue_bins(sched: Schedule, bin_s: float, n_bins: int) -> np.ndarray:
+    """Boolean mask of the rate-trace bins (width ``bin_s`` s) that overlap any cue window."""
+    mask = np.zeros(n_bins, dtype=bool)
+    for _, a, b in sched.cue_windows:
+        first = int(np.floor(sched.seconds(a) / bin_s + 1e-9))
+        last = int(np.ceil(sched.seconds(b) / bin_s - 1e-9))
+        mask[first:min(last, n_bins)] = True
+    return mask

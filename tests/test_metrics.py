@@ -1,0 +1,132 @@
+"""Metric functions on constructed spike trains; expected values computed independently here."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy.stats import pearsonr
+
+from runners import metrics
+
+
+def _counts_example() -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """10 cells: members 0-4 (cued 0-1), non-members 5-9, with hand-chosen spike counts."""
+    counts = np.array([9, 8, 4, 0, 3, 0, 1, 0, 2, 0], dtype=float)
+    members = np.zeros(10, dtype=bool)
+    members[:5] = True
+    cued = np.zeros(10, dtype=bool)
+    cued[:2] = True
+    return counts, members, cued
+
+
+def test_recall_quality_is_pearson_over_uncued_cells() -> None:
+    counts, members, cued = _counts_example()
+    expected = pearsonr(counts[2:], members[2:].astype(float))[0]  # scipy, uncued cells 2..9
+    assert metrics.recall_quality(counts, members, cued) == pytest.approx(expected, abs=1e-12)
+
+
+def test_recall_quality_perfect_completion_is_one_and_silence_is_undefined() -> None:
+    _, members, cued = _counts_example()
+    perfect = members.astype(float) * 6
+    assert metrics.recall_quality(perfect, members, cued) == pytest.approx(1.0)
+    assert np.isnan(metrics.recall_quality(np.zeros(10), members, cued))
+
+
+def test_completion_and_spurious_count_cells_above_the_active_rate() -> None:
+    counts, members, cued = _counts_example()
+    # window 0.5 s, active above 5 Hz = more than 2.5 spikes: uncued members 2,3,4 have 4,0,3 -> 2 of 3;
+    # non-members 5..9 have 0,1,0,2,0 -> none active. Hand-counted.
+    assert metrics.completion(counts, 0.5, members, cued, 5.0) == pytest.approx(2 / 3)
+    assert metrics.spurious(counts, 0.5, members, 5.0) == 0.0
+    # active above 3 Hz (> 1.5 spikes): non-member 8 (2 spikes) counts -> 1 of 5.
+    assert metrics.spurious(counts, 0.5, members, 3.0) == pytest.approx(1 / 5)
+
+
+def test_cross_talk_is_best_other_assembly_and_nan_for_one() -> None:
+    counts, members, cued = _counts_example()
+    other_a = np.zeros(10, dtype=bool)
+    other_a[[4, 8]] = True
+    other_b = np.zeros(10, dtype=bool)
+    other_b[[6, 7, 9]] = True
+    memberships = np.stack([members, other_a, other_b])
+    r_a = pearsonr(counts[2:], other_a[2:].astype(float))[0]
+    r_b = pearsonr(counts[2:], other_b[2:].astype(float))[0]
+    assert metrics.cross_talk(counts, memberships, 0, cued) == pytest.approx(max(r_a, r_b))
+    assert np.isnan(metrics.cross_talk(counts, members[None, :], 0, cued))
+
+
+def test_window_counts_and_mean_rate_use_half_open_windows() -> None:
+    times = np.array([0.1, 0.2, 0.5, 0.5, 0.9, 1.0])
+    cells = np.array([0, 1, 1, 2, 0, 0])
+    np.testing.assert_array_equal(metrics.window_counts(times, cells, 3, 0.2, 1.0), [1, 2, 1])
+    assert metrics.mean_rate(times, 3, 0.0, 1.0) == pytest.approx(5 / 3)
+
+
+def test_binned_rate_counts_edge_spikes_in_the_later_bin() -> None:
+    dt = 1e-4
+    steps = np.array([0, 99, 100, 100, 250, 299])  # 10 ms bins: 2, 2, 2
+    rate = metrics.binned_rate(steps * dt, n_cells=4, bin_s=0.01, duration_s=0.03)
+    np.testing.assert_allclose(rate, [2 / (4 * 0.01)] * 3)
+
+
+def _step_trace(low: float, high: float, t_switch: float, duration: float, bin_s: float) -> np.ndarray:
+    ends = (np.arange(int(round(duration / bin_s))) + 1) * bin_s
+    return np.where(ends > t_switch + 1e-9, high, low)
+
+
+def test_runaway_onset_at_the_known_crossing() -> None:
+    """2 Hz until 3 s, then 20 Hz; 0.5 s moving average crosses 10 Hz when the window holds
+    n high bins with (2 (50 - n) + 20 n) / 50 >= 10, i.e. n >= 22.2 -> 23 bins -> t = 3.23 s [derived]."""
+    bin_s = 0.01
+    rate = _step_trace(2.0, 20.0, 3.0, 8.0, bin_s)
+    n_high = int(np.ceil((10.0 - 2.0) * 50 / (20.0 - 2.0)))
+    onset = metrics.runaway_onset(rate, bin_s, 0.5, 10.0, 1.0, np.zeros(len(rate), dtype=bool), 1.0)
+    assert onset == pytest.approx(3.0 + n_high * bin_s)
+
+
+def test_runaway_onset_needs_the_hold_and_ignores_cue_bins() -> None:
+    bin_s = 0.01
+    # a 0.8 s excursion to 20 Hz is shorter than the 1 s hold: no onset
+    rate = _step_trace(2.0, 20.0, 3.0, 8.0, bin_s)
+    rate[380:] = 2.0
+    none = np.zeros(len(rate), dtype=bool)
+    assert np.isnan(metrics.runaway_onset(rate, bin_s, 0.5, 10.0, 1.0, none, 1.0))
+    # a long 50 Hz period that is entirely a cue window is excluded
+    cue = np.zeros(len(rate), dtype=bool)
+    cue[300:500] = True
+    rate[300:500] = 50.0
+    assert np.isnan(metrics.runaway_onset(rate, bin_s, 0.5, 10.0, 1.0, cue, 1.0))
+    assert metrics.runaway_onset(rate, bin_s, 0.5, 10.0, 1.0, none, 1.0) < 3.5
+
+
+def test_runaway_threshold_uses_factor_or_floor() -> None:
+    assert metrics.runaway_threshold(3.0, 4.0, 10.0) == 12.0
+    assert metrics.runaway_threshold(1.0, 4.0, 10.0) == 10.0
+    assert metrics.runaway_threshold(float("nan"), 4.0, 10.0) == 10.0
+
+
+def test_isi_cv_regular_zero_and_poisson_one() -> None:
+    """CV of a regular train is 0; of a Poisson train 1 (exponential ISIs) [common practice]."""
+    regular = np.arange(0.0, 10.0, 0.05)
+    assert metrics.isi_cv(regular, np.zeros(len(regular), dtype=int), 0.0, 10.0) == pytest.approx(0.0, abs=1e-9)
+    rng = np.random.default_rng(7)
+    poisson = np.cumsum(rng.exponential(0.1, 20000))
+    cv = metrics.isi_cv(poisson, np.zeros(len(poisson), dtype=int), 0.0, poisson[-1] + 1)
+    assert cv == pytest.approx(1.0, abs=0.03)  # standard error of the CV over 2e4 ISIs ~0.007
+
+
+def test_weight_correlation_and_assembly_contrast() -> None:
+    rng = np.random.default_rng(3)
+    w0 = rng.random(200)
+    w1 = w0 + rng.normal(0, 0.1, 200)
+    assert metrics.weight_correlation(w1, w0) == pytest.approx(pearsonr(w1, w0)[0])
+    within = np.zeros(6, dtype=bool)
+    within[:2] = True
+    w = np.array([0.25, 0.35, 0.05, 0.05, 0.04, 0.06])
+    assert metrics.assembly_contrast(w, within) == pytest.approx(0.30 / 0.05)
+
+
+def test_outcome_labels() -> None:
+    assert metrics.outcome(7.5, 20.0, 0.1) == "runaway"
+    assert metrics.outcome(float("nan"), 0.05, 0.1) == "silent"
+    assert metrics.outcome(float("nan"), 3.0, 0.1) == "stable"
