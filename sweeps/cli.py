@@ -18,6 +18,7 @@ from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn, TimeRemainingColumn
 
 from sweeps.errors import CapsweepError
+from sweeps.registry import BY_PATH
 
 app = typer.Typer(
     add_completion=False, no_args_is_help=True, pretty_exceptions_enable=False,
@@ -25,6 +26,9 @@ app = typer.Typer(
 )
 err = Console(stderr=True)
 out = Console()
+
+
+ENGINES = BY_PATH["execution.engine"].choices
 
 
 class TableFormat(str, Enum):
@@ -66,8 +70,7 @@ def run(
     """Run every point of SWEEP_FILE not yet done, writing each result into the store as it arrives."""
     from sweeps.launch import RunOptions, run_sweep
 
-    if engine is not None and engine not in ("cython", "numpy", "standalone"):
-        raise CapsweepError(f"--engine {engine!r} is not allowed: expected one of cython, numpy, standalone")
+    _check_engine(engine)
     options = RunOptions(store=store, workers=workers, scheduler=scheduler, engine=engine, prescreen=prescreen,
                          retry_failed=retry_failed)
     with _ProgressView() as view:
@@ -210,6 +213,40 @@ def prescreen_command(
         table = prescreen_sweep(sweep_file, workers, scheduler, plots,
                                 on_done=lambda done, total: bar.update(task, completed=done, total=total))
     _emit(table.drop(columns=["reasons"]) if fmt is TableFormat.table else table, fmt)
+
+
+@app.command()
+@user_errors
+def plan(
+    sweep_file: Path = typer.Argument(..., help="TOML sweep file"),
+    workers: int = typer.Option(None, "--workers", min=1, help="worker count to estimate for"),
+    engine: str = typer.Option(None, "--engine", help="engine to estimate for: cython, numpy or standalone"),
+) -> None:
+    """Show the expanded grid, distinct builds and an estimated wall time (calibrated by probe runs)."""
+    from sweeps.plan import plan_sweep
+
+    _check_engine(engine)
+    result = plan_sweep(sweep_file, workers, engine,
+                        on_probe=lambda n: err.print(f"probing a network of {n} E cells ..."))
+    axes = " x ".join(f"{name} {n}" for name, n in result.axes.items()) or "no axes"
+    out.print(f"{result.points} points: {axes} x {result.replicates} replicates", highlight=False)
+    out.print(f"distinct network builds: {result.builds}; simulated time in all: {result.simulated_s:.0f} s")
+    for size, cost in sorted(result.costs.items()):
+        out.print(f"  N_E {size}: {cost.per_sim_s:.2f} s wall per simulated s + {cost.overhead_s:.1f} s per point "
+                  f"({result.engine})", highlight=False)
+    out.print(f"estimated wall time on {result.workers} workers: {_duration(result.estimate_s)} "
+              "(upper bound: points that run away stop early)", highlight=False)
+
+
+def _duration(seconds: float) -> str:
+    minutes, secs = divmod(int(round(seconds)), 60)
+    hours, minutes = divmod(minutes, 60)
+    return f"{hours} h {minutes:02d} min" if hours else f"{minutes} min {secs:02d} s"
+
+
+def _check_engine(engine: str | None) -> None:
+    if engine is not None and engine not in ENGINES:
+        raise CapsweepError(f"--engine {engine!r} is not allowed: expected one of {', '.join(ENGINES)}")
 
 
 def _emit(frame: Any, fmt: TableFormat) -> None:

@@ -55,7 +55,7 @@ def point_table(ds: xr.Dataset) -> pd.DataFrame:
         "assembly_contrast_end": ds["assembly_contrast"].isel(snapshot=-1),
     }
     frame = xr.Dataset({**columns, **summaries}).reset_coords(drop=True).to_dataframe().reset_index()
-    frame.insert(len(dims), "point_id", ds["point_id"].values.reshape(-1).astype(str))
+    frame.insert(len(dims), "point_id", ds["point_id"].values.reshape(-1).astype(object))
     return frame
 
 

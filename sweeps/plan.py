@@ -1,0 +1,129 @@
+"""Plan a sweep before running it: grid size, distinct builds, and an estimated wall time.
+
+The estimate is calibrated by probe simulations of each distinct network size: two short runs
+of different lengths separate the per-point overhead (build, set-up, scoring) from the cost per
+simulated second. Points are then packed onto the workers longest-first (LPT), which is how a
+Dask cluster with free workers takes queued tasks. Runaway points that stop early cost less, so
+the estimate is an upper bound where abort_on_runaway saves time.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from runners.protocol import total_duration_s
+from sweeps.expand import Point, expand
+from sweeps.sweepfile import load_sweep
+
+PROBE_HOLD_S = (0.3, 1.3)  # hold lengths of the two probe runs, s
+MAX_PROBES = 4  # distinct network sizes probed; others are scaled from the nearest probed size
+
+
+@dataclass(frozen=True)
+class Cost:
+    """Measured cost model of one network size: wall = overhead_s + per_sim_s x simulated seconds."""
+
+    overhead_s: float
+    per_sim_s: float
+
+
+@dataclass(frozen=True)
+class Plan:
+    """What a run of the sweep will do and roughly how long it takes."""
+
+    points: int
+    axes: dict[str, int]  # axis name -> number of values
+    replicates: int
+    builds: int  # distinct network structures (compiled once per worker with build reuse)
+    simulated_s: float  # total planned simulated time, s
+    workers: int
+    engine: str
+    costs: dict[int, Cost]  # n_exc -> measured cost model
+    estimate_s: float  # estimated wall time of the whole run, s
+
+
+def size_key(point: Point) -> int:
+    """Network size that sets a point's cost (number of E cells)."""
+    return int(point.config["network"]["n_exc"])
+
+
+def structure_key(point: Point) -> tuple[Any, ...]:
+    """What a compiled build depends on: sizes, in-degrees, switched-on terms, time step."""
+    net, plast = point.config["network"], point.config["plasticity"]
+    return (net["n_exc"], net["inh_per_exc"], net["indegree_exc"], net["indegree_inh"], net["dt_ms"],
+            point.config["assemblies"]["imprint"], *(plast[r]["enabled"] for r in sorted(plast)))
+
+
+def probe(config: dict[str, Any], engine: str, seed: int = 1) -> Cost:
+    """Measure a network's cost with two short runs of different hold lengths."""
+    from runners.point import run_point
+
+    walls = []
+    for hold in PROBE_HOLD_S:
+        cfg = _probe_config(config, engine, hold)
+        start = time.perf_counter()
+        run_point(cfg, seed)
+        walls.append((time.perf_counter() - start, total_duration_s(cfg)))
+    (w1, t1), (w2, t2) = walls
+    per_sim = max((w2 - w1) / (t2 - t1), 0.0)
+    return Cost(overhead_s=max(w1 - per_sim * t1, 0.0), per_sim_s=per_sim)
+
+
+def _probe_config(config: dict[str, Any], engine: str, hold_s: float) -> dict[str, Any]:
+    protocol = {**config["protocol"], "settle_s": 0.2, "hold_s": hold_s, "cue_duration_s": 0.05,
+                "cue_gap_s": 0.05, "cue_skip_s": 0.01}
+    execution = {**config["execution"], "engine": engine, "abort_on_runaway": False}
+    return {**config, "protocol": protocol, "execution": execution}
+
+
+def point_cost(point: Point, costs: dict[int, Cost]) -> float:
+    """Estimated wall seconds of one point, scaling from the nearest probed size by cell count."""
+    size = size_key(point)
+    nearest = min(costs, key=lambda s: abs(s - size))
+    scale = size / nearest
+    cost = costs[nearest]
+    return cost.overhead_s + cost.per_sim_s * max(scale, 1e-9) * total_duration_s(point.config)
+
+
+def makespan(durations: list[float], workers: int) -> float:
+    """Finish time when tasks go longest-first to whichever worker frees up first, s."""
+    loads = [0.0] * workers
+    for d in sorted(durations, reverse=True):
+        loads[loads.index(min(loads))] += d
+    return max(loads)
+
+
+def plan_sweep(
+    sweep_file: str | Path,
+    workers: int | None = None,
+    engine: str | None = None,
+    on_probe: Callable[[int], None] = lambda n_exc: None,
+) -> Plan:
+    """Expand ``sweep_file``, probe its network sizes, and estimate the run's wall time."""
+    sweep = load_sweep(sweep_file)
+    points = expand(sweep)
+    execution = points[0].config["execution"]
+    workers = workers or execution["workers"]
+    engine = engine or execution["engine"]
+    costs: dict[int, Cost] = {}
+    for size in sorted({size_key(p) for p in points}, reverse=True)[:MAX_PROBES]:
+        on_probe(size)
+        example = next(p for p in points if size_key(p) == size)
+        costs[size] = probe(example.config, engine)
+    durations = [point_cost(p, costs) for p in points]
+    return Plan(
+        points=len(points),
+        axes={a.name: len(a.values) for a in sweep.axes},
+        replicates=sweep.replicates,
+        builds=len({structure_key(p) for p in points}),
+        simulated_s=sum(total_duration_s(p.config) for p in points),
+        workers=workers,
+        engine=engine,
+        costs=costs,
+        estimate_s=makespan(durations, workers),
+    )
+
