@@ -257,7 +257,7 @@ def _emit(frame: Any, fmt: TableFormat) -> None:
     elif frame.empty:
         out.print("no matching points")
     else:
-        out.print(frame.to_string(index=False, float_format=lambda x: f"{x:.3g}"), markup=False, highlight=False)
+        sys.stdout.write(frame.to_string(index=False, float_format=lambda x: f"{x:.3g}") + "\n")
 
 
 if __name__ == "__main__":

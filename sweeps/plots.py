@@ -38,7 +38,7 @@ def stability_map(ds: xr.Dataset, path: Path, x: str | None = None, y: str | Non
     frac = success(ds).mean([d for d in success(ds).dims if d not in (x, y)]).transpose(y, x)
     runaway = (labelled(ds, "outcome") == "runaway").astype(float)
     runaway = runaway.mean([d for d in runaway.dims if d not in (x, y)]).transpose(y, x)
-    fig, ax = plt.subplots(figsize=(1.2 + 0.9 * frac.sizes[x], 1.2 + 0.7 * frac.sizes[y]))
+    fig, ax = plt.subplots(figsize=(max(5.0, 1.5 + 1.1 * frac.sizes[x]), max(3.5, 1.2 + 0.7 * frac.sizes[y])))
     image = ax.imshow(frac.values, origin="lower", cmap="viridis", vmin=0, vmax=1, aspect="auto")
     for (i, j), value in np.ndenumerate(frac.values):
         label = f"{value:.2f}\nR {runaway.values[i, j]:.2f}"
@@ -73,10 +73,13 @@ def capacity_curves(ds: xr.Dataset, path: Path) -> Path:
     return _save(fig, path)
 
 
-def rate_traces(ds: xr.Dataset, path: Path, per_outcome: int = 6) -> Path:
-    """Excitatory population rate against time, a few points per outcome, one panel per outcome."""
+def rate_traces(ds: xr.Dataset, path: Path, per_outcome: int = 6, smooth_s: float = 0.1) -> Path:
+    """Excitatory population rate against time (moving average over ``smooth_s`` s), a few points
+    per outcome, one panel per outcome."""
     outcome = labelled(ds, "outcome").values.ravel()
-    traces = ds["rate_exc_hz"].values.reshape(outcome.size, -1)
+    width = max(1, int(round(smooth_s / float(ds.attrs["time_bin_s"]))))
+    raw = ds["rate_exc_hz"].values.reshape(outcome.size, -1)
+    traces = np.apply_along_axis(lambda r: np.convolve(r, np.ones(width) / width, mode="same"), 1, raw)
     t = ds["time_bin"].values
     shown = [o for o in OUTCOME_COLOURS if np.any(outcome == o)] or ["stable"]
     fig, axs = plt.subplots(len(shown), 1, figsize=(7, 2.2 * len(shown)), sharex=True, squeeze=False)
@@ -84,7 +87,7 @@ def rate_traces(ds: xr.Dataset, path: Path, per_outcome: int = 6) -> Path:
         for row in np.flatnonzero(outcome == name)[:per_outcome]:
             ax.plot(t, traces[row], lw=0.7, color=OUTCOME_COLOURS[name], alpha=0.8)
         ax.set_ylabel("E rate (Hz)")
-        ax.set_title(f"{name} points (up to {per_outcome})", fontsize=9)
+        ax.set_title(f"{name} points (up to {per_outcome}; {smooth_s * 1000:.0f} ms moving average)", fontsize=9)
     axs[-1, 0].set_xlabel("time (s)")
     return _save(fig, path)
 
