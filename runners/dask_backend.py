@@ -26,7 +26,7 @@ class TaskFailure:
     error: str
 
 
-def simulate_task(config: dict[str, Any], seed: int) -> dict[str, Any] | TaskFailure:
+def simulate_task(config: dict[str, Any], seed: int, wiring_seed: int) -> dict[str, Any] | TaskFailure:
     """Worker-side entry: run one point (and its prescreen if asked), exceptions become a TaskFailure."""
     from brian2 import BrianLogger
 
@@ -34,7 +34,7 @@ def simulate_task(config: dict[str, Any], seed: int) -> dict[str, Any] | TaskFai
 
     BrianLogger.log_level_error()
     try:
-        result = run_point(config, seed)
+        result = run_point(config, seed, wiring_seed=wiring_seed)
     except Exception as exc:  # noqa: BLE001 - every failure is recorded, none may kill the sweep
         summary = f"{type(exc).__name__}: {exc}"
         return TaskFailure(summary + "\n" + traceback.format_exc(limit=6))
@@ -86,16 +86,16 @@ def dask_client(workers: int, scheduler: str = "") -> Iterator[Client]:
 
 
 def run_tasks(
-    client: Client, jobs: Iterable[tuple[Any, dict[str, Any], int]]
+    client: Client, jobs: Iterable[tuple[Any, dict[str, Any], int, int]]
 ) -> Iterator[tuple[Any, dict[str, Any] | TaskFailure]]:
-    """Submit ``(tag, config, seed)`` jobs and yield ``(tag, result)`` as each finishes.
+    """Submit ``(tag, config, seed, wiring_seed)`` jobs and yield ``(tag, result)`` as each finishes.
 
     Tasks carry ``pure=False`` so that repeated submissions are never merged, and one retry is
     allowed for a worker that died. Results come back in completion order.
     """
     futures = {}
-    for tag, config, seed in jobs:
-        future = client.submit(simulate_task, config, seed, pure=False, retries=1)
+    for tag, config, seed, wiring_seed in jobs:
+        future = client.submit(simulate_task, config, seed, wiring_seed, pure=False, retries=1)
         futures[future] = tag
     try:
         for future in as_completed(futures):

@@ -31,7 +31,8 @@ class Point:
     labels: dict[str, Any]  # axis name -> value, plus "replicate"
     config: dict[str, Any]  # nested, fully resolved config
     point_id: str
-    seed: int
+    seed: int  # noise, initial voltages, cued members
+    wiring_seed: int  # connectivity and membership: shared by every point of one replicate (paired design)
 
 
 def identity_config(flat: dict[str, Any]) -> dict[str, Any]:
@@ -70,7 +71,8 @@ def expand(sweep: Sweep) -> list[Point]:
         labels["replicate"] = replicate
         check_consistency(flat, f"{sweep.source}: point {_describe(labels)}")
         pid = point_id(flat, replicate)
-        points.append(Point(index, labels, nest(flat), pid, point_seed(sweep.base_seed, pid)))
+        wiring = point_seed(sweep.base_seed, f"wiring/{replicate}")
+        points.append(Point(index, labels, nest(flat), pid, point_seed(sweep.base_seed, pid), wiring))
     return points
 
 

@@ -113,7 +113,7 @@ def _execute(
     execution = todo[0].config["execution"]
     workers = options.workers or execution["workers"]
     scheduler = options.scheduler if options.scheduler is not None else execution["scheduler"]
-    jobs = [(p, _with_execution(p.config, options), p.seed) for p in todo]
+    jobs = [(p, _with_execution(p.config, options), p.seed, p.wiring_seed) for p in todo]
     with dask_client(workers, scheduler) as client:
         progress.dashboard = client.dashboard_link or ""
         on_event(progress)

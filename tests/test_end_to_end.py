@@ -1,0 +1,180 @@
+"""End to end through the real CLI: sweep file -> Dask LocalCluster -> Brian2 -> Zarr -> query.
+
+Nothing is mocked: real worker processes run real Brian2 simulations of tiny networks and the
+single writer fills a real Zarr store, which is then read with plain ``xarray.open_zarr``.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+import xarray as xr
+import zarr
+
+pytestmark = pytest.mark.e2e
+
+TINY_NETWORK = """
+[network]
+n_exc = 300
+[assemblies]
+size = 60
+[plasticity.triplet]
+a_ltp = 0.03
+b_ltd = 0.006
+[protocol]
+settle_s = 1.0
+hold_s = {hold_s}
+"""
+
+RULES_SWEEP = """
+[sweep]
+name = "odour-e2e"
+store = "{store}"
+replicates = 1
+base_seed = 7
+[[sweep.axis]]
+name = "rule"
+[sweep.axis.variants]
+full = {{}}
+triplet_only = {{ "plasticity.heterosynaptic.enabled" = false, "plasticity.transmitter.enabled" = false, "plasticity.inhibitory.enabled" = false }}
+[[sweep.axis]]
+name = "n_assemblies"
+key = "assemblies.count"
+values = [1, 3]
+""" + TINY_NETWORK
+
+RESUME_SWEEP = """
+[sweep]
+name = "odour-resume"
+store = "{store}"
+replicates = 2
+[[sweep.axis]]
+name = "n_assemblies"
+key = "assemblies.count"
+values = [1, 2, 3]
+[execution]
+workers = 1
+""" + TINY_NETWORK
+
+
+def capsweep(*args: str, timeout: float = 600) -> subprocess.CompletedProcess[str]:
+    """Run the installed CLI in a fresh process."""
+    return subprocess.run([sys.executable, "-m", "sweeps.cli", *args], capture_output=True, text=True,
+                          timeout=timeout)
+
+
+def write_sweep(tmp_path: Path, template: str, hold_s: float) -> tuple[Path, Path]:
+    store = tmp_path / "odour.zarr"
+    sweep = tmp_path / "sweep.toml"
+    sweep.write_text(template.format(store=store, hold_s=hold_s))
+    return sweep, store
+
+
+@pytest.fixture(scope="module")
+def rules_store(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Path, subprocess.CompletedProcess[str]]:
+    sweep, store = write_sweep(tmp_path_factory.mktemp("rules"), RULES_SWEEP, hold_s=7.0)
+    return sweep, store, capsweep("run", str(sweep), "--workers", "2")
+
+
+def test_store_holds_labelled_results(rules_store) -> None:
+    _, store, proc = rules_store
+    assert proc.returncode == 0, proc.stderr
+    ds = xr.open_zarr(store)
+    assert ds["status"].dims == ("rule", "n_assemblies", "replicate")
+    assert list(ds["rule"].values) == ["full", "triplet_only"]
+    assert list(ds["n_assemblies"].values) == [1, 3]
+    assert ds["recall_quality"].dims[-1] == "assembly" and ds.sizes["assembly"] == 3
+    assert (ds["status"].values == 1).all(), "every point done"
+    for name in ("recall_quality", "runaway_onset_s", "rate_exc_hz", "weight_correlation"):
+        assert ds[name].attrs["units"] and ds[name].attrs["long_name"]
+    assert ds["outcome"].attrs["flag_meanings"].split() == ["stable", "runaway", "silent"]
+    assert ds.attrs["sweep_name"] == "odour-e2e"
+    # one assembly scored for count 1, the second entry padded
+    assert np.isnan(ds["recall_quality"].sel(rule="full", n_assemblies=1).values[0, 1])
+
+
+def test_triplet_alone_runs_away_and_full_rule_recalls(rules_store) -> None:
+    """Hebbian STDP alone is unstable with stored assemblies; the heterosynaptic and
+    transmitter-induced terms plus inhibitory STDP keep them stable and recallable
+    (Zenke, Agnes & Gerstner 2015, Nat Commun 6:6922) [common practice in the field]."""
+    _, store, _ = rules_store
+    ds = xr.open_zarr(store)
+    outcome = ds["outcome"].values
+    runaway, stable = 1, 0
+    assert (outcome[1] == runaway).all(), "triplet_only points run away"
+    assert np.isfinite(ds["runaway_onset_s"].values[1]).all()
+    assert (outcome[0] == stable).all(), "full-rule points stay stable"
+    full = ds.sel(rule="full")
+    for count in (1, 3):
+        quality = full["recall_quality"].sel(n_assemblies=count).values[0, :count]
+        assert (quality >= 0.5).all(), quality
+        assert int(full["recalled_count"].sel(n_assemblies=count).values[0]) == count
+    # aborted runaway points simulated less than the full-rule points
+    assert (ds["simulated_time_s"].values[1] < ds["simulated_time_s"].values[0]).all()
+
+
+def test_query_status_and_rerun(rules_store) -> None:
+    sweep, store, _ = rules_store
+    query = capsweep("query", str(store), "--format", "json")
+    assert query.returncode == 0, query.stderr
+    rows = json.loads(query.stdout)
+    assert {r["rule"] for r in rows} == {"full"} and len(rows) == 2
+    narrowed = json.loads(capsweep("query", str(store), "--where", "n_assemblies == 3", "--format", "json").stdout)
+    # --where replaces the default "done and stable" filter
+    assert sorted((r["rule"], r["n_assemblies"], r["outcome"]) for r in narrowed) == [
+        ("full", 3, "stable"), ("triplet_only", 3, "runaway")]
+    bad = capsweep("query", str(store), "--where", "nonsense >")
+    assert bad.returncode != 0 and "--where" in bad.stderr and "Traceback" not in bad.stderr
+    status = capsweep("status", str(store))
+    assert "done 4" in status.stdout and "runaway 2" in status.stdout and "stable 2" in status.stdout
+    before = xr.open_zarr(store)["wall_time_s"].values.copy()
+    again = capsweep("run", str(sweep))
+    assert again.returncode == 0 and "0 to run" in again.stderr
+    np.testing.assert_array_equal(xr.open_zarr(store)["wall_time_s"].values, before)
+
+
+def test_other_sweep_on_same_store_is_refused(rules_store, tmp_path: Path) -> None:
+    sweep, store, _ = rules_store
+    other = tmp_path / "other.toml"
+    other.write_text(sweep.read_text().replace("values = [1, 3]", "values = [1, 2]"))
+    before = sorted(p.name for p in store.rglob("*"))
+    proc = capsweep("run", str(other))
+    assert proc.returncode == 3
+    assert str(store) in proc.stderr and "Traceback" not in proc.stderr
+    assert sorted(p.name for p in store.rglob("*")) == before, "a refused run must not touch the store"
+
+
+def _done(store: Path) -> np.ndarray:
+    return zarr.open_group(store, mode="r")["status"][...] == 1
+
+
+def test_killed_sweep_resumes_without_recomputing(tmp_path: Path) -> None:
+    sweep, store = write_sweep(tmp_path, RESUME_SWEEP, hold_s=1.0)
+    first = subprocess.Popen([sys.executable, "-m", "sweeps.cli", "run", str(sweep)], start_new_session=True,
+                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    deadline = time.monotonic() + 300
+    while time.monotonic() < deadline and not (store.exists() and _done(store).sum() >= 2):
+        time.sleep(0.2)
+    assert store.exists() and _done(store).sum() >= 2, "first run stored nothing in time"
+    second = capsweep("run", str(sweep))  # concurrent run on a locked store
+    assert second.returncode == 3 and "locked" in second.stderr, second.stderr
+    os.killpg(first.pid, signal.SIGKILL)
+    first.wait()
+    done_before = _done(store)
+    assert not done_before.all(), "killed too late to test resume"
+    kept = xr.open_zarr(store)["wall_time_s"].values.copy()
+
+    resumed = capsweep("run", str(sweep))
+    assert resumed.returncode == 0, resumed.stderr
+    assert f"{int(done_before.sum())} stored before" in resumed.stderr
+    ds = xr.open_zarr(store)
+    assert (ds["status"].values == 1).all()
+    np.testing.assert_array_equal(ds["wall_time_s"].values[done_before], kept[done_before])
