@@ -114,6 +114,7 @@ def _execute(
     workers = options.workers or execution["workers"]
     scheduler = options.scheduler if options.scheduler is not None else execution["scheduler"]
     jobs = [(p, _with_execution(p.config, options), p.seed, p.wiring_seed) for p in todo]
+    jobs.sort(key=lambda job: _build_group(job[1]))
     with dask_client(workers, scheduler) as client:
         progress.dashboard = client.dashboard_link or ""
         on_event(progress)
@@ -127,6 +128,16 @@ def _with_execution(config: dict[str, Any], options: RunOptions) -> dict[str, An
     chosen = {"engine": options.engine, "prescreen": options.prescreen}
     overrides = {k: v for k, v in chosen.items() if v is not None}
     return {**config, "execution": {**config["execution"], **overrides}}
+
+
+def _build_group(config: dict[str, Any]) -> str:
+    """Compiled-build key of a standalone point ('' otherwise): submitting points grouped by build
+    lets each worker rerun one compiled binary many times before it has to switch."""
+    if config["execution"]["engine"] != "standalone":
+        return ""
+    from runners.standalone import build_key
+
+    return build_key(config)
 
 
 def _store_result(store: ResultStore, point: Point, result: Any, progress: Progress) -> None:
