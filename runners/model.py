@@ -1,11 +1,18 @@
 """The Brian2 network of one point: E/I conductance LIF cells, plastic E->E and I->E synapses.
 
 Every point is an explicit ``brian2.Network`` run with an explicit namespace (no magic
-collection, no globals). Randomness drawn in numpy (``np.random.default_rng(seed)``):
-assembly membership, cued members, fixed in-degree connectivity (passed as i/j arrays) and
-initial membrane potentials; Brian2's own RNG (Poisson drive, stimulus sources) is seeded by
-the caller with ``brian2.seed``. Stimuli (imprint and cue input) come from a 2-D TimedArray of
-rates over (time, channel) that drives one Poisson source per (channel, target cell).
+collection, no globals). Randomness drawn in numpy: the *wiring* stream (from ``wiring_seed``)
+gives assembly membership and the fixed in-degree connectivity (passed as i/j arrays), the
+*point* stream (from ``seed``) gives cued members and initial membrane potentials (without a
+wiring seed, one stream from ``seed`` gives all of them); Brian2's own
+RNG (Poisson drive, stimulus sources) is seeded by the caller. Stimuli (imprint and cue input)
+come from a 2-D TimedArray of rates over (time, channel) that drives one Poisson source per
+(channel, target cell).
+
+With ``standalone=True`` (C++ standalone with build reuse, see :mod:`runners.standalone`) every
+constant becomes a ``(shared, constant)`` variable and every array value a setting that the
+caller passes per run; the background drive is a per-step Poisson count with a variable mean
+and the stimulus a closed-form per-cell schedule of variables (see :func:`_variable_inputs`).
 
 Neuron model (conductances in units of the leak conductance, dimensionless):
 ``tau_m dv/dt = (E_L - v) + g_e (E_exc - v) + g_i (E_inh - v) + g_a (E_inh - v)``; the
@@ -15,7 +22,7 @@ adaptation conductance ``g_a`` (E cells only) jumps by ``adapt_jump`` per spike,
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import brian2 as b2
@@ -45,10 +52,12 @@ class Handles:
     within: np.ndarray  # bool per E->E synapse: pre and post share an assembly
     n_synapses: int
     schedule: protocol.Schedule
+    settings: list[tuple[Any, str, Any]] = field(default_factory=list)  # (group, variable, value)
+    wiring: dict[str, tuple[np.ndarray, np.ndarray]] = field(default_factory=dict)  # synapses name -> (i, j)
 
 
-def draw_assemblies(cfg: dict, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
-    """Boolean membership and cued-member matrices, each (count, n_exc).
+def draw_assemblies(cfg: dict, wiring: np.random.Generator, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
+    """Boolean membership (from the ``wiring`` stream) and cued-member (from ``rng``) matrices, each (count, n_exc).
 
     Raises ConfigError if the assemblies do not fit.
     """
@@ -63,9 +72,9 @@ def draw_assemblies(cfg: dict, rng: np.random.Generator) -> tuple[np.ndarray, np
     n_cued = max(1, int(round(cfg["protocol"]["cue_fraction"] * size)))
     members = np.zeros((count, n_exc), dtype=bool)
     cued = np.zeros((count, n_exc), dtype=bool)
-    order = rng.permutation(n_exc)
+    order = wiring.permutation(n_exc)
     for k in range(count):
-        idx = order[k * size:(k + 1) * size] if a["overlap"] == "disjoint" else rng.choice(n_exc, size, replace=False)
+        idx = order[k * size:(k + 1) * size] if a["overlap"] == "disjoint" else wiring.choice(n_exc, size, replace=False)
         members[k, idx] = True
         cued[k, rng.permutation(idx)[:n_cued]] = True
     return members, cued
@@ -86,35 +95,94 @@ def fixed_indegree(n_pre: int, n_post: int, k: int, rng: np.random.Generator, *,
     return pre, post
 
 
-def _namespace(cfg: dict) -> dict[str, Any]:
+_DIMENSION_NAMES = {b2.second.dim: "second", b2.volt.dim: "volt", b2.Hz.dim: "Hz"}
+
+
+def _unit_name(value: Any) -> str:
+    """Unit string of ``value`` for a Brian2 equation ('1' for plain numbers)."""
+    dim = b2.get_dimensions(value)
+    return "1" if dim.is_dimensionless else _DIMENSION_NAMES[dim]
+
+
+class _Constants:
+    """Where a point's values go: into the run namespace and object state now (runtime), or into
+    ``(shared, constant)`` variables and per-run settings (standalone, set with ``run_args``)."""
+
+    def __init__(self, standalone: bool) -> None:
+        self.standalone = standalone
+        self.namespace: dict[str, Any] = {}
+        self.settings: list[tuple[Any, str, Any]] = []
+
+    def declare(self, values: dict[str, Any]) -> str:
+        """Equation lines declaring ``values`` as shared variables (standalone); '' in runtime."""
+        if not self.standalone:
+            self.namespace.update(values)
+            return ""
+        integer = {name for name, v in values.items() if isinstance(v, (int, np.integer)) and not isinstance(v, bool)}
+        return "".join(f"\n{name} : {'integer' if name in integer else _unit_name(v)} (shared, constant)"
+                       for name, v in values.items())
+
+    def bind(self, group: Any, values: dict[str, Any]) -> None:
+        """Record the values of variables declared with :meth:`declare` on ``group`` (standalone)."""
+        if self.standalone:
+            self.settings += [(group, name, value) for name, value in values.items()]
+
+    def set(self, group: Any, name: str, value: Any) -> None:
+        """Initial state of ``group.name``: assigned now (runtime) or recorded for the run (standalone)."""
+        if self.standalone:
+            self.settings.append((group, name, value))
+        else:
+            setattr(group, name, value)
+
+
+def _neuron_constants(cfg: dict, adaptive: bool) -> dict[str, Any]:
     n = cfg["network"]
     mv, ms = b2.mV, b2.ms
-    return {
+    values = {
         "e_leak": n["e_leak_mv"] * mv, "e_exc": n["e_exc_mv"] * mv, "e_inh": n["e_inh_mv"] * mv,
         "v_threshold": n["v_threshold_mv"] * mv, "v_reset": n["v_reset_mv"] * mv,
         "tau_m": n["tau_m_ms"] * ms, "tau_exc": n["tau_exc_ms"] * ms, "tau_inh": n["tau_inh_ms"] * ms,
-        "tau_adapt": n["adapt_tau_ms"] * ms, "adapt_jump": n["adapt_jump"],
-        "w_e_to_i": n["w_e_to_i"], "w_i_to_i": n["w_i_to_i"],
     }
+    if adaptive:
+        values.update(tau_adapt=n["adapt_tau_ms"] * ms, adapt_jump=n["adapt_jump"])
+    return values
 
 
-def _neurons(cfg: dict, n: int, adaptive: bool, rng: np.random.Generator) -> b2.NeuronGroup:
+def _drive_constants(cfg: dict, adaptive: bool) -> dict[str, Any]:
+    """Mean background input count per step and its weight (standalone drive)."""
+    n = cfg["network"]
+    rate = n["drive_rate_exc_hz"] if adaptive else n["drive_rate_inh_hz"]
+    return {"drive_mean": n["drive_inputs"] * rate * n["dt_ms"] * 1e-3, "drive_weight": n["drive_weight"]}
+
+
+def _neurons(cfg: dict, n: int, adaptive: bool, rng: np.random.Generator, const: _Constants) -> b2.NeuronGroup:
     net = cfg["network"]
-    eqs = _NEURON.format(adapt_term=" + g_a * (e_inh - v)" if adaptive else "",
-                         adapt_eq="dg_a/dt = -g_a / tau_adapt : 1" if adaptive else "")
+    values = _neuron_constants(cfg, adaptive)
     refractory = (net["refractory_exc_ms"] if adaptive else net["refractory_inh_ms"]) * b2.ms
+    if const.standalone:
+        values.update(_drive_constants(cfg, adaptive), refractory_period=refractory)
+    eqs = _NEURON.format(adapt_term=" + g_a * (e_inh - v)" if adaptive else "",
+                         adapt_eq="dg_a/dt = -g_a / tau_adapt : 1" if adaptive else "") + const.declare(values)
     group = b2.NeuronGroup(n, eqs, threshold="v > v_threshold",
                            reset="v = v_reset" + ("\ng_a += adapt_jump" if adaptive else ""),
-                           refractory=refractory, method="euler", name="exc" if adaptive else "inh")
-    group.v = (net["v_reset_mv"] + rng.random(n) * (net["v_threshold_mv"] - net["v_reset_mv"])) * b2.mV
+                           refractory="refractory_period" if const.standalone else refractory,
+                           method="euler", name="exc" if adaptive else "inh")
+    const.bind(group, values)
+    if const.standalone:
+        group.run_regularly("g_e += drive_weight * poisson(drive_mean)", when="synapses",
+                            name=f"{group.name}_drive")
+    const.set(group, "v", (net["v_reset_mv"] + rng.random(n) * (net["v_threshold_mv"] - net["v_reset_mv"])) * b2.mV)
     return group
 
 
-def _synapses(src, tgt, rule: rules.Rule, transmit: str, i, j, delay, name: str) -> b2.Synapses:
+def _synapses(src, tgt, rule: rules.Rule, transmit: str, i, j, delay, name: str, const: _Constants,
+              constants: dict[str, Any], extra_model: str = "") -> b2.Synapses:
+    values = {**rule.namespace, **constants}
     on_pre = transmit + ("\n" + rule.on_pre if rule.on_pre else "")
-    syn = b2.Synapses(src, tgt, model=rule.model, on_pre=on_pre, on_post=rule.on_post or None,
-                      delay=delay, method="euler", name=name)
+    syn = b2.Synapses(src, tgt, model=rule.model + extra_model + const.declare(values), on_pre=on_pre,
+                      on_post=rule.on_post or None, delay=delay, method="euler", name=name)
     syn.connect(i=i, j=j)
+    const.bind(syn, values)
     return syn
 
 
@@ -146,55 +214,117 @@ def _stimulus(cfg: dict, exc: b2.NeuronGroup, memberships: np.ndarray, cued: np.
     return [src, syn]
 
 
-def build_network(cfg: dict, seed: int) -> tuple[b2.Network, dict[str, Any], Handles]:
+_STEP = "timestep(t, dt)"
+_CUE_START = "(hold_end + assembly * cue_period)"
+_PHASE = f"(({_STEP} - settle_end) % imprint_cycle - assembly * imprint_slot)"
+_VARIABLE_THRESHOLD = (
+    f"assembly >= 0 and ((cue_source and {_STEP} >= {_CUE_START} and {_STEP} < {_CUE_START} + cue_steps"
+    " and rand() < cue_rate * dt) or (not cue_source and"
+    f" {_STEP} >= settle_end and {_STEP} < imprint_end and {_PHASE} >= 0 and {_PHASE} < imprint_on"
+    " and rand() < imprint_rate * dt))")
+
+
+def _variable_inputs(cfg: dict, exc: b2.NeuronGroup, memberships: np.ndarray, cued: np.ndarray,
+                     sched: protocol.Schedule, const: _Constants) -> list[b2.BrianObject]:
+    """Imprint and cue input as two Poisson sources per E cell with a closed-form schedule.
+
+    Source ``i < n_exc`` is the imprint input of cell ``i``, source ``n_exc + i`` its cue input;
+    ``assembly`` says which assembly's windows a source follows (-1: none). Exact for disjoint
+    assemblies (a cell follows at most one assembly); the windows are those of
+    :func:`runners.protocol.schedule`, in integration steps.
+    """
+    n_exc, pr, count = len(exc), cfg["protocol"], len(memberships)
+    values = {
+        "settle_end": sched.settle_end, "imprint_end": sched.imprint_end, "imprint_on": sched.imprint_on,
+        "imprint_slot": sched.imprint_slot, "imprint_cycle": max(count * sched.imprint_slot, 1),
+        "hold_end": sched.hold_end, "cue_period": sched.cue_period, "cue_steps": sched.cue_steps,
+        "imprint_rate": pr["imprint_rate_hz"] * b2.Hz, "cue_rate": pr["cue_rate_hz"] * b2.Hz,
+    }
+    eqs = "assembly : integer (constant)\ncue_source : boolean (constant)" + const.declare(values)
+    src = b2.NeuronGroup(2 * n_exc, eqs, threshold=_VARIABLE_THRESHOLD, name="stim_sources")
+    const.bind(src, values)
+    learned = cfg["assemblies"]["imprint"] == "learned"
+    follows = np.full(2 * n_exc, -1, dtype=np.int32)
+    for k in range(count):
+        if learned:
+            follows[:n_exc][memberships[k]] = k
+        follows[n_exc:][cued[k]] = k
+    const.set(src, "assembly", follows)
+    const.set(src, "cue_source", np.arange(2 * n_exc) >= n_exc)
+    syn = b2.Synapses(src, exc, "w_stim : 1 (constant)", on_pre="g_e_post += w_stim", name="stim_synapses")
+    syn.connect(i=np.arange(2 * n_exc), j=np.arange(2 * n_exc) % n_exc)
+    const.set(syn, "w_stim", np.repeat([pr["imprint_weight"], pr["cue_weight"]], n_exc))
+    return [src, syn]
+
+
+SNAPSHOT_VARIABLE = "w_snap{}"
+"""Per-synapse E->E copies of ``w`` (standalone): index 0 at imprint end, ``1 + s`` at hold snapshot ``s``."""
+
+
+def build_network(cfg: dict, seed: int, wiring_seed: int | None = None, *,
+                  standalone: bool = False) -> tuple[b2.Network, dict[str, Any], Handles]:
     """Build the point's network; run it with ``net.run(duration, namespace=namespace)``.
 
-    The caller seeds Brian2's RNG (``brian2.seed``) and selects the code generation target.
-    Raises ConfigError when assemblies or in-degrees do not fit the network.
+    ``wiring_seed`` draws membership and connectivity, ``seed`` everything else drawn in numpy
+    (cued members, initial voltages); without ``wiring_seed`` one stream from ``seed`` draws all. The caller seeds Brian2's RNG and selects the device / code generation
+    target. With ``standalone`` the point's values are in ``handles.settings`` (pass them as
+    ``run_args``), not yet in the objects. Raises ConfigError when assemblies or in-degrees do
+    not fit the network.
     """
     net_cfg = cfg["network"]
-    rng = np.random.default_rng(seed)
+    if wiring_seed is None:  # one stream for everything, as before wiring seeds existed
+        wiring = rng = np.random.default_rng(seed)
+    else:
+        wiring, rng = np.random.default_rng([wiring_seed, 1]), np.random.default_rng([seed, 0])
+    const = _Constants(standalone)
+    b2.defaultclock.dt = net_cfg["dt_ms"] * b2.ms
     n_exc = net_cfg["n_exc"]
     n_inh = max(1, int(round(n_exc * net_cfg["inh_per_exc"])))
-    memberships, cued = draw_assemblies(cfg, rng)
+    memberships, cued = draw_assemblies(cfg, wiring, rng)
     sched = protocol.schedule(cfg)
-    ns = _namespace(cfg)
-    exc, inh = _neurons(cfg, n_exc, True, rng), _neurons(cfg, n_inh, False, rng)
+    exc, inh = _neurons(cfg, n_exc, True, rng, const), _neurons(cfg, n_inh, False, rng, const)
     delay = net_cfg["delay_ms"] * b2.ms
     k_e, k_i = net_cfg["indegree_exc"], net_cfg["indegree_inh"]
 
     ee, ie = rules.ee_rule(cfg), rules.ie_rule(cfg)
-    ns.update(ee.namespace)
-    ns.update(ie.namespace)
-    i_ee, j_ee = fixed_indegree(n_exc, n_exc, k_e, rng, no_self=True)
-    s_ee = _synapses(exc, exc, ee, "g_e_post += w", i_ee, j_ee, delay, "ee")
+    snap_model = "".join(f"\n{SNAPSHOT_VARIABLE.format(s)} : 1" for s in range(len(sched.snapshots) + 1)) \
+        if standalone else ""
+    i_ee, j_ee = fixed_indegree(n_exc, n_exc, k_e, wiring, no_self=True)
+    s_ee = _synapses(exc, exc, ee, "g_e_post += w", i_ee, j_ee, delay, "ee", const, {}, snap_model)
     within = (memberships[:, i_ee] & memberships[:, j_ee]).any(axis=0)
     prewired = cfg["assemblies"]["imprint"] == "prewired"
     w0 = net_cfg["w_e_to_e"] * np.where(within & prewired, cfg["assemblies"]["prewire_gain"], 1.0)
-    s_ee.w = w0
-    s_ee.w_ref = w0
+    const.set(s_ee, "w", w0)
+    const.set(s_ee, "w_ref", w0)
     consolidation = rules.consolidation_step(cfg)
     if consolidation:
-        s_ee.run_regularly(consolidation, dt=rules.CONSOLIDATION_DT_S * b2.second)
+        s_ee.run_regularly(consolidation, dt=rules.CONSOLIDATION_DT_S * b2.second, name="ee_consolidation")
 
-    i_ie, j_ie = fixed_indegree(n_inh, n_exc, k_i, rng, no_self=False)
-    s_ie = _synapses(inh, exc, ie, "g_i_post += w", i_ie, j_ie, delay, "ie")
-    s_ie.w = net_cfg["w_i_to_e"]
+    i_ie, j_ie = fixed_indegree(n_inh, n_exc, k_i, wiring, no_self=False)
+    s_ie = _synapses(inh, exc, ie, "g_i_post += w", i_ie, j_ie, delay, "ie", const, {})
+    const.set(s_ie, "w", net_cfg["w_i_to_e"] * np.ones(len(i_ie)))
     static = rules.Rule("", "", "", {})
-    i_ei, j_ei = fixed_indegree(n_exc, n_inh, k_e, rng, no_self=False)
-    s_ei = _synapses(exc, inh, static, "g_e_post += w_e_to_i", i_ei, j_ei, delay, "ei")
-    i_ii, j_ii = fixed_indegree(n_inh, n_inh, k_i, rng, no_self=True)
-    s_ii = _synapses(inh, inh, static, "g_i_post += w_i_to_i", i_ii, j_ii, delay, "ii")
+    i_ei, j_ei = fixed_indegree(n_exc, n_inh, k_e, wiring, no_self=False)
+    s_ei = _synapses(exc, inh, static, "g_e_post += w_e_to_i", i_ei, j_ei, delay, "ei", const,
+                     {"w_e_to_i": net_cfg["w_e_to_i"]})
+    i_ii, j_ii = fixed_indegree(n_inh, n_inh, k_i, wiring, no_self=True)
+    s_ii = _synapses(inh, inh, static, "g_i_post += w_i_to_i", i_ii, j_ii, delay, "ii", const,
+                     {"w_i_to_i": net_cfg["w_i_to_i"]})
 
     objects: list[b2.BrianObject] = [exc, inh, s_ee, s_ie, s_ei, s_ii]
-    if net_cfg["drive_inputs"] > 0:
-        for group, rate in ((exc, net_cfg["drive_rate_exc_hz"]), (inh, net_cfg["drive_rate_inh_hz"])):
-            objects.append(b2.PoissonInput(group, "g_e", net_cfg["drive_inputs"], rate * b2.Hz,
-                                           weight=net_cfg["drive_weight"]))
-    objects += _stimulus(cfg, exc, memberships, cued, sched, ns)
+    if standalone:
+        objects += _variable_inputs(cfg, exc, memberships, cued, sched, const)
+    else:
+        if net_cfg["drive_inputs"] > 0:
+            for group, rate in ((exc, net_cfg["drive_rate_exc_hz"]), (inh, net_cfg["drive_rate_inh_hz"])):
+                objects.append(b2.PoissonInput(group, "g_e", net_cfg["drive_inputs"], rate * b2.Hz,
+                                               weight=net_cfg["drive_weight"]))
+        objects += _stimulus(cfg, exc, memberships, cued, sched, const.namespace)
     mon_exc, mon_inh = b2.SpikeMonitor(exc, name="spikes_exc"), b2.SpikeMonitor(inh, name="spikes_inh")
     objects += [mon_exc, mon_inh]
     network = b2.Network(*objects)
     n_syn = len(i_ee) + len(i_ie) + len(i_ei) + len(i_ii)
-    handles = Handles(exc, inh, s_ee, mon_exc, mon_inh, memberships, cued, within, n_syn, sched)
-    return network, ns, handles
+    wiring = {"ee": (i_ee, j_ee), "ie": (i_ie, j_ie), "ei": (i_ei, j_ei), "ii": (i_ii, j_ii)}
+    handles = Handles(exc, inh, s_ee, mon_exc, mon_inh, memberships, cued, within, n_syn, sched, const.settings,
+                      wiring)
+    return network, const.namespace, handles

@@ -1,12 +1,15 @@
 """Run one sweep point: build, simulate the protocol phases, score it.
 
-``run_point(cfg, seed)`` returns one entry per result variable of
-``results_schema.layout.VARIABLES`` except ``predicted_outcome``.
+``run_point(cfg, seed, wiring_seed=None)`` returns one entry per result variable of
+``results_schema.layout.VARIABLES`` except ``predicted_outcome``. The runtime engines
+(cython, numpy) simulate here; ``execution.engine = "standalone"`` goes to
+:mod:`runners.standalone`, which falls back to cython for points it cannot express.
 """
 
 from __future__ import annotations
 
 import time
+from dataclasses import dataclass
 from typing import Any
 
 import brian2 as b2
@@ -14,6 +17,18 @@ import numpy as np
 
 from runners import metrics, protocol
 from runners.model import Handles, build_network
+
+@dataclass
+class Recording:
+    """What a simulation leaves for scoring: spikes before ``sim_time_s`` and E->E weights."""
+
+    t_exc: np.ndarray  # s
+    i_exc: np.ndarray
+    t_inh: np.ndarray  # s
+    sim_time_s: float
+    weights: dict[str, np.ndarray]  # "imprint" and "snap{i}" when reached
+    snaps: list[np.ndarray]  # hold snapshots reached, in order
+
 
 CHECK_INTERVAL_S = 0.1
 """How often (simulated s) the early-abort watch re-evaluates runaway onset."""
@@ -105,27 +120,48 @@ def _recall_metrics(cfg: dict, h: Handles, times: np.ndarray, cells: np.ndarray,
     return out
 
 
-def run_point(cfg: dict, seed: int) -> dict[str, object]:
-    """Simulate one point and return its metrics (see ``results_schema.layout.VARIABLES``).
-
-    ``cfg`` is the nested, fully resolved config; ``seed`` drives membership, connectivity,
-    cued members and Brian2's RNG. Same cfg and seed give identical results with the same engine.
-    """
-    start = time.perf_counter()
-    engine = cfg["execution"]["engine"]
-    b2.prefs.codegen.target = engine
+def _simulate_runtime(cfg: dict, seed: int, wiring_seed: int | None) -> tuple[Handles, Recording]:
+    b2.set_device("runtime")
+    b2.prefs.codegen.target = cfg["execution"]["engine"]
     b2.seed(seed % 2**32)
-    network, ns, h = build_network(cfg, seed)
+    network, ns, h = build_network(cfg, seed, wiring_seed)
     watch = RunawayWatch(cfg, h, network) if cfg["execution"]["abort_on_runaway"] else None
     if watch is not None:
         network.add(watch.operation)
     weights, snaps = _simulate(cfg, network, ns, h, watch)
     sim_time = float(network.t / b2.second)  # network.t_ is not a float after network.stop()
+    return h, Recording(np.asarray(h.mon_exc.t_[:]), np.asarray(h.mon_exc.i[:]), np.asarray(h.mon_inh.t_[:]),
+                        sim_time, weights, snaps)
 
+
+def run_point(cfg: dict, seed: int, wiring_seed: int | None = None) -> dict[str, object]:
+    """Simulate one point and return its metrics (see ``results_schema.layout.VARIABLES``).
+
+    ``cfg`` is the nested, fully resolved config; ``wiring_seed`` (default ``seed``) draws
+    assembly membership and connectivity, ``seed`` cued members, initial voltages and Brian2's
+    RNG. Same cfg and seeds give identical results with the same engine. The ``engine`` entry
+    says which engine ran the point (``cython`` when a standalone point fell back).
+    """
+    start = time.perf_counter()
+    engine = cfg["execution"]["engine"]
+    if engine == "standalone":
+        from runners import standalone
+
+        if standalone.unsupported(cfg) is None:
+            h, rec = standalone.simulate(cfg, seed, wiring_seed)
+            return _score(cfg, seed, engine, h, rec, start)
+        engine = "cython"
+        cfg = {**cfg, "execution": {**cfg["execution"], "engine": engine}}
+    h, rec = _simulate_runtime(cfg, seed, wiring_seed)
+    return _score(cfg, seed, engine, h, rec, start)
+
+
+def _score(cfg: dict, seed: int, engine: str, h: Handles, rec: Recording, start: float) -> dict[str, object]:
+    """Metrics of a finished simulation; ``start`` is its ``time.perf_counter()`` at the beginning."""
+    sim_time, weights, snaps = rec.sim_time_s, rec.weights, rec.snaps
     sched, det = h.schedule, cfg["detection"]
     bin_s, n_exc = det["trace_bin_ms"] * 1e-3, len(h.exc)
-    t_e, i_e = np.asarray(h.mon_exc.t_[:]), np.asarray(h.mon_exc.i[:])
-    t_i = np.asarray(h.mon_inh.t_[:])
+    t_e, i_e, t_i = rec.t_exc, rec.i_exc, rec.t_inh
     settle_end, hold_end = sched.seconds(sched.settle_end), sched.seconds(sched.hold_end)
     baseline = metrics.mean_rate(t_e, n_exc, 0.0, settle_end)
     rate_exc = metrics.binned_rate(t_e, n_exc, bin_s, sim_time)

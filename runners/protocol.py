@@ -32,6 +32,10 @@ class Schedule:
     snapshots: tuple[int, ...]
     cue_windows: tuple[tuple[int, int, int], ...]  # (assembly, start, stop)
     end: int
+    imprint_on: int = 0  # steps of input per presentation (learned)
+    imprint_slot: int = 0  # steps from one presentation's start to the next (on + off)
+    cue_steps: int = 0  # steps of one cue
+    cue_period: int = 0  # steps from one cue's start to the next (cue + gap)
 
     def seconds(self, step: int) -> float:
         """Simulated time (s) of a step index."""
@@ -49,8 +53,8 @@ def schedule(cfg: dict) -> Schedule:
     t = _steps(pr["settle_s"], dt)
     settle_end = t
     imprint = []
+    on, off = _steps(pr["imprint_on_s"], dt), _steps(pr["imprint_off_s"], dt)
     if cfg["assemblies"]["imprint"] == "learned":
-        on, off = _steps(pr["imprint_on_s"], dt), _steps(pr["imprint_off_s"], dt)
         for _ in range(pr["imprint_repeats"]):
             for k in range(count):
                 imprint.append((k, t, t + on))
@@ -62,7 +66,8 @@ def schedule(cfg: dict) -> Schedule:
     cue, gap = _steps(pr["cue_duration_s"], dt), _steps(pr["cue_gap_s"], dt)
     cues = tuple((k, hold_end + k * (cue + gap), hold_end + k * (cue + gap) + cue) for k in range(count))
     end = hold_end + count * (cue + gap)
-    return Schedule(dt, settle_end, tuple(imprint), imprint_end, hold_end, snaps, cues, end)
+    return Schedule(dt, settle_end, tuple(imprint), imprint_end, hold_end, snaps, cues, end,
+                    on, on + off, cue, cue + gap)
 
 
 def total_duration_s(cfg: dict) -> float:

@@ -113,10 +113,15 @@ class _ProgressView:
 
 def _print_run_summary(progress: Any) -> None:
     outcomes = ", ".join(f"{k} {v}" for k, v in sorted(progress.outcomes.items())) or "none"
+    engines = ", ".join(f"{k} {v}" for k, v in sorted(progress.engines.items())) or "none"
     err.print(
         f"ran {progress.finished} of {progress.to_run} points in {progress.elapsed_s:.1f} s "
-        f"({progress.failed} failed; outcomes: {outcomes}); {progress.already_done} were already stored"
+        f"({progress.failed} failed; outcomes: {outcomes}; engines: {engines}); "
+        f"{progress.already_done} were already stored"
     )
+    if progress.engine == "standalone" and progress.engines.get("cython"):
+        err.print("note: some points ran on cython because the standalone engine cannot express their settings "
+                  "(assemblies.overlap = 'random', or a trace bin that is not a whole number of time steps)")
 
 
 @app.command()
@@ -247,6 +252,18 @@ def _duration(seconds: float) -> str:
 def _check_engine(engine: str | None) -> None:
     if engine is not None and engine not in ENGINES:
         raise CapsweepError(f"--engine {engine!r} is not allowed: expected one of {', '.join(ENGINES)}")
+
+
+@app.command("prune-builds")
+@user_errors
+def prune_builds_command(
+    keep_mib: float = typer.Option(2048.0, "--keep-mib", min=0.0, help="disk the build cache may keep, MiB"),
+) -> None:
+    """Remove least-recently-used compiled builds until the cache fits in --keep-mib."""
+    from runners.standalone import build_root, prune_builds
+
+    removed = prune_builds(int(keep_mib * 2**20))
+    out.print(f"removed {removed} builds from {build_root()}", markup=False, highlight=False)
 
 
 def _emit(frame: Any, fmt: TableFormat) -> None:

@@ -34,7 +34,9 @@ class Progress:
     finished: int = 0  # points this run has stored (done or failed)
     failed: int = 0
     outcomes: dict[str, int] = field(default_factory=dict)
+    engines: dict[str, int] = field(default_factory=dict)  # engine that actually ran each point
     dashboard: str = ""
+    engine: str = ""  # engine the run asked for
     started_at: float = field(default_factory=time.monotonic)
     last: str = ""  # description of the last stored point
 
@@ -113,6 +115,7 @@ def _execute(
     execution = todo[0].config["execution"]
     workers = options.workers or execution["workers"]
     scheduler = options.scheduler if options.scheduler is not None else execution["scheduler"]
+    progress.engine = options.engine or execution["engine"]
     jobs = [(p, _with_execution(p.config, options), p.seed, p.wiring_seed) for p in todo]
     jobs.sort(key=lambda job: _build_group(job[1]))
     with dask_client(workers, scheduler) as client:
@@ -149,6 +152,7 @@ def _store_result(store: ResultStore, point: Point, result: Any, progress: Progr
         progress.last = f"{where}: failed ({result.error.splitlines()[0]})"
         return
     store.write_point(point.index, result)
-    outcome = str(result["outcome"])
+    outcome, engine = str(result["outcome"]), str(result["engine"])
     progress.outcomes[outcome] = progress.outcomes.get(outcome, 0) + 1
+    progress.engines[engine] = progress.engines.get(engine, 0) + 1
     progress.last = f"{where}: {outcome}"

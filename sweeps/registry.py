@@ -170,8 +170,9 @@ KEYS: tuple[Key, ...] = (
     _k("detection.trace_bin_ms", 10.0, "ms", "Bin width of the stored population rate trace", low=0.1, high=10000.0,
        sweepable=False),
     # --- execution (never part of a point's identity)
-    _k("execution.engine", "cython", "1", "Brian2 code generation target",
-       choices=("cython", "numpy", "standalone"), sweepable=False),
+    _k("execution.engine", "standalone", "1",
+       "Brian2 target: standalone (C++ binary compiled once per network structure, rerun per point), "
+       "cython or numpy (runtime)", choices=("standalone", "cython", "numpy"), sweepable=False),
     _k("execution.workers", 2, "1", "Local Dask worker processes", low=1, high=1024, sweepable=False),
     _k("execution.scheduler", "", "1", "Address of a running Dask scheduler ('' = start a local cluster)",
        sweepable=False),

@@ -1,0 +1,419 @@
+"""The "standalone" engine: Brian2 C++ standalone with one compiled binary per network structure.
+
+A *build* is the compiled project of one structure (``build_key``); every point of that structure
+reruns the same binary with its own values, given as ``run_args``:
+
+- neuron, synapse, rule, drive and stimulus constants: ``(shared, constant)`` variables
+  (``runners.model`` declares them when built with ``standalone=True``);
+- initial weights (with prewired gains), initial voltages, stimulus membership and weights:
+  per-neuron / per-synapse arrays;
+- protocol timing (steps), detection settings and the per-point RNG seed: shared variables of
+  the one-cell ``watch`` group, read by a C++ function called at the start of every step.
+
+Connectivity (the i/j arrays of the four E/I pathways) depends on ``wiring_seed``: the binary
+loads it from its static-array files, so each run gets its own run directory whose
+``static_arrays`` link the build's files and replace the wiring files.
+
+The C++ ``watch`` function counts E spikes per trace bin from the spike monitor, copies E->E
+``w`` into per-synapse snapshot variables at the snapshot steps, and sets Brian2's global stop
+flag at the planned end or (``abort_on_runaway``) as soon as the runaway onset of
+:func:`runners.metrics.runaway_onset` is established (stop time = onset + hold). Its test uses a
+threshold higher by a relative 1e-9, so it never stops before the offline definition, which
+then gives the recorded onset from the spikes.
+
+Builds live in ``$CAPSWEEP_BUILD_DIR`` (default ``~/.cache/capsweep/builds``), one directory per
+build key; compiling takes a file lock, so workers sharing the cache root compile a structure
+once. A process keeps its current build's Brian2 objects alive and reruns it without code
+generation; another key in the same process regenerates code (unchanged files are not
+rewritten, so ``make`` recompiles only for a new structure).
+
+Not expressible here (the point falls back to cython): ``assemblies.overlap = "random"`` (a cell
+would follow several assemblies' stimulus windows) and a ``detection.trace_bin_ms`` that is not
+a whole number of integration steps.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import fcntl
+import hashlib
+import json
+import os
+import shutil
+import tempfile
+import time
+from collections.abc import Iterator
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import brian2 as b2
+import numpy as np
+
+from runners import protocol
+from runners.model import SNAPSHOT_VARIABLE, Handles, build_network
+from runners.point import Recording
+
+BUILD_DIR_ENV = "CAPSWEEP_BUILD_DIR"
+MAX_DURATION_S = 1e7
+"""Compiled run length (s); every run stops earlier through the watch function."""
+_MARGIN = 1.0 + 1e-9
+_KEYS_IN_CODE = (
+    "network.n_exc", "network.inh_per_exc", "network.indegree_exc", "network.indegree_inh",
+    "network.delay_ms", "network.dt_ms", "plasticity.heterosynaptic.w_ref_mode",
+    "protocol.snapshots", "detection.trace_bin_ms", "execution.engine",
+)
+"""Config keys that change the generated code (everything else is passed per run)."""
+_COEFFICIENTS_OF = {
+    "triplet": ("a_ltp", "b_ltd"),
+    "heterosynaptic": ("beta",),
+    "transmitter": ("delta",),
+    "inhibitory": ("eta",),
+}
+"""The coefficients that scale each plasticity term's weight change."""
+
+
+def compiled_form(cfg: dict) -> dict:
+    """``cfg`` with every plasticity term compiled in and a switched-off term's coefficients at 0.
+
+    A term with zero coefficients changes no weight, so the dynamics are those of the switched-off
+    term, and points that differ only in which terms are on share one build (e.g. the full rule
+    and triplet STDP alone). Weights still pass through the [0, w_max] clip on each spike, which
+    changes nothing while initial weights lie inside it.
+    """
+    plasticity = {}
+    for term, table in cfg["plasticity"].items():
+        zeroed = {} if table["enabled"] else dict.fromkeys(_COEFFICIENTS_OF[term], 0.0)
+        plasticity[term] = {**table, **zeroed, "enabled": True}
+    return {**cfg, "plasticity": plasticity}
+
+
+def _flat(cfg: dict, prefix: str = "") -> dict[str, Any]:
+    out: dict[str, Any] = {}
+    for key, value in cfg.items():
+        path = f"{prefix}{key}"
+        out.update(_flat(value, path + ".") if isinstance(value, dict) else {path: value})
+    return out
+
+
+def build_key(cfg: dict) -> str:
+    """Structural hash of a point: points with equal keys share one compiled binary.
+
+    Covers sizes, in-degrees, delay, dt, the reference-weight mode, the snapshot count, the
+    trace bin and the engine (see ``_KEYS_IN_CODE``); plasticity switches are not structural
+    (see :func:`compiled_form`).
+    """
+    flat = _flat(compiled_form(cfg))
+    text = json.dumps({k: flat[k] for k in _KEYS_IN_CODE}, sort_keys=True)
+    return hashlib.sha256(text.encode()).hexdigest()[:16]
+
+
+def unsupported(cfg: dict) -> str | None:
+    """Why this point cannot run in standalone (it then falls back to cython), or None."""
+    if cfg["assemblies"]["overlap"] == "random":
+        return "assemblies.overlap = 'random' (a cell would follow several stimulus schedules)"
+    bin_steps = cfg["detection"]["trace_bin_ms"] / cfg["network"]["dt_ms"]
+    if abs(bin_steps - round(bin_steps)) > 1e-9:
+        return "detection.trace_bin_ms is not a whole number of network.dt_ms steps"
+    return None
+
+
+def build_root(root: str | os.PathLike | None = None) -> Path:
+    """Cache root of builds: ``root``, else ``$CAPSWEEP_BUILD_DIR``, else ``~/.cache/capsweep/builds``."""
+    if root is None:
+        root = os.environ.get(BUILD_DIR_ENV) or Path.home() / ".cache" / "capsweep" / "builds"
+    return Path(root).expanduser()
+
+
+@contextlib.contextmanager
+def _locked(path: Path, blocking: bool = True) -> Iterator[bool]:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    with open(path, "w") as handle:
+        try:
+            fcntl.flock(handle, fcntl.LOCK_EX | (0 if blocking else fcntl.LOCK_NB))
+        except BlockingIOError:
+            yield False
+            return
+        try:
+            yield True
+        finally:
+            fcntl.flock(handle, fcntl.LOCK_UN)
+
+
+def _dir_bytes(path: Path) -> int:
+    return sum(f.stat().st_size for f in path.rglob("*") if f.is_file() and not f.is_symlink())
+
+
+def prune_builds(max_bytes: int, root: str | os.PathLike | None = None) -> int:
+    """Delete least-recently-used builds until the cache holds at most ``max_bytes``; return how many.
+
+    A build being compiled (its lock held) is skipped. Runs in progress are not detected: prune
+    between sweeps.
+    """
+    base = build_root(root)
+    if not base.is_dir():
+        return 0
+    builds = [d for d in base.iterdir() if d.is_dir()]
+    sizes = {d: _dir_bytes(d) for d in builds}
+    total, removed = sum(sizes.values()), 0
+    for build in sorted(builds, key=_last_used):
+        if total <= max_bytes:
+            break
+        with _locked(base / f"{build.name}.lock", blocking=False) as free:
+            if not free:
+                continue
+            shutil.rmtree(build, ignore_errors=True)
+        (base / f"{build.name}.lock").unlink(missing_ok=True)
+        total -= sizes[build]
+        removed += 1
+    return removed
+
+
+def _last_used(build: Path) -> float:
+    marker = build / "last_used"
+    return marker.stat().st_mtime if marker.exists() else build.stat().st_mtime
+
+
+_WATCH_EQUATIONS = """
+flag : integer (shared)
+stop_step : integer (shared)
+end_step : integer (shared, constant)
+settle_end : integer (shared, constant)
+hold_end : integer (shared, constant)
+cue_period : integer (shared, constant)
+cue_steps : integer (shared, constant)
+cue_count : integer (shared, constant)
+bin_steps : integer (shared, constant)
+smooth_bins : integer (shared, constant)
+hold_bins : integer (shared, constant)
+abort : integer (shared, constant)
+settle_s : 1 (shared, constant)
+bin_s : 1 (shared, constant)
+factor : 1 (shared, constant)
+floor_hz : 1 (shared, constant)
+rng_seed : 1 (shared, constant)
+"""
+
+_WATCH_CODE = """
+#include <vector>
+#include <cmath>
+#include <algorithm>
+static std::vector<double> _capsweep_rate;
+static std::vector<char> _capsweep_keep;
+static size_t _capsweep_last = 0;
+static long _capsweep_run_start = -1;
+static double _capsweep_threshold = -1.0;
+
+static bool _capsweep_excluded(long b) {
+    using namespace brian;
+    const long bin = W(bin_steps);
+    for (long k = 0; k < W(cue_count); k++) {
+        const long a = W(hold_end) + k * W(cue_period), e = a + W(cue_steps);
+        if (a / bin <= b && b < (e + bin - 1) / bin) return true;
+    }
+    return false;
+}
+
+static bool _capsweep_bin_done(long b, size_t total) {
+    using namespace brian;
+    const double rate = (double)(total - _capsweep_last) / (N_EXC * W(bin_s));
+    _capsweep_last = total;
+    _capsweep_rate.push_back(rate);
+    _capsweep_keep.push_back(!_capsweep_excluded(b));
+    if (_capsweep_threshold < 0) return false;
+    double sum = 0.0; long kept = 0;
+    for (long c = std::max(0L, b - W(smooth_bins) + 1); c <= b; c++)
+        if (_capsweep_keep[c]) { sum += _capsweep_rate[c]; kept++; }
+    const bool valid = _capsweep_keep[b] && kept > 0;
+    const bool low = valid && sum / kept < _capsweep_threshold * MARGIN;
+    if (low) { _capsweep_run_start = -1; return false; }
+    if (valid && _capsweep_run_start < 0 && (b + 1) * W(bin_steps) >= W(settle_end)) _capsweep_run_start = b;
+    return _capsweep_run_start >= 0 && b - _capsweep_run_start >= W(hold_bins);
+}
+
+int capsweep_watch(int64_t step) {
+    using namespace brian;
+    SNAPSHOTS
+    const size_t total = SPIKES.size();
+    if (step == W(settle_end)) {
+        const double base = W(settle_end) > 0 ? total / (N_EXC * W(settle_s)) : NAN;
+        _capsweep_threshold = std::isfinite(base) ? std::max(W(factor) * base, W(floor_hz)) : W(floor_hz);
+    }
+    bool runaway = false;
+    if (step > 0 && step % W(bin_steps) == 0)
+        runaway = _capsweep_bin_done(step / W(bin_steps) - 1, total);
+    if (step >= W(end_step) || (runaway && W(abort))) {
+        W(stop_step) = step;
+        Network::_globally_stopped = true;
+        return 1;
+    }
+    return 0;
+}
+"""
+
+
+@dataclass
+class _Build:
+    """A compiled structure and the live Brian2 objects that address its variables."""
+
+    key: str
+    directory: Path
+    network: b2.Network
+    handles: Handles
+    watch: b2.NeuronGroup
+    wiring_files: dict[str, tuple[str, str]]  # synapses name -> static-array files of (i, j)
+    compile_s: float
+
+
+_CURRENT: dict[str, _Build] = {}
+
+
+def _watch_function(handles: Handles, watch: b2.NeuronGroup, snapshots: b2.NeuronGroup) -> b2.Function:
+    """The C++ ``capsweep_watch(step)`` function, with the array names of this build filled in."""
+    device = b2.get_device()
+
+    def array(group: Any, name: str, dynamic: bool = False) -> str:
+        return device.get_array_name(group.variables[name], access_data=not dynamic)
+
+    w_name, steps = array(handles.s_ee, "w", dynamic=True), array(snapshots, "step")
+    copies = "\n    ".join(
+        f"if (step == {steps}[{s}]) std::copy({w_name}.begin(), {w_name}.end(), "
+        f"{array(handles.s_ee, SNAPSHOT_VARIABLE.format(s), dynamic=True)}.begin());"
+        for s in range(len(snapshots)))
+    code = (_WATCH_CODE.replace("SNAPSHOTS", copies)
+            .replace("SPIKES", array(handles.mon_exc, "t", dynamic=True))
+            .replace("N_EXC", f"{len(handles.exc)}.0").replace("MARGIN", repr(_MARGIN)))
+    for name in watch.equations.names:
+        code = code.replace(f"W({name})", f"{array(watch, name)}[0]")
+    fn = b2.Function(lambda step: 0, arg_units=[1], return_unit=1, arg_types=["integer"], return_type="integer")
+    fn.implementations.add_implementation("cpp", code, name="capsweep_watch",
+                                          compiler_kwds={"headers": ['"network.h"']})
+    return fn
+
+
+def _watch_values(cfg: dict, seed: int, sched: protocol.Schedule) -> dict[str, Any]:
+    det, bin_s = cfg["detection"], cfg["detection"]["trace_bin_ms"] * 1e-3
+    return {
+        "end_step": sched.end, "settle_end": sched.settle_end, "hold_end": sched.hold_end,
+        "cue_period": sched.cue_period, "cue_steps": sched.cue_steps, "cue_count": len(sched.cue_windows),
+        "bin_steps": int(round(bin_s / sched.dt_s)), "smooth_bins": max(int(round(det["smoothing_s"] / bin_s)), 1),
+        "hold_bins": int(round(det["runaway_hold_s"] / bin_s)), "abort": int(cfg["execution"]["abort_on_runaway"]),
+        "settle_s": sched.seconds(sched.settle_end), "bin_s": bin_s, "factor": det["runaway_factor"],
+        "floor_hz": det["runaway_floor_hz"], "rng_seed": float(seed % 2**53),
+        "stop_step": -1,  # written by the watch; passing it makes Brian2 read it back from the run
+    }
+
+
+def _use_standalone(directory: Path, fresh: bool) -> Any:
+    """Make C++ standalone the active device; ``fresh`` forgets the objects of any earlier build."""
+    b2.set_device("cpp_standalone", build_on_run=False, directory=str(directory))
+    device = b2.get_device()
+    if fresh:
+        device.reinit()
+        device.activate(build_on_run=False, directory=str(directory))
+        _CURRENT.clear()
+    return device
+
+
+def _compile(cfg: dict, seed: int, wiring_seed: int | None, key: str) -> _Build:
+    """Generate (and, if the code changed, compile) the build of ``key``; keep its objects live."""
+    directory = build_root() / key
+    device = _use_standalone(directory, fresh=True)
+    network, ns, handles = build_network(cfg, seed, wiring_seed, standalone=True)
+    watch = b2.NeuronGroup(1, _WATCH_EQUATIONS, name="watch")
+    snapshots = b2.NeuronGroup(len(handles.schedule.snapshots) + 1, "step : integer (constant)", name="snapshots")
+    ns = {**ns, "capsweep_watch": _watch_function(handles, watch, snapshots)}
+    watch.run_regularly("flag = capsweep_watch(timestep(t, dt))", when="start", name="watch_tick")
+    network.add(watch, snapshots)
+    device.apply_run_args()
+    device.insert_code("main", "brian::_random_generators[0].seed((unsigned long) "
+                               f"{device.get_array_name(watch.variables['rng_seed'])}[0]);")
+    network.run(MAX_DURATION_S * b2.second, namespace=ns)
+    start = time.perf_counter()
+    with _locked(build_root() / f"{key}.lock"):
+        device.build(directory=str(directory), compile=True, run=False, with_output=False)
+    wiring = {}
+    for name in handles.wiring:
+        wiring[name] = tuple(next(n for n in device.static_arrays if n.startswith(f"_static_array__array_{name}_{end}"))
+                             for end in ("sources", "targets"))
+    build = _Build(key, directory, network, handles, watch, wiring, time.perf_counter() - start)
+    _CURRENT[key] = build
+    return build
+
+
+def _point_values(cfg: dict, seed: int, wiring_seed: int | None) -> Handles:
+    """Membership, wiring and per-run settings of a point, from a throw-away runtime build.
+
+    ``build_network`` is the one place that turns a config into values; building the network
+    once more on the runtime device (numpy target; nothing compiled, nothing simulated) gives
+    them, addressed by object name.
+    """
+    b2.BrianLogger.suppress_name("unused_brian_object")  # these objects are never meant to run
+    b2.set_device("runtime")
+    b2.prefs.codegen.target = "numpy"
+    return build_network(cfg, seed, wiring_seed, standalone=True)[2]
+
+
+@contextlib.contextmanager
+def _run_directory(build: _Build, wiring: dict[str, tuple[np.ndarray, np.ndarray]]) -> Iterator[Path]:
+    """A fresh directory to run the build's binary in, with this point's wiring; removed afterwards."""
+    run_dir = Path(tempfile.mkdtemp(prefix="run-", dir=build.directory))
+    try:
+        arrays = run_dir / "static_arrays"
+        arrays.mkdir()
+        replaced = {file: values for name, files in build.wiring_files.items()
+                    for file, values in zip(files, wiring[name])}
+        for source in (build.directory / "static_arrays").iterdir():
+            if source.name not in replaced and not source.name.endswith(".lock"):
+                (arrays / source.name).symlink_to(source)
+        for file, values in replaced.items():
+            np.asarray(values, dtype=np.int32).tofile(arrays / file)
+        (run_dir / "main").symlink_to(build.directory / "main")
+        yield run_dir
+    finally:
+        shutil.rmtree(run_dir, ignore_errors=True)
+
+
+def simulate(cfg: dict, seed: int, wiring_seed: int | None = None) -> tuple[Handles, Recording]:
+    """Run one point on the (cached or new) build of its structure; see the module docstring.
+
+    Returns the point's handles (membership, schedule, sizes; its Brian2 objects are inert) and
+    what the run recorded. Check :func:`unsupported` first.
+    """
+    cfg = compiled_form(cfg)
+    key = build_key(cfg)
+    values = _point_values(cfg, seed, wiring_seed)
+    build = _CURRENT.get(key) or _compile(cfg, seed, wiring_seed, key)
+    device = _use_standalone(build.directory, fresh=False)
+    net, sched = build.network, values.schedule
+    run_args = {getattr(net[group.name], name): value for group, name, value in values.settings}
+    run_args.update({getattr(build.watch, name): value for name, value in _watch_values(cfg, seed, sched).items()})
+    run_args[net["snapshots"].step] = np.array([sched.imprint_end, *sched.snapshots])
+    project_dir = device.project_dir
+    with _run_directory(build, values.wiring) as run_dir:
+        device.project_dir = str(run_dir)
+        try:
+            device.run(directory=str(run_dir), results_directory="results", with_output=False, run_args=run_args)
+            recording = _read(build, sched)
+        finally:
+            device.project_dir = project_dir
+    (build.directory / "last_used").touch()
+    return values, recording
+
+
+def _read(build: _Build, sched: protocol.Schedule) -> Recording:
+    """Spikes before the stop step, the stop time and the snapshots taken up to it."""
+    h = build.handles
+    stop = int(np.asarray(build.watch.stop_step[:]).ravel()[0])
+    sim_time = sched.seconds(stop)
+    limit = sim_time - 0.5 * sched.dt_s  # the stop step itself still runs: drop its spikes
+    t_e, i_e, t_i = np.asarray(h.mon_exc.t_[:]), np.asarray(h.mon_exc.i[:]), np.asarray(h.mon_inh.t_[:])
+    before_e = t_e < limit
+    weights, snaps = {}, []
+    for s, (name, step) in enumerate([("imprint", sched.imprint_end)]
+                                     + [(f"snap{i}", x) for i, x in enumerate(sched.snapshots)]):
+        if step <= stop:
+            weights[name] = np.array(getattr(h.s_ee, SNAPSHOT_VARIABLE.format(s))[:])
+            if name.startswith("snap"):
+                snaps.append(weights[name])
+    return Recording(t_e[before_e], i_e[before_e], t_i[t_i < limit], sim_time, weights, snaps)
