@@ -38,32 +38,7 @@ import xarray as xr
 from sweeps.expand import Point, expand
 from sweeps.sweepfile import load_sweep
 
-SWEEP = """
-[sweep]
-name = "odour-bench"
-store = "{store}"
-replicates = 2
-base_seed = 99
-[[sweep.axis]]
-name = "rule"
-[sweep.axis.variants]
-full = {{}}
-triplet_only = {{ "plasticity.heterosynaptic.enabled" = false, "plasticity.transmitter.enabled" = false, "plasticity.inhibitory.enabled" = false }}
-[[sweep.axis]]
-name = "n_odours"
-key = "assemblies.count"
-values = [1, 2, 3, 4]
-[network]
-n_exc = 300
-[assemblies]
-size = 60
-[plasticity.triplet]
-a_ltp = 0.03
-b_ltd = 0.006
-[protocol]
-settle_s = 1.0
-hold_s = 7.0
-"""
+SWEEP_FILE = Path(__file__).with_name("sweep16.toml")
 
 
 def with_execution(point: Point, **changes: Any) -> dict[str, Any]:
@@ -79,11 +54,11 @@ def run_one(args: tuple[dict[str, Any], int, int]) -> dict[str, Any]:
     return run_point(config, seed, wiring_seed=wiring_seed)
 
 
-def time_capsweep(sweep_file: Path, env: dict[str, str]) -> float:
+def time_capsweep(store: Path, env: dict[str, str]) -> float:
     """Wall seconds of ``capsweep run`` in a fresh process."""
     start = time.perf_counter()
-    subprocess.run([sys.executable, "-m", "sweeps.cli", "run", str(sweep_file)], check=True, env=env,
-                   stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    subprocess.run([sys.executable, "-m", "sweeps.cli", "run", str(SWEEP_FILE), "--store", str(store)], check=True,
+                   env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     return time.perf_counter() - start
 
 
@@ -128,14 +103,12 @@ def runaway_cost(points: list[Point], store: Path) -> float:
 
 def one_repeat(workdir: Path, repeat: int, warm_builds: bool) -> dict[str, float]:
     store = workdir / f"bench-{repeat}.zarr"
-    sweep_file = workdir / f"bench-{repeat}.toml"
-    sweep_file.write_text(SWEEP.format(store=store))
-    points = expand(load_sweep(sweep_file))
+    points = expand(load_sweep(SWEEP_FILE))
     workers = points[0].config["execution"]["workers"]
     env = dict(os.environ)
     if not warm_builds:
         env["CAPSWEEP_BUILD_DIR"] = tempfile.mkdtemp(prefix="builds-cap-", dir=workdir)
-    t_cap = time_capsweep(sweep_file, env)
+    t_cap = time_capsweep(store, env)
     if not warm_builds:
         env["CAPSWEEP_BUILD_DIR"] = tempfile.mkdtemp(prefix="builds-bare-", dir=workdir)
     t_bare = time_bare_engine(points, workers, env)

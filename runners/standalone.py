@@ -53,6 +53,7 @@ import numpy as np
 from runners import protocol
 from runners.model import SNAPSHOT_VARIABLE, Handles, build_network
 from runners.point import Recording
+from sweeps.registry import flatten
 
 BUILD_DIR_ENV = "CAPSWEEP_BUILD_DIR"
 MAX_DURATION_S = 1e7
@@ -88,14 +89,6 @@ def compiled_form(cfg: dict) -> dict:
     return {**cfg, "plasticity": plasticity}
 
 
-def _flat(cfg: dict, prefix: str = "") -> dict[str, Any]:
-    out: dict[str, Any] = {}
-    for key, value in cfg.items():
-        path = f"{prefix}{key}"
-        out.update(_flat(value, path + ".") if isinstance(value, dict) else {path: value})
-    return out
-
-
 def build_key(cfg: dict) -> str:
     """Structural hash of a point: points with equal keys share one compiled binary.
 
@@ -103,7 +96,7 @@ def build_key(cfg: dict) -> str:
     trace bin and the engine (see ``_KEYS_IN_CODE``); plasticity switches are not structural
     (see :func:`compiled_form`).
     """
-    flat = _flat(compiled_form(cfg))
+    flat = flatten(compiled_form(cfg))
     text = json.dumps({k: flat[k] for k in _KEYS_IN_CODE}, sort_keys=True)
     return hashlib.sha256(text.encode()).hexdigest()[:16]
 

@@ -1,7 +1,8 @@
 """Plan a sweep before running it: grid size, distinct builds, and an estimated wall time.
 
-The estimate is calibrated by probe simulations of each distinct network size: two short runs
-of different lengths separate the per-point overhead (build, set-up, scoring) from the cost per
+The estimate is calibrated by probe simulations of each distinct network size: after one
+uncounted run that compiles the size's build (which stays cached for the sweep), two short runs
+of different lengths separate the per-point overhead (set-up, scoring) from the cost per
 simulated second. Points are then packed onto the workers longest-first (LPT), which is how a
 Dask cluster with free workers takes queued tasks. Runaway points that stop early cost less, so
 the estimate is an upper bound where abort_on_runaway saves time.
@@ -21,6 +22,7 @@ from sweeps.sweepfile import load_sweep
 
 PROBE_HOLD_S = (0.3, 1.3)  # hold lengths of the two probe runs, s
 MAX_PROBES = 4  # distinct network sizes probed; others are scaled from the nearest probed size
+STARTUP_S = 5.0  # local Dask cluster start, imports and store layout, s (measured here: 3-6 s)
 
 
 @dataclass(frozen=True)
@@ -51,17 +53,22 @@ def size_key(point: Point) -> int:
     return int(point.config["network"]["n_exc"])
 
 
-def structure_key(point: Point) -> tuple[Any, ...]:
-    """What a compiled build depends on: sizes, in-degrees, switched-on terms, time step."""
-    net, plast = point.config["network"], point.config["plasticity"]
-    return (net["n_exc"], net["inh_per_exc"], net["indegree_exc"], net["indegree_inh"], net["dt_ms"],
-            point.config["assemblies"]["imprint"], *(plast[r]["enabled"] for r in sorted(plast)))
+def structure_key(point: Point) -> str:
+    """Key of the compiled build a point needs (its standalone build key)."""
+    from runners.standalone import build_key
+
+    return build_key(point.config)
 
 
 def probe(config: dict[str, Any], engine: str, seed: int = 1) -> Cost:
-    """Measure a network's cost with two short runs of different hold lengths."""
+    """Measure a network's cost with two short runs of different hold lengths.
+
+    A first, uncounted run compiles or generates code (standalone build, cython cache) so that
+    the two timed runs see what every later point of the sweep sees.
+    """
     from runners.point import run_point
 
+    run_point(_probe_config(config, engine, PROBE_HOLD_S[0]), seed)
     walls = []
     for hold in PROBE_HOLD_S:
         cfg = _probe_config(config, engine, hold)
@@ -124,6 +131,6 @@ def plan_sweep(
         workers=workers,
         engine=engine,
         costs=costs,
-        estimate_s=makespan(durations, workers),
+        estimate_s=STARTUP_S + makespan(durations, workers),
     )
 

@@ -213,3 +213,12 @@ def nest(flat: dict[str, Any]) -> dict[str, Any]:
             node = node.setdefault(part, {})
         node[leaf] = value
     return tree
+
+
+def flatten(tree: dict[str, Any], prefix: str = "") -> dict[str, Any]:
+    """Inverse of :func:`nest`: ``{'a': {'b': v}}`` -> ``{'a.b': v}``."""
+    flat: dict[str, Any] = {}
+    for key, value in tree.items():
+        path = f"{prefix}{key}"
+        flat.update(flatten(value, path + ".") if isinstance(value, dict) else {path: value})
+    return flat
