@@ -20,9 +20,12 @@ from runners.protocol import total_duration_s
 from sweeps.expand import Point, expand
 from sweeps.sweepfile import load_sweep
 
-PROBE_HOLD_S = (0.3, 1.3)  # hold lengths of the two probe runs, s
+PROBE_HOLD_S = (1.0, 5.0)  # hold lengths of the two probe runs, s
 MAX_PROBES = 4  # distinct network sizes probed; others are scaled from the nearest probed size
 STARTUP_S = 5.0  # local Dask cluster start, imports and store layout, s (measured here: 3-6 s)
+FIRST_POINT_EXTRA_S = {"standalone": 5.0, "cython": 2.0, "numpy": 0.5}
+"""Extra cost of each worker's first point, s: a fresh process regenerates the standalone project's code
+(the compiled binary is reused) or loads the cython modules (measured here: 3-8 s and 1-3 s)."""
 
 
 @dataclass(frozen=True)
@@ -131,6 +134,6 @@ def plan_sweep(
         workers=workers,
         engine=engine,
         costs=costs,
-        estimate_s=STARTUP_S + makespan(durations, workers),
+        estimate_s=STARTUP_S + FIRST_POINT_EXTRA_S[engine] + makespan(durations, workers),
     )
 

@@ -1,0 +1,57 @@
+"""Planning: build counting and the longest-first packing used for the wall-time estimate."""
+
+from __future__ import annotations
+
+from sweeps.expand import expand
+from sweeps.plan import Cost, makespan, point_cost, structure_key
+from sweeps.sweepfile import parse_sweep
+
+SWEEP = """
+[sweep]
+name = "odour-plan"
+store = "x.zarr"
+[[sweep.axis]]
+name = "rule"
+[sweep.axis.variants]
+full = {}
+triplet_only = { "plasticity.heterosynaptic.enabled" = false, "plasticity.inhibitory.enabled" = false }
+[[sweep.axis]]
+name = "n_exc"
+key = "network.n_exc"
+values = [300, 600]
+[[sweep.axis]]
+name = "beta"
+key = "plasticity.heterosynaptic.beta"
+values = [0.01, 0.03]
+[assemblies]
+size = 60
+[protocol]
+hold_s = 4.0
+"""
+
+
+def test_builds_follow_structure_not_coefficients_or_switches() -> None:
+    """Network size changes the compiled code; rule coefficients and switched-off terms do not."""
+    points = expand(parse_sweep(SWEEP))
+    assert len(points) == 8
+    assert len({structure_key(p) for p in points}) == 2
+    by_size = {p.labels["n_exc"]: structure_key(p) for p in points}
+    assert by_size[300] != by_size[600]
+
+
+def test_makespan_packs_longest_first() -> None:
+    """Longest-processing-time-first list scheduling (Graham 1969, SIAM J Appl Math 17:416), worked
+    by hand for [5, 4, 3, 3, 3] on two workers: 5 | 4; 3 -> 4+3 = 7; 3 -> 5+3 = 8; 3 -> 7+3 = 10."""
+    assert makespan([3, 5, 3, 4, 3], workers=2) == 10
+    assert makespan([2.0] * 6, workers=3) == 4.0
+    assert makespan([7.0], workers=4) == 7.0
+
+
+def test_point_cost_scales_with_size_and_duration() -> None:
+    points = expand(parse_sweep(SWEEP))
+    small = next(p for p in points if p.labels["n_exc"] == 300)
+    large = next(p for p in points if p.labels["n_exc"] == 600)
+    costs = {300: Cost(overhead_s=1.0, per_sim_s=0.5)}
+    planned = 1.0 + 4.0 + 4 * (0.2 + 0.5)  # settle + hold + four cues with gaps, s (registry defaults)
+    assert abs(point_cost(small, costs) - (1.0 + 0.5 * planned)) < 1e-9
+    assert abs(point_cost(large, costs) - (1.0 + 0.5 * 2 * planned)) < 1e-9  # twice the cells
