@@ -15,31 +15,14 @@ from results_schema.layout import VARIABLES
 from runners.point import CHECK_INTERVAL_S, run_point
 from runners.protocol import total_duration_s
 from sweeps.errors import ConfigError
-from sweeps.registry import defaults, nest
+from harness import DEMO_NETWORK, TRIPLET_ONLY, point_config
 
-TINY = {
-    "network.n_exc": 300,
-    "assemblies.count": 3,
-    "assemblies.size": 60,
-    "plasticity.triplet.a_ltp": 0.03,
-    "plasticity.triplet.b_ltd": 0.006,
-    "protocol.settle_s": 1.0,
-    "protocol.hold_s": 7.0,
-    "execution.engine": "cython",
-}
-TRIPLET_ONLY = {
-    "plasticity.heterosynaptic.enabled": False,
-    "plasticity.transmitter.enabled": False,
-    "plasticity.inhibitory.enabled": False,
-}
+TINY = {**DEMO_NETWORK, "execution.engine": "cython"}
 SEED = 1
 
 
 def _cfg(**changes: object) -> dict:
-    flat = defaults()
-    flat.update(TINY)
-    flat.update(changes)
-    return nest(flat)
+    return point_config(TINY, changes)
 
 
 @pytest.fixture(scope="module")

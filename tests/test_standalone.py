@@ -18,29 +18,16 @@ import pytest
 from runners import standalone
 from runners.point import run_point
 from runners.protocol import total_duration_s
-from sweeps.registry import defaults, nest
+from harness import DEMO_NETWORK, TRIPLET_ONLY, point_config
 
-TINY = {
-    "network.n_exc": 300,
-    "assemblies.count": 3,
-    "assemblies.size": 60,
-    "plasticity.triplet.a_ltp": 0.03,
-    "plasticity.triplet.b_ltd": 0.006,
-    "protocol.settle_s": 1.0,
-    "protocol.hold_s": 7.0,
-    "execution.engine": "standalone",
-}
-NO_STABILISERS = {"plasticity.heterosynaptic.enabled": False, "plasticity.transmitter.enabled": False,
-                  "plasticity.inhibitory.enabled": False}
-"""Triplet alone: switched-off terms are compiled in with zero coefficients, so it shares the full rule's build."""
+TINY = {**DEMO_NETWORK, "execution.engine": "standalone"}
+NO_STABILISERS = TRIPLET_ONLY
+"""Switched-off terms are compiled in with zero coefficients, so triplet alone shares the full rule's build."""
 WIRING = 7
 
 
 def _cfg(**changes: object) -> dict:
-    flat = defaults()
-    flat.update(TINY)
-    flat.update(changes)
-    return nest(flat)
+    return point_config(TINY, changes)
 
 
 @pytest.fixture(scope="module")
