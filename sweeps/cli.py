@@ -87,7 +87,7 @@ class _ProgressView:
         self.bar = Progress(
             TextColumn("[bold]points"), BarColumn(), MofNCompleteColumn(),
             TextColumn("failed {task.fields[failed]}"), TimeElapsedColumn(), TextColumn("ETA"),
-            TimeRemainingColumn(), console=err,
+            TimeRemainingColumn(), TextColumn("[dim]{task.fields[last]}"), console=err,
         )
         self.task: Any = None
         self.dashboard_shown = False
@@ -104,11 +104,11 @@ class _ProgressView:
         if self.task is None:
             err.print(f"{progress.total} points: {progress.already_done} stored before, {progress.to_run} to run")
             self.bar.start()
-            self.task = self.bar.add_task("run", total=progress.to_run, failed=0)
+            self.task = self.bar.add_task("run", total=progress.to_run, failed=0, last="")
         if progress.dashboard and not self.dashboard_shown:
             self.bar.console.print(f"Dask dashboard: {progress.dashboard}")
             self.dashboard_shown = True
-        self.bar.update(self.task, completed=progress.finished, failed=progress.failed)
+        self.bar.update(self.task, completed=progress.finished, failed=progress.failed, last=progress.last)
 
 
 def _print_run_summary(progress: Any) -> None:
