@@ -35,9 +35,8 @@ def stability_map(ds: xr.Dataset, path: Path, x: str | None = None, y: str | Non
     for name in (x, y):
         if name not in ds.dims:
             raise QueryError(f"--x/--y {name!r} is not a sweep axis; axes: {', '.join(axes + ['replicate'])}")
-    frac = success(ds).mean([d for d in success(ds).dims if d not in (x, y)]).transpose(y, x)
-    runaway = (labelled(ds, "outcome") == "runaway").astype(float)
-    runaway = runaway.mean([d for d in runaway.dims if d not in (x, y)]).transpose(y, x)
+    frac = _average_to(success(ds), x, y)
+    runaway = _average_to((labelled(ds, "outcome") == "runaway").astype(float), x, y)
     fig, ax = plt.subplots(figsize=(max(5.0, 1.5 + 1.1 * frac.sizes[x]), max(3.5, 1.2 + 0.7 * frac.sizes[y])))
     image = ax.imshow(frac.values, origin="lower", cmap="viridis", vmin=0, vmax=1, aspect="auto")
     for (i, j), value in np.ndenumerate(frac.values):
@@ -50,6 +49,11 @@ def stability_map(ds: xr.Dataset, path: Path, x: str | None = None, y: str | Non
     ax.set_title("fraction stable with full recall (R = fraction runaway)", fontsize=9)
     fig.colorbar(image, ax=ax, label="fraction of points")
     return _save(fig, path)
+
+
+def _average_to(values: xr.DataArray, x: str, y: str) -> xr.DataArray:
+    """Mean of ``values`` over every dim but ``x`` and ``y``, laid out (y, x)."""
+    return values.mean([d for d in values.dims if d not in (x, y)]).transpose(y, x)
 
 
 def capacity_curves(ds: xr.Dataset, path: Path) -> Path:

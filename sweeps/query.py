@@ -132,10 +132,10 @@ def capacity_table(ds: xr.Dataset) -> pd.DataFrame:
         raise QueryError(f"capacity needs an axis over {COUNT_KEY}; this store's axes set: "
                          + ", ".join(f"{d} ({k})" for d, k in keys.items()))
     count = count_dims[0]
-    ok = (labelled(ds, "status") == "done") & (labelled(ds, "outcome") == "stable")
-    ok = ok & (ds["recalled_count"] == ds[count])
+    done = labelled(ds, "status") == "done"
+    ok = done & (labelled(ds, "outcome") == "stable") & (ds["recalled_count"] == ds[count])
     cell_ok = ok.all("replicate")
-    done = (labelled(ds, "status") == "done").all("replicate").all(count)
+    done = done.all("replicate").all(count)
     counts = xr.where(cell_ok, ds[count], 0)
     capacity = counts.max(count)
     table = xr.Dataset({"capacity": capacity, "complete": done})
