@@ -35,10 +35,6 @@ a whole number of integration steps.
 from __future__ import annotations
 
 import contextlib
-import fcntl
-import hashlib
-import json
-import os
 import shutil
 import tempfile
 import time
@@ -51,54 +47,13 @@ import brian2 as b2
 import numpy as np
 
 from runners import protocol
+from runners.builds import build_key, build_root, compiled_form, locked
 from runners.model import SNAPSHOT_VARIABLE, Handles, build_network
 from runners.point import Recording
-from sweeps.registry import flatten
 
-BUILD_DIR_ENV = "CAPSWEEP_BUILD_DIR"
 MAX_DURATION_S = 1e7
 """Compiled run length (s); every run stops earlier through the watch function."""
 _MARGIN = 1.0 + 1e-9
-_KEYS_IN_CODE = (
-    "network.n_exc", "network.inh_per_exc", "network.indegree_exc", "network.indegree_inh",
-    "network.delay_ms", "network.dt_ms", "plasticity.heterosynaptic.w_ref_mode",
-    "protocol.snapshots", "detection.trace_bin_ms", "execution.engine",
-)
-"""Config keys that change the generated code (everything else is passed per run)."""
-_COEFFICIENTS_OF = {
-    "triplet": ("a_ltp", "b_ltd"),
-    "heterosynaptic": ("beta",),
-    "transmitter": ("delta",),
-    "inhibitory": ("eta",),
-}
-"""The coefficients that scale each plasticity term's weight change."""
-
-
-def compiled_form(cfg: dict) -> dict:
-    """``cfg`` with every plasticity term compiled in and a switched-off term's coefficients at 0.
-
-    A term with zero coefficients changes no weight, so the dynamics are those of the switched-off
-    term, and points that differ only in which terms are on share one build (e.g. the full rule
-    and triplet STDP alone). Weights still pass through the [0, w_max] clip on each spike, which
-    changes nothing while initial weights lie inside it.
-    """
-    plasticity = {}
-    for term, table in cfg["plasticity"].items():
-        zeroed = {} if table["enabled"] else dict.fromkeys(_COEFFICIENTS_OF[term], 0.0)
-        plasticity[term] = {**table, **zeroed, "enabled": True}
-    return {**cfg, "plasticity": plasticity}
-
-
-def build_key(cfg: dict) -> str:
-    """Structural hash of a point: points with equal keys share one compiled binary.
-
-    Covers sizes, in-degrees, delay, dt, the reference-weight mode, the snapshot count, the
-    trace bin and the engine (see ``_KEYS_IN_CODE``); plasticity switches are not structural
-    (see :func:`compiled_form`).
-    """
-    flat = flatten(compiled_form(cfg))
-    text = json.dumps({k: flat[k] for k in _KEYS_IN_CODE}, sort_keys=True)
-    return hashlib.sha256(text.encode()).hexdigest()[:16]
 
 
 def unsupported(cfg: dict) -> str | None:
@@ -109,62 +64,6 @@ def unsupported(cfg: dict) -> str | None:
     if abs(bin_steps - round(bin_steps)) > 1e-9:
         return "detection.trace_bin_ms is not a whole number of network.dt_ms steps"
     return None
-
-
-def build_root(root: str | os.PathLike | None = None) -> Path:
-    """Cache root of builds: ``root``, else ``$CAPSWEEP_BUILD_DIR``, else ``~/.cache/capsweep/builds``."""
-    if root is None:
-        root = os.environ.get(BUILD_DIR_ENV) or Path.home() / ".cache" / "capsweep" / "builds"
-    return Path(root).expanduser()
-
-
-@contextlib.contextmanager
-def _locked(path: Path, blocking: bool = True) -> Iterator[bool]:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    with open(path, "w") as handle:
-        try:
-            fcntl.flock(handle, fcntl.LOCK_EX | (0 if blocking else fcntl.LOCK_NB))
-        except BlockingIOError:
-            yield False
-            return
-        try:
-            yield True
-        finally:
-            fcntl.flock(handle, fcntl.LOCK_UN)
-
-
-def _dir_bytes(path: Path) -> int:
-    return sum(f.stat().st_size for f in path.rglob("*") if f.is_file() and not f.is_symlink())
-
-
-def prune_builds(max_bytes: int, root: str | os.PathLike | None = None) -> int:
-    """Delete least-recently-used builds until the cache holds at most ``max_bytes``; return how many.
-
-    A build being compiled (its lock held) is skipped. Runs in progress are not detected: prune
-    between sweeps.
-    """
-    base = build_root(root)
-    if not base.is_dir():
-        return 0
-    builds = [d for d in base.iterdir() if d.is_dir()]
-    sizes = {d: _dir_bytes(d) for d in builds}
-    total, removed = sum(sizes.values()), 0
-    for build in sorted(builds, key=_last_used):
-        if total <= max_bytes:
-            break
-        with _locked(base / f"{build.name}.lock", blocking=False) as free:
-            if not free:
-                continue
-            shutil.rmtree(build, ignore_errors=True)
-        (base / f"{build.name}.lock").unlink(missing_ok=True)
-        total -= sizes[build]
-        removed += 1
-    return removed
-
-
-def _last_used(build: Path) -> float:
-    marker = build / "last_used"
-    return marker.stat().st_mtime if marker.exists() else build.stat().st_mtime
 
 
 _WATCH_EQUATIONS = """
@@ -323,7 +222,7 @@ def _compile(cfg: dict, seed: int, wiring_seed: int | None, key: str) -> _Build:
                                f"{device.get_array_name(watch.variables['rng_seed'])}[0]);")
     network.run(MAX_DURATION_S * b2.second, namespace=ns)
     start = time.perf_counter()
-    with _locked(build_root() / f"{key}.lock"):
+    with locked(build_root() / f"{key}.lock"):
         device.build(directory=str(directory), compile=True, run=False, with_output=False)
     wiring = {}
     for name in handles.wiring:

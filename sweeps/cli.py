@@ -260,7 +260,7 @@ def prune_builds_command(
     keep_mib: float = typer.Option(2048.0, "--keep-mib", min=0.0, help="disk the build cache may keep, MiB"),
 ) -> None:
     """Remove least-recently-used compiled builds until the cache fits in --keep-mib."""
-    from runners.standalone import build_root, prune_builds
+    from runners.builds import build_root, prune_builds
 
     removed = prune_builds(int(keep_mib * 2**20))
     out.print(f"removed {removed} builds from {build_root()}", markup=False, highlight=False)

@@ -15,7 +15,9 @@ from typing import Any
 from results_schema.layout import STATUS_FLAGS
 from results_schema.lock import store_lock
 from results_schema.store import ResultStore, create_store
+from runners.builds import build_key
 from runners.dask_backend import TaskFailure, dask_client, run_tasks
+from runners.protocol import total_duration_s
 from results_schema.definitions import DEFINITIONS
 from sweeps.expand import Point, expand, fingerprint, grid_spec, id_and_seed_arrays
 from sweeps.sweepfile import Sweep, load_sweep
@@ -117,7 +119,7 @@ def _execute(
     scheduler = options.scheduler if options.scheduler is not None else execution["scheduler"]
     progress.engine = options.engine or execution["engine"]
     jobs = [(p, _with_execution(p.config, options), p.seed, p.wiring_seed) for p in todo]
-    jobs.sort(key=lambda job: _build_group(job[1]))
+    jobs.sort(key=lambda job: _submission_order(job[1]))
     with dask_client(workers, scheduler) as client:
         progress.dashboard = client.dashboard_link or ""
         on_event(progress)
@@ -133,14 +135,15 @@ def _with_execution(config: dict[str, Any], options: RunOptions) -> dict[str, An
     return {**config, "execution": {**config["execution"], **overrides}}
 
 
-def _build_group(config: dict[str, Any]) -> str:
-    """Compiled-build key of a standalone point ('' otherwise): submitting points grouped by build
-    lets each worker rerun one compiled binary many times before it has to switch."""
-    if config["execution"]["engine"] != "standalone":
-        return ""
-    from runners.standalone import build_key
+def _submission_order(config: dict[str, Any]) -> tuple[str, float]:
+    """Sort key of a job: its compiled-build key ('' unless standalone), then longest planned run first.
 
-    return build_key(config)
+    Grouping by build lets each worker rerun one compiled binary many times before it has to
+    switch; longest-first within a group (Dask hands out tasks in submission order) leaves the
+    short points for the end, so the workers finish close together.
+    """
+    group = build_key(config) if config["execution"]["engine"] == "standalone" else ""
+    return group, -total_duration_s(config)
 
 
 def _store_result(store: ResultStore, point: Point, result: Any, progress: Progress) -> None:

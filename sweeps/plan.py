@@ -58,7 +58,7 @@ def size_key(point: Point) -> int:
 
 def structure_key(point: Point) -> str:
     """Key of the compiled build a point needs (its standalone build key)."""
-    from runners.standalone import build_key
+    from runners.builds import build_key
 
     return build_key(point.config)
 

@@ -15,7 +15,7 @@ import time
 import numpy as np
 import pytest
 
-from runners import standalone
+from runners import builds, standalone
 from runners.point import run_point
 from runners.protocol import total_duration_s
 from harness import DEMO_NETWORK, TRIPLET_ONLY, point_config
@@ -33,7 +33,7 @@ def _cfg(**changes: object) -> dict:
 @pytest.fixture(scope="module")
 def build_root(tmp_path_factory, monkeypatch_module) -> str:
     root = tmp_path_factory.mktemp("builds")
-    monkeypatch_module.setenv(standalone.BUILD_DIR_ENV, str(root))
+    monkeypatch_module.setenv(builds.BUILD_DIR_ENV, str(root))
     return str(root)
 
 
@@ -53,7 +53,7 @@ def full_rule(build_root) -> tuple[dict, dict]:
 def triplet_alone(build_root, full_rule) -> tuple[dict, dict, float]:
     """Same build as ``full_rule``; also returns the compiled binary's mtime before this run."""
     cfg = _cfg(**NO_STABILISERS)
-    binary = standalone.build_root() / standalone.build_key(cfg) / "main"
+    binary = builds.build_root() / builds.build_key(cfg) / "main"
     before = binary.stat().st_mtime
     return cfg, run_point(cfg, 2, wiring_seed=WIRING), before
 
@@ -65,8 +65,8 @@ def test_coefficients_and_durations_do_not_change_the_build() -> None:
             _cfg(**{"plasticity.triplet.enabled": False})]
     other = [_cfg(**{"network.n_exc": 400}), _cfg(**{"plasticity.heterosynaptic.w_ref_mode": "consolidating"}),
              _cfg(**{"network.delay_ms": 2.0})]
-    assert all(standalone.build_key(c) == standalone.build_key(base) for c in same)
-    assert all(standalone.build_key(c) != standalone.build_key(base) for c in other)
+    assert all(builds.build_key(c) == builds.build_key(base) for c in same)
+    assert all(builds.build_key(c) != builds.build_key(base) for c in other)
 
 
 def test_full_rule_stays_stable_and_recalls(full_rule) -> None:
@@ -82,7 +82,7 @@ def test_full_rule_stays_stable_and_recalls(full_rule) -> None:
 def test_second_point_reuses_the_binary_and_runs_away(full_rule, triplet_alone) -> None:
     _, full = full_rule
     cfg, res, mtime_before = triplet_alone
-    binary = standalone.build_root() / standalone.build_key(cfg) / "main"
+    binary = builds.build_root() / builds.build_key(cfg) / "main"
     assert binary.stat().st_mtime == mtime_before  # not recompiled
     assert res["engine"] == "standalone"
     assert res["outcome"] == "runaway"
