@@ -22,10 +22,10 @@ from sweeps.sweepfile import load_sweep
 
 PROBE_HOLD_S = (1.0, 5.0)  # hold lengths of the two probe runs, s
 MAX_PROBES = 4  # distinct network sizes probed; others are scaled from the nearest probed size
-STARTUP_S = 5.0  # local Dask cluster start, imports and store layout, s (measured here: 3-6 s)
-FIRST_POINT_EXTRA_S = {"standalone": 5.0, "cython": 2.0, "numpy": 0.5}
+STARTUP_S = 3.0  # local Dask cluster start and close, imports and store layout, s (measured here: 2.5-3.5 s)
+FIRST_POINT_EXTRA_S = {"standalone": 2.5, "cython": 2.0, "numpy": 0.5}
 """Extra cost of each worker's first point, s: a fresh process regenerates the standalone project's code
-(the compiled binary is reused) or loads the cython modules (measured here: 3-8 s and 1-3 s)."""
+(the compiled binary is reused) or loads the cython modules (measured here, December 2026: 2.3-3 s and 1-3 s)."""
 
 
 @dataclass(frozen=True)
