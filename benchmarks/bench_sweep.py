@@ -2,17 +2,17 @@
 
     python benchmarks/bench_sweep.py [--repeats 3] [--workdir DIR]
 
-Each repeat measures, on the same machine in the same invocation:
+One invocation measures, on the same machine:
 
-1. capsweep: ``capsweep run`` in a fresh process with the sweep's defaults (local Dask cluster,
+1. capsweep (every repeat): ``capsweep run`` in a fresh process with the sweep's defaults (local Dask cluster,
    default engine and workers, abort on runaway, every point written to the Zarr store). Wall
    time from process start to exit, first with an empty build cache (compile included:
    ``speedup_vs_plain_loop``), then again on a new store with the cache it left
    (``speedup_warm_builds``: a modeller's second sweep over the same network structure).
-2. plain loop: what a modeller would otherwise write: the same 16 points as a sequential loop of
+2. plain loop (once, or ``--plain-loops`` times, after the repeats): what a modeller would otherwise write: the same 16 points as a sequential loop of
    Brian2 runtime (cython) simulations in one fresh process, same model and durations, no build
    reuse, no early abort.
-3. bare engine: the work capsweep does (same engine, abort on runaway, same submission order) in
+3. bare engine (every repeat): the work capsweep does (same engine, abort on runaway, same submission order) in
    a plain ``multiprocessing`` pool of the same size in a fresh process: no Dask, no store, no
    CLI. ``overhead_pct`` is capsweep's cold wall time over the bare engine's with an empty build
    cache; ``overhead_warm_pct`` the same with both caches filled.
@@ -24,7 +24,7 @@ includes its own imports and process start-up.
 with abort on against the same point run to full length with the same engine.
 
 The plain loop is deterministic work (fixed seeds, one process) and the longest part (about
-25 minutes for the 60 s retention points of ``sweep16.toml``): ``--plain-loops N`` measures it N
+11 minutes for the 60 s retention points of ``sweep16.toml``): ``--plain-loops N`` measures it N
 times (default 1) and every repeat's speedup uses their median.
 The last line prints the medians; the lines above give min / median / max per metric.
 """
@@ -44,27 +44,19 @@ from typing import Any
 
 import xarray as xr
 
+from engine_only import run_one
 from runners.builds import BUILD_DIR_ENV
 from sweeps.expand import Point, expand
+from sweeps.launch import submission_order
 from sweeps.sweepfile import load_sweep
 
 SWEEP_FILE = Path(__file__).with_name("sweep16.toml")
+ENGINE_ONLY = Path(__file__).with_name("engine_only.py")
 
 
 def with_execution(point: Point, **changes: Any) -> dict[str, Any]:
     """The point's config with execution settings changed."""
     return {**point.config, "execution": {**point.config["execution"], **changes}}
-
-
-ENGINE_ONLY = Path(__file__).with_name("engine_only.py")
-
-
-def run_one(args: tuple[dict[str, Any], int, int]) -> dict[str, Any]:
-    """One point through the engine in this process; returns its result."""
-    from runners.point import run_point
-
-    config, seed, wiring_seed = args
-    return run_point(config, seed, wiring_seed=wiring_seed)
 
 
 def time_capsweep(store: Path, env: dict[str, str]) -> float:
@@ -90,9 +82,7 @@ def plain_loop_jobs(points: list[Point]) -> list[tuple[dict[str, Any], int, int]
 
 def engine_jobs(points: list[Point]) -> list[tuple[dict[str, Any], int, int]]:
     """The points as capsweep runs them (its default engine and abort), in capsweep's submission order."""
-    from sweeps.launch import _submission_order
-
-    return sorted(((p.config, p.seed, p.wiring_seed) for p in points), key=lambda job: _submission_order(job[0]))
+    return sorted(((p.config, p.seed, p.wiring_seed) for p in points), key=lambda job: submission_order(job[0]))
 
 
 def runaway_cost(points: list[Point], store: Path) -> float:
@@ -111,17 +101,17 @@ def runaway_cost(points: list[Point], store: Path) -> float:
     return 100.0 * aborted / full
 
 
-def one_repeat(workdir: Path, repeat: int) -> dict[str, float]:
+def one_repeat(points: list[Point], workdir: Path, repeat: int) -> dict[str, float]:
     """Cold capsweep and bare engine (empty build caches), then both warm (speedups are added later)."""
-    points = expand(load_sweep(SWEEP_FILE))
+    jobs = engine_jobs(points)
     workers = points[0].config["execution"]["workers"]
     cap_env = {**os.environ, BUILD_DIR_ENV: tempfile.mkdtemp(prefix="builds-cap-", dir=workdir)}
     bare_env = {**os.environ, BUILD_DIR_ENV: tempfile.mkdtemp(prefix="builds-bare-", dir=workdir)}
     cold_store, warm_store = workdir / f"cold-{repeat}.zarr", workdir / f"warm-{repeat}.zarr"
     t_cold = time_capsweep(cold_store, cap_env)
-    t_bare = time_engine_only(engine_jobs(points), workers, bare_env)
+    t_bare = time_engine_only(jobs, workers, bare_env)
     t_warm = time_capsweep(warm_store, cap_env)
-    t_bare_warm = time_engine_only(engine_jobs(points), workers, bare_env)
+    t_bare_warm = time_engine_only(jobs, workers, bare_env)
     os.environ[BUILD_DIR_ENV] = cap_env[BUILD_DIR_ENV]
     ds = xr.open_zarr(cold_store)
     return {
@@ -141,11 +131,11 @@ def main() -> None:
     parser.add_argument("--workdir", type=Path, default=None)
     args = parser.parse_args()
     workdir = args.workdir or Path(tempfile.mkdtemp(prefix="capsweep-bench-"))
+    points = expand(load_sweep(SWEEP_FILE))
     rows = []
     for repeat in range(args.repeats):
-        rows.append(one_repeat(workdir, repeat))
+        rows.append(one_repeat(points, workdir, repeat))
         print(f"repeat {repeat}: " + " ".join(f"{k}={v:.3g}" for k, v in rows[-1].items()), flush=True)
-    points = expand(load_sweep(SWEEP_FILE))
     plain = [time_engine_only(plain_loop_jobs(points), 0, dict(os.environ)) for _ in range(args.plain_loops)]
     print("plain loop s: " + " ".join(f"{t:.1f}" for t in plain), flush=True)
     for row in rows:

@@ -16,12 +16,12 @@ import sys
 from typing import Any
 
 
-def run_one(job: tuple[dict[str, Any], int, int]) -> None:
-    """One point through ``runners.point.run_point`` (imported here, so the parent stays light)."""
+def run_one(job: tuple[dict[str, Any], int, int]) -> dict[str, Any]:
+    """One point through ``runners.point.run_point`` (imported here, so the parent stays light); its result."""
     from runners.point import run_point
 
     config, seed, wiring_seed = job
-    run_point(config, seed, wiring_seed=wiring_seed)
+    return run_point(config, seed, wiring_seed=wiring_seed)
 
 
 def main() -> None:

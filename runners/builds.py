@@ -73,6 +73,7 @@ def build_root(root: str | os.PathLike | None = None) -> Path:
 
 @contextlib.contextmanager
 def locked(path: Path, blocking: bool = True) -> Iterator[bool]:
+    """Hold an exclusive file lock on ``path``; yields False instead of waiting if not ``blocking`` and taken."""
     path.parent.mkdir(parents=True, exist_ok=True)
     with open(path, "w") as handle:
         try:

@@ -21,9 +21,8 @@ flag at the planned end or (``abort_on_runaway``) as soon as the runaway onset o
 threshold higher by a relative 1e-9, so it never stops before the offline definition, which
 then gives the recorded onset from the spikes.
 
-Builds live in ``$CAPSWEEP_BUILD_DIR`` (default ``~/.cache/capsweep/builds``), one directory per
-build key; compiling takes a file lock, so workers sharing the cache root compile a structure
-once. A process keeps its current build's Brian2 objects alive and reruns it without code
+Build keys, the cache root and the compile lock are in :mod:`runners.builds`; workers sharing the
+cache root compile a structure once. A process keeps its current build's Brian2 objects alive and reruns it without code
 generation; another key in the same process regenerates code (unchanged files are not
 rewritten, so ``make`` recompiles only for a new structure).
 

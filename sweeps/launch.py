@@ -119,7 +119,7 @@ def _execute(
     scheduler = options.scheduler if options.scheduler is not None else execution["scheduler"]
     progress.engine = options.engine or execution["engine"]
     jobs = [(p, _with_execution(p.config, options), p.seed, p.wiring_seed) for p in todo]
-    jobs.sort(key=lambda job: _submission_order(job[1]))
+    jobs.sort(key=lambda job: submission_order(job[1]))
     with dask_client(workers, scheduler) as client:
         progress.dashboard = client.dashboard_link or ""
         on_event(progress)
@@ -135,7 +135,7 @@ def _with_execution(config: dict[str, Any], options: RunOptions) -> dict[str, An
     return {**config, "execution": {**config["execution"], **overrides}}
 
 
-def _submission_order(config: dict[str, Any]) -> tuple[str, float]:
+def submission_order(config: dict[str, Any]) -> tuple[str, float]:
     """Sort key of a job: its compiled-build key ('' unless standalone), then longest planned run first.
 
     Grouping by build lets each worker rerun one compiled binary many times before it has to
