@@ -4,7 +4,9 @@ This module is the contract between the runner (which returns one value per vari
 point) and the store (which lays out one array per variable over the sweep dims plus the
 variable's inner dim). Inner dims: ``assembly`` (one entry per assembly, padded with the fill
 value up to the largest count in the grid), ``snapshot`` (weight snapshots during hold) and
-``time_bin`` (binned population rate trace, padded to the longest point).
+``time_bin`` (binned population rate trace, padded to the longest point). ``Axis`` and
+``GridSpec`` describe the sweep dims; they live here, free of Zarr and xarray, so that reading
+and expanding a sweep file imports neither.
 """
 
 from __future__ import annotations
@@ -20,6 +22,29 @@ OUTCOME_FLAGS: tuple[str, ...] = ("stable", "runaway", "silent")
 ENGINE_FLAGS: tuple[str, ...] = ("cython", "numpy", "standalone")
 FLAG_FILL = -1
 INNER_DIMS: tuple[str, ...] = ("assembly", "snapshot", "time_bin")
+
+
+@dataclass(frozen=True)
+class Axis:
+    """One sweep axis: a dim name, the config key it sets and its coordinate values."""
+
+    name: str
+    key: str
+    values: tuple
+
+
+@dataclass(frozen=True)
+class GridSpec:
+    """Shape and identity of a sweep grid; sizes of the inner dims; extra root attrs."""
+
+    axes: tuple[Axis, ...]
+    replicates: int
+    n_assembly: int
+    n_snapshot: int
+    n_time_bin: int
+    time_bin_s: float
+    fingerprint: str
+    attrs: dict
 
 
 @dataclass(frozen=True)

@@ -16,7 +16,6 @@ import importlib.metadata
 import shutil
 import struct
 import warnings
-from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any, Mapping
@@ -28,6 +27,7 @@ from zarr.core.sync import sync
 from zarr.errors import ZarrUserWarning
 
 from results_schema import layout
+from results_schema.layout import Axis, GridSpec
 from sweeps.errors import StoreError
 from sweeps.registry import BY_PATH
 
@@ -54,29 +54,6 @@ STRING_VARIABLES: dict[str, str] = {
 # Result variables a runner result must hold; seed is fixed at creation, the prediction optional.
 OPTIONAL_RESULTS: frozenset[str] = frozenset({"seed", "predicted_outcome"})
 REQUIRED_RESULTS: tuple[str, ...] = tuple(v.name for v in layout.VARIABLES if v.name not in OPTIONAL_RESULTS)
-
-
-@dataclass(frozen=True)
-class Axis:
-    """One sweep axis: a dim name, the config key it sets and its coordinate values."""
-
-    name: str
-    key: str
-    values: tuple
-
-
-@dataclass(frozen=True)
-class GridSpec:
-    """Shape and identity of a sweep grid; sizes of the inner dims; extra root attrs."""
-
-    axes: tuple[Axis, ...]
-    replicates: int
-    n_assembly: int
-    n_snapshot: int
-    n_time_bin: int
-    time_bin_s: float
-    fingerprint: str
-    attrs: dict
 
 
 def create_store(path: str | Path, grid: GridSpec, point_ids: np.ndarray, seeds: np.ndarray) -> None:

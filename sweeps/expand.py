@@ -16,7 +16,7 @@ from typing import Any, Callable
 
 import numpy as np
 
-from results_schema.store import GridSpec
+from results_schema.layout import GridSpec
 from runners.protocol import total_duration_s
 from sweeps.errors import ConfigError
 from sweeps.registry import nest

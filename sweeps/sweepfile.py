@@ -14,8 +14,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from results_schema.layout import INNER_DIMS
-from results_schema.store import Axis
+from results_schema.layout import INNER_DIMS, Axis
 from sweeps.errors import ConfigError
 from sweeps.registry import BY_PATH, SECTIONS, Key, defaults, lookup
 

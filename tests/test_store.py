@@ -17,7 +17,8 @@ import zarr
 
 from results_schema import layout
 from results_schema.lock import LOCK_NAME, store_lock
-from results_schema.store import Axis, GridSpec, ResultStore, create_store, flag_labels, open_dataset
+from results_schema.layout import Axis, GridSpec
+from results_schema.store import ResultStore, create_store, flag_labels, open_dataset
 from sweeps.errors import StoreError
 
 AXES = (
