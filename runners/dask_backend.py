@@ -8,13 +8,17 @@ exception from ``Future.result`` and is recorded the same way.
 
 from __future__ import annotations
 
+import atexit
 import contextlib
+import os
 import traceback
 from collections.abc import Iterable, Iterator
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Any
 
-from dask.distributed import Client, LocalCluster, WorkerPlugin, as_completed
+import dask
+from dask.distributed import Client, LocalCluster, Status, WorkerPlugin, as_completed
 
 from sweeps.errors import CapsweepError
 
@@ -45,25 +49,59 @@ def simulate_task(config: dict[str, Any], seed: int, wiring_seed: int) -> dict[s
     return result
 
 
-class ImportBrian2(WorkerPlugin):
-    """Import Brian2 in each worker's main thread at start-up.
+class PrepareWorker(WorkerPlugin):
+    """Ready a worker for simulations at start-up, and let it leave quickly once closed.
 
-    Brian2 installs a SIGINT handler when first imported, which Python allows only in the main
-    thread; tasks run in a worker's executor thread, so the import must happen here first.
+    - Brian2 and the point runner are imported in the worker's main thread: Brian2 installs a
+      SIGINT handler when first imported, which Python allows only in the main thread (tasks run
+      in an executor thread).
+    - After a clean close, the worker process exits without interpreter teardown, which takes
+      about 0.5 s with Brian2 loaded and has nothing left to save.
     """
 
-    name = "capsweep-import-brian2"
+    name = "capsweep-prepare-worker"
 
     def setup(self, worker: Any) -> None:
         import brian2  # noqa: F401
 
+        import runners.point  # noqa: F401
+
+    def teardown(self, worker: Any) -> None:
+        if worker.status == Status.closing:
+            atexit.register(os._exit, 0)
+
+
+LOCAL_CLUSTER_SETTINGS = {
+    "distributed.worker.profile.enabled": False,
+    "distributed.admin.tick.interval": "1s",
+    "distributed.admin.system-monitor.interval": "2s",
+    "distributed.worker.memory.monitor-interval": "1s",
+    "distributed.scheduler.work-stealing": False,
+    "distributed.scheduler.worker-saturation": 1.0,
+}
+"""Dask settings of the local cluster: no profiler, slower housekeeping, one task per worker.
+
+- The statistical profiler walks the stack of every running task every 10 ms on the worker's
+  event loop; on Brian2's deep code-generation stacks it cost up to half of a worker's first
+  point (measured: 10.7 s instead of 5.0 s).
+- With the default housekeeping (event-loop tick every 20 ms, system and memory monitors every
+  0.5 s and 0.1 s, work stealing every 0.1 s) an idle 2-worker cluster used 1.3 s of CPU per
+  20 s here, taken from the simulations on a 2-core machine; with these, 0.33 s.
+- A worker holds only the task it runs (the default saturation 1.1 rounds up to two per
+  one-thread worker): the next task goes to whichever worker frees up first, so the sweep's
+  longest-first order is kept and no worker idles at the end while the other still has a point
+  queued. Stealing then has nothing to move.
+"""
+
 
 @contextlib.contextmanager
-def dask_client(workers: int, scheduler: str = "") -> Iterator[Client]:
+def dask_client(workers: int, scheduler: str = "", dashboard: bool = False) -> Iterator[Client]:
     """A Dask client: attached to ``scheduler`` if given, else on a fresh LocalCluster.
 
     The local cluster runs ``workers`` processes with one thread each (Brian2 simulations are
-    single-threaded and hold the GIL, so processes, not threads, give parallelism).
+    single-threaded and hold the GIL, so processes, not threads, give parallelism). The client is
+    closed, not exited as a context manager: ``EarlyClient`` opens it in another thread, and
+    ``Client.__exit__`` resets a context variable that only the opening thread may reset.
     """
     if scheduler:
         try:
@@ -73,16 +111,53 @@ def dask_client(workers: int, scheduler: str = "") -> Iterator[Client]:
                 f"cannot reach the Dask scheduler at {scheduler!r} ({exc}); check the address "
                 "(e.g. tcp://host:8786) or omit --scheduler to start a local cluster"
             ) from None
-        with client:
-            client.register_plugin(ImportBrian2())
+        with contextlib.closing(client):
+            client.register_plugin(PrepareWorker())
             yield client
         return
-    with LocalCluster(
-        n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=":0",
+    with dask.config.set(LOCAL_CLUSTER_SETTINGS), LocalCluster(
+        n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=":0" if dashboard else None,
         silence_logs=50,
-    ) as cluster, Client(cluster) as client:
-        client.register_plugin(ImportBrian2())
+    ) as cluster, contextlib.closing(Client(cluster)) as client:
+        client.register_plugin(PrepareWorker())
         yield client
+
+
+class EarlyClient:
+    """A :func:`dask_client` that can start in a background thread before it is needed.
+
+    Worker processes take seconds to start and import Brian2; ``start()`` begins that while the
+    caller does its own preparation (imports, store layout), and ``client()`` waits for it
+    (starting it first if ``start()`` was not called). Leaving the ``with`` block closes the
+    client and cluster, after waiting for a start still in progress.
+    """
+
+    def __init__(self, workers: int, scheduler: str = "", dashboard: bool = False) -> None:
+        self._context = dask_client(workers, scheduler, dashboard)
+        self.has_dashboard = dashboard or bool(scheduler)  # a running scheduler usually serves one
+        self._stack = contextlib.ExitStack()
+        self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="capsweep-dask-start")
+        self._started: Future[Client] | None = None
+
+    def start(self) -> Future[Client]:
+        """Begin starting the client in the background (once); the future of the client."""
+        if self._started is None:
+            self._started = self._pool.submit(self._stack.enter_context, self._context)
+        return self._started
+
+    def client(self) -> Client:
+        """The started client; raises what starting it raised (e.g. an unreachable scheduler)."""
+        return self.start().result()
+
+    def __enter__(self) -> "EarlyClient":
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        if self._started is not None:
+            with contextlib.suppress(Exception):
+                self._started.result()
+        self._pool.shutdown()
+        self._stack.close()
 
 
 def run_tasks(

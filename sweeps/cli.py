@@ -63,6 +63,8 @@ def run(
     store: Path = typer.Option(None, "--store", help="Zarr store directory (default: [sweep].store)"),
     workers: int = typer.Option(None, "--workers", min=1, help="local Dask worker processes"),
     scheduler: str = typer.Option(None, "--scheduler", help="address of a running Dask scheduler"),
+    dashboard: bool = typer.Option(None, "--dashboard/--no-dashboard",
+                                   help="serve the local cluster's Dask dashboard (default: execution.dashboard)"),
     engine: str = typer.Option(None, "--engine", help="override execution.engine: cython, numpy or standalone"),
     retry_failed: bool = typer.Option(False, "--retry-failed", help="run failed points again"),
     prescreen: bool = typer.Option(None, "--prescreen/--no-prescreen",
@@ -72,8 +74,8 @@ def run(
     from sweeps.launch import RunOptions, run_sweep
 
     _check_engine(engine)
-    options = RunOptions(store=store, workers=workers, scheduler=scheduler, engine=engine, prescreen=prescreen,
-                         retry_failed=retry_failed)
+    options = RunOptions(store=store, workers=workers, scheduler=scheduler, dashboard=dashboard, engine=engine,
+                         prescreen=prescreen, retry_failed=retry_failed)
     with _ProgressView() as view:
         final = run_sweep(sweep_file, options, on_event=view.update)
     _print_run_summary(final)

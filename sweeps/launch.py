@@ -10,17 +10,19 @@ import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
+from results_schema.definitions import DEFINITIONS
 from results_schema.layout import STATUS_FLAGS
 from results_schema.lock import store_lock
-from results_schema.store import ResultStore, create_store
 from runners.builds import build_key
-from runners.dask_backend import TaskFailure, dask_client, run_tasks
+from runners.dask_backend import EarlyClient, TaskFailure, run_tasks
 from runners.protocol import total_duration_s
-from results_schema.definitions import DEFINITIONS
 from sweeps.expand import Point, expand, fingerprint, grid_spec, id_and_seed_arrays
 from sweeps.sweepfile import Sweep, load_sweep
+
+if TYPE_CHECKING:
+    from results_schema.store import ResultStore
 
 DONE = STATUS_FLAGS.index("done")
 FAILED = STATUS_FLAGS.index("failed")
@@ -55,6 +57,7 @@ class RunOptions:
     store: Path | None = None
     workers: int | None = None
     scheduler: str | None = None
+    dashboard: bool | None = None
     engine: str | None = None
     prescreen: bool | None = None
     retry_failed: bool = False
@@ -65,21 +68,39 @@ def run_sweep(
     options: RunOptions = RunOptions(),
     on_event: Callable[[Progress], None] = lambda p: None,
 ) -> Progress:
-    """Run the points of ``sweep_file`` whose status is not done; return the final Progress."""
+    """Run the points of ``sweep_file`` whose status is not done; return the final Progress.
+
+    For a new store every point will run, so the Dask workers start in the background while
+    the store is laid out (they take seconds to start and import Brian2); an existing store's
+    status is read first, and workers start only if a point is left to run.
+    """
     sweep = load_sweep(sweep_file, store=options.store)
     points = expand(sweep)
-    store = open_or_create(sweep, points)
-    with store_lock(sweep.store):
-        todo = pending(points, store, options.retry_failed)
-        progress = Progress(total=len(points), to_run=len(todo), already_done=len(points) - len(todo))
-        if todo:
-            _execute(sweep, todo, store, options, progress, on_event)
-        on_event(progress)
+    with EarlyClient(**_cluster_settings(points[0].config["execution"], options)) as dask:
+        if not Path(sweep.store).exists():
+            dask.start()
+        store = open_or_create(sweep, points)
+        with store_lock(sweep.store):
+            todo = pending(points, store, options.retry_failed)
+            progress = Progress(total=len(points), to_run=len(todo), already_done=len(points) - len(todo))
+            if todo:
+                _execute(dask, todo, store, options, progress, on_event)
+            on_event(progress)
     return progress
+
+
+def _cluster_settings(execution: dict[str, Any], options: RunOptions) -> dict[str, Any]:
+    """Worker count, scheduler address and dashboard switch: the command line over [execution]."""
+    chosen = {"workers": options.workers, "scheduler": options.scheduler, "dashboard": options.dashboard}
+    return {name: execution[name] if value is None else value for name, value in chosen.items()}
 
 
 def open_or_create(sweep: Sweep, points: list[Point]) -> ResultStore:
     """Open the sweep's store (refusing one built from another grid) or lay out a new one."""
+    # Imported here, not at the top: xarray and Zarr take about a second to import, which
+    # run_sweep spends while the Dask workers start.
+    from results_schema.store import ResultStore, create_store
+
     if not Path(sweep.store).exists():
         ids, seeds = id_and_seed_arrays(sweep, points)
         create_store(sweep.store, grid_spec(sweep, points, _root_attrs(sweep)), ids, seeds)
@@ -107,25 +128,22 @@ def pending(points: list[Point], store: ResultStore, retry_failed: bool) -> list
 
 
 def _execute(
-    sweep: Sweep,
+    dask: EarlyClient,
     todo: list[Point],
     store: ResultStore,
     options: RunOptions,
     progress: Progress,
     on_event: Callable[[Progress], None],
 ) -> None:
-    execution = todo[0].config["execution"]
-    workers = options.workers or execution["workers"]
-    scheduler = options.scheduler if options.scheduler is not None else execution["scheduler"]
-    progress.engine = options.engine or execution["engine"]
+    progress.engine = options.engine or todo[0].config["execution"]["engine"]
     jobs = [(p, _with_execution(p.config, options), p.seed, p.wiring_seed) for p in todo]
     jobs.sort(key=lambda job: submission_order(job[1]))
-    with dask_client(workers, scheduler) as client:
-        progress.dashboard = client.dashboard_link or ""
+    client = dask.client()
+    progress.dashboard = client.dashboard_link if dask.has_dashboard else ""
+    on_event(progress)
+    for point, result in run_tasks(client, jobs):
+        _store_result(store, point, result, progress)
         on_event(progress)
-        for point, result in run_tasks(client, jobs):
-            _store_result(store, point, result, progress)
-            on_event(progress)
 
 
 def _with_execution(config: dict[str, Any], options: RunOptions) -> dict[str, Any]:

@@ -176,6 +176,8 @@ KEYS: tuple[Key, ...] = (
     _k("execution.workers", 2, "1", "Local Dask worker processes", low=1, high=1024, sweepable=False),
     _k("execution.scheduler", "", "1", "Address of a running Dask scheduler ('' = start a local cluster)",
        sweepable=False),
+    _k("execution.dashboard", False, "1",
+       "Serve the Dask dashboard of the local cluster (its web server adds about 0.5 s to start-up)", sweepable=False),
     _k("execution.prescreen", False, "1", "Store the theory prescreen's predicted outcome beside each simulated one",
        sweepable=False),
     _k("execution.abort_on_runaway", True, "1", "Stop a point's simulation soon after runaway onset", sweepable=False),
