@@ -187,9 +187,20 @@ def test_killed_sweep_resumes_without_recomputing(tmp_path: Path) -> None:
     assert not done_before.all(), "killed too late to test resume"
     kept = xr.open_zarr(store)["wall_time_s"].values.copy()
 
-    resumed = capsweep("run", str(sweep))
+    resumed = capsweep("run", str(sweep), "--dashboard")
     assert resumed.returncode == 0, resumed.stderr
     assert f"{int(done_before.sum())} stored before" in resumed.stderr
+    assert "Dask dashboard: http://" in resumed.stderr, "--dashboard serves and shows the dashboard"
+    assert "Dask dashboard" not in first.stderr.read(), "no dashboard unless asked for"
     ds = xr.open_zarr(store)
     assert (ds["status"].values == 1).all()
     np.testing.assert_array_equal(ds["wall_time_s"].values[done_before], kept[done_before])
+
+
+def test_unreachable_scheduler_is_named_and_the_new_store_kept(tmp_path: Path) -> None:
+    """The workers of a new store start in the background; their failure still gets one clear line."""
+    sweep, store = write_sweep(tmp_path, RESUME_SWEEP, hold_s=1.0)
+    proc = capsweep("run", str(sweep), "--scheduler", "tcp://127.0.0.1:9")
+    assert proc.returncode == 2, proc.stderr
+    assert "tcp://127.0.0.1:9" in proc.stderr and "Traceback" not in proc.stderr
+    assert (xr.open_zarr(store)["status"].values == 0).all(), "the laid-out store holds every point as pending"
