@@ -55,11 +55,15 @@ class PrepareWorker(WorkerPlugin):
     - Brian2 and the point runner are imported in the worker's main thread: Brian2 installs a
       SIGINT handler when first imported, which Python allows only in the main thread (tasks run
       in an executor thread).
-    - After a clean close, the worker process exits without interpreter teardown, which takes
-      about 0.5 s with Brian2 loaded and has nothing left to save.
+    - With ``leave_fast`` (workers of capsweep's own local cluster), a worker process closed
+      cleanly exits without interpreter teardown, which takes about 0.5 s with Brian2 loaded and
+      has nothing left to save. Workers of a cluster someone else runs keep their normal exit.
     """
 
     name = "capsweep-prepare-worker"
+
+    def __init__(self, leave_fast: bool = False) -> None:
+        self.leave_fast = leave_fast
 
     def setup(self, worker: Any) -> None:
         import brian2  # noqa: F401
@@ -67,7 +71,7 @@ class PrepareWorker(WorkerPlugin):
         import runners.point  # noqa: F401
 
     def teardown(self, worker: Any) -> None:
-        if worker.status == Status.closing:
+        if self.leave_fast and worker.status == Status.closing:
             atexit.register(os._exit, 0)
 
 
@@ -119,7 +123,7 @@ def dask_client(workers: int, scheduler: str = "", dashboard: bool = False) -> I
         n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=":0" if dashboard else None,
         silence_logs=50,
     ) as cluster, contextlib.closing(Client(cluster)) as client:
-        client.register_plugin(PrepareWorker())
+        client.register_plugin(PrepareWorker(leave_fast=True))
         yield client
 
 

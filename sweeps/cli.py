@@ -131,7 +131,7 @@ def _print_run_summary(progress: Any) -> None:
 @user_errors
 def status(store: Path = typer.Argument(..., help="Zarr store directory")) -> None:
     """Counts of points by status and outcome, and the base network's plausibility."""
-    from results_schema.store import open_dataset
+    from results_schema.dataset import open_dataset
     from sweeps.query import plausibility, status_counts
 
     ds = open_dataset(store)
@@ -164,7 +164,7 @@ def query(
     everything: bool = typer.Option(False, "--all", help="every point, not only the stable ones"),
 ) -> None:
     """List configurations with their outcome and metrics (default: the stable ones)."""
-    from results_schema.store import open_dataset
+    from results_schema.dataset import open_dataset
     from sweeps.query import DEFAULT_WHERE, point_table, select, sweep_dims
 
     ds = open_dataset(store)
@@ -181,7 +181,7 @@ def capacity(
     fmt: TableFormat = typer.Option(TableFormat.table, "--format", help="table, csv or json"),
 ) -> None:
     """Largest assembly count stored stably and fully recalled, per cell of the other axes."""
-    from results_schema.store import open_dataset
+    from results_schema.dataset import open_dataset
     from sweeps.query import capacity_table
 
     _emit(capacity_table(open_dataset(store)), fmt)
@@ -196,7 +196,7 @@ def plot(
     y: str = typer.Option(None, "--y", help="axis up the stability map (default: the second axis)"),
 ) -> None:
     """Write PNGs: stability map, capacity curves, rate traces and weight drift."""
-    from results_schema.store import open_dataset
+    from results_schema.dataset import open_dataset
     from sweeps.plots import all_plots
 
     for path in all_plots(open_dataset(store), out_dir, x, y):

@@ -97,8 +97,8 @@ def _cluster_settings(execution: dict[str, Any], options: RunOptions) -> dict[st
 
 def open_or_create(sweep: Sweep, points: list[Point]) -> ResultStore:
     """Open the sweep's store (refusing one built from another grid) or lay out a new one."""
-    # Imported here, not at the top: xarray and Zarr take about a second to import, which
-    # run_sweep spends while the Dask workers start.
+    # Imported here, not at the top: Zarr takes about 0.4 s to import, which run_sweep spends
+    # while the Dask workers start.
     from results_schema.store import ResultStore, create_store
 
     if not Path(sweep.store).exists():

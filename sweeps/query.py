@@ -13,7 +13,7 @@ import pandas as pd
 import xarray as xr
 
 from results_schema.layout import STATUS
-from results_schema.store import flag_labels
+from results_schema.dataset import flag_labels
 from sweeps.errors import CapsweepError
 
 DEFAULT_WHERE = 'status == "done" and outcome == "stable"'

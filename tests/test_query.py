@@ -12,7 +12,8 @@ import numpy as np
 import pytest
 
 from results_schema.layout import Axis, GridSpec
-from results_schema.store import ResultStore, create_store, open_dataset
+from results_schema.dataset import open_dataset
+from results_schema.store import ResultStore, create_store
 from sweeps.plots import all_plots
 from sweeps.query import QueryError, capacity_table, plausibility, point_table, select, status_counts
 

@@ -18,7 +18,8 @@ import zarr
 from results_schema import layout
 from results_schema.lock import LOCK_NAME, store_lock
 from results_schema.layout import Axis, GridSpec
-from results_schema.store import ResultStore, create_store, flag_labels, open_dataset
+from results_schema.dataset import flag_labels, open_dataset
+from results_schema.store import ResultStore, create_store
 from sweeps.errors import StoreError
 
 AXES = (

@@ -1,0 +1,30 @@
+"""Reading a store: the labelled xarray Dataset that queries and plots work on."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import xarray as xr
+
+from results_schema.store import check_store
+
+
+def open_dataset(path: str | Path, chunks: Any = None) -> xr.Dataset:
+    """Open a store as an xarray Dataset (``xr.open_zarr``; ``chunks=None`` loads lazily without dask).
+
+    Flag variables decode to float with NaN where unset; ``flag_labels`` turns them into labels.
+    Raises StoreError if ``path`` is not a capsweep store.
+    """
+    check_store(path)
+    return xr.open_zarr(path, chunks=chunks)
+
+
+def flag_labels(flags: xr.DataArray) -> xr.DataArray:
+    """Map a CF flag variable's codes to their flag_meanings labels ('' where unset)."""
+    meanings = str(flags.attrs["flag_meanings"]).split()
+    codes = dict(zip((int(v) for v in flags.attrs["flag_values"]), meanings))
+    values = np.asarray(flags.values, dtype=float)
+    labels = np.array([codes.get(int(v), "") if np.isfinite(v) else "" for v in values.ravel()], dtype=object)
+    return xr.DataArray(labels.reshape(values.shape), coords=flags.coords, dims=flags.dims, name=flags.name)
