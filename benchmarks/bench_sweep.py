@@ -1,6 +1,6 @@
 """Speed of a 16-point sweep: capsweep with its defaults against a plain loop and the bare engine.
 
-    python benchmarks/bench_sweep.py [--repeats 3] [--workdir DIR]
+    python benchmarks/bench_sweep.py [--repeats 5] [--plain-loops 1] [--workdir DIR]
 
 One invocation measures, on the same machine:
 
@@ -18,7 +18,8 @@ One invocation measures, on the same machine:
    cache; ``overhead_warm_pct`` the same with both caches filled.
 
 All three start from a fresh interpreter (``engine_only.py`` for 2 and 3), so each wall time
-includes its own imports and process start-up.
+includes its own imports and process start-up. Within a repeat capsweep and the bare engine run
+one after the other, capsweep first in even repeats and the bare engine first in odd ones.
 
 ``runaway_cost_pct`` compares, in one warm process, the wall time of each point that ran away
 with abort on against the same point run to full length with the same engine.
@@ -40,6 +41,7 @@ import sys
 import tempfile
 import time
 from pathlib import Path
+from collections.abc import Callable
 from typing import Any
 
 import xarray as xr
@@ -101,6 +103,19 @@ def runaway_cost(points: list[Point], store: Path) -> float:
     return 100.0 * aborted / full
 
 
+def in_turn(first: Callable[[], float], second: Callable[[], float], swap: bool) -> tuple[float, float]:
+    """``(first(), second())``, called in that order, or the other way round when ``swap``.
+
+    Alternating the order between repeats keeps a slow or fast spell of a noisy machine from
+    always landing on the same side of a comparison.
+    """
+    if swap:
+        later = second()
+        return first(), later
+    earlier = first()
+    return earlier, second()
+
+
 def one_repeat(points: list[Point], workdir: Path, repeat: int) -> dict[str, float]:
     """Cold capsweep and bare engine (empty build caches), then both warm (speedups are added later)."""
     jobs = engine_jobs(points)
@@ -108,10 +123,11 @@ def one_repeat(points: list[Point], workdir: Path, repeat: int) -> dict[str, flo
     cap_env = {**os.environ, BUILD_DIR_ENV: tempfile.mkdtemp(prefix="builds-cap-", dir=workdir)}
     bare_env = {**os.environ, BUILD_DIR_ENV: tempfile.mkdtemp(prefix="builds-bare-", dir=workdir)}
     cold_store, warm_store = workdir / f"cold-{repeat}.zarr", workdir / f"warm-{repeat}.zarr"
-    t_cold = time_capsweep(cold_store, cap_env)
-    t_bare = time_engine_only(jobs, workers, bare_env)
-    t_warm = time_capsweep(warm_store, cap_env)
-    t_bare_warm = time_engine_only(jobs, workers, bare_env)
+    swap = repeat % 2 == 1
+    t_cold, t_bare = in_turn(lambda: time_capsweep(cold_store, cap_env),
+                             lambda: time_engine_only(jobs, workers, bare_env), swap)
+    t_warm, t_bare_warm = in_turn(lambda: time_capsweep(warm_store, cap_env),
+                                  lambda: time_engine_only(jobs, workers, bare_env), swap)
     os.environ[BUILD_DIR_ENV] = cap_env[BUILD_DIR_ENV]
     ds = xr.open_zarr(cold_store)
     return {
@@ -126,7 +142,7 @@ def one_repeat(points: list[Point], workdir: Path, repeat: int) -> dict[str, flo
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
-    parser.add_argument("--repeats", type=int, default=3)
+    parser.add_argument("--repeats", type=int, default=5)
     parser.add_argument("--plain-loops", type=int, default=1)
     parser.add_argument("--workdir", type=Path, default=None)
     args = parser.parse_args()
