@@ -54,6 +54,7 @@ from sweeps.sweepfile import load_sweep
 
 SWEEP_FILE = Path(__file__).with_name("sweep16.toml")
 ENGINE_ONLY = Path(__file__).with_name("engine_only.py")
+CAPSWEEP = str(Path(sys.executable).with_name("capsweep"))
 
 
 def with_execution(point: Point, **changes: Any) -> dict[str, Any]:
@@ -62,9 +63,9 @@ def with_execution(point: Point, **changes: Any) -> dict[str, Any]:
 
 
 def time_capsweep(store: Path, env: dict[str, str]) -> float:
-    """Wall seconds of ``capsweep run`` in a fresh process."""
+    """Wall seconds of ``capsweep run`` (the installed console script, as a user runs it) in a fresh process."""
     start = time.perf_counter()
-    subprocess.run([sys.executable, "-m", "sweeps.cli", "run", str(SWEEP_FILE), "--store", str(store)], check=True,
+    subprocess.run([CAPSWEEP, "run", str(SWEEP_FILE), "--store", str(store)], check=True,
                    env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     return time.perf_counter() - start
 
