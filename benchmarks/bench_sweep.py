@@ -152,6 +152,7 @@ def main() -> None:
     parser.add_argument("--workdir", type=Path, default=None)
     args = parser.parse_args()
     workdir = args.workdir or Path(tempfile.mkdtemp(prefix="capsweep-bench-"))
+    workdir.mkdir(parents=True, exist_ok=True)
     points = expand(load_sweep(SWEEP_FILE))
     rows = []
     for repeat in range(args.repeats):
