@@ -322,7 +322,10 @@ def build_network(cfg: dict, seed: int, wiring_seed: int | None = None, *,
         objects += _stimulus(cfg, exc, memberships, cued, sched, const.namespace)
     mon_exc, mon_inh = b2.SpikeMonitor(exc, name="spikes_exc"), b2.SpikeMonitor(inh, name="spikes_inh")
     objects += [mon_exc, mon_inh]
-    network = b2.Network(*objects)
+    # Named, not auto-named: Brian2 numbers auto-names by the instances alive at the time
+    # (network, network_1, ...), which would make the standalone code, and so the need to
+    # recompile it, depend on what a process built before and when its garbage was collected.
+    network = b2.Network(*objects, name="capsweep_network")
     n_syn = len(i_ee) + len(i_ie) + len(i_ei) + len(i_ii)
     wiring = {"ee": (i_ee, j_ee), "ie": (i_ie, j_ie), "ei": (i_ei, j_ei), "ii": (i_ii, j_ii)}
     handles = Handles(exc, inh, s_ee, mon_exc, mon_inh, memberships, cued, within, n_syn, sched, const.settings,

@@ -10,6 +10,10 @@ rough rates are compared, not spikes.
 
 from __future__ import annotations
 
+import os
+import pickle
+import subprocess
+import sys
 import time
 
 import numpy as np
@@ -94,6 +98,24 @@ def test_second_point_reuses_the_binary_and_runs_away(full_rule, triplet_alone) 
     assert np.mean(res["rate_exc_hz"][-100:]) > 3 * res["rate_exc_baseline_hz"]
     # same wiring (membership) in both points, different seeds: different settle activity
     assert not np.array_equal(full["rate_exc_hz"][:100], res["rate_exc_hz"][:100])
+
+
+def test_a_new_process_regenerates_the_same_code(full_rule) -> None:
+    """A fresh worker process with other Brian2 objects alive and other wiring reruns the build as is.
+
+    The generated C++ must depend on the build key alone: here a new process first creates three
+    unnamed Networks (Brian2 auto-names by the instances alive, so a name taken from them would
+    shift) and runs a point of another wiring seed; the sources and the binary stay untouched.
+    """
+    cfg, _ = full_rule
+    build = builds.build_root() / builds.build_key(cfg)
+    sources = {path.name: path.read_bytes() for path in build.glob("*.cpp")}
+    binary_mtime = (build / "main").stat().st_mtime
+    script = ("import pickle, sys, brian2; stray = [brian2.Network() for _ in range(3)]; "
+              "from runners.point import run_point; run_point(pickle.load(sys.stdin.buffer), 3, wiring_seed=8)")
+    subprocess.run([sys.executable, "-c", script], input=pickle.dumps(cfg), check=True, env=os.environ)
+    assert {path.name: path.read_bytes() for path in build.glob("*.cpp")} == sources
+    assert (build / "main").stat().st_mtime == binary_mtime
 
 
 def test_runaway_abort_costs_at_most_a_quarter_of_a_full_run(build_root, full_rule) -> None:
