@@ -19,7 +19,10 @@ One invocation measures, on the same machine:
    ``paired_overhead_pct`` compares the two runs of each repeat.
 
 All three start from a fresh interpreter (``engine_only.py`` for 2 and 3), so each wall time
-includes its own imports and process start-up. Within a repeat capsweep and the bare engine run
+includes its own imports and process start-up, with Python's default bytecode caching (the
+benchmark drops ``PYTHONDONTWRITEBYTECODE`` from their environment: with it set, every process
+recompiled the project's own modules, about 0.25 s in capsweep's client alone, which a user's
+installation does once). Within a repeat capsweep and the bare engine run
 one after the other, capsweep first in even repeats and the bare engine first in odd ones, and
 overheads are taken between medians: on this machine a run's wall time varies by about 10 %
 from one run to the next (which run goes second in a pair seemed to matter at times), more than
@@ -59,6 +62,13 @@ from sweeps.sweepfile import load_sweep
 SWEEP_FILE = Path(__file__).with_name("sweep16.toml")
 ENGINE_ONLY = Path(__file__).with_name("engine_only.py")
 CAPSWEEP = str(Path(sys.executable).with_name("capsweep"))
+
+
+def user_env(**changes: str) -> dict[str, str]:
+    """This process's environment with ``changes``, and Python's default bytecode caching."""
+    env = {**os.environ, **changes}
+    env.pop("PYTHONDONTWRITEBYTECODE", None)
+    return env
 
 
 def with_execution(point: Point, **changes: Any) -> dict[str, Any]:
@@ -125,8 +135,8 @@ def one_repeat(points: list[Point], workdir: Path, repeat: int) -> dict[str, flo
     """Cold capsweep and bare engine (empty build caches), then both warm (speedups are added later)."""
     jobs = engine_jobs(points)
     workers = points[0].config["execution"]["workers"]
-    cap_env = {**os.environ, BUILD_DIR_ENV: tempfile.mkdtemp(prefix="builds-cap-", dir=workdir)}
-    bare_env = {**os.environ, BUILD_DIR_ENV: tempfile.mkdtemp(prefix="builds-bare-", dir=workdir)}
+    cap_env = user_env(**{BUILD_DIR_ENV: tempfile.mkdtemp(prefix="builds-cap-", dir=workdir)})
+    bare_env = user_env(**{BUILD_DIR_ENV: tempfile.mkdtemp(prefix="builds-bare-", dir=workdir)})
     cold_store, warm_store = workdir / f"cold-{repeat}.zarr", workdir / f"warm-{repeat}.zarr"
     swap = repeat % 2 == 1
     t_cold, t_bare = in_turn(lambda: time_capsweep(cold_store, cap_env),
@@ -158,7 +168,7 @@ def main() -> None:
     for repeat in range(args.repeats):
         rows.append(one_repeat(points, workdir, repeat))
         print(f"repeat {repeat}: " + " ".join(f"{k}={v:.3g}" for k, v in rows[-1].items()), flush=True)
-    plain = [time_engine_only(plain_loop_jobs(points), 0, dict(os.environ)) for _ in range(args.plain_loops)]
+    plain = [time_engine_only(plain_loop_jobs(points), 0, user_env()) for _ in range(args.plain_loops)]
     print("plain loop s: " + " ".join(f"{t:.1f}" for t in plain), flush=True)
     for row in rows:
         row["speedup_vs_plain_loop"] = statistics.median(plain) / row["capsweep_cold_s"]
