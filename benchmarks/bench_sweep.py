@@ -31,9 +31,9 @@ the few seconds being measured, so a balanced order and an even number of repeat
 ``runaway_cost_pct`` compares, in one warm process, the wall time of each point that ran away
 with abort on against the same point run to full length with the same engine.
 
-The plain loop is deterministic work (fixed seeds, one process) and the longest part (about
-11 minutes for the 60 s retention points of ``sweep16.toml``): ``--plain-loops N`` measures it N
-times (default 1) and every repeat's speedup uses their median.
+The plain loop is deterministic work (fixed seeds, one process) and the longest part
+(11-21 minutes here for the 60 s retention points of ``sweep16.toml``): ``--plain-loops N``
+measures it N times (default 1) and every repeat's speedup uses their median.
 The last line prints the medians; the lines above give min / median / max per metric.
 """
 
