@@ -68,9 +68,7 @@ class PrepareWorker(WorkerPlugin):
         self.leave_fast = leave_fast
 
     def setup(self, worker: Any) -> None:
-        import brian2  # noqa: F401
-
-        import runners.point  # noqa: F401
+        import runners.point  # noqa: F401  (imports Brian2)
 
     def teardown(self, worker: Any) -> None:
         if self.leave_fast and worker.status == Status.closing:
