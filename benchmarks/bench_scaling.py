@@ -1,7 +1,7 @@
 """Scaling table: wall time per simulated second and peak memory of one worker, per network size and engine.
 
 Each (engine, N_E) cell runs in a fresh process (so peak RSS is that of one worker doing one
-point): the two-length probe of ``sweeps.plan`` splits the per-point overhead from the cost per
+point): the two-length probe of ``capsweep.sweeps.plan`` splits the per-point overhead from the cost per
 simulated second. Prints a Markdown table for the README.
 
     python benchmarks/bench_scaling.py [--sizes 500,1000,2000,4000] [--engines cython,standalone]
@@ -16,8 +16,8 @@ import sys
 
 CHILD = """
 import json, resource, sys
-from sweeps.plan import probe
-from sweeps.registry import defaults, nest
+from capsweep.sweeps.plan import probe
+from capsweep.registry import defaults, nest
 n_exc, engine = int(sys.argv[1]), sys.argv[2]
 flat = defaults()
 flat.update({"network.n_exc": n_exc, "assemblies.count": 2, "assemblies.size": max(20, n_exc // 10)})

@@ -54,10 +54,11 @@ from typing import Any
 import xarray as xr
 
 from engine_only import run_one
-from runners.builds import BUILD_DIR_ENV
-from sweeps.expand import Point, expand
-from sweeps.launch import submission_order
-from sweeps.sweepfile import load_sweep
+from capsweep.registry import with_execution
+from capsweep.runners.builds import BUILD_DIR_ENV
+from capsweep.sweeps.expand import Point, expand
+from capsweep.sweeps.launch import submission_order
+from capsweep.sweeps.sweepfile import load_sweep
 
 SWEEP_FILE = Path(__file__).with_name("sweep16.toml")
 ENGINE_ONLY = Path(__file__).with_name("engine_only.py")
@@ -69,11 +70,6 @@ def user_env(**changes: str) -> dict[str, str]:
     env = {**os.environ, **changes}
     env.pop("PYTHONDONTWRITEBYTECODE", None)
     return env
-
-
-def with_execution(point: Point, **changes: Any) -> dict[str, Any]:
-    """The point's config with execution settings changed."""
-    return {**point.config, "execution": {**point.config["execution"], **changes}}
 
 
 def time_capsweep(store: Path, env: dict[str, str]) -> float:
@@ -94,7 +90,7 @@ def time_engine_only(jobs: list[tuple[dict[str, Any], int, int]], workers: int, 
 
 def plain_loop_jobs(points: list[Point]) -> list[tuple[dict[str, Any], int, int]]:
     """The points as a modeller's plain loop runs them: cython runtime engine, no early abort."""
-    return [(with_execution(p, engine="cython", abort_on_runaway=False), p.seed, p.wiring_seed) for p in points]
+    return [(with_execution(p.config, engine="cython", abort_on_runaway=False), p.seed, p.wiring_seed) for p in points]
 
 
 def engine_jobs(points: list[Point]) -> list[tuple[dict[str, Any], int, int]]:
@@ -114,7 +110,7 @@ def runaway_cost(points: list[Point], store: Path) -> float:
     aborted = full = 0.0
     for p in runaway:
         aborted += run_one((p.config, p.seed, p.wiring_seed))["wall_time_s"]
-        full += run_one((with_execution(p, abort_on_runaway=False), p.seed, p.wiring_seed))["wall_time_s"]
+        full += run_one((with_execution(p.config, abort_on_runaway=False), p.seed, p.wiring_seed))["wall_time_s"]
     return 100.0 * aborted / full
 
 

@@ -17,8 +17,8 @@ from typing import Any
 
 
 def run_one(job: tuple[dict[str, Any], int, int]) -> dict[str, Any]:
-    """One point through ``runners.point.run_point`` (imported here, so the parent stays light); its result."""
-    from runners.point import run_point
+    """One point through ``capsweep.runners.point.run_point`` (imported here, so the parent stays light); its result."""
+    from capsweep.runners.point import run_point
 
     config, seed, wiring_seed = job
     return run_point(config, seed, wiring_seed=wiring_seed)

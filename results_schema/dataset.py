@@ -8,7 +8,7 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
-from results_schema.store import check_store
+from .store import check_store
 
 
 def open_dataset(path: str | Path, chunks: Any = None) -> xr.Dataset:

@@ -4,9 +4,9 @@ This module is the contract between the runner (which returns one value per vari
 point) and the store (which lays out one array per variable over the sweep dims plus the
 variable's inner dim). Inner dims: ``assembly`` (one entry per assembly, padded with the fill
 value up to the largest count in the grid), ``snapshot`` (weight snapshots during hold) and
-``time_bin`` (binned population rate trace, padded to the longest point). ``Axis`` and
-``GridSpec`` describe the sweep dims; they live here, free of Zarr and xarray, so that reading
-and expanding a sweep file imports neither.
+``time_bin`` (binned population rate trace, padded to the longest point). ``GridSpec``
+describes the sweep dims (its axes are :class:`capsweep.axes.Axis`); it lives here, free of Zarr
+and xarray, so that expanding a sweep file imports neither.
 """
 
 from __future__ import annotations
@@ -15,22 +15,14 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..axes import Axis
+from ..engines import NAMES as ENGINE_NAMES
+from ..flags import OUTCOMES, STATUSES
+
 SCHEMA_VERSION = "1.0"
 
-STATUS_FLAGS: tuple[str, ...] = ("pending", "done", "failed")
-OUTCOME_FLAGS: tuple[str, ...] = ("stable", "runaway", "silent")
-ENGINE_FLAGS: tuple[str, ...] = ("cython", "numpy", "standalone")
 FLAG_FILL = -1
 INNER_DIMS: tuple[str, ...] = ("assembly", "snapshot", "time_bin")
-
-
-@dataclass(frozen=True)
-class Axis:
-    """One sweep axis: a dim name, the config key it sets and its coordinate values."""
-
-    name: str
-    key: str
-    values: tuple
 
 
 @dataclass(frozen=True)
@@ -65,10 +57,10 @@ class Variable:
 
 
 VARIABLES: tuple[Variable, ...] = (
-    Variable("outcome", "1", "network outcome over the whole run", dtype="int8", flags=OUTCOME_FLAGS),
+    Variable("outcome", "1", "network outcome over the whole run", dtype="int8", flags=OUTCOMES),
     Variable("predicted_outcome", "1", "outcome predicted by the theory prescreen", dtype="int8",
-             flags=OUTCOME_FLAGS),
-    Variable("engine", "1", "Brian2 code generation target used", dtype="int8", flags=ENGINE_FLAGS),
+             flags=OUTCOMES),
+    Variable("engine", "1", "Brian2 code generation target used", dtype="int8", flags=ENGINE_NAMES),
     Variable("seed", "1", "random seed of the point (from base_seed and point id)", dtype="int64"),
     Variable("runaway_onset_s", "s", "first time the smoothed E rate stayed above the runaway threshold"),
     Variable("recalled_count", "1", "assemblies with recall_quality at or above the recall threshold",
@@ -100,6 +92,6 @@ VARIABLES: tuple[Variable, ...] = (
 BY_NAME: dict[str, Variable] = {v.name: v for v in VARIABLES}
 
 # Written last for each point, so a crash never leaves a point that looks done but is not.
-STATUS = Variable("status", "1", "run status of the point", dtype="int8", flags=STATUS_FLAGS)
+STATUS = Variable("status", "1", "run status of the point", dtype="int8", flags=STATUSES)
 ERROR = "error"  # per-point error text for failed points (string variable, '' when none)
 POINT_ID = "point_id"  # per-point hash of the resolved config (string variable)

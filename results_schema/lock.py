@@ -15,7 +15,7 @@ from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any, Iterator
 
-from sweeps.errors import StoreError
+from ..errors import StoreError
 
 LOCK_NAME = ".capsweep.lock"
 

@@ -1,6 +1,6 @@
 """The result store: one Zarr v3 directory per sweep, readable with plain ``xarray.open_zarr``.
 
-This module writes with Zarr alone; reading as xarray is :mod:`results_schema.dataset`, so
+This module writes with Zarr alone; reading as xarray is :mod:`capsweep.results_schema.dataset`, so
 that a run, which only writes, never imports xarray (about 0.7 s).
 
 ``create_store`` lays out the whole grid once as an empty template: one array per variable of
@@ -28,10 +28,11 @@ import zarr
 from zarr.core.sync import sync
 from zarr.errors import ZarrUserWarning
 
-from results_schema import layout
-from results_schema.layout import Axis, GridSpec
-from sweeps.errors import StoreError
-from sweeps.registry import BY_PATH
+from . import layout
+from ..axes import Axis
+from ..flags import STATUSES
+from .layout import GridSpec
+from ..errors import StoreError
 
 REPLICATE = "replicate"
 ATTR_SCHEMA = "capsweep_schema_version"
@@ -104,25 +105,6 @@ class ResultStore:
         return cls(path, group)
 
     @property
-    def attrs(self) -> dict[str, Any]:
-        """Root attributes (schema version, fingerprint, versions, sweep attrs)."""
-        return dict(self._group.attrs)
-
-    @property
-    def fingerprint(self) -> str:
-        """Fingerprint of the grid and base config the store was built from."""
-        return str(self._group.attrs[ATTR_FINGERPRINT])
-
-    @property
-    def axes(self) -> tuple[Axis, ...]:
-        """The sweep axes, in dim order, with their config keys and values."""
-        names = self._group.attrs[ATTR_AXES]
-        return tuple(
-            Axis(name, str(self._group[name].attrs[AXIS_KEY_ATTR]), tuple(self._group[name][...].tolist()))
-            for name in names
-        )
-
-    @property
     def sweep_dims(self) -> tuple[str, ...]:
         """Dims that index a point: the axis names, then ``replicate``."""
         return (*self._group.attrs[ATTR_AXES], REPLICATE)
@@ -133,12 +115,8 @@ class ResultStore:
         return tuple(self._seeds.shape)
 
     def status(self) -> np.ndarray:
-        """Status code of every point (layout.STATUS_FLAGS index), int8 over the sweep dims."""
+        """Status code of every point (capsweep.flags.STATUSES index), int8 over the sweep dims."""
         return self._arrays[layout.STATUS.name][...]
-
-    def seed(self, index: tuple[int, ...]) -> int:
-        """Seed stored for the point at ``index``."""
-        return int(self._seeds[self._check_index(index)])
 
     def write_point(self, index: tuple[int, ...], result: Mapping[str, Any]) -> None:
         """Write a finished point: every result variable and an empty error, then status done.
@@ -162,12 +140,6 @@ class ResultStore:
         self._write_values(index, values)
         self._set_status(index, "failed")
 
-    def write_prediction(self, index: tuple[int, ...], label: str | None) -> None:
-        """Write the prescreen's predicted outcome (an OUTCOME_FLAGS label) of one point."""
-        index = self._check_index(index)
-        var = layout.BY_NAME["predicted_outcome"]
-        self._write_values(index, {var.name: _encode_value(var, label, self._inner_size(var))})
-
     def _write_values(self, index: tuple[int, ...], values: Mapping[str, Any]) -> None:
         """Write encoded per-point values into their chunks, all at once; returns when all are on disk.
 
@@ -181,7 +153,7 @@ class ResultStore:
         sync(write_all())
 
     def _set_status(self, index: tuple[int, ...], label: str) -> None:
-        self._arrays[layout.STATUS.name][index] = layout.STATUS_FLAGS.index(label)
+        self._arrays[layout.STATUS.name][index] = STATUSES.index(label)
 
     def _encode_result(self, index: tuple[int, ...], result: Mapping[str, Any]) -> dict[str, Any]:
         unknown = sorted(set(result) - set(layout.BY_NAME))
@@ -294,19 +266,11 @@ def _write_template(path: Path, grid: GridSpec, sweep_shape: tuple[int, ...],
         zarr.consolidate_metadata(path)
 
 
-def _axis_description(axis: Axis) -> tuple[str, str]:
-    """Units and long name of an axis coordinate: its config key's, or those of a named-variant axis."""
-    if axis.key in BY_PATH:
-        return BY_PATH[axis.key].unit, BY_PATH[axis.key].description
-    return "1", f"named variant of the config (overrides listed in the sweep file's axis {axis.name!r})"
-
-
 def _write_coordinates(group: zarr.Group, grid: GridSpec) -> None:
     for axis in grid.axes:
-        units, long_name = _axis_description(axis)
         values = _axis_array(axis)
         _create_variable(group, axis.name, (axis.name,), values.shape, values.dtype if values.dtype != object else str,
-                         None, {"units": units, "long_name": long_name, AXIS_KEY_ATTR: axis.key})
+                         None, {"units": axis.units, "long_name": axis.long_name, AXIS_KEY_ATTR: axis.key})
         group[axis.name][...] = values
     counters = (
         (REPLICATE, grid.replicates, "replicate (independent seed) of a grid cell"),
@@ -345,7 +309,7 @@ def _create_variable(group: zarr.Group, name: str, dims: tuple[str, ...], shape:
 
 def _zarr_fill(var: layout.Variable) -> float | int:
     """What an unwritten chunk holds: pending for status, the layout's fill value otherwise."""
-    return layout.STATUS_FLAGS.index("pending") if var is layout.STATUS else var.fill
+    return STATUSES.index("pending") if var is layout.STATUS else var.fill
 
 
 def _variable_attrs(var: layout.Variable) -> dict[str, Any]:

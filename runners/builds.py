@@ -19,7 +19,7 @@ import shutil
 from collections.abc import Iterator
 from pathlib import Path
 
-from sweeps.registry import flatten
+from ..registry import flatten
 
 BUILD_DIR_ENV = "CAPSWEEP_BUILD_DIR"
 _KEYS_IN_CODE = (
@@ -50,6 +50,16 @@ def compiled_form(cfg: dict) -> dict:
         zeroed = {} if table["enabled"] else dict.fromkeys(_COEFFICIENTS_OF[term], 0.0)
         plasticity[term] = {**table, **zeroed, "enabled": True}
     return {**cfg, "plasticity": plasticity}
+
+
+def unsupported(cfg: dict) -> str | None:
+    """Why this point cannot run in standalone (it then falls back to cython), or None."""
+    if cfg["assemblies"]["overlap"] == "random":
+        return "assemblies.overlap = 'random' (a cell would follow several stimulus schedules)"
+    bin_steps = cfg["detection"]["trace_bin_ms"] / cfg["network"]["dt_ms"]
+    if abs(bin_steps - round(bin_steps)) > 1e-9:
+        return "detection.trace_bin_ms is not a whole number of network.dt_ms steps"
+    return None
 
 
 def build_key(cfg: dict) -> str:

@@ -20,7 +20,7 @@ from typing import Any
 import dask
 from dask.distributed import Client, LocalCluster, Status, WorkerPlugin, as_completed
 
-from sweeps.errors import CapsweepError
+from ..errors import CapsweepError
 
 
 @dataclass(frozen=True)
@@ -34,7 +34,7 @@ def simulate_task(config: dict[str, Any], seed: int, wiring_seed: int) -> dict[s
     """Worker-side entry: run one point (and its prescreen if asked), exceptions become a TaskFailure."""
     from brian2 import BrianLogger
 
-    from runners.point import run_point
+    from .point import run_point
 
     BrianLogger.log_level_error()
     try:
@@ -43,7 +43,7 @@ def simulate_task(config: dict[str, Any], seed: int, wiring_seed: int) -> dict[s
         summary = f"{type(exc).__name__}: {exc}"
         return TaskFailure(summary + "\n" + traceback.format_exc(limit=6))
     if config["execution"]["prescreen"]:
-        from runners.theory import predict
+        from .theory import predict
 
         result["predicted_outcome"] = predict(config).outcome
     return result
@@ -55,7 +55,7 @@ class PrepareWorker(WorkerPlugin):
     - Brian2 and the point runner are imported in the worker's main thread: Brian2 installs a
       SIGINT handler when first imported, which Python allows only in the main thread (tasks run
       in an executor thread). Workers of the local cluster have them already: they import
-      ``runners.point`` as a Dask preload, before they register, which spares the round trip of
+      ``capsweep.runners.point`` as a Dask preload, before they register, which spares the round trip of
       a plugin that still has work to do.
     - With ``leave_fast`` (workers of capsweep's own local cluster), a worker process closed
       cleanly exits without interpreter teardown, which takes about 0.5 s with Brian2 loaded and
@@ -68,7 +68,7 @@ class PrepareWorker(WorkerPlugin):
         self.leave_fast = leave_fast
 
     def setup(self, worker: Any) -> None:
-        import runners.point  # noqa: F401  (imports Brian2)
+        from . import point  # noqa: F401  (imports Brian2)
 
     def teardown(self, worker: Any) -> None:
         if self.leave_fast and worker.status == Status.closing:
@@ -121,7 +121,7 @@ def dask_client(workers: int, scheduler: str = "", dashboard: bool = False) -> I
         return
     with dask.config.set(LOCAL_CLUSTER_SETTINGS), LocalCluster(
         n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=":0" if dashboard else None,
-        silence_logs=50, preload=["runners.point"],
+        silence_logs=50, preload=["capsweep.runners.point"],
     ) as cluster, contextlib.closing(Client(cluster)) as client:
         client.register_plugin(PrepareWorker(leave_fast=True))
         yield client

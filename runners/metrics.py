@@ -9,8 +9,6 @@ from __future__ import annotations
 
 import numpy as np
 
-OUTCOMES = ("stable", "runaway", "silent")
-
 
 def window_counts(times: np.ndarray, cells: np.ndarray, n_cells: int, t0: float, t1: float) -> np.ndarray:
     """Spike count of each of ``n_cells`` cells in ``[t0, t1)`` (s)."""
@@ -53,9 +51,19 @@ def smoothed_rate(rate_hz: np.ndarray, bin_s: float, window_s: float, exclude: n
         return np.where(count > 0, total / np.maximum(count, 1), np.nan)
 
 
-def runaway_threshold(baseline_hz: float, factor: float, floor_hz: float) -> float:
-    """Runaway threshold (Hz): ``max(factor * baseline, floor)``; the floor when baseline is NaN."""
+def threshold_above_baseline(baseline_hz: float, factor: float, floor_hz: float) -> float:
+    """A rate threshold (Hz) relative to a baseline: ``max(factor * baseline, floor)``; the floor when baseline is NaN."""
     return float(floor_hz) if not np.isfinite(baseline_hz) else float(max(factor * baseline_hz, floor_hz))
+
+
+def runaway_threshold(det: dict, baseline_hz: float) -> float:
+    """Runaway threshold (Hz) of ``[detection]`` settings ``det``: runaway_factor x baseline, at least runaway_floor_hz."""
+    return threshold_above_baseline(baseline_hz, det["runaway_factor"], det["runaway_floor_hz"])
+
+
+def active_threshold(det: dict, baseline_hz: float) -> float:
+    """Rate (Hz) above which a cell counts as active: active_factor x baseline, at least active_floor_hz."""
+    return threshold_above_baseline(baseline_hz, det["active_factor"], det["active_floor_hz"])
 
 
 def runaway_onset(rate_hz: np.ndarray, bin_s: float, window_s: float, threshold_hz: float,

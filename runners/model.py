@@ -9,7 +9,7 @@ RNG (Poisson drive, stimulus sources) is seeded by the caller. Stimuli (imprint 
 come from a 2-D TimedArray of rates over (time, channel) that drives one Poisson source per
 (channel, target cell).
 
-With ``standalone=True`` (C++ standalone with build reuse, see :mod:`runners.standalone`) every
+With ``standalone=True`` (C++ standalone with build reuse, see :mod:`capsweep.runners.standalone`) every
 constant becomes a ``(shared, constant)`` variable and every array value a setting that the
 caller passes per run; the background drive is a per-step Poisson count with a variable mean
 and the stimulus a closed-form per-cell schedule of variables (see :func:`_variable_inputs`).
@@ -28,8 +28,9 @@ from typing import Any
 import brian2 as b2
 import numpy as np
 
-from runners import protocol, rules
-from sweeps.errors import ConfigError
+from . import protocol, rules
+from ..errors import ConfigError
+from ..registry import inhibitory_count
 
 _NEURON = """
 dv/dt = (e_leak - v + g_e * (e_exc - v) + g_i * (e_inh - v){adapt_term}) / tau_m : volt (unless refractory)
@@ -231,7 +232,7 @@ def _variable_inputs(cfg: dict, exc: b2.NeuronGroup, memberships: np.ndarray, cu
     Source ``i < n_exc`` is the imprint input of cell ``i``, source ``n_exc + i`` its cue input;
     ``assembly`` says which assembly's windows a source follows (-1: none). Exact for disjoint
     assemblies (a cell follows at most one assembly); the windows are those of
-    :func:`runners.protocol.schedule`, in integration steps.
+    :func:`capsweep.runners.protocol.schedule`, in integration steps.
     """
     n_exc, pr, count = len(exc), cfg["protocol"], len(memberships)
     values = {
@@ -279,7 +280,7 @@ def build_network(cfg: dict, seed: int, wiring_seed: int | None = None, *,
     const = _Constants(standalone)
     b2.defaultclock.dt = net_cfg["dt_ms"] * b2.ms
     n_exc = net_cfg["n_exc"]
-    n_inh = max(1, int(round(n_exc * net_cfg["inh_per_exc"])))
+    n_inh = inhibitory_count(n_exc, net_cfg["inh_per_exc"])
     memberships, cued = draw_assemblies(cfg, wiring, rng)
     sched = protocol.schedule(cfg)
     exc, inh = _neurons(cfg, n_exc, True, rng, const), _neurons(cfg, n_inh, False, rng, const)

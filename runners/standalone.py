@@ -4,7 +4,7 @@ A *build* is the compiled project of one structure (``build_key``); every point 
 reruns the same binary with its own values, given as ``run_args``:
 
 - neuron, synapse, rule, drive and stimulus constants: ``(shared, constant)`` variables
-  (``runners.model`` declares them when built with ``standalone=True``);
+  (``capsweep.runners.model`` declares them when built with ``standalone=True``);
 - initial weights (with prewired gains), initial voltages, stimulus membership and weights:
   per-neuron / per-synapse arrays;
 - protocol timing (steps), detection settings and the per-point RNG seed: shared variables of
@@ -17,18 +17,17 @@ loads it from its static-array files, so each run gets its own run directory who
 The C++ ``watch`` function counts E spikes per trace bin from the spike monitor, copies E->E
 ``w`` into per-synapse snapshot variables at the snapshot steps, and sets Brian2's global stop
 flag at the planned end or (``abort_on_runaway``) as soon as the runaway onset of
-:func:`runners.metrics.runaway_onset` is established (stop time = onset + hold). Its test uses a
+:func:`capsweep.runners.metrics.runaway_onset` is established (stop time = onset + hold). Its test uses a
 threshold higher by a relative 1e-9, so it never stops before the offline definition, which
 then gives the recorded onset from the spikes.
 
-Build keys, the cache root and the compile lock are in :mod:`runners.builds`; workers sharing the
+Build keys, the cache root and the compile lock are in :mod:`capsweep.runners.builds`; workers sharing the
 cache root compile a structure once. A process keeps its current build's Brian2 objects alive and reruns it without code
 generation; another key in the same process regenerates code (unchanged files are not
 rewritten, so ``make`` recompiles only for a new structure).
 
-Not expressible here (the point falls back to cython): ``assemblies.overlap = "random"`` (a cell
-would follow several assemblies' stimulus windows) and a ``detection.trace_bin_ms`` that is not
-a whole number of integration steps.
+What this engine cannot express (the point then falls back, see :mod:`capsweep.engines`) is
+decided by :func:`capsweep.runners.builds.unsupported`.
 """
 
 from __future__ import annotations
@@ -45,24 +44,14 @@ from typing import Any
 import brian2 as b2
 import numpy as np
 
-from runners import protocol
-from runners.builds import build_key, build_root, compiled_form, locked
-from runners.model import SNAPSHOT_VARIABLE, Handles, build_network
-from runners.point import Recording
+from . import protocol
+from .builds import build_key, build_root, compiled_form, locked
+from .model import SNAPSHOT_VARIABLE, Handles, build_network
+from .scoring import Recording
 
 MAX_DURATION_S = 1e7
 """Compiled run length (s); every run stops earlier through the watch function."""
 _MARGIN = 1.0 + 1e-9
-
-
-def unsupported(cfg: dict) -> str | None:
-    """Why this point cannot run in standalone (it then falls back to cython), or None."""
-    if cfg["assemblies"]["overlap"] == "random":
-        return "assemblies.overlap = 'random' (a cell would follow several stimulus schedules)"
-    bin_steps = cfg["detection"]["trace_bin_ms"] / cfg["network"]["dt_ms"]
-    if abs(bin_steps - round(bin_steps)) > 1e-9:
-        return "detection.trace_bin_ms is not a whole number of network.dt_ms steps"
-    return None
 
 
 _WATCH_EQUATIONS = """
@@ -269,7 +258,7 @@ def simulate(cfg: dict, seed: int, wiring_seed: int | None = None) -> tuple[Hand
     """Run one point on the (cached or new) build of its structure; see the module docstring.
 
     Returns the point's handles (membership, schedule, sizes; its Brian2 objects are inert) and
-    what the run recorded. Check :func:`unsupported` first.
+    what the run recorded. Check :func:`capsweep.runners.builds.unsupported` first.
     """
     cfg = compiled_form(cfg)
     key = build_key(cfg)

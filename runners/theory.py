@@ -1,6 +1,6 @@
 """Theory prescreen: rate-form plasticity drift, LIF transfer functions and mean-field fixed points.
 
-Pure numpy/scipy (no Brian2). Everything reads a point's nested config (``sweeps.registry``).
+Pure numpy/scipy (no Brian2). Everything reads a point's nested config (``capsweep.registry``).
 
 Units: rates in Hz, voltages in mV, times in seconds unless a name says otherwise, weights and
 conductances in units of the leak conductance ``g_leak`` (dimensionless), plasticity drift in
@@ -567,7 +567,7 @@ def weight_equilibrium(cfg: dict, rate_pre_hz: float, rate_post_hz: float, w_ref
 class Prediction:
     """Theory prescreen verdict for one point."""
 
-    outcome: str  # one of results_schema.layout.OUTCOME_FLAGS
+    outcome: str  # one of capsweep.flags.OUTCOMES
     recall_state_exists: bool  # self-sustained active assembly state at the initial weights
     high_rate_bounded: bool  # plasticity keeps a high-rate state from growing without bound
     background_rate_hz: float  # mean E rate of the background state, initial weights

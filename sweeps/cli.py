@@ -18,8 +18,8 @@ import typer
 from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn, TimeRemainingColumn
 
-from sweeps.errors import CapsweepError
-from sweeps.registry import BY_PATH
+from ..errors import CapsweepError
+from ..engines import ENGINES, NAMES
 
 app = typer.Typer(
     add_completion=False, no_args_is_help=True, pretty_exceptions_enable=False,
@@ -27,9 +27,6 @@ app = typer.Typer(
 )
 err = Console(stderr=True)
 out = Console()
-
-
-ENGINES = BY_PATH["execution.engine"].choices
 
 
 class TableFormat(str, Enum):
@@ -65,13 +62,13 @@ def run(
     scheduler: str = typer.Option(None, "--scheduler", help="address of a running Dask scheduler"),
     dashboard: bool = typer.Option(None, "--dashboard/--no-dashboard",
                                    help="serve the local cluster's Dask dashboard (default: execution.dashboard)"),
-    engine: str = typer.Option(None, "--engine", help="override execution.engine: cython, numpy or standalone"),
+    engine: str = typer.Option(None, "--engine", help=f"override execution.engine: {', '.join(NAMES)}"),
     retry_failed: bool = typer.Option(False, "--retry-failed", help="run failed points again"),
     prescreen: bool = typer.Option(None, "--prescreen/--no-prescreen",
                                    help="store the theory prediction beside each point (default: execution.prescreen)"),
 ) -> None:
     """Run every point of SWEEP_FILE not yet done, writing each result into the store as it arrives."""
-    from sweeps.launch import RunOptions, run_sweep
+    from .launch import RunOptions, run_sweep
 
     _check_engine(engine)
     options = RunOptions(store=store, workers=workers, scheduler=scheduler, dashboard=dashboard, engine=engine,
@@ -122,17 +119,18 @@ def _print_run_summary(progress: Any) -> None:
         f"({progress.failed} failed; outcomes: {outcomes}; engines: {engines}); "
         f"{progress.already_done} were already stored"
     )
-    if progress.engine == "standalone" and progress.engines.get("cython"):
-        err.print("note: some points ran on cython because the standalone engine cannot express their settings "
-                  "(assemblies.overlap = 'random', or a trace bin that is not a whole number of time steps)")
+    asked = ENGINES.get(progress.engine)
+    if asked is not None and asked.fallback and progress.engines.get(asked.fallback):
+        err.print(f"note: some points ran on {asked.fallback} because the {asked.name} engine cannot express "
+                  f"their settings ({asked.cannot})")
 
 
 @app.command()
 @user_errors
 def status(store: Path = typer.Argument(..., help="Zarr store directory")) -> None:
     """Counts of points by status and outcome, and the base network's plausibility."""
-    from results_schema.dataset import open_dataset
-    from sweeps.query import plausibility, status_counts
+    from ..results_schema.dataset import open_dataset
+    from .query import plausibility, status_counts
 
     ds = open_dataset(store)
     counts = status_counts(ds)
@@ -164,8 +162,8 @@ def query(
     everything: bool = typer.Option(False, "--all", help="every point, not only the stable ones"),
 ) -> None:
     """List configurations with their outcome and metrics (default: the stable ones)."""
-    from results_schema.dataset import open_dataset
-    from sweeps.query import DEFAULT_WHERE, point_table, select, sweep_dims
+    from ..results_schema.dataset import open_dataset
+    from .query import DEFAULT_WHERE, point_table, select, sweep_dims
 
     ds = open_dataset(store)
     rows = select(point_table(ds), "" if everything else (where or DEFAULT_WHERE))
@@ -181,8 +179,8 @@ def capacity(
     fmt: TableFormat = typer.Option(TableFormat.table, "--format", help="table, csv or json"),
 ) -> None:
     """Largest assembly count stored stably and fully recalled, per cell of the other axes."""
-    from results_schema.dataset import open_dataset
-    from sweeps.query import capacity_table
+    from ..results_schema.dataset import open_dataset
+    from .query import capacity_table
 
     _emit(capacity_table(open_dataset(store)), fmt)
 
@@ -196,8 +194,8 @@ def plot(
     y: str = typer.Option(None, "--y", help="axis up the stability map (default: the second axis)"),
 ) -> None:
     """Write PNGs: stability map, capacity curves, rate traces and weight drift."""
-    from results_schema.dataset import open_dataset
-    from sweeps.plots import all_plots
+    from ..results_schema.dataset import open_dataset
+    from .plots import all_plots
 
     for path in all_plots(open_dataset(store), out_dir, x, y):
         out.print(str(path), markup=False, highlight=False)
@@ -213,7 +211,7 @@ def prescreen_command(
     fmt: TableFormat = typer.Option(TableFormat.table, "--format", help="table, csv or json"),
 ) -> None:
     """Predict each grid cell's outcome from mean-field theory, without simulating."""
-    from sweeps.prescreen import prescreen_sweep
+    from .prescreen import prescreen_sweep
 
     with Progress(TextColumn("[bold]cells"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
                   console=err) as bar:
@@ -228,10 +226,10 @@ def prescreen_command(
 def plan(
     sweep_file: Path = typer.Argument(..., help="TOML sweep file"),
     workers: int = typer.Option(None, "--workers", min=1, help="worker count to estimate for"),
-    engine: str = typer.Option(None, "--engine", help="engine to estimate for: cython, numpy or standalone"),
+    engine: str = typer.Option(None, "--engine", help=f"engine to estimate for: {', '.join(NAMES)}"),
 ) -> None:
     """Show the expanded grid, distinct builds and an estimated wall time (calibrated by probe runs)."""
-    from sweeps.plan import plan_sweep
+    from .plan import plan_sweep
 
     _check_engine(engine)
     result = plan_sweep(sweep_file, workers, engine,
@@ -254,7 +252,7 @@ def _duration(seconds: float) -> str:
 
 def _check_engine(engine: str | None) -> None:
     if engine is not None and engine not in ENGINES:
-        raise CapsweepError(f"--engine {engine!r} is not allowed: expected one of {', '.join(ENGINES)}")
+        raise CapsweepError(f"--engine {engine!r} is not allowed: expected one of {', '.join(NAMES)}")
 
 
 @app.command("prune-builds")
@@ -263,7 +261,7 @@ def prune_builds_command(
     keep_mib: float = typer.Option(2048.0, "--keep-mib", min=0.0, help="disk the build cache may keep, MiB"),
 ) -> None:
     """Remove least-recently-used compiled builds until the cache fits in --keep-mib."""
-    from runners.builds import build_root, prune_builds
+    from ..runners.builds import build_root, prune_builds
 
     removed = prune_builds(int(keep_mib * 2**20))
     out.print(f"removed {removed} builds from {build_root()}", markup=False, highlight=False)

@@ -2,7 +2,7 @@
 
 Dask starts its local worker processes with multiprocessing's spawn method, and a spawned
 process first imports its parent's main module: for the console script, the module that holds
-its entry point. Pointing the script here instead of at :mod:`sweeps.cli` (typer, rich and the
+its entry point. Pointing the script here instead of at :mod:`capsweep.sweeps.cli` (typer, rich and the
 key registry: 0.1-0.3 s of imports) keeps that cost off every worker's start.
 """
 
@@ -10,7 +10,7 @@ from __future__ import annotations
 
 
 def main() -> None:
-    """Run the command line (see :func:`sweeps.cli.main`)."""
-    from sweeps.cli import main as run_command_line
+    """Run the command line (see :func:`capsweep.sweeps.cli.main`)."""
+    from .cli import main as run_command_line
 
     run_command_line()

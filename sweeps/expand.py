@@ -1,4 +1,4 @@
-"""Expand a :class:`~sweeps.sweepfile.Sweep` into points: grid index, config, stable id, seed.
+"""Expand a :class:`~capsweep.sweeps.sweepfile.Sweep` into points: grid index, config, stable id, seed.
 
 A point is the base config with its axis values applied. Its id is a hash of the fully
 resolved config (execution settings excluded) and its replicate number, and its seed derives
@@ -16,11 +16,11 @@ from typing import Any, Callable
 
 import numpy as np
 
-from results_schema.layout import GridSpec
-from runners.protocol import total_duration_s
-from sweeps.errors import ConfigError
-from sweeps.registry import nest
-from sweeps.sweepfile import Sweep
+from ..results_schema.layout import GridSpec
+from ..runners.protocol import total_duration_s
+from ..errors import ConfigError
+from ..registry import inhibitory_count, nest
+from .sweepfile import Sweep
 
 
 @dataclass(frozen=True)
@@ -83,7 +83,7 @@ def _describe(labels: dict[str, Any]) -> str:
 _RULES: tuple[tuple[Callable[[dict[str, Any]], bool], str], ...] = (
     (lambda f: f["network.indegree_exc"] <= f["network.n_exc"],
      "network.indegree_exc ({network.indegree_exc}) must not exceed network.n_exc ({network.n_exc})"),
-    (lambda f: f["network.indegree_inh"] <= n_inh(f),
+    (lambda f: f["network.indegree_inh"] <= inhibitory_count(f["network.n_exc"], f["network.inh_per_exc"]),
      "network.indegree_inh ({network.indegree_inh}) must not exceed the inhibitory count "
      "round(network.n_exc x network.inh_per_exc)"),
     (lambda f: f["assemblies.size"] <= f["network.n_exc"],
@@ -98,11 +98,6 @@ _RULES: tuple[tuple[Callable[[dict[str, Any]], bool], str], ...] = (
      "protocol.cue_skip_s ({protocol.cue_skip_s}) must be shorter than protocol.cue_duration_s "
      "({protocol.cue_duration_s})"),
 )
-
-
-def n_inh(flat: dict[str, Any]) -> int:
-    """Inhibitory cell count implied by a flat config."""
-    return max(1, round(flat["network.n_exc"] * flat["network.inh_per_exc"]))
 
 
 def check_consistency(flat: dict[str, Any], where: str) -> None:

@@ -12,20 +12,22 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from results_schema.definitions import DEFINITIONS
-from results_schema.layout import STATUS_FLAGS
-from results_schema.lock import store_lock
-from runners.builds import build_key
-from runners.dask_backend import EarlyClient, TaskFailure, run_tasks
-from runners.protocol import total_duration_s
-from sweeps.expand import Point, expand, fingerprint, grid_spec, id_and_seed_arrays
-from sweeps.sweepfile import Sweep, load_sweep
+from ..engines import engine
+from ..flags import STATUSES
+from ..registry import overlay, with_execution
+from ..results_schema.definitions import DEFINITIONS
+from ..results_schema.lock import store_lock
+from ..runners.builds import build_key
+from ..runners.dask_backend import EarlyClient, TaskFailure, run_tasks
+from ..runners.protocol import total_duration_s
+from .expand import Point, expand, fingerprint, grid_spec, id_and_seed_arrays
+from .sweepfile import Sweep, load_sweep
 
 if TYPE_CHECKING:
-    from results_schema.store import ResultStore
+    from ..results_schema.store import ResultStore
 
-DONE = STATUS_FLAGS.index("done")
-FAILED = STATUS_FLAGS.index("failed")
+DONE = STATUSES.index("done")
+FAILED = STATUSES.index("failed")
 
 
 @dataclass
@@ -92,14 +94,14 @@ def run_sweep(
 def _cluster_settings(execution: dict[str, Any], options: RunOptions) -> dict[str, Any]:
     """Worker count, scheduler address and dashboard switch: the command line over [execution]."""
     chosen = {"workers": options.workers, "scheduler": options.scheduler, "dashboard": options.dashboard}
-    return {name: execution[name] if value is None else value for name, value in chosen.items()}
+    return {name: overlay(execution, chosen)[name] for name in chosen}
 
 
 def open_or_create(sweep: Sweep, points: list[Point]) -> ResultStore:
     """Open the sweep's store (refusing one built from another grid) or lay out a new one."""
     # Imported here, not at the top: Zarr takes about 0.4 s to import, which run_sweep spends
     # while the Dask workers start.
-    from results_schema.store import ResultStore, create_store
+    from ..results_schema.store import ResultStore, create_store
 
     if not Path(sweep.store).exists():
         ids, seeds = id_and_seed_arrays(sweep, points)
@@ -136,7 +138,8 @@ def _execute(
     on_event: Callable[[Progress], None],
 ) -> None:
     progress.engine = options.engine or todo[0].config["execution"]["engine"]
-    jobs = [(p, _with_execution(p.config, options), p.seed, p.wiring_seed) for p in todo]
+    jobs = [(p, with_execution(p.config, engine=options.engine, prescreen=options.prescreen), p.seed, p.wiring_seed)
+            for p in todo]
     jobs.sort(key=lambda job: submission_order(job[1]))
     client = dask.client()
     progress.dashboard = client.dashboard_link if dask.has_dashboard else ""
@@ -146,13 +149,6 @@ def _execute(
         on_event(progress)
 
 
-def _with_execution(config: dict[str, Any], options: RunOptions) -> dict[str, Any]:
-    """``config`` with the command line's engine and prescreen choices applied."""
-    chosen = {"engine": options.engine, "prescreen": options.prescreen}
-    overrides = {k: v for k, v in chosen.items() if v is not None}
-    return {**config, "execution": {**config["execution"], **overrides}}
-
-
 def submission_order(config: dict[str, Any]) -> tuple[str, float]:
     """Sort key of a job: its compiled-build key ('' unless standalone), then longest planned run first.
 
@@ -160,7 +156,7 @@ def submission_order(config: dict[str, Any]) -> tuple[str, float]:
     switch; longest-first within a group (Dask hands out tasks in submission order) leaves the
     short points for the end, so the workers finish close together.
     """
-    group = build_key(config) if config["execution"]["engine"] == "standalone" else ""
+    group = build_key(config) if engine(config["execution"]["engine"]).reuses_builds else ""
     return group, -total_duration_s(config)
 
 

@@ -16,16 +16,15 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from runners.protocol import total_duration_s
-from sweeps.expand import Point, expand
-from sweeps.sweepfile import load_sweep
+from .. import engines
+from ..registry import with_execution
+from ..runners.protocol import total_duration_s
+from .expand import Point, expand
+from .sweepfile import load_sweep
 
 PROBE_HOLD_S = (1.0, 5.0)  # hold lengths of the two probe runs, s
 MAX_PROBES = 4  # distinct network sizes probed; others are scaled from the nearest probed size
 STARTUP_S = 3.0  # local Dask cluster start and close, imports and store layout, s (measured here: 2.5-3.5 s)
-FIRST_POINT_EXTRA_S = {"standalone": 2.5, "cython": 2.0, "numpy": 0.5}
-"""Extra cost of each worker's first point, s: a fresh process regenerates the standalone project's code
-(the compiled binary is reused) or loads the cython modules (measured here, December 2026: 2.3-3 s and 1-3 s)."""
 
 
 @dataclass(frozen=True)
@@ -58,7 +57,7 @@ def size_key(point: Point) -> int:
 
 def structure_key(point: Point) -> str:
     """Key of the compiled build a point needs (its standalone build key)."""
-    from runners.builds import build_key
+    from ..runners.builds import build_key
 
     return build_key(point.config)
 
@@ -69,7 +68,7 @@ def probe(config: dict[str, Any], engine: str, seed: int = 1) -> Cost:
     A first, uncounted run compiles or generates code (standalone build, cython cache) so that
     the two timed runs see what every later point of the sweep sees.
     """
-    from runners.point import run_point
+    from ..runners.point import run_point
 
     run_point(_probe_config(config, engine, PROBE_HOLD_S[0]), seed)
     walls = []
@@ -86,8 +85,7 @@ def probe(config: dict[str, Any], engine: str, seed: int = 1) -> Cost:
 def _probe_config(config: dict[str, Any], engine: str, hold_s: float) -> dict[str, Any]:
     protocol = {**config["protocol"], "settle_s": 0.2, "hold_s": hold_s, "cue_duration_s": 0.05,
                 "cue_gap_s": 0.05, "cue_skip_s": 0.01}
-    execution = {**config["execution"], "engine": engine, "abort_on_runaway": False}
-    return {**config, "protocol": protocol, "execution": execution}
+    return with_execution({**config, "protocol": protocol}, engine=engine, abort_on_runaway=False)
 
 
 def point_cost(point: Point, costs: dict[int, Cost]) -> float:
@@ -134,6 +132,6 @@ def plan_sweep(
         workers=workers,
         engine=engine,
         costs=costs,
-        estimate_s=STARTUP_S + FIRST_POINT_EXTRA_S[engine] + makespan(durations, workers),
+        estimate_s=STARTUP_S + engines.engine(engine).first_point_s + makespan(durations, workers),
     )
 

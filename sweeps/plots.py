@@ -15,7 +15,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 import xarray as xr  # noqa: E402
 
-from sweeps.query import COUNT_KEY, QueryError, axis_keys, labelled  # noqa: E402
+from .query import COUNT_KEY, QueryError, axis_keys, labelled  # noqa: E402
 
 OUTCOME_COLOURS = {"stable": "tab:green", "runaway": "tab:red", "silent": "tab:grey"}
 

@@ -1,6 +1,6 @@
 """Theory prescreen of a whole sweep: a predicted outcome per grid cell, before any simulation.
 
-The prediction is deterministic (mean-field theory, :func:`runners.theory.predict`), so one
+The prediction is deterministic (mean-field theory, :func:`capsweep.runners.theory.predict`), so one
 prediction serves every replicate of a cell. Cells are predicted in parallel on Dask.
 """
 
@@ -12,14 +12,14 @@ from typing import Any
 
 import pandas as pd
 
-from runners.dask_backend import dask_client
-from sweeps.expand import Point, expand
-from sweeps.sweepfile import load_sweep
+from ..runners.dask_backend import dask_client
+from .expand import Point, expand
+from .sweepfile import load_sweep
 
 
 def predict_row(config: dict[str, Any]) -> dict[str, Any]:
     """Worker-side: the prediction of one config as a flat table row."""
-    from runners.theory import predict
+    from ..runners.theory import predict
 
     p = predict(config)
     return {
@@ -67,7 +67,7 @@ def prescreen_sweep(
 
 def write_cell_plots(points: list[Point], plots_dir: Path) -> list[Path]:
     """Transfer and drift PNGs per grid cell, named after the cell's axis values."""
-    from sweeps.prescreen_plots import plot_drift, plot_transfer
+    from .prescreen_plots import plot_drift, plot_transfer
 
     plots_dir.mkdir(parents=True, exist_ok=True)
     paths = []

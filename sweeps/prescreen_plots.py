@@ -11,7 +11,7 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
-from runners import theory  # noqa: E402
+from ..runners import theory  # noqa: E402
 
 
 def _mark_fixed_points(ax, curve: theory.TransferCurve, color: str) -> None:

@@ -12,9 +12,9 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from results_schema.layout import STATUS
-from results_schema.dataset import flag_labels
-from sweeps.errors import CapsweepError
+from ..results_schema.layout import STATUS
+from ..results_schema.dataset import flag_labels
+from ..errors import CapsweepError
 
 DEFAULT_WHERE = 'status == "done" and outcome == "stable"'
 COUNT_KEY = "assemblies.count"

@@ -1,7 +1,7 @@
 """Read and validate a TOML sweep file into a :class:`Sweep`.
 
-Every key is checked against :mod:`sweeps.registry`; an unknown key, a wrong type or an
-out-of-range value raises :class:`~sweeps.errors.ConfigError` whose message names the file,
+Every key is checked against :mod:`capsweep.registry`; an unknown key, a wrong type or an
+out-of-range value raises :class:`~capsweep.errors.ConfigError` whose message names the file,
 the key, the value and what is allowed.
 """
 
@@ -14,9 +14,10 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from results_schema.layout import INNER_DIMS, Axis
-from sweeps.errors import ConfigError
-from sweeps.registry import BY_PATH, SECTIONS, Key, defaults, lookup
+from ..axes import VARIANT_KEY, Axis, key_axis, variant_axis
+from ..errors import ConfigError
+from ..results_schema.layout import INNER_DIMS
+from ..registry import SECTIONS, Key, defaults, flatten, lookup
 
 SWEEP_KEYS = {
     "name": "sweep name (a non-empty string)",
@@ -31,7 +32,6 @@ AXIS_KEYS = {
     "values": "list of values",
     "variants": "table of named variants, each a table of config overrides (instead of key and values)",
 }
-VARIANT_KEY = "variants"  # the Axis.key of an axis over named variants
 _DIM_NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
 _RESERVED_DIMS = set(INNER_DIMS) | {"replicate"}
 
@@ -130,24 +130,11 @@ def _base_config(doc: dict[str, Any], source: Path) -> dict[str, Any]:
     """Flat config: registry defaults overlaid with the file's sections, every value checked."""
     flat = defaults()
     for section in SECTIONS:
-        if section in doc:
-            for path, value in _flatten(doc[section], section, source):
-                flat[path] = lookup(path, where=str(source)).check(value, where=str(source))
+        node = doc.get(section, {})
+        leaves = flatten(node, section + ".") if isinstance(node, dict) else {section: node}
+        for path, value in leaves.items():
+            flat[path] = lookup(path, where=str(source)).check(value, where=str(source))
     return flat
-
-
-def _flatten(node: Any, prefix: str, source: Path) -> list[tuple[str, Any]]:
-    """``[(dotted.path, value)]`` for every leaf under ``prefix``; unknown paths raise ConfigError."""
-    if prefix in BY_PATH:
-        if isinstance(node, dict):
-            raise ConfigError(f"{source}: {prefix} must be a single value, not a table")
-        return [(prefix, node)]
-    if not isinstance(node, dict):
-        lookup(prefix, where=str(source))
-    items: list[tuple[str, Any]] = []
-    for key, value in node.items():
-        items += _flatten(value, f"{prefix}.{key}", source)
-    return items
 
 
 def _axis(raw: Any, position: int, source: Path) -> tuple[Axis, dict[str, dict[str, Any]]]:
@@ -179,7 +166,7 @@ def _axis(raw: Any, position: int, source: Path) -> tuple[Axis, dict[str, dict[s
     checked = tuple(spec.check(v, where=f"{where} ({name})") for v in values)
     if len(set(checked)) != len(checked):
         raise ConfigError(f"{where}: values of axis {name!r} repeat: {list(values)}")
-    return Axis(name=name, key=key, values=checked), {}
+    return key_axis(name, key, checked), {}
 
 
 def _sweepable(key: str, where: str) -> Key:
@@ -201,17 +188,8 @@ def _variant_axis(raw: dict[str, Any], name: str, where: str) -> tuple[Axis, dic
         if not isinstance(overrides, dict):
             raise ConfigError(f"{where}: variant {label!r} must be a table of 'dotted.key' = value overrides")
         place = f"{where} (variant {label})"
-        checked[label] = {k: _sweepable(k, place).check(v, where=place) for k, v in _leaves(overrides)}
-    return Axis(name=name, key=VARIANT_KEY, values=tuple(checked)), checked
-
-
-def _leaves(node: dict[str, Any], prefix: str = "") -> list[tuple[str, Any]]:
-    """``[(dotted.key, value)]`` of a table whose keys may be quoted dotted paths or nested tables."""
-    items: list[tuple[str, Any]] = []
-    for key, value in node.items():
-        path = f"{prefix}.{key}" if prefix else key
-        items += _leaves(value, path) if isinstance(value, dict) else [(path, value)]
-    return items
+        checked[label] = {k: _sweepable(k, place).check(v, where=place) for k, v in flatten(overrides).items()}
+    return variant_axis(name, tuple(checked)), checked
 
 
 def _check_axis_names(axes: tuple[Axis, ...], source: Path) -> None:

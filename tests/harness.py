@@ -16,8 +16,8 @@ from collections.abc import Sequence
 import brian2 as b2
 import numpy as np
 
-from runners import rules
-from sweeps.registry import defaults, nest
+from capsweep.runners import rules
+from capsweep.registry import defaults, nest
 
 DEMO_NETWORK = {
     "network.n_exc": 300,

@@ -67,7 +67,7 @@ workers = 1
 
 def capsweep(*args: str, timeout: float = 600) -> subprocess.CompletedProcess[str]:
     """Run the installed CLI in a fresh process."""
-    return subprocess.run([sys.executable, "-m", "sweeps.cli", *args], capture_output=True, text=True,
+    return subprocess.run([sys.executable, "-m", "capsweep.sweeps.cli", *args], capture_output=True, text=True,
                           timeout=timeout)
 
 
@@ -173,7 +173,7 @@ def _done(store: Path) -> np.ndarray:
 
 def test_killed_sweep_resumes_without_recomputing(tmp_path: Path) -> None:
     sweep, store = write_sweep(tmp_path, RESUME_SWEEP, hold_s=8.0)
-    first = subprocess.Popen([sys.executable, "-m", "sweeps.cli", "run", str(sweep)], start_new_session=True,
+    first = subprocess.Popen([sys.executable, "-m", "capsweep.sweeps.cli", "run", str(sweep)], start_new_session=True,
                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     deadline = time.monotonic() + 300
     while time.monotonic() < deadline and not (store.exists() and _done(store).sum() >= 2):

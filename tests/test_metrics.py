@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from scipy.stats import pearsonr
 
-from runners import metrics
+from capsweep.runners import metrics
 
 
 def _counts_example() -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -99,10 +99,13 @@ def test_runaway_onset_needs_the_hold_and_ignores_cue_bins() -> None:
     assert metrics.runaway_onset(rate, bin_s, 0.5, 10.0, 1.0, none, 1.0) < 3.5
 
 
-def test_runaway_threshold_uses_factor_or_floor() -> None:
-    assert metrics.runaway_threshold(3.0, 4.0, 10.0) == 12.0
-    assert metrics.runaway_threshold(1.0, 4.0, 10.0) == 10.0
-    assert metrics.runaway_threshold(float("nan"), 4.0, 10.0) == 10.0
+def test_runaway_and_active_thresholds_use_factor_or_floor() -> None:
+    det = {"runaway_factor": 4.0, "runaway_floor_hz": 10.0, "active_factor": 3.0, "active_floor_hz": 5.0}
+    assert metrics.runaway_threshold(det, 3.0) == 12.0
+    assert metrics.runaway_threshold(det, 1.0) == 10.0
+    assert metrics.runaway_threshold(det, float("nan")) == 10.0
+    assert metrics.active_threshold(det, 2.0) == 6.0
+    assert metrics.active_threshold(det, 1.0) == 5.0
 
 
 def test_isi_cv_regular_zero_and_poisson_one() -> None:

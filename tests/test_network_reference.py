@@ -11,8 +11,8 @@ import brian2 as b2
 import numpy as np
 import pytest
 
-from runners.model import build_network
-from runners.point import run_point
+from capsweep.runners.model import build_network
+from capsweep.runners.point import run_point
 from harness import point_config
 
 def _cfg(changes: dict[str, object]) -> dict:

@@ -2,9 +2,9 @@
 
 from __future__ import annotations
 
-from sweeps.expand import expand
-from sweeps.plan import Cost, makespan, point_cost, structure_key
-from sweeps.sweepfile import parse_sweep
+from capsweep.sweeps.expand import expand
+from capsweep.sweeps.plan import Cost, makespan, point_cost, structure_key
+from capsweep.sweeps.sweepfile import parse_sweep
 
 SWEEP = """
 [sweep]

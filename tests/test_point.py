@@ -11,10 +11,11 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from results_schema.layout import VARIABLES
-from runners.point import CHECK_INTERVAL_S, run_point
-from runners.protocol import total_duration_s
-from sweeps.errors import ConfigError
+from capsweep.results_schema.layout import VARIABLES
+from capsweep.runners.point import run_point
+from capsweep.runners.runtime import CHECK_INTERVAL_S
+from capsweep.runners.protocol import total_duration_s
+from capsweep.errors import ConfigError
 from harness import DEMO_NETWORK, TRIPLET_ONLY, point_config
 
 TINY = {**DEMO_NETWORK, "execution.engine": "cython"}

@@ -11,13 +11,14 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from results_schema.layout import Axis, GridSpec
-from results_schema.dataset import open_dataset
-from results_schema.store import ResultStore, create_store
-from sweeps.plots import all_plots
-from sweeps.query import QueryError, capacity_table, plausibility, point_table, select, status_counts
+from capsweep.axes import key_axis
+from capsweep.results_schema.layout import GridSpec
+from capsweep.results_schema.dataset import open_dataset
+from capsweep.results_schema.store import ResultStore, create_store
+from capsweep.sweeps.plots import all_plots
+from capsweep.sweeps.query import QueryError, capacity_table, plausibility, point_table, select, status_counts
 
-AXES = (Axis("n_odours", "assemblies.count", (1, 2, 3, 4)), Axis("beta", "plasticity.heterosynaptic.beta", (0.0, 0.05)))
+AXES = (key_axis("n_odours", "assemblies.count", (1, 2, 3, 4)), key_axis("beta", "plasticity.heterosynaptic.beta", (0.0, 0.05)))
 SHAPE = (4, 2, 2)
 
 

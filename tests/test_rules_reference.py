@@ -1,7 +1,7 @@
 """Mean weight drift of capsweep's plasticity rules under independent Poisson pre/post trains.
 
 Many independent synapses, each between its own Poisson pre cell (rate rx) and Poisson post cell
-(rate ry), use the rules from ``runners.rules``; the mean drift is compared with closed forms
+(rate ry), use the rules from ``capsweep.runners.rules``; the mean drift is compared with closed forms
 computed here with numpy.
 
 Minimal triplet rule (Pfister & Gerstner 2006, J Neurosci 26:9673; A2p = A3m = 0) [derived]:
@@ -31,8 +31,8 @@ import numpy as np
 import pytest
 
 from harness import poisson_drift
-from runners import rules
-from sweeps.registry import defaults, nest
+from capsweep.runners import rules
+from capsweep.registry import defaults, nest
 
 # Pfister & Gerstner 2006 minimal all-to-all visual-cortex fit [paper, via REFERENCES.md 1]
 A3P, A2M, TAU_PLUS, TAU_MINUS, TAU_Y = 6.5e-3, 7.1e-3, 16.8e-3, 33.7e-3, 114e-3

@@ -19,9 +19,9 @@ import time
 import numpy as np
 import pytest
 
-from runners import builds, standalone
-from runners.point import run_point
-from runners.protocol import total_duration_s
+from capsweep.runners import builds, standalone
+from capsweep.runners.point import run_point
+from capsweep.runners.protocol import total_duration_s
 from harness import DEMO_NETWORK, TRIPLET_ONLY, point_config
 
 TINY = {**DEMO_NETWORK, "execution.engine": "standalone"}
@@ -112,7 +112,7 @@ def test_a_new_process_regenerates_the_same_code(full_rule) -> None:
     sources = {path.name: path.read_bytes() for path in build.glob("*.cpp")}
     binary_mtime = (build / "main").stat().st_mtime
     script = ("import pickle, sys, brian2; stray = [brian2.Network() for _ in range(3)]; "
-              "from runners.point import run_point; run_point(pickle.load(sys.stdin.buffer), 3, wiring_seed=8)")
+              "from capsweep.runners.point import run_point; run_point(pickle.load(sys.stdin.buffer), 3, wiring_seed=8)")
     subprocess.run([sys.executable, "-c", script], input=pickle.dumps(cfg), check=True, env=os.environ)
     assert {path.name: path.read_bytes() for path in build.glob("*.cpp")} == sources
     assert (build / "main").stat().st_mtime == binary_mtime
@@ -140,5 +140,5 @@ def test_runaway_abort_costs_at_most_a_quarter_of_a_full_run(build_root, full_ru
 def test_random_overlap_falls_back_to_cython() -> None:
     cfg = _cfg(**{"assemblies.overlap": "random", "network.n_exc": 100, "assemblies.size": 20,
                   "protocol.settle_s": 0.3, "protocol.hold_s": 0.3})
-    assert standalone.unsupported(cfg) is not None
+    assert builds.unsupported(cfg) is not None
     assert run_point(cfg, 3)["engine"] == "cython"

@@ -15,17 +15,19 @@ import pytest
 import xarray as xr
 import zarr
 
-from results_schema import layout
-from results_schema.lock import LOCK_NAME, store_lock
-from results_schema.layout import Axis, GridSpec
-from results_schema.dataset import flag_labels, open_dataset
-from results_schema.store import ResultStore, create_store
-from sweeps.errors import StoreError
+from capsweep.flags import OUTCOMES, STATUSES
+from capsweep.results_schema import layout
+from capsweep.results_schema.lock import LOCK_NAME, store_lock
+from capsweep.axes import key_axis
+from capsweep.results_schema.layout import GridSpec
+from capsweep.results_schema.dataset import flag_labels, open_dataset
+from capsweep.results_schema.store import ResultStore, create_store
+from capsweep.errors import StoreError
 
 AXES = (
-    Axis("n_assemblies", "assemblies.count", (1, 2, 4)),
-    Axis("beta", "plasticity.heterosynaptic.beta", (0.0, 0.05)),
-    Axis("imprint", "assemblies.imprint", ("prewired", "learned")),
+    key_axis("n_assemblies", "assemblies.count", (1, 2, 4)),
+    key_axis("beta", "plasticity.heterosynaptic.beta", (0.0, 0.05)),
+    key_axis("imprint", "assemblies.imprint", ("prewired", "learned")),
 )
 REPLICATES = 2
 SHAPE = (3, 2, 2, REPLICATES)
@@ -87,11 +89,11 @@ def test_template_opens_with_plain_xarray(tmp_path):
         if var.name != "seed":
             assert ds[var.name].isnull().all(), var.name  # fill decodes to NaN
     outcome = ds.outcome
-    assert outcome.attrs["flag_meanings"].split() == list(layout.OUTCOME_FLAGS)
-    assert list(outcome.attrs["flag_values"]) == list(range(len(layout.OUTCOME_FLAGS)))
+    assert outcome.attrs["flag_meanings"].split() == list(OUTCOMES)
+    assert list(outcome.attrs["flag_values"]) == list(range(len(OUTCOMES)))
     assert outcome.encoding["_FillValue"] == layout.FLAG_FILL
-    assert ds.status.dtype == np.int8 and (ds.status == layout.STATUS_FLAGS.index("pending")).all()
-    assert ds.status.attrs["flag_meanings"].split() == list(layout.STATUS_FLAGS)
+    assert ds.status.dtype == np.int8 and (ds.status == STATUSES.index("pending")).all()
+    assert ds.status.attrs["flag_meanings"].split() == list(STATUSES)
     assert (ds.error == "").all()
     np.testing.assert_array_equal(ds.seed.values, SEEDS)
     assert ds.seed.dtype == np.int64
@@ -121,7 +123,7 @@ def test_write_point_reads_back_padded(tmp_path):
     store.write_point((1, 0, 1, 1), point_result(n_assemblies=2, recalled=2))
     ds = plain_open(path, chunks=None)
     point = ds.isel(n_assemblies=1, beta=0, imprint=1, replicate=1)
-    assert int(point.status) == layout.STATUS_FLAGS.index("done")
+    assert int(point.status) == STATUSES.index("done")
     assert flag_labels(point.outcome).item() == "runaway" and flag_labels(point.engine).item() == "cython"
     assert np.isnan(point.predicted_outcome)
     assert float(point.runaway_onset_s) == 7.5 and int(point.recalled_count) == 2
@@ -132,7 +134,7 @@ def test_write_point_reads_back_padded(tmp_path):
     assert np.isnan(point.rate_inh_hz.values[30:]).all()
     assert point.error.item() == ""
     others = ds.status.values.copy()
-    others[1, 0, 1, 1] = layout.STATUS_FLAGS.index("pending")
+    others[1, 0, 1, 1] = STATUSES.index("pending")
     assert (others == 0).all()
     assert ds.rate_exc_hz.isnull().sum() == ds.rate_exc_hz.size - 30  # no other point touched
 
@@ -143,10 +145,10 @@ def test_interrupted_write_reads_as_pending(tmp_path):
     store = ResultStore.open(path)
     store._write_values((0, 0, 0, 0), {"wall_time_s": 3.5, "recalled_count": 1})
     reopened = ResultStore.open(path)
-    assert reopened.status()[0, 0, 0, 0] == layout.STATUS_FLAGS.index("pending")
+    assert reopened.status()[0, 0, 0, 0] == STATUSES.index("pending")
     ds = plain_open(path, chunks=None)
     assert float(ds.wall_time_s[0, 0, 0, 0]) == 3.5  # the data did reach the disk
-    assert int(ds.status[0, 0, 0, 0]) == layout.STATUS_FLAGS.index("pending")
+    assert int(ds.status[0, 0, 0, 0]) == STATUSES.index("pending")
 
 
 def test_write_that_fails_midway_leaves_the_point_pending(tmp_path):
@@ -156,7 +158,7 @@ def test_write_that_fails_midway_leaves_the_point_pending(tmp_path):
     store = ResultStore.open(path)
     with pytest.raises(OSError):
         store.write_point((0, 0, 0, 0), point_result(1, 1))
-    assert ResultStore.open(path).status()[0, 0, 0, 0] == layout.STATUS_FLAGS.index("pending")
+    assert ResultStore.open(path).status()[0, 0, 0, 0] == STATUSES.index("pending")
 
 
 def test_failure_carries_error_text_and_clears_results(tmp_path):
@@ -166,18 +168,16 @@ def test_failure_carries_error_text_and_clears_results(tmp_path):
     store.write_failure((2, 1, 0, 0), "BrianObjectException: odour cue group has no members")
     ds = plain_open(path, chunks=None)
     point = ds.isel(n_assemblies=2, beta=1, imprint=0, replicate=0)
-    assert int(point.status) == layout.STATUS_FLAGS.index("failed")
+    assert int(point.status) == STATUSES.index("failed")
     assert point.error.item() == "BrianObjectException: odour cue group has no members"
     assert np.isnan(point.wall_time_s) and point.rate_exc_hz.isnull().all()
     assert int(point.seed) == SEEDS[2, 1, 0, 0]
 
 
-def test_prediction_survives_the_point_write(tmp_path):
+def test_prediction_is_stored_with_the_point(tmp_path):
     path = make_store(tmp_path)
     store = ResultStore.open(path)
-    store.write_prediction((0, 1, 0, 1), "silent")
-    assert store.status()[0, 1, 0, 1] == layout.STATUS_FLAGS.index("pending")
-    store.write_point((0, 1, 0, 1), point_result(1, 0))
+    store.write_point((0, 1, 0, 1), {**point_result(1, 0), "predicted_outcome": "silent"})
     point = plain_open(path, chunks=None).isel(n_assemblies=0, beta=1, imprint=0, replicate=1)
     assert flag_labels(point.predicted_outcome).item() == "silent"
     assert flag_labels(point.outcome).item() == "runaway"
@@ -195,7 +195,7 @@ def test_write_point_rejects_results_that_break_the_layout(tmp_path):
         store.write_point((0, 0, 0, 0), {**point_result(1, 1), "seed": int(SEEDS[0, 0, 0, 0]) + 1})
     with pytest.raises(IndexError):
         store.write_point((3, 0, 0, 0), point_result(1, 1))
-    assert (store.status() == layout.STATUS_FLAGS.index("pending")).all()
+    assert (store.status() == STATUSES.index("pending")).all()
 
 
 def test_open_refuses_missing_foreign_and_mismatched_stores(tmp_path):
@@ -217,11 +217,14 @@ def test_open_refuses_missing_foreign_and_mismatched_stores(tmp_path):
         ResultStore.open(path)
 
 
-def test_open_gives_back_the_grid(tmp_path):
-    store = ResultStore.open(make_store(tmp_path), fingerprint="grid-a")
-    assert store.axes == AXES
-    assert store.sweep_dims == ("n_assemblies", "beta", "imprint", "replicate")
-    assert store.shape == SHAPE and store.seed((1, 1, 0, 1)) == SEEDS[1, 1, 0, 1]
+def test_coordinates_carry_the_axes_with_their_units(tmp_path):
+    ds = plain_open(make_store(tmp_path), chunks=None)
+    assert list(ds["status"].dims) == ["n_assemblies", "beta", "imprint", "replicate"]
+    for axis in AXES:
+        assert tuple(ds[axis.name].values.tolist()) == axis.values
+        assert ds[axis.name].attrs["config_key"] == axis.key
+        assert ds[axis.name].attrs["units"] == axis.units and ds[axis.name].attrs["long_name"] == axis.long_name
+    assert ds["seed"].values.tolist() == SEEDS.tolist()
 
 
 def test_create_refuses_an_existing_path_and_leaves_it_intact(tmp_path):
@@ -231,7 +234,7 @@ def test_create_refuses_an_existing_path_and_leaves_it_intact(tmp_path):
     with pytest.raises(StoreError, match="already exists"):
         create_store(path, other, POINT_IDS, SEEDS)
     reopened = ResultStore.open(path, fingerprint="grid-a")
-    assert reopened.status()[0, 0, 0, 0] == layout.STATUS_FLAGS.index("done")
+    assert reopened.status()[0, 0, 0, 0] == STATUSES.index("done")
     plain_dir = tmp_path / "notes"
     plain_dir.mkdir()
     (plain_dir / "odour-log.txt").write_text("keep me")
@@ -316,7 +319,7 @@ def test_lock_leaves_the_store_readable(tmp_path):
     path = make_store(tmp_path)
     with store_lock(path):
         ResultStore.open(path).write_point((0, 0, 0, 0), point_result(1, 1))
-        assert int(plain_open(path, chunks=None).status[0, 0, 0, 0]) == layout.STATUS_FLAGS.index("done")
+        assert int(plain_open(path, chunks=None).status[0, 0, 0, 0]) == STATUSES.index("done")
 
 
 def test_lock_on_a_missing_store_names_it(tmp_path):

@@ -16,11 +16,11 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from typer.testing import CliRunner
 
-from sweeps.cli import app
-from sweeps.errors import ConfigError
-from sweeps.expand import expand, grid_shape, point_id
-from sweeps.registry import KEYS, defaults
-from sweeps.sweepfile import parse_sweep
+from capsweep.sweeps.cli import app
+from capsweep.errors import ConfigError
+from capsweep.sweeps.expand import expand, grid_shape, point_id
+from capsweep.registry import KEYS, defaults
+from capsweep.sweeps.sweepfile import parse_sweep
 
 GOOD = """
 [sweep]
@@ -87,7 +87,7 @@ def test_error_in_a_real_process_has_no_traceback(tmp_path: Path) -> None:
     sweep = tmp_path / "sweep.toml"
     sweep.write_text(GOOD.replace("n_exc = 200", "n_exc = 20.5"))
     proc = subprocess.run(
-        [sys.executable, "-m", "sweeps.cli", "run", str(sweep)], capture_output=True, text=True, timeout=120
+        [sys.executable, "-m", "capsweep.sweeps.cli", "run", str(sweep)], capture_output=True, text=True, timeout=120
     )
     assert proc.returncode == 2
     assert "network.n_exc = 20.5" in proc.stderr and "Traceback" not in proc.stderr

@@ -11,8 +11,8 @@ import numpy as np
 import pytest
 from scipy import integrate, optimize, special
 
-from runners import theory
-from sweeps.registry import defaults, nest
+from capsweep.runners import theory
+from capsweep.registry import defaults, nest
 
 
 def _siegert(mu, sigma, tau, t_ref, v_th, v_r):

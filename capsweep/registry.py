@@ -11,7 +11,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any
 
-from sweeps.errors import ConfigError
+from .engines import ENGINES, NAMES
+from .errors import ConfigError
 
 
 @dataclass(frozen=True)
@@ -171,8 +172,8 @@ KEYS: tuple[Key, ...] = (
        sweepable=False),
     # --- execution (never part of a point's identity)
     _k("execution.engine", "standalone", "1",
-       "Brian2 target: standalone (C++ binary compiled once per network structure, rerun per point), "
-       "cython or numpy (runtime)", choices=("standalone", "cython", "numpy"), sweepable=False),
+       "Brian2 engine: " + "; ".join(f"{e.name} ({e.summary})" for e in ENGINES.values()),
+       choices=NAMES, sweepable=False),
     _k("execution.workers", 2, "1", "Local Dask worker processes", low=1, high=1024, sweepable=False),
     _k("execution.scheduler", "", "1", "Address of a running Dask scheduler ('' = start a local cluster)",
        sweepable=False),
@@ -196,12 +197,15 @@ def lookup(path: str, where: str = "") -> Key:
     """Return the Key at ``path`` or raise ConfigError listing the valid keys nearest to it."""
     if path in BY_PATH:
         return BY_PATH[path]
+    place = f" in {where}" if where else ""
+    parent = next((p for p in _prefixes(path) if p in BY_PATH), None)
+    if parent is not None:
+        raise ConfigError(f"{parent}{place} must be a single value, not a table")
     prefix = path
     valid: list[str] = []
     while not valid and "." in prefix:
         prefix = prefix.rsplit(".", 1)[0]
         valid = [p for p in BY_PATH if p.startswith(prefix + ".")]
-    place = f" in {where}" if where else ""
     raise ConfigError(f"unknown key {path!r}{place}; valid keys here: {', '.join(valid or BY_PATH)}")
 
 
@@ -218,9 +222,30 @@ def nest(flat: dict[str, Any]) -> dict[str, Any]:
 
 
 def flatten(tree: dict[str, Any], prefix: str = "") -> dict[str, Any]:
-    """Inverse of :func:`nest`: ``{'a': {'b': v}}`` -> ``{'a.b': v}``."""
+    """Inverse of :func:`nest`: ``{'a': {'b': v}}`` -> ``{'a.b': v}``; an empty table is kept as a value."""
     flat: dict[str, Any] = {}
     for key, value in tree.items():
         path = f"{prefix}{key}"
-        flat.update(flatten(value, path + ".") if isinstance(value, dict) else {path: value})
+        flat.update(flatten(value, path + ".") if isinstance(value, dict) and value else {path: value})
     return flat
+
+
+def _prefixes(path: str) -> list[str]:
+    """``'a.b.c'`` -> ``['a', 'a.b']``."""
+    parts = path.split(".")
+    return [".".join(parts[:i]) for i in range(1, len(parts))]
+
+
+def overlay(table: dict[str, Any], changes: dict[str, Any]) -> dict[str, Any]:
+    """``table`` with the entries of ``changes`` that are not None put over it (a new dict)."""
+    return {**table, **{k: v for k, v in changes.items() if v is not None}}
+
+
+def with_execution(cfg: dict[str, Any], **changes: Any) -> dict[str, Any]:
+    """Nested ``cfg`` with ``[execution]`` entries replaced by the ``changes`` that are not None."""
+    return {**cfg, "execution": overlay(cfg["execution"], changes)}
+
+
+def inhibitory_count(n_exc: int, inh_per_exc: float) -> int:
+    """Number of inhibitory cells: ``round(n_exc * inh_per_exc)``, at least 1."""
+    return max(1, int(round(n_exc * inh_per_exc)))

@@ -1,0 +1,37 @@
+"""Sweep axes: a dim name, the config key it sets (or named variants), its values, units and long name.
+
+An axis carries its own description, so the store that writes its coordinate needs no registry.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+from .registry import BY_PATH
+
+VARIANT_KEY = "variants"
+"""The ``key`` of an axis over named variants (each a table of config overrides)."""
+
+
+@dataclass(frozen=True)
+class Axis:
+    """One sweep axis: dim name, config key, coordinate values, and the coordinate's CF description."""
+
+    name: str
+    key: str
+    values: tuple[Any, ...]
+    units: str = "1"
+    long_name: str = ""
+
+
+def key_axis(name: str, key: str, values: tuple[Any, ...]) -> Axis:
+    """An axis over one registry key; units and long name are the key's."""
+    spec = BY_PATH[key]
+    return Axis(name, key, tuple(values), spec.unit, spec.description)
+
+
+def variant_axis(name: str, labels: tuple[str, ...]) -> Axis:
+    """An axis over named variants of the config."""
+    long_name = f"named variant of the config (overrides listed in the sweep file's axis {name!r})"
+    return Axis(name, VARIANT_KEY, tuple(labels), "1", long_name)
