@@ -19,7 +19,7 @@ from ..axes import Axis
 from ..engines import NAMES as ENGINE_NAMES
 from ..flags import OUTCOMES, STATUSES
 
-SCHEMA_VERSION = "1.0"
+SCHEMA_VERSION = "2.0"
 
 FLAG_FILL = -1
 INNER_DIMS: tuple[str, ...] = ("assembly", "snapshot", "time_bin")
@@ -63,12 +63,13 @@ VARIABLES: tuple[Variable, ...] = (
     Variable("engine", "1", "Brian2 code generation target used", dtype="int8", flags=ENGINE_NAMES),
     Variable("seed", "1", "random seed of the point (from base_seed and point id)", dtype="int64"),
     Variable("runaway_onset_s", "s", "first time the smoothed E rate stayed above the runaway threshold"),
-    Variable("recalled_count", "1", "assemblies with recall_quality at or above the recall threshold",
-             dtype="int32"),
-    Variable("rate_exc_baseline_hz", "Hz", "mean excitatory rate over the settle phase"),
-    Variable("rate_inh_baseline_hz", "Hz", "mean inhibitory rate over the settle phase"),
-    Variable("isi_cv_exc", "1", "mean ISI coefficient of variation of excitatory cells over the settle phase"),
+    Variable("recalled_count", "1", "assemblies whose recall score (in detection.recall_mode) reaches the recall "
+             "threshold", dtype="int32"),
+    Variable("rate_exc_baseline_hz", "Hz", "mean excitatory rate over the baseline window"),
+    Variable("rate_inh_baseline_hz", "Hz", "mean inhibitory rate over the baseline window"),
+    Variable("isi_cv_exc", "1", "mean ISI coefficient of variation of excitatory cells over the baseline window"),
     Variable("rate_exc_hold_end_hz", "Hz", "mean excitatory rate over the last smoothing window of the hold phase"),
+    Variable("rate_exc_tail_hz", "Hz", "mean excitatory rate over the background-only tail after the last cue"),
     Variable("imprint_contrast", "1", "assembly_contrast at the end of imprinting (learned assemblies)"),
     Variable("wall_time_s", "s", "wall-clock time of the point's simulation"),
     Variable("simulated_time_s", "s", "biological time simulated (shorter than planned after an early abort)"),
@@ -76,14 +77,25 @@ VARIABLES: tuple[Variable, ...] = (
     Variable("recall_quality", "1", "Pearson r over uncued E cells between recall-window spike count and "
              "membership of the cued assembly", inner="assembly"),
     Variable("persistence", "1", "recall_quality in the window after the cue ends", inner="assembly"),
+    Variable("recall_score", "1", "overlap of uncued E activity with the cued assembly, normalised by coding "
+             "level (1 = perfect completion, 0 = chance), during the cue", inner="assembly"),
+    Variable("persistence_score", "1", "recall_score in the window after the cue ends", inner="assembly"),
+    Variable("recall_contrast", "1", "uncued members' mean spike count minus non-members', in non-member standard "
+             "deviations, during the cue", inner="assembly"),
+    Variable("cue_time_s", "s", "start of the assembly's cue (cue order is drawn per point)", inner="assembly"),
     Variable("completion", "1", "fraction of uncued members active in the recall window", inner="assembly"),
     Variable("spurious", "1", "fraction of non-member E cells active in the recall window", inner="assembly"),
-    Variable("cross_talk", "1", "largest recall_quality of any other assembly while this one is cued",
-             inner="assembly"),
+    Variable("cross_talk", "1", "largest recall_score of any other assembly, over cells outside this one, "
+             "while this one is cued", inner="assembly"),
     Variable("weight_correlation", "1", "Pearson r between E->E weights at a hold snapshot and at hold start",
              inner="snapshot"),
     Variable("assembly_contrast", "1", "mean within-assembly E->E weight / mean other E->E weight",
              inner="snapshot"),
+    Variable("weight_in", "g_leak", "mean E->E weight into assembly members from cells in no assembly",
+             inner="snapshot"),
+    Variable("weight_out", "g_leak", "mean E->E weight from assembly members to cells in no assembly",
+             inner="snapshot"),
+    Variable("weight_within", "g_leak", "mean E->E weight between members of a shared assembly", inner="snapshot"),
     Variable("snapshot_time_s", "s", "simulated time of each weight snapshot", inner="snapshot"),
     Variable("rate_exc_hz", "Hz", "binned excitatory population rate", inner="time_bin"),
     Variable("rate_inh_hz", "Hz", "binned inhibitory population rate", inner="time_bin"),

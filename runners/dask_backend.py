@@ -55,7 +55,7 @@ class PrepareWorker(WorkerPlugin):
     - Brian2 and the point runner are imported in the worker's main thread: Brian2 installs a
       SIGINT handler when first imported, which Python allows only in the main thread (tasks run
       in an executor thread). Workers of the local cluster have them already: they import
-      ``capsweep.runners.point`` as a Dask preload, before they register, which spares the round trip of
+      ``capsweep.runners.model`` (the Brian2 network, imported by every engine) as a Dask preload, before they register, which spares the round trip of
       a plugin that still has work to do.
     - With ``leave_fast`` (workers of capsweep's own local cluster), a worker process closed
       cleanly exits without interpreter teardown, which takes about 0.5 s with Brian2 loaded and
@@ -68,7 +68,7 @@ class PrepareWorker(WorkerPlugin):
         self.leave_fast = leave_fast
 
     def setup(self, worker: Any) -> None:
-        from . import point  # noqa: F401  (imports Brian2)
+        from . import model  # noqa: F401  (imports Brian2)
 
     def teardown(self, worker: Any) -> None:
         if self.leave_fast and worker.status == Status.closing:
@@ -121,7 +121,7 @@ def dask_client(workers: int, scheduler: str = "", dashboard: bool = False) -> I
         return
     with dask.config.set(LOCAL_CLUSTER_SETTINGS), LocalCluster(
         n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=":0" if dashboard else None,
-        silence_logs=50, preload=["capsweep.runners.point"],
+        silence_logs=50, preload=["capsweep.runners.model"],
     ) as cluster, contextlib.closing(Client(cluster)) as client:
         client.register_plugin(PrepareWorker(leave_fast=True))
         yield client

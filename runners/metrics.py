@@ -119,6 +119,37 @@ def recall_quality(counts: np.ndarray, members: np.ndarray, cued: np.ndarray) ->
     return _pearson(counts[uncued], members[uncued].astype(float))
 
 
+def recall_score(counts: np.ndarray, members: np.ndarray, cued: np.ndarray) -> float:
+    """Overlap of the uncued cells' activity with an assembly, normalised by coding level.
+
+    The overlap of Amit, Gutfreund & Sompolinsky (1985, Phys Rev Lett 55:1530) on rates,
+    ``m = sum_i (xi_i - a) r_i / (N a (1 - a) rbar_members)`` over the N cells not cued, with
+    ``xi`` the membership, ``a`` the fraction of members among them and ``rbar_members`` the
+    members' mean rate. It reduces to ``1 - rbar_others / rbar_members``: 1 = only members fire
+    (perfect completion), 0 = members fire like everyone else (chance), whatever the network size
+    or coding level. ``counts`` are spike counts of one window (rates up to a common factor).
+    NaN when members or non-members are absent among the uncued cells, or the members are silent.
+    """
+    pool = ~cued
+    xi, r = members[pool], counts[pool]
+    if not xi.any() or xi.all() or r[xi].mean() == 0:
+        return float("nan")
+    a = xi.mean()
+    return float(np.sum((xi - a) * r) / (len(r) * a * (1 - a) * r[xi].mean()))
+
+
+def rate_contrast(counts: np.ndarray, members: np.ndarray, cued: np.ndarray) -> float:
+    """Mean count of uncued members minus that of non-members, in units of the non-members' standard deviation.
+
+    NaN when either group is empty or the non-members' counts do not vary.
+    """
+    pool = ~cued
+    xi, r = members[pool], counts[pool]
+    if not xi.any() or xi.all() or r[~xi].std() == 0:
+        return float("nan")
+    return float((r[xi].mean() - r[~xi].mean()) / r[~xi].std())
+
+
 def completion(counts: np.ndarray, window_s: float, members: np.ndarray, cued: np.ndarray,
                active_hz: float) -> float:
     """Fraction of uncued members whose window rate (counts / window_s, Hz) exceeds ``active_hz``."""
@@ -132,13 +163,15 @@ def spurious(counts: np.ndarray, window_s: float, members: np.ndarray, active_hz
     return float(np.mean(counts[pool] / window_s > active_hz)) if pool.any() else float("nan")
 
 
-def cross_talk(counts: np.ndarray, memberships: np.ndarray, k: int, cued: np.ndarray) -> float:
-    """Largest recall_quality of any assembly j != k in the window where assembly k is cued.
+def cross_talk(counts: np.ndarray, memberships: np.ndarray, k: int) -> float:
+    """Largest recall score of any assembly j != k, over the cells outside assembly k, while k is cued.
 
-    ``memberships`` is a boolean (count, n_cells) matrix; ``cued`` the cued mask of assembly k.
-    NaN with a single assembly.
+    ``memberships`` is a boolean (count, n_cells) matrix. Cells of k (cued or shared with j) are
+    left out, so overlap between assemblies does not count as cross-talk. NaN with a single
+    assembly.
     """
-    others = [recall_quality(counts, memberships[j], cued) for j in range(len(memberships)) if j != k]
+    outside = memberships[k]
+    others = [recall_score(counts, memberships[j], outside) for j in range(len(memberships)) if j != k]
     return float(np.nanmax(others)) if others and not np.all(np.isnan(others)) else float("nan")
 
 
@@ -155,8 +188,27 @@ def assembly_contrast(w: np.ndarray, within: np.ndarray) -> float:
     return float(w[within].mean() / other) if other > 0 else float("nan")
 
 
-def outcome(onset_s: float, rate_before_recall_hz: float, silence_hz: float) -> str:
-    """'runaway' if an onset was found, else 'silent' if the rate (Hz) is below silence_hz, else 'stable'."""
+def outcome(onset_s: float, rate_before_recall_hz: float, rate_after_recall_hz: float, silence_hz: float) -> str:
+    """'runaway' if an onset was found, else 'silent' if the E rate (Hz) before or after recall is below silence_hz, else 'stable'.
+
+    A NaN rate (a phase the run did not reach) does not count as silent.
+    """
     if np.isfinite(onset_s):
         return "runaway"
-    return "silent" if rate_before_recall_hz < silence_hz else "stable"
+    rates = (rate_before_recall_hz, rate_after_recall_hz)
+    return "silent" if any(np.isfinite(r) and r < silence_hz for r in rates) else "stable"
+
+
+def pathway_means(w: np.ndarray, pre: np.ndarray, post: np.ndarray, members: np.ndarray) -> tuple[float, float, float]:
+    """Mean E->E weight (g_leak) into members from non-members, out of members to non-members, and within members.
+
+    ``pre``/``post`` are the synapses' cell indices, ``members`` a boolean (count, n_cells)
+    membership matrix: "within" means pre and post share an assembly, "in" a post cell in some
+    assembly with a pre cell in none, "out" the reverse. NaN for an empty pathway.
+    """
+    in_any = members.any(axis=0)
+    within = (members[:, pre] & members[:, post]).any(axis=0)
+    into = in_any[post] & ~in_any[pre]
+    out = in_any[pre] & ~in_any[post]
+    into_w, out_w, within_w = (float(w[mask].mean()) if mask.any() else float("nan") for mask in (into, out, within))
+    return into_w, out_w, within_w

@@ -216,7 +216,7 @@ def _stimulus(cfg: dict, exc: b2.NeuronGroup, memberships: np.ndarray, cued: np.
 
 
 _STEP = "timestep(t, dt)"
-_CUE_START = "(hold_end + assembly * cue_period)"
+_CUE_START = "(hold_end + cue_slot * cue_period)"
 _PHASE = f"(({_STEP} - settle_end) % imprint_cycle - assembly * imprint_slot)"
 _VARIABLE_THRESHOLD = (
     f"assembly >= 0 and ((cue_source and {_STEP} >= {_CUE_START} and {_STEP} < {_CUE_START} + cue_steps"
@@ -230,8 +230,9 @@ def _variable_inputs(cfg: dict, exc: b2.NeuronGroup, memberships: np.ndarray, cu
     """Imprint and cue input as two Poisson sources per E cell with a closed-form schedule.
 
     Source ``i < n_exc`` is the imprint input of cell ``i``, source ``n_exc + i`` its cue input;
-    ``assembly`` says which assembly's windows a source follows (-1: none). Exact for disjoint
-    assemblies (a cell follows at most one assembly); the windows are those of
+    ``assembly`` says which assembly's windows a source follows (-1: none), ``cue_slot`` when that
+    assembly is cued (its position in the point's cue order). Exact for disjoint assemblies (a
+    cell follows at most one assembly); the windows are those of
     :func:`capsweep.runners.protocol.schedule`, in integration steps.
     """
     n_exc, pr, count = len(exc), cfg["protocol"], len(memberships)
@@ -241,16 +242,20 @@ def _variable_inputs(cfg: dict, exc: b2.NeuronGroup, memberships: np.ndarray, cu
         "hold_end": sched.hold_end, "cue_period": sched.cue_period, "cue_steps": sched.cue_steps,
         "imprint_rate": pr["imprint_rate_hz"] * b2.Hz, "cue_rate": pr["cue_rate_hz"] * b2.Hz,
     }
-    eqs = "assembly : integer (constant)\ncue_source : boolean (constant)" + const.declare(values)
+    eqs = "assembly : integer (constant)\ncue_slot : integer (constant)\ncue_source : boolean (constant)"
+    eqs += const.declare(values)
     src = b2.NeuronGroup(2 * n_exc, eqs, threshold=_VARIABLE_THRESHOLD, name="stim_sources")
     const.bind(src, values)
     learned = cfg["assemblies"]["imprint"] == "learned"
     follows = np.full(2 * n_exc, -1, dtype=np.int32)
-    for k in range(count):
+    slots = np.zeros(2 * n_exc, dtype=np.int32)
+    for slot, (k, _, _) in enumerate(sched.cue_windows):
         if learned:
             follows[:n_exc][memberships[k]] = k
         follows[n_exc:][cued[k]] = k
+        slots[n_exc:][cued[k]] = slot
     const.set(src, "assembly", follows)
+    const.set(src, "cue_slot", slots)
     const.set(src, "cue_source", np.arange(2 * n_exc) >= n_exc)
     syn = b2.Synapses(src, exc, "w_stim : 1 (constant)", on_pre="g_e_post += w_stim", name="stim_synapses")
     syn.connect(i=np.arange(2 * n_exc), j=np.arange(2 * n_exc) % n_exc)
@@ -282,7 +287,7 @@ def build_network(cfg: dict, seed: int, wiring_seed: int | None = None, *,
     n_exc = net_cfg["n_exc"]
     n_inh = inhibitory_count(n_exc, net_cfg["inh_per_exc"])
     memberships, cued = draw_assemblies(cfg, wiring, rng)
-    sched = protocol.schedule(cfg)
+    sched = protocol.schedule(cfg, protocol.cue_order(cfg["assemblies"]["count"], seed))
     exc, inh = _neurons(cfg, n_exc, True, rng, const), _neurons(cfg, n_inh, False, rng, const)
     delay = net_cfg["delay_ms"] * b2.ms
     k_e, k_i = net_cfg["indegree_exc"], net_cfg["indegree_inh"]

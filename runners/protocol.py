@@ -7,14 +7,18 @@ rate table (Hz) over time and *channels*: channel ``k`` is the imprint input of 
 
 Order of the imprint phase: assemblies are presented in turn (0, 1, ..., count-1), and this
 round is repeated ``imprint_repeats`` times; each presentation is ``imprint_on_s`` of input
-followed by ``imprint_off_s`` of background. Recall: each assembly is cued in turn for
-``cue_duration_s``, followed by ``cue_gap_s`` of background.
+followed by ``imprint_off_s`` of background. Recall: each assembly is cued once for
+``cue_duration_s``, followed by ``cue_gap_s`` of background, in an order drawn per point (so that
+assembly index is not confounded with test time while plasticity acts). A background-only tail
+follows the last cue, long enough (``detection.runaway_hold_s + detection.smoothing_s``) for a
+runaway set off by that cue to be established before the run ends.
 """
 
 from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from collections.abc import Sequence
 from functools import reduce
 
 import numpy as np
@@ -30,12 +34,13 @@ class Schedule:
     imprint_end: int
     hold_end: int
     snapshots: tuple[int, ...]
-    cue_windows: tuple[tuple[int, int, int], ...]  # (assembly, start, stop)
+    cue_windows: tuple[tuple[int, int, int], ...]  # (assembly, start, stop), in the order cued
     end: int
     imprint_on: int = 0  # steps of input per presentation (learned)
     imprint_slot: int = 0  # steps from one presentation's start to the next (on + off)
     cue_steps: int = 0  # steps of one cue
     cue_period: int = 0  # steps from one cue's start to the next (cue + gap)
+    baseline_start: int = 0  # first step of the baseline window (which ends at settle_end)
 
     def seconds(self, step: int) -> float:
         """Simulated time (s) of a step index."""
@@ -46,8 +51,12 @@ def _steps(seconds: float, dt_s: float) -> int:
     return int(round(seconds / dt_s))
 
 
-def schedule(cfg: dict) -> Schedule:
-    """Phase boundaries of the point described by ``cfg`` (no early abort)."""
+def schedule(cfg: dict, cue_order: Sequence[int] | None = None) -> Schedule:
+    """Phase boundaries of the point described by ``cfg`` (no early abort).
+
+    ``cue_order`` lists the assemblies in the order they are cued (default 0, 1, ...); see
+    :func:`cue_order`. The end does not depend on it.
+    """
     dt = cfg["network"]["dt_ms"] * 1e-3
     pr, count = cfg["protocol"], cfg["assemblies"]["count"]
     t = _steps(pr["settle_s"], dt)
@@ -64,10 +73,23 @@ def schedule(cfg: dict) -> Schedule:
     n_snap = pr["snapshots"]
     snaps = tuple(imprint_end + round(i * (hold_end - imprint_end) / (n_snap - 1)) for i in range(n_snap))
     cue, gap = _steps(pr["cue_duration_s"], dt), _steps(pr["cue_gap_s"], dt)
-    cues = tuple((k, hold_end + k * (cue + gap), hold_end + k * (cue + gap) + cue) for k in range(count))
-    end = hold_end + count * (cue + gap)
+    order = range(count) if cue_order is None else cue_order
+    cues = tuple((k, hold_end + slot * (cue + gap), hold_end + slot * (cue + gap) + cue) for slot, k in enumerate(order))
+    det = cfg["detection"]
+    tail = max(_steps(det["runaway_hold_s"] + det["smoothing_s"], dt) - gap, 0) if count else 0
+    end = hold_end + count * (cue + gap) + tail
     return Schedule(dt, settle_end, tuple(imprint), imprint_end, hold_end, snaps, cues, end,
-                    on, on + off, cue, cue + gap)
+                    on, on + off, cue, cue + gap, _steps(det["baseline_start_s"], dt))
+
+
+def cue_order(count: int, seed: int) -> list[int]:
+    """Order (assembly indices) in which a point cues its ``count`` assemblies: a permutation drawn from ``seed``."""
+    return [int(k) for k in np.random.default_rng([seed, 2]).permutation(count)]
+
+
+def recall_end(sched: Schedule) -> int:
+    """Step at which the last cue's gap ends and the background-only tail begins."""
+    return sched.hold_end + len(sched.cue_windows) * sched.cue_period
 
 
 def total_duration_s(cfg: dict) -> float:

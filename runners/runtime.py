@@ -11,9 +11,8 @@ from typing import Any
 import brian2 as b2
 import numpy as np
 
-from . import metrics
 from .model import Handles, build_network
-from .scoring import Recording, onset_in_schedule
+from .scoring import Recording, baseline_rate, onset_in_schedule
 
 
 CHECK_INTERVAL_S = 0.1
@@ -49,7 +48,7 @@ class RunawayWatch:
             return
         n_exc = len(self.handles.exc)
         if self.baseline is None:
-            self.baseline = metrics.mean_rate(self.handles.mon_exc.t_[:], n_exc, 0.0, sched.seconds(sched.settle_end))
+            self.baseline = baseline_rate(np.asarray(self.handles.mon_exc.t_[:]), n_exc, sched)
         rate = np.asarray(self.counts, dtype=float) / (n_exc * self.bin_s)
         self.onset = onset_in_schedule(rate, self.baseline, self.det, sched, self.bin_s)
         if np.isfinite(self.onset):

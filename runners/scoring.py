@@ -38,66 +38,95 @@ def onset_in_schedule(rate: np.ndarray, baseline: float, det: dict, sched: proto
                                  protocol.cue_bins(sched, bin_s, len(rate)), sched.seconds(sched.settle_end))
 
 
+def baseline_rate(times: np.ndarray, n_exc: int, sched: protocol.Schedule) -> float:
+    """Baseline E rate (Hz): mean over the window from ``detection.baseline_start_s`` to the end of settle."""
+    return metrics.mean_rate(times, n_exc, sched.seconds(sched.baseline_start), sched.seconds(sched.settle_end))
+
+
+PER_ASSEMBLY = ("recall_quality", "persistence", "recall_score", "persistence_score", "recall_contrast",
+                "completion", "spurious", "cross_talk", "cue_time_s")
+"""Result variables with one entry per assembly (NaN where the run ended before that assembly's cue)."""
+
+
 def recall_metrics(cfg: dict, h: Handles, times: np.ndarray, cells: np.ndarray, baseline: float,
-                    recalled: bool) -> dict[str, np.ndarray]:
+                   recalled: bool) -> dict[str, np.ndarray]:
+    """Per-assembly recall scores of each cue window (see the metric definitions); NaN unless ``recalled``."""
     count, pr, det = len(h.memberships), cfg["protocol"], cfg["detection"]
-    names = ("recall_quality", "persistence", "completion", "spurious", "cross_talk")
-    out = {n: np.full(count, np.nan) for n in names}
+    out = {n: np.full(count, np.nan) for n in PER_ASSEMBLY}
     if not recalled:
         return out
     n_exc = len(h.exc)
     active = metrics.active_threshold(det, baseline)
     for k, a, b in h.schedule.cue_windows:
         t0, t1 = h.schedule.seconds(a) + pr["cue_skip_s"], h.schedule.seconds(b)
-        counts = metrics.window_counts(times, cells, n_exc, t0, t1)
+        during = metrics.window_counts(times, cells, n_exc, t0, t1)
         after = metrics.window_counts(times, cells, n_exc, t1, t1 + pr["persistence_window_s"])
         mem, cued = h.memberships[k], h.cued[k]
-        out["recall_quality"][k] = metrics.recall_quality(counts, mem, cued)
+        out["recall_quality"][k] = metrics.recall_quality(during, mem, cued)
         out["persistence"][k] = metrics.recall_quality(after, mem, cued)
-        out["completion"][k] = metrics.completion(counts, t1 - t0, mem, cued, active)
-        out["spurious"][k] = metrics.spurious(counts, t1 - t0, mem, active)
-        out["cross_talk"][k] = metrics.cross_talk(counts, h.memberships, k, cued)
+        out["recall_score"][k] = metrics.recall_score(during, mem, cued)
+        out["persistence_score"][k] = metrics.recall_score(after, mem, cued)
+        out["recall_contrast"][k] = metrics.rate_contrast(during, mem, cued)
+        out["completion"][k] = metrics.completion(during, t1 - t0, mem, cued, active)
+        out["spurious"][k] = metrics.spurious(during, t1 - t0, mem, active)
+        out["cross_talk"][k] = metrics.cross_talk(during, h.memberships, k)
+        out["cue_time_s"][k] = h.schedule.seconds(a)
+    return out
+
+
+def recalled_count(recall: dict[str, np.ndarray], det: dict) -> int:
+    """Assemblies whose score in ``detection.recall_mode`` reaches ``detection.recall_threshold``."""
+    score = recall["recall_score" if det["recall_mode"] == "cued" else "persistence_score"]
+    return int(np.sum(score >= det["recall_threshold"]))
+
+
+def _drift(h: Handles, snaps: list[np.ndarray], n_snap: int) -> dict[str, np.ndarray]:
+    """Per-snapshot weight statistics: correlation with hold start, assembly contrast, pathway means."""
+    names = ("weight_correlation", "assembly_contrast", "weight_in", "weight_out", "weight_within")
+    out = {n: np.full(n_snap, np.nan) for n in names}
+    pre, post = h.wiring["ee"]
+    for s, w in enumerate(snaps):
+        out["weight_correlation"][s] = metrics.weight_correlation(w, snaps[0])
+        out["assembly_contrast"][s] = metrics.assembly_contrast(w, h.within)
+        out["weight_in"][s], out["weight_out"][s], out["weight_within"][s] = \
+            metrics.pathway_means(w, pre, post, h.memberships)
     return out
 
 
 def score(cfg: dict, seed: int, engine: str, h: Handles, rec: Recording, start: float) -> dict[str, object]:
     """Metrics of a finished simulation; ``start`` is its ``time.perf_counter()`` at the beginning."""
-    sim_time, weights, snaps = rec.sim_time_s, rec.weights, rec.snaps
+    sim_time, weights = rec.sim_time_s, rec.weights
     sched, det = h.schedule, cfg["detection"]
     bin_s, n_exc = det["trace_bin_ms"] * 1e-3, len(h.exc)
     t_e, i_e, t_i = rec.t_exc, rec.i_exc, rec.t_inh
     settle_end, hold_end = sched.seconds(sched.settle_end), sched.seconds(sched.hold_end)
-    baseline = metrics.mean_rate(t_e, n_exc, 0.0, settle_end)
+    baseline = baseline_rate(t_e, n_exc, sched)
     rate_exc = metrics.binned_rate(t_e, n_exc, bin_s, sim_time)
     onset = onset_in_schedule(rate_exc, baseline, det, sched, bin_s)
     hold_end_rate = metrics.mean_rate(t_e, n_exc, max(hold_end - det["smoothing_s"], 0.0), hold_end) \
         if sim_time >= hold_end else float("nan")
-    recalled = sim_time >= sched.seconds(sched.end) - 0.5 * sched.dt_s
-    recall = recall_metrics(cfg, h, t_e, i_e, baseline, recalled)
-
-    n_snap = len(sched.snapshots)
-    w_corr, contrast = np.full(n_snap, np.nan), np.full(n_snap, np.nan)
-    for s, w in enumerate(snaps):
-        w_corr[s] = metrics.weight_correlation(w, snaps[0])
-        contrast[s] = metrics.assembly_contrast(w, h.within)
+    end = sched.seconds(sched.end)
+    tail_rate = metrics.mean_rate(t_e, n_exc, sched.seconds(protocol.recall_end(sched)), end) \
+        if sim_time >= end - 0.5 * sched.dt_s else float("nan")
+    recall = recall_metrics(cfg, h, t_e, i_e, baseline, np.isfinite(tail_rate))
     learned = cfg["assemblies"]["imprint"] == "learned" and "imprint" in weights
     return {
-        "outcome": metrics.outcome(onset, hold_end_rate, det["silence_hz"]),
+        "outcome": metrics.outcome(onset, hold_end_rate, tail_rate, det["silence_hz"]),
         "engine": engine,
         "seed": int(seed),
         "runaway_onset_s": onset,
-        "recalled_count": int(np.sum(recall["recall_quality"] >= det["recall_threshold"])),
+        "recalled_count": recalled_count(recall, det),
         "rate_exc_baseline_hz": baseline,
-        "rate_inh_baseline_hz": metrics.mean_rate(t_i, len(h.inh), 0.0, settle_end),
-        "isi_cv_exc": metrics.isi_cv(t_e, i_e, 0.0, settle_end),
+        "rate_inh_baseline_hz": metrics.mean_rate(t_i, len(h.inh), sched.seconds(sched.baseline_start), settle_end),
+        "isi_cv_exc": metrics.isi_cv(t_e, i_e, sched.seconds(sched.baseline_start), settle_end),
         "rate_exc_hold_end_hz": hold_end_rate,
+        "rate_exc_tail_hz": tail_rate,
         "imprint_contrast": metrics.assembly_contrast(weights["imprint"], h.within) if learned else float("nan"),
         "wall_time_s": time.perf_counter() - start,
         "simulated_time_s": sim_time,
         "n_synapses": int(h.n_synapses),
         **recall,
-        "weight_correlation": w_corr,
-        "assembly_contrast": contrast,
+        **_drift(h, rec.snaps, len(sched.snapshots)),
         "snapshot_time_s": np.array([sched.seconds(s) for s in sched.snapshots], dtype=float),
         "rate_exc_hz": rate_exc,
         "rate_inh_hz": metrics.binned_rate(t_i, len(h.inh), bin_s, sim_time),

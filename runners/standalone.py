@@ -59,6 +59,7 @@ flag : integer (shared)
 stop_step : integer (shared)
 end_step : integer (shared, constant)
 settle_end : integer (shared, constant)
+baseline_start : integer (shared, constant)
 hold_end : integer (shared, constant)
 cue_period : integer (shared, constant)
 cue_steps : integer (shared, constant)
@@ -67,7 +68,7 @@ bin_steps : integer (shared, constant)
 smooth_bins : integer (shared, constant)
 hold_bins : integer (shared, constant)
 abort : integer (shared, constant)
-settle_s : 1 (shared, constant)
+baseline_s : 1 (shared, constant)
 bin_s : 1 (shared, constant)
 factor : 1 (shared, constant)
 floor_hz : 1 (shared, constant)
@@ -83,6 +84,7 @@ static std::vector<char> _capsweep_keep;
 static size_t _capsweep_last = 0;
 static long _capsweep_run_start = -1;
 static double _capsweep_threshold = -1.0;
+static size_t _capsweep_base_count = 0;
 
 static bool _capsweep_excluded(long b) {
     using namespace brian;
@@ -115,8 +117,9 @@ int capsweep_watch(int64_t step) {
     using namespace brian;
     SNAPSHOTS
     const size_t total = SPIKES.size();
+    if (step == W(baseline_start)) _capsweep_base_count = total;
     if (step == W(settle_end)) {
-        const double base = W(settle_end) > 0 ? total / (N_EXC * W(settle_s)) : NAN;
+        const double base = W(baseline_s) > 0 ? (total - _capsweep_base_count) / (N_EXC * W(baseline_s)) : NAN;
         _capsweep_threshold = std::isfinite(base) ? std::max(W(factor) * base, W(floor_hz)) : W(floor_hz);
     }
     bool runaway = false;
@@ -175,10 +178,11 @@ def _watch_values(cfg: dict, seed: int, sched: protocol.Schedule) -> dict[str, A
     det, bin_s = cfg["detection"], cfg["detection"]["trace_bin_ms"] * 1e-3
     return {
         "end_step": sched.end, "settle_end": sched.settle_end, "hold_end": sched.hold_end,
+        "baseline_start": sched.baseline_start,
         "cue_period": sched.cue_period, "cue_steps": sched.cue_steps, "cue_count": len(sched.cue_windows),
         "bin_steps": int(round(bin_s / sched.dt_s)), "smooth_bins": max(int(round(det["smoothing_s"] / bin_s)), 1),
         "hold_bins": int(round(det["runaway_hold_s"] / bin_s)), "abort": int(cfg["execution"]["abort_on_runaway"]),
-        "settle_s": sched.seconds(sched.settle_end), "bin_s": bin_s, "factor": det["runaway_factor"],
+        "baseline_s": sched.seconds(sched.settle_end - sched.baseline_start), "bin_s": bin_s, "factor": det["runaway_factor"],
         "floor_hz": det["runaway_floor_hz"], "rng_seed": float(seed % 2**53),
         "stop_step": -1,  # written by the watch; passing it makes Brian2 read it back from the run
     }

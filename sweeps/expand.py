@@ -94,6 +94,9 @@ _RULES: tuple[tuple[Callable[[dict[str, Any]], bool], str], ...] = (
      "<= network.n_exc ({network.n_exc}); use fewer or smaller assemblies, or assemblies.overlap = 'random'"),
     (lambda f: f["network.v_reset_mv"] < f["network.v_threshold_mv"],
      "network.v_reset_mv ({network.v_reset_mv}) must be below network.v_threshold_mv ({network.v_threshold_mv})"),
+    (lambda f: f["detection.baseline_start_s"] < f["protocol.settle_s"] or f["protocol.settle_s"] == 0,
+     "detection.baseline_start_s ({detection.baseline_start_s}) must be shorter than protocol.settle_s "
+     "({protocol.settle_s}): the baseline window runs from the one to the other"),
     (lambda f: f["protocol.cue_skip_s"] < f["protocol.cue_duration_s"],
      "protocol.cue_skip_s ({protocol.cue_skip_s}) must be shorter than protocol.cue_duration_s "
      "({protocol.cue_duration_s})"),

@@ -42,17 +42,82 @@ def test_completion_and_spurious_count_cells_above_the_active_rate() -> None:
     assert metrics.spurious(counts, 0.5, members, 3.0) == pytest.approx(1 / 5)
 
 
-def test_cross_talk_is_best_other_assembly_and_nan_for_one() -> None:
+def test_cross_talk_is_best_other_score_outside_the_cued_assembly_and_nan_for_one() -> None:
     counts, members, cued = _counts_example()
     other_a = np.zeros(10, dtype=bool)
-    other_a[[4, 8]] = True
+    other_a[[4, 8]] = True  # cell 4 is shared with the cued assembly: left out
     other_b = np.zeros(10, dtype=bool)
     other_b[[6, 7, 9]] = True
     memberships = np.stack([members, other_a, other_b])
-    r_a = pearsonr(counts[2:], other_a[2:].astype(float))[0]
-    r_b = pearsonr(counts[2:], other_b[2:].astype(float))[0]
-    assert metrics.cross_talk(counts, memberships, 0, cued) == pytest.approx(max(r_a, r_b))
-    assert np.isnan(metrics.cross_talk(counts, members[None, :], 0, cued))
+    outside = ~members  # cells 5..9
+    assert metrics.cross_talk(counts, memberships, 0) == pytest.approx(
+        max(_overlap(counts[outside], other_a[outside]), _overlap(counts[outside], other_b[outside])))
+    assert np.isnan(metrics.cross_talk(counts, members[None, :], 0))
+
+
+def _overlap(rates: np.ndarray, xi: np.ndarray) -> float:
+    """Amit, Gutfreund & Sompolinsky 1985 (Phys Rev Lett 55:1530) overlap on rates, written out here:
+    m = sum (xi - a) r / (N a (1 - a) mean(r | xi)), a = mean(xi)."""
+    a = xi.mean()
+    return float(np.sum((xi - a) * rates) / (len(rates) * a * (1 - a) * rates[xi].mean()))
+
+
+def test_recall_score_is_the_normalised_overlap_over_uncued_cells() -> None:
+    counts, members, cued = _counts_example()
+    assert metrics.recall_score(counts, members, cued) == pytest.approx(_overlap(counts[2:], members[2:]), abs=1e-12)
+    # [derived] the overlap reduces to 1 - mean(non-members) / mean(members): 1 - (3/5) / (7/3)
+    assert metrics.recall_score(counts, members, cued) == pytest.approx(1 - (3 / 5) / (7 / 3))
+    assert metrics.recall_score(members * 6.0, members, cued) == pytest.approx(1.0)  # perfect completion
+    assert metrics.recall_score(np.full(10, 4.0), members, cued) == pytest.approx(0.0)  # chance
+
+
+def _fixed_rate_counts(n_exc: int, window_s: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Expected counts of uncued members at 20 Hz, cued members at 73 Hz, others at 2.7 Hz; 60 members, 30 cued."""
+    members = np.zeros(n_exc, dtype=bool)
+    members[:60] = True
+    cued = np.zeros(n_exc, dtype=bool)
+    cued[:30] = True
+    counts = np.where(members, 20.0, 2.7) * window_s
+    counts[cued] = 73.0 * window_s
+    return counts, members, cued
+
+
+@pytest.mark.parametrize("n_exc", [300, 1000, 4000])
+def test_recall_score_does_not_depend_on_network_size(n_exc: int) -> None:
+    """Same per-cell rates at every size (uncued members 20 Hz, others 2.7 Hz, 0.18 s window): the
+    score is 1 - 2.7 / 20 [derived from the overlap formula above] at each size, exactly for the
+    expected counts and within Poisson noise for drawn ones, while Pearson's r with membership
+    falls with the coding level (that is why success uses the score)."""
+    counts, members, cued = _fixed_rate_counts(n_exc, 0.18)
+    assert metrics.recall_score(counts, members, cued) == pytest.approx(1 - 2.7 / 20, abs=1e-12)
+    rng = np.random.default_rng(n_exc)
+
+    def noisy(n: int) -> tuple[float, float]:
+        c, m, q = _fixed_rate_counts(n, 0.18)
+        draws = [rng.poisson(c).astype(float) for _ in range(200)]
+        return (float(np.mean([metrics.recall_score(d, m, q) for d in draws])),
+                float(np.mean([pearsonr(d[~q], m[~q].astype(float))[0] for d in draws])))
+
+    score, pearson = noisy(n_exc)
+    assert score == pytest.approx(1 - 2.7 / 20, abs=0.02)
+    if n_exc > 300:
+        assert pearson < noisy(300)[1] - 0.1
+
+
+def test_rate_contrast_in_non_member_standard_deviations() -> None:
+    counts, members, cued = _counts_example()
+    others = counts[5:]  # 0, 1, 0, 2, 0
+    expected = (np.mean(counts[2:5]) - others.mean()) / others.std()
+    assert metrics.rate_contrast(counts, members, cued) == pytest.approx(expected)
+
+
+def test_pathway_means_split_in_out_and_within() -> None:
+    members = np.array([[True, True, False, False]])  # cells 0, 1 in the assembly; 2, 3 outside
+    pre = np.array([0, 1, 2, 3, 0, 2])
+    post = np.array([1, 0, 0, 1, 2, 3])
+    w = np.array([0.3, 0.5, 0.06, 0.04, 0.02, 0.05])
+    into, out, within = metrics.pathway_means(w, pre, post, members)
+    assert (into, out, within) == pytest.approx((0.05, 0.02, 0.4))  # hand-computed
 
 
 def test_window_counts_and_mean_rate_use_half_open_windows() -> None:
@@ -130,6 +195,9 @@ def test_weight_correlation_and_assembly_contrast() -> None:
 
 
 def test_outcome_labels() -> None:
-    assert metrics.outcome(7.5, 20.0, 0.1) == "runaway"
-    assert metrics.outcome(float("nan"), 0.05, 0.1) == "silent"
-    assert metrics.outcome(float("nan"), 3.0, 0.1) == "stable"
+    nan = float("nan")
+    assert metrics.outcome(7.5, 20.0, 20.0, 0.1) == "runaway"
+    assert metrics.outcome(nan, 0.05, 3.0, 0.1) == "silent"
+    assert metrics.outcome(nan, 3.0, 0.05, 0.1) == "silent"  # fell silent during recall
+    assert metrics.outcome(nan, 3.0, 3.0, 0.1) == "stable"
+    assert metrics.outcome(nan, 3.0, nan, 0.1) == "stable"  # the tail was not reached: not silent
