@@ -54,8 +54,6 @@ def compiled_form(cfg: dict) -> dict:
 
 def unsupported(cfg: dict) -> str | None:
     """Why this point cannot run in standalone (it then falls back to cython), or None."""
-    if cfg["assemblies"]["overlap"] == "random":
-        return "assemblies.overlap = 'random' (a cell would follow several stimulus schedules)"
     bin_steps = cfg["detection"]["trace_bin_ms"] / cfg["network"]["dt_ms"]
     if abs(bin_steps - round(bin_steps)) > 1e-9:
         return "detection.trace_bin_ms is not a whole number of network.dt_ms steps"

@@ -12,7 +12,8 @@ come from a 2-D TimedArray of rates over (time, channel) that drives one Poisson
 With ``standalone=True`` (C++ standalone with build reuse, see :mod:`capsweep.runners.standalone`) every
 constant becomes a ``(shared, constant)`` variable and every array value a setting that the
 caller passes per run; the background drive is a per-step Poisson count with a variable mean
-and the stimulus a closed-form per-cell schedule of variables (see :func:`_variable_inputs`).
+and the stimulus per-step kicks whose timing and targets a C++ function reads per run (see
+:func:`_variable_inputs`).
 
 Neuron model (conductances in units of the leak conductance, dimensionless):
 ``tau_m dv/dt = (E_L - v) + g_e (E_exc - v) + g_i (E_inh - v) + g_a (E_inh - v)``; the
@@ -162,6 +163,8 @@ def _neurons(cfg: dict, n: int, adaptive: bool, rng: np.random.Generator, const:
     refractory = (net["refractory_exc_ms"] if adaptive else net["refractory_inh_ms"]) * b2.ms
     if const.standalone:
         values.update(_drive_constants(cfg, adaptive), refractory_period=refractory)
+        if adaptive:
+            values.update(_stimulus_constants(cfg))
     eqs = _NEURON.format(adapt_term=" + g_a * (e_inh - v)" if adaptive else "",
                          adapt_eq="dg_a/dt = -g_a / tau_adapt : 1" if adaptive else "") + const.declare(values)
     group = b2.NeuronGroup(n, eqs, threshold="v > v_threshold",
@@ -215,52 +218,33 @@ def _stimulus(cfg: dict, exc: b2.NeuronGroup, memberships: np.ndarray, cued: np.
     return [src, syn]
 
 
-_STEP = "timestep(t, dt)"
-_CUE_START = "(hold_end + cue_slot * cue_period)"
-_PHASE = f"(({_STEP} - settle_end) % imprint_cycle - assembly * imprint_slot)"
-_VARIABLE_THRESHOLD = (
-    f"assembly >= 0 and ((cue_source and {_STEP} >= {_CUE_START} and {_STEP} < {_CUE_START} + cue_steps"
-    " and rand() < cue_rate * dt) or (not cue_source and"
-    f" {_STEP} >= settle_end and {_STEP} < imprint_end and {_PHASE} >= 0 and {_PHASE} < imprint_on"
-    " and rand() < imprint_rate * dt))")
+STIMULUS_FUNCTION = "capsweep_stimulus"
+"""Name of the standalone engine's C++ function ``(cell, step, kind) -> 0 or 1``: is ``cell`` in the
+assembly that the imprint (kind 0) or cue (kind 1) input drives at ``step``? See
+:mod:`capsweep.runners.standalone`, which defines it from a per-run file of memberships."""
 
 
-def _variable_inputs(cfg: dict, exc: b2.NeuronGroup, memberships: np.ndarray, cued: np.ndarray,
-                     sched: protocol.Schedule, const: _Constants) -> list[b2.BrianObject]:
-    """Imprint and cue input as two Poisson sources per E cell with a closed-form schedule.
+def _stimulus_constants(cfg: dict) -> dict[str, Any]:
+    """Rates and weights of the imprint and cue input (standalone: shared constants of the E group)."""
+    pr = cfg["protocol"]
+    return {"imprint_rate": pr["imprint_rate_hz"] * b2.Hz, "cue_rate": pr["cue_rate_hz"] * b2.Hz,
+            "imprint_weight": pr["imprint_weight"], "cue_weight": pr["cue_weight"]}
 
-    Source ``i < n_exc`` is the imprint input of cell ``i``, source ``n_exc + i`` its cue input;
-    ``assembly`` says which assembly's windows a source follows (-1: none), ``cue_slot`` when that
-    assembly is cued (its position in the point's cue order). Exact for disjoint assemblies (a
-    cell follows at most one assembly); the windows are those of
-    :func:`capsweep.runners.protocol.schedule`, in integration steps.
+
+def _variable_inputs(exc: b2.NeuronGroup) -> None:
+    """Imprint and cue input of the standalone engine: per-step Bernoulli kicks onto each E cell.
+
+    In each integration step a cell driven by the current imprint (or cue) window receives an
+    input of ``imprint_weight`` (``cue_weight``) with probability ``rate * dt``, as from one
+    Poisson source per cell and channel in the runtime engines. Which cells are driven when
+    comes from :data:`STIMULUS_FUNCTION`, so assemblies may share cells (a cell follows every
+    assembly it belongs to) and membership changes per run without recompiling.
     """
-    n_exc, pr, count = len(exc), cfg["protocol"], len(memberships)
-    values = {
-        "settle_end": sched.settle_end, "imprint_end": sched.imprint_end, "imprint_on": sched.imprint_on,
-        "imprint_slot": sched.imprint_slot, "imprint_cycle": max(count * sched.imprint_slot, 1),
-        "hold_end": sched.hold_end, "cue_period": sched.cue_period, "cue_steps": sched.cue_steps,
-        "imprint_rate": pr["imprint_rate_hz"] * b2.Hz, "cue_rate": pr["cue_rate_hz"] * b2.Hz,
-    }
-    eqs = "assembly : integer (constant)\ncue_slot : integer (constant)\ncue_source : boolean (constant)"
-    eqs += const.declare(values)
-    src = b2.NeuronGroup(2 * n_exc, eqs, threshold=_VARIABLE_THRESHOLD, name="stim_sources")
-    const.bind(src, values)
-    learned = cfg["assemblies"]["imprint"] == "learned"
-    follows = np.full(2 * n_exc, -1, dtype=np.int32)
-    slots = np.zeros(2 * n_exc, dtype=np.int32)
-    for slot, (k, _, _) in enumerate(sched.cue_windows):
-        if learned:
-            follows[:n_exc][memberships[k]] = k
-        follows[n_exc:][cued[k]] = k
-        slots[n_exc:][cued[k]] = slot
-    const.set(src, "assembly", follows)
-    const.set(src, "cue_slot", slots)
-    const.set(src, "cue_source", np.arange(2 * n_exc) >= n_exc)
-    syn = b2.Synapses(src, exc, "w_stim : 1 (constant)", on_pre="g_e_post += w_stim", name="stim_synapses")
-    syn.connect(i=np.arange(2 * n_exc), j=np.arange(2 * n_exc) % n_exc)
-    const.set(syn, "w_stim", np.repeat([pr["imprint_weight"], pr["cue_weight"]], n_exc))
-    return [src, syn]
+    exc.run_regularly(
+        "\n".join(f"g_e += {kind}_weight * int(rand() < {kind}_rate * dt * "
+                  f"{STIMULUS_FUNCTION}(i, timestep(t, dt), {channel}))"
+                  for channel, kind in enumerate(("imprint", "cue"))),
+        when="synapses", order=1, name="exc_stimulus")
 
 
 SNAPSHOT_VARIABLE = "w_snap{}"
@@ -319,7 +303,7 @@ def build_network(cfg: dict, seed: int, wiring_seed: int | None = None, *,
 
     objects: list[b2.BrianObject] = [exc, inh, s_ee, s_ie, s_ei, s_ii]
     if standalone:
-        objects += _variable_inputs(cfg, exc, memberships, cued, sched, const)
+        _variable_inputs(exc)
     else:
         if net_cfg["drive_inputs"] > 0:
             for group, rate in ((exc, net_cfg["drive_rate_exc_hz"]), (inh, net_cfg["drive_rate_inh_hz"])):

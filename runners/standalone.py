@@ -46,7 +46,7 @@ import numpy as np
 
 from . import protocol
 from .builds import build_key, build_root, compiled_form, locked
-from .model import SNAPSHOT_VARIABLE, Handles, build_network
+from .model import SNAPSHOT_VARIABLE, STIMULUS_FUNCTION, Handles, build_network
 from .scoring import Recording
 
 MAX_DURATION_S = 1e7
@@ -135,6 +135,99 @@ int capsweep_watch(int64_t step) {
 """
 
 
+_STIMULUS_CODE = """
+#include <fstream>
+#include <vector>
+#include <cstdint>
+static bool _capsweep_stim_loaded = false;
+static int64_t _capsweep_stim_head[STIM_HEADER];
+static std::vector<int64_t> _capsweep_stim_order;
+static std::vector<char> _capsweep_stim_members[2];
+static int64_t _capsweep_stim_step[2] = {-1, -1};
+static int64_t _capsweep_stim_active[2] = {-1, -1};
+
+static void _capsweep_stim_load() {
+    std::ifstream file("STIM_FILE", std::ios::binary);
+    file.read((char*)_capsweep_stim_head, sizeof(_capsweep_stim_head));
+    const int64_t n = _capsweep_stim_head[0], count = _capsweep_stim_head[1];
+    _capsweep_stim_order.resize(count);
+    file.read((char*)_capsweep_stim_order.data(), count * sizeof(int64_t));
+    for (int kind = 0; kind < 2; kind++) {
+        _capsweep_stim_members[kind].resize(count * n);
+        file.read(_capsweep_stim_members[kind].data(), count * n);
+    }
+    _capsweep_stim_loaded = true;
+}
+
+// Assembly driven at this step by the imprint (kind 0) or cue (kind 1) input, or -1.
+static int64_t _capsweep_stim_assembly(int64_t step, int kind) {
+    const int64_t* h = _capsweep_stim_head;
+    const int64_t count = h[1];
+    if (count == 0) return -1;
+    if (kind == 0) {
+        if (!h[2] || step < h[3] || step >= h[4]) return -1;
+        const int64_t phase = (step - h[3]) % (count * h[6]);
+        const int64_t k = phase / h[6];
+        return phase - k * h[6] < h[5] ? k : -1;
+    }
+    if (step < h[7]) return -1;
+    const int64_t slot = (step - h[7]) / h[8];
+    return (slot < count && step - h[7] - slot * h[8] < h[9]) ? _capsweep_stim_order[slot] : -1;
+}
+
+double STIM_NAME(int32_t cell, int64_t step, int32_t kind) {
+    if (!_capsweep_stim_loaded) _capsweep_stim_load();
+    if (_capsweep_stim_step[kind] != step) {
+        _capsweep_stim_step[kind] = step;
+        _capsweep_stim_active[kind] = _capsweep_stim_assembly(step, kind);
+    }
+    const int64_t k = _capsweep_stim_active[kind];
+    return k < 0 ? 0.0 : (double)_capsweep_stim_members[kind][k * _capsweep_stim_head[0] + cell];
+}
+"""
+STIMULUS_FILE = "capsweep_stimulus.bin"
+"""Per-run file of the stimulus function, in the run directory (the binary's working directory)."""
+
+
+def _stimulus_function() -> b2.Function:
+    """The C++ stimulus function named by :data:`capsweep.runners.model.STIMULUS_FUNCTION`.
+
+    It reads :data:`STIMULUS_FILE` on its first call (see :func:`_stimulus_file` for the layout)
+    and answers, per cell and step, whether the imprint or cue window open at that step drives
+    the cell. The open window is computed once per step from the schedule in closed form.
+    """
+    code = (_STIMULUS_CODE.replace("STIM_HEADER", str(len(_STIMULUS_HEADER))).replace("STIM_FILE", STIMULUS_FILE)
+            .replace("STIM_NAME", STIMULUS_FUNCTION))
+    fn = b2.Function(lambda cell, step, kind: 0.0, arg_units=[1, 1, 1], return_unit=1,
+                     arg_types=["integer", "integer", "integer"], return_type="float")
+    fn.implementations.add_implementation("cpp", code, name=STIMULUS_FUNCTION)
+    return fn
+
+
+_STIMULUS_HEADER = ("n_exc", "count", "learned", "settle_end", "imprint_end", "imprint_on", "imprint_slot",
+                    "hold_end", "cue_period", "cue_steps")
+"""Leading int64 values of the stimulus file, in this order (steps of the point's schedule)."""
+
+
+def _stimulus_file(path: Path, handles: Handles, learned: bool) -> None:
+    """Write the stimulus function's input: header, cue order, imprint members, cued members.
+
+    Layout (little-endian): int64 header (:data:`_STIMULUS_HEADER`); int64 assembly per cue slot;
+    uint8 membership matrices (count x n_exc) of the imprint input (members; zeros unless learned)
+    and of the cue input (cued members).
+    """
+    sched, members, cued = handles.schedule, handles.memberships, handles.cued
+    count, n_exc = members.shape
+    values = {"n_exc": n_exc, "count": count, "learned": int(learned), "settle_end": sched.settle_end,
+              "imprint_end": sched.imprint_end, "imprint_on": sched.imprint_on, "imprint_slot": sched.imprint_slot,
+              "hold_end": sched.hold_end, "cue_period": sched.cue_period, "cue_steps": sched.cue_steps}
+    with open(path, "wb") as out:
+        np.array([values[name] for name in _STIMULUS_HEADER], dtype="<i8").tofile(out)
+        np.array([k for k, _, _ in sched.cue_windows], dtype="<i8").tofile(out)
+        np.asarray(members if learned else np.zeros_like(members), dtype=np.uint8).tofile(out)
+        np.asarray(cued, dtype=np.uint8).tofile(out)
+
+
 @dataclass
 class _Build:
     """A compiled structure and the live Brian2 objects that address its variables."""
@@ -206,7 +299,7 @@ def _compile(cfg: dict, seed: int, wiring_seed: int | None, key: str) -> _Build:
     network, ns, handles = build_network(cfg, seed, wiring_seed, standalone=True)
     watch = b2.NeuronGroup(1, _WATCH_EQUATIONS, name="watch")
     snapshots = b2.NeuronGroup(len(handles.schedule.snapshots) + 1, "step : integer (constant)", name="snapshots")
-    ns = {**ns, "capsweep_watch": _watch_function(handles, watch, snapshots)}
+    ns = {**ns, "capsweep_watch": _watch_function(handles, watch, snapshots), STIMULUS_FUNCTION: _stimulus_function()}
     watch.run_regularly("flag = capsweep_watch(timestep(t, dt))", when="start", name="watch_tick")
     network.add(watch, snapshots)
     device.apply_run_args()
@@ -239,19 +332,20 @@ def _point_values(cfg: dict, seed: int, wiring_seed: int | None) -> Handles:
 
 
 @contextlib.contextmanager
-def _run_directory(build: _Build, wiring: dict[str, tuple[np.ndarray, np.ndarray]]) -> Iterator[Path]:
-    """A fresh directory to run the build's binary in, with this point's wiring; removed afterwards."""
+def _run_directory(build: _Build, point: Handles, learned: bool) -> Iterator[Path]:
+    """A fresh directory to run the build's binary in, with this point's wiring and stimulus; removed afterwards."""
     run_dir = Path(tempfile.mkdtemp(prefix="run-", dir=build.directory))
     try:
         arrays = run_dir / "static_arrays"
         arrays.mkdir()
         replaced = {file: values for name, files in build.wiring_files.items()
-                    for file, values in zip(files, wiring[name])}
+                    for file, values in zip(files, point.wiring[name])}
         for source in (build.directory / "static_arrays").iterdir():
             if source.name not in replaced and not source.name.endswith(".lock"):
                 (arrays / source.name).symlink_to(source)
         for file, values in replaced.items():
             np.asarray(values, dtype=np.int32).tofile(arrays / file)
+        _stimulus_file(run_dir / STIMULUS_FILE, point, learned)
         (run_dir / "main").symlink_to(build.directory / "main")
         yield run_dir
     finally:
@@ -274,7 +368,7 @@ def simulate(cfg: dict, seed: int, wiring_seed: int | None = None) -> tuple[Hand
     run_args.update({getattr(build.watch, name): value for name, value in _watch_values(cfg, seed, sched).items()})
     run_args[net["snapshots"].step] = np.array([sched.imprint_end, *sched.snapshots])
     project_dir = device.project_dir
-    with _run_directory(build, values.wiring) as run_dir:
+    with _run_directory(build, values, cfg["assemblies"]["imprint"] == "learned") as run_dir:
         device.project_dir = str(run_dir)
         try:
             device.run(directory=str(run_dir), results_directory="results", with_output=False, run_args=run_args)
