@@ -8,6 +8,7 @@ the leak conductance (``g_leak``), which makes them dimensionless.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import Any
 
@@ -30,7 +31,7 @@ class Key:
 
     @property
     def kind(self) -> type:
-        """Python type of the value (bool, int, float or str)."""
+        """Python type of the value (bool, int, float, str, or tuple for a list of numbers)."""
         return type(self.default)
 
     def allowed(self) -> str:
@@ -39,7 +40,8 @@ class Key:
             return "one of " + ", ".join(repr(c) for c in self.choices)
         if self.kind is bool:
             return "true or false"
-        kind = {int: "an integer", float: "a number", str: "a string"}[self.kind]
+        kind = {int: "an integer", float: "a number", str: "a string",
+                tuple: "an increasing list of numbers, each"}[self.kind]
         if self.low is not None and self.high is not None:
             return f"{kind} from {self.low:g} to {self.high:g}"
         if self.low is not None:
@@ -59,15 +61,15 @@ class Key:
             return value
         if isinstance(value, bool):
             raise bad
+        if self.kind is tuple:
+            return self._check_list(value, bad)
         if self.kind is int:
             if isinstance(value, float) and value.is_integer():
                 value = int(value)
             if not isinstance(value, int):
                 raise bad
         elif self.kind is float:
-            if not isinstance(value, (int, float)):
-                raise bad
-            value = float(value)
+            return self.check_number(value, bad)
         elif not isinstance(value, str):
             raise bad
         if self.choices and value not in self.choices:
@@ -77,6 +79,23 @@ class Key:
         if self.high is not None and value > self.high:
             raise bad
         return value
+
+    def _check_list(self, value: Any, bad: ConfigError) -> tuple[float, ...]:
+        """A list key's value as a tuple of floats, each in range and increasing; ``bad`` otherwise."""
+        if not isinstance(value, (list, tuple)):
+            raise bad
+        items = tuple(self.check_number(v, bad) for v in value)
+        if any(b <= a for a, b in zip(items, items[1:])):
+            raise bad
+        return items
+
+    def check_number(self, value: Any, bad: ConfigError) -> float:
+        """One finite number within this key's range as a float; ``bad`` otherwise."""
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+            raise bad
+        if (self.low is not None and value < self.low) or (self.high is not None and value > self.high):
+            raise bad
+        return float(value)
 
 
 def _k(path: str, default: Any, unit: str, description: str, **kw: Any) -> Key:
@@ -149,6 +168,9 @@ KEYS: tuple[Key, ...] = (
     _k("protocol.imprint_off_s", 1.0, "s", "Pause after each presentation (learned)", low=0.0, high=1e4),
     _k("protocol.imprint_repeats", 4, "1", "Presentations per assembly (learned)", low=1, high=10000),
     _k("protocol.hold_s", 10.0, "s", "Hold phase: background only, plasticity on", low=0.0, high=1e6),
+    _k("protocol.retention_delays_s", (), "s",
+       "Delays after hold start of recall tests during the hold (each cues every assembly); the final test after the "
+       "hold is always made", low=0.0, high=1e6, sweepable=False),
     _k("protocol.snapshots", 5, "1", "Weight snapshots spread over the hold phase", low=2, high=1000, sweepable=False),
     _k("protocol.cue_fraction", 0.5, "1", "Fraction of an assembly's members cued", low=0.01, high=1.0),
     _k("protocol.cue_duration_s", 0.2, "s", "Cue duration", low=0.01, high=100.0),

@@ -22,7 +22,7 @@ from ..flags import OUTCOMES, STATUSES
 SCHEMA_VERSION = "2.0"
 
 FLAG_FILL = -1
-INNER_DIMS: tuple[str, ...] = ("assembly", "snapshot", "time_bin")
+INNER_DIMS: tuple[str, ...] = ("assembly", "snapshot", "time_bin", "retention")
 
 
 @dataclass(frozen=True)
@@ -37,6 +37,7 @@ class GridSpec:
     time_bin_s: float
     fingerprint: str
     attrs: dict
+    n_retention: int = 1
 
 
 @dataclass(frozen=True)
@@ -82,7 +83,15 @@ VARIABLES: tuple[Variable, ...] = (
     Variable("persistence_score", "1", "recall_score in the window after the cue ends", inner="assembly"),
     Variable("recall_contrast", "1", "uncued members' mean spike count minus non-members', in non-member standard "
              "deviations, during the cue", inner="assembly"),
-    Variable("cue_time_s", "s", "start of the assembly's cue (cue order is drawn per point)", inner="assembly"),
+    Variable("cue_time_s", "s", "start of the assembly's cue in the final recall test (cue order is drawn per point)",
+             inner="assembly"),
+    Variable("retention_s", "s", "longest delay after hold start up to which the assembly was recalled in every "
+             "recall test (0 if not at the first)", inner="assembly"),
+    Variable("retention_delay_s", "s", "delay of each recall test after hold start (the last is the final test)",
+             inner="retention"),
+    Variable("retention_recalled", "1", "assemblies recalled in each recall test", inner="retention", dtype="int32"),
+    Variable("retention_score", "1", "mean recall score over assemblies in each recall test (in "
+             "detection.recall_mode)", inner="retention"),
     Variable("completion", "1", "fraction of uncued members active in the recall window", inner="assembly"),
     Variable("spurious", "1", "fraction of non-member E cells active in the recall window", inner="assembly"),
     Variable("cross_talk", "1", "largest recall_score of any other assembly, over cells outside this one, "

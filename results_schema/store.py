@@ -247,7 +247,8 @@ def _write_template(path: Path, grid: GridSpec, sweep_shape: tuple[int, ...],
     """Create the group, coordinates and empty variables; mark it a capsweep store last."""
     group = zarr.create_group(path, zarr_format=3, attributes=_root_attrs(grid))
     sweep_dims = (*(axis.name for axis in grid.axes), REPLICATE)
-    inner_sizes = {"assembly": grid.n_assembly, "snapshot": grid.n_snapshot, "time_bin": grid.n_time_bin}
+    inner_sizes = {"assembly": grid.n_assembly, "snapshot": grid.n_snapshot, "time_bin": grid.n_time_bin,
+                   "retention": grid.n_retention}
     _write_coordinates(group, grid)
     for var in layout.VARIABLES + (layout.STATUS,):
         inner = () if var.inner is None else (var.inner,)
@@ -276,6 +277,7 @@ def _write_coordinates(group: zarr.Group, grid: GridSpec) -> None:
         (REPLICATE, grid.replicates, "replicate (independent seed) of a grid cell"),
         ("assembly", grid.n_assembly, "assembly index"),
         ("snapshot", grid.n_snapshot, "weight snapshot index during the hold phase"),
+        ("retention", grid.n_retention, "recall test index (tests during the hold, then the final test)"),
     )
     for name, size, long_name in counters:
         _create_variable(group, name, (name,), (size,), "int64", None, {"units": "1", "long_name": long_name})

@@ -7,7 +7,8 @@ rate table (Hz) over time and *channels*: channel ``k`` is the imprint input of 
 
 Order of the imprint phase: assemblies are presented in turn (0, 1, ..., count-1), and this
 round is repeated ``imprint_repeats`` times; each presentation is ``imprint_on_s`` of input
-followed by ``imprint_off_s`` of background. Recall: each assembly is cued once for
+followed by ``imprint_off_s`` of background. Recall tests at ``retention_delays_s`` after hold
+start (during the hold) and one after the hold: in each test every assembly is cued once for
 ``cue_duration_s``, followed by ``cue_gap_s`` of background, in an order drawn per point (so that
 assembly index is not confounded with test time while plasticity acts). A background-only tail
 follows the last cue, long enough (``detection.runaway_hold_s + detection.smoothing_s``) for a
@@ -41,6 +42,18 @@ class Schedule:
     cue_steps: int = 0  # steps of one cue
     cue_period: int = 0  # steps from one cue's start to the next (cue + gap)
     baseline_start: int = 0  # first step of the baseline window (which ends at settle_end)
+    retention_windows: tuple[tuple[int, int, int], ...] = ()  # (assembly, start, stop) of recall tests during hold
+    retention_starts: tuple[int, ...] = ()  # first step of each recall test during the hold
+
+    @property
+    def test_starts(self) -> tuple[int, ...]:
+        """First step of every recall test: those during the hold, then the final one at hold end."""
+        return (*self.retention_starts, self.hold_end)
+
+    @property
+    def all_cues(self) -> tuple[tuple[int, int, int], ...]:
+        """(assembly, start, stop) of every cue, retention tests first, in time order."""
+        return self.retention_windows + self.cue_windows
 
     def seconds(self, step: int) -> float:
         """Simulated time (s) of a step index."""
@@ -73,13 +86,18 @@ def schedule(cfg: dict, cue_order: Sequence[int] | None = None) -> Schedule:
     n_snap = pr["snapshots"]
     snaps = tuple(imprint_end + round(i * (hold_end - imprint_end) / (n_snap - 1)) for i in range(n_snap))
     cue, gap = _steps(pr["cue_duration_s"], dt), _steps(pr["cue_gap_s"], dt)
-    order = range(count) if cue_order is None else cue_order
-    cues = tuple((k, hold_end + slot * (cue + gap), hold_end + slot * (cue + gap) + cue) for slot, k in enumerate(order))
+    order = list(range(count)) if cue_order is None else list(cue_order)
+
+    def test(start: int) -> tuple[tuple[int, int, int], ...]:
+        return tuple((k, start + slot * (cue + gap), start + slot * (cue + gap) + cue) for slot, k in enumerate(order))
+
+    retention_starts = tuple(imprint_end + _steps(d, dt) for d in pr["retention_delays_s"])
     det = cfg["detection"]
     tail = max(_steps(det["runaway_hold_s"] + det["smoothing_s"], dt) - gap, 0) if count else 0
     end = hold_end + count * (cue + gap) + tail
-    return Schedule(dt, settle_end, tuple(imprint), imprint_end, hold_end, snaps, cues, end,
-                    on, on + off, cue, cue + gap, _steps(det["baseline_start_s"], dt))
+    return Schedule(dt, settle_end, tuple(imprint), imprint_end, hold_end, snaps, test(hold_end), end,
+                    on, on + off, cue, cue + gap, _steps(det["baseline_start_s"], dt),
+                    tuple(w for start in retention_starts for w in test(start)), retention_starts)
 
 
 def cue_order(count: int, seed: int) -> list[int]:
@@ -105,7 +123,7 @@ def stimulus_table(cfg: dict, sched: Schedule) -> tuple[np.ndarray, int]:
     exact and small. Shape: ``(rows, 2 * count)``; rows cover ``[0, end)``.
     """
     count = cfg["assemblies"]["count"]
-    windows = [(k, a, b) for k, a, b in sched.imprint_windows] + [(count + k, a, b) for k, a, b in sched.cue_windows]
+    windows = [(k, a, b) for k, a, b in sched.imprint_windows] + [(count + k, a, b) for k, a, b in sched.all_cues]
     edges = [sched.end] + [e for _, a, b in windows for e in (a, b)]
     row = reduce(math.gcd, [e for e in edges if e > 0], 0) or 1
     table = np.zeros((max(sched.end // row, 1), 2 * count))
@@ -118,7 +136,7 @@ def stimulus_table(cfg: dict, sched: Schedule) -> tuple[np.ndarray, int]:
 def cue_bins(sched: Schedule, bin_s: float, n_bins: int) -> np.ndarray:
     """Boolean mask of the rate-trace bins (width ``bin_s`` s) that overlap any cue window."""
     mask = np.zeros(n_bins, dtype=bool)
-    for _, a, b in sched.cue_windows:
+    for _, a, b in sched.all_cues:
         first = int(np.floor(sched.seconds(a) / bin_s + 1e-9))
         last = int(np.ceil(sched.seconds(b) / bin_s - 1e-9))
         mask[first:min(last, n_bins)] = True

@@ -48,36 +48,86 @@ PER_ASSEMBLY = ("recall_quality", "persistence", "recall_score", "persistence_sc
 """Result variables with one entry per assembly (NaN where the run ended before that assembly's cue)."""
 
 
+def _cue_scores(cfg: dict, h: Handles, times: np.ndarray, cells: np.ndarray, cue: tuple[int, int, int],
+                active_hz: float) -> dict[str, float]:
+    """Every per-assembly metric of one cue ``(assembly, start step, stop step)``."""
+    pr, sched = cfg["protocol"], h.schedule
+    k, a, b = cue
+    t0, t1 = sched.seconds(a) + pr["cue_skip_s"], sched.seconds(b)
+    n_exc = len(h.exc)
+    during = metrics.window_counts(times, cells, n_exc, t0, t1)
+    after = metrics.window_counts(times, cells, n_exc, t1, t1 + pr["persistence_window_s"])
+    mem, cued = h.memberships[k], h.cued[k]
+    return {
+        "recall_quality": metrics.recall_quality(during, mem, cued),
+        "persistence": metrics.recall_quality(after, mem, cued),
+        "recall_score": metrics.recall_score(during, mem, cued),
+        "persistence_score": metrics.recall_score(after, mem, cued),
+        "recall_contrast": metrics.rate_contrast(during, mem, cued),
+        "completion": metrics.completion(during, t1 - t0, mem, cued, active_hz),
+        "spurious": metrics.spurious(during, t1 - t0, mem, active_hz),
+        "cross_talk": metrics.cross_talk(during, h.memberships, k),
+        "cue_time_s": sched.seconds(a),
+    }
+
+
 def recall_metrics(cfg: dict, h: Handles, times: np.ndarray, cells: np.ndarray, baseline: float,
                    recalled: bool) -> dict[str, np.ndarray]:
-    """Per-assembly recall scores of each cue window (see the metric definitions); NaN unless ``recalled``."""
-    count, pr, det = len(h.memberships), cfg["protocol"], cfg["detection"]
+    """Per-assembly scores of the final recall test (see the metric definitions); NaN unless ``recalled``."""
+    count = len(h.memberships)
     out = {n: np.full(count, np.nan) for n in PER_ASSEMBLY}
     if not recalled:
         return out
-    n_exc = len(h.exc)
-    active = metrics.active_threshold(det, baseline)
-    for k, a, b in h.schedule.cue_windows:
-        t0, t1 = h.schedule.seconds(a) + pr["cue_skip_s"], h.schedule.seconds(b)
-        during = metrics.window_counts(times, cells, n_exc, t0, t1)
-        after = metrics.window_counts(times, cells, n_exc, t1, t1 + pr["persistence_window_s"])
-        mem, cued = h.memberships[k], h.cued[k]
-        out["recall_quality"][k] = metrics.recall_quality(during, mem, cued)
-        out["persistence"][k] = metrics.recall_quality(after, mem, cued)
-        out["recall_score"][k] = metrics.recall_score(during, mem, cued)
-        out["persistence_score"][k] = metrics.recall_score(after, mem, cued)
-        out["recall_contrast"][k] = metrics.rate_contrast(during, mem, cued)
-        out["completion"][k] = metrics.completion(during, t1 - t0, mem, cued, active)
-        out["spurious"][k] = metrics.spurious(during, t1 - t0, mem, active)
-        out["cross_talk"][k] = metrics.cross_talk(during, h.memberships, k)
-        out["cue_time_s"][k] = h.schedule.seconds(a)
+    active = metrics.active_threshold(cfg["detection"], baseline)
+    for cue in h.schedule.cue_windows:
+        for name, value in _cue_scores(cfg, h, times, cells, cue, active).items():
+            out[name][cue[0]] = value
     return out
+
+
+def success_score(det: dict) -> str:
+    """Name of the per-assembly score that decides recall in ``detection.recall_mode``."""
+    return "recall_score" if det["recall_mode"] == "cued" else "persistence_score"
 
 
 def recalled_count(recall: dict[str, np.ndarray], det: dict) -> int:
     """Assemblies whose score in ``detection.recall_mode`` reaches ``detection.recall_threshold``."""
-    score = recall["recall_score" if det["recall_mode"] == "cued" else "persistence_score"]
-    return int(np.sum(score >= det["recall_threshold"]))
+    return int(np.sum(recall[success_score(det)] >= det["recall_threshold"]))
+
+
+def retention_metrics(cfg: dict, h: Handles, times: np.ndarray, cells: np.ndarray, final: dict[str, np.ndarray],
+                      sim_time_s: float) -> dict[str, np.ndarray]:
+    """Recall against time: scores of every recall test (those during the hold, then the final one).
+
+    A test counts as reached when the run lasted past its last cue's persistence window (the
+    final one when ``final`` holds scores). ``retention_s`` per assembly: the longest delay after
+    hold start up to which the assembly was recalled in every reached test (0 if not at the
+    first, NaN if no test was reached).
+    """
+    det, sched, pr = cfg["detection"], h.schedule, cfg["protocol"]
+    count, score = len(h.memberships), success_score(det)
+    delays = np.array([*pr["retention_delays_s"], sched.seconds(sched.hold_end - sched.imprint_end)])
+    scores = np.full((len(delays), count), np.nan)
+    reached = np.zeros(len(delays), dtype=bool)
+    for j in range(len(delays) - 1):
+        cues = sched.retention_windows[j * count:(j + 1) * count]
+        reached[j] = bool(cues) and sched.seconds(cues[-1][2]) + pr["persistence_window_s"] <= sim_time_s
+        for cue in cues if reached[j] else ():
+            scores[j, cue[0]] = _cue_scores(cfg, h, times, cells, cue, float("nan"))[score]
+    reached[-1] = count > 0 and not np.all(np.isnan(final["cue_time_s"]))
+    scores[-1] = final[score]
+    recalled = scores >= det["recall_threshold"]
+    leading = np.cumprod(recalled[reached], axis=0).sum(axis=0)  # tests recalled in a row from the first
+    retention = np.where(leading > 0, delays[reached][np.maximum(leading - 1, 0)], 0.0) if reached.any() \
+        else np.full(count, np.nan)
+    mean_score = np.array([np.nanmean(row) if ok and np.isfinite(row).any() else np.nan
+                           for row, ok in zip(scores, reached)])
+    return {
+        "retention_s": retention,
+        "retention_delay_s": delays,
+        "retention_recalled": np.where(reached, recalled.sum(axis=1), -1),
+        "retention_score": mean_score,
+    }
 
 
 def _drift(h: Handles, snaps: list[np.ndarray], n_snap: int) -> dict[str, np.ndarray]:
@@ -109,6 +159,7 @@ def score(cfg: dict, seed: int, engine: str, h: Handles, rec: Recording, start: 
     tail_rate = metrics.mean_rate(t_e, n_exc, sched.seconds(protocol.recall_end(sched)), end) \
         if sim_time >= end - 0.5 * sched.dt_s else float("nan")
     recall = recall_metrics(cfg, h, t_e, i_e, baseline, np.isfinite(tail_rate))
+    retention = retention_metrics(cfg, h, t_e, i_e, recall, sim_time)
     learned = cfg["assemblies"]["imprint"] == "learned" and "imprint" in weights
     return {
         "outcome": metrics.outcome(onset, hold_end_rate, tail_rate, det["silence_hz"]),
@@ -126,6 +177,7 @@ def score(cfg: dict, seed: int, engine: str, h: Handles, rec: Recording, start: 
         "simulated_time_s": sim_time,
         "n_synapses": int(h.n_synapses),
         **recall,
+        **retention,
         **_drift(h, rec.snaps, len(sched.snapshots)),
         "snapshot_time_s": np.array([sched.seconds(s) for s in sched.snapshots], dtype=float),
         "rate_exc_hz": rate_exc,

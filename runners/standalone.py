@@ -60,10 +60,6 @@ stop_step : integer (shared)
 end_step : integer (shared, constant)
 settle_end : integer (shared, constant)
 baseline_start : integer (shared, constant)
-hold_end : integer (shared, constant)
-cue_period : integer (shared, constant)
-cue_steps : integer (shared, constant)
-cue_count : integer (shared, constant)
 bin_steps : integer (shared, constant)
 smooth_bins : integer (shared, constant)
 hold_bins : integer (shared, constant)
@@ -86,22 +82,14 @@ static long _capsweep_run_start = -1;
 static double _capsweep_threshold = -1.0;
 static size_t _capsweep_base_count = 0;
 
-static bool _capsweep_excluded(long b) {
-    using namespace brian;
-    const long bin = W(bin_steps);
-    for (long k = 0; k < W(cue_count); k++) {
-        const long a = W(hold_end) + k * W(cue_period), e = a + W(cue_steps);
-        if (a / bin <= b && b < (e + bin - 1) / bin) return true;
-    }
-    return false;
-}
+static bool _capsweep_cue_in_bin = false;  // a cue was on during some step of the current bin
 
 static bool _capsweep_bin_done(long b, size_t total) {
     using namespace brian;
     const double rate = (double)(total - _capsweep_last) / (N_EXC * W(bin_s));
     _capsweep_last = total;
     _capsweep_rate.push_back(rate);
-    _capsweep_keep.push_back(!_capsweep_excluded(b));
+    _capsweep_keep.push_back(!_capsweep_cue_in_bin);
     if (_capsweep_threshold < 0) return false;
     double sum = 0.0; long kept = 0;
     for (long c = std::max(0L, b - W(smooth_bins) + 1); c <= b; c++)
@@ -123,8 +111,11 @@ int capsweep_watch(int64_t step) {
         _capsweep_threshold = std::isfinite(base) ? std::max(W(factor) * base, W(floor_hz)) : W(floor_hz);
     }
     bool runaway = false;
-    if (step > 0 && step % W(bin_steps) == 0)
+    if (step > 0 && step % W(bin_steps) == 0) {
         runaway = _capsweep_bin_done(step / W(bin_steps) - 1, total);
+        _capsweep_cue_in_bin = false;
+    }
+    if (STIM_NAME(0, step, 2) > 0) _capsweep_cue_in_bin = true;
     if (step >= W(end_step) || (runaway && W(abort))) {
         W(stop_step) = step;
         Network::_globally_stopped = true;
@@ -141,6 +132,7 @@ _STIMULUS_CODE = """
 #include <cstdint>
 static bool _capsweep_stim_loaded = false;
 static int64_t _capsweep_stim_head[STIM_HEADER];
+static std::vector<int64_t> _capsweep_stim_tests;
 static std::vector<int64_t> _capsweep_stim_order;
 static std::vector<char> _capsweep_stim_members[2];
 static int64_t _capsweep_stim_step[2] = {-1, -1};
@@ -150,6 +142,8 @@ static void _capsweep_stim_load() {
     std::ifstream file("STIM_FILE", std::ios::binary);
     file.read((char*)_capsweep_stim_head, sizeof(_capsweep_stim_head));
     const int64_t n = _capsweep_stim_head[0], count = _capsweep_stim_head[1];
+    _capsweep_stim_tests.resize(_capsweep_stim_head[9]);
+    file.read((char*)_capsweep_stim_tests.data(), _capsweep_stim_tests.size() * sizeof(int64_t));
     _capsweep_stim_order.resize(count);
     file.read((char*)_capsweep_stim_order.data(), count * sizeof(int64_t));
     for (int kind = 0; kind < 2; kind++) {
@@ -170,19 +164,25 @@ static int64_t _capsweep_stim_assembly(int64_t step, int kind) {
         const int64_t k = phase / h[6];
         return phase - k * h[6] < h[5] ? k : -1;
     }
-    if (step < h[7]) return -1;
-    const int64_t slot = (step - h[7]) / h[8];
-    return (slot < count && step - h[7] - slot * h[8] < h[9]) ? _capsweep_stim_order[slot] : -1;
+    for (const int64_t start : _capsweep_stim_tests) {
+        if (step < start || step >= start + count * h[7]) continue;
+        const int64_t slot = (step - start) / h[7];
+        return step - start - slot * h[7] < h[8] ? _capsweep_stim_order[slot] : -1;
+    }
+    return -1;
 }
 
+// kind 0: is cell driven by the imprint input now; 1: by the cue input; 2: is any cue on (cell ignored).
 double STIM_NAME(int32_t cell, int64_t step, int32_t kind) {
     if (!_capsweep_stim_loaded) _capsweep_stim_load();
-    if (_capsweep_stim_step[kind] != step) {
-        _capsweep_stim_step[kind] = step;
-        _capsweep_stim_active[kind] = _capsweep_stim_assembly(step, kind);
+    const int input = kind == 2 ? 1 : kind;
+    if (_capsweep_stim_step[input] != step) {
+        _capsweep_stim_step[input] = step;
+        _capsweep_stim_active[input] = _capsweep_stim_assembly(step, input);
     }
-    const int64_t k = _capsweep_stim_active[kind];
-    return k < 0 ? 0.0 : (double)_capsweep_stim_members[kind][k * _capsweep_stim_head[0] + cell];
+    const int64_t k = _capsweep_stim_active[input];
+    if (kind == 2 || k < 0) return k < 0 ? 0.0 : 1.0;
+    return (double)_capsweep_stim_members[input][k * _capsweep_stim_head[0] + cell];
 }
 """
 STIMULUS_FILE = "capsweep_stimulus.bin"
@@ -205,14 +205,15 @@ def _stimulus_function() -> b2.Function:
 
 
 _STIMULUS_HEADER = ("n_exc", "count", "learned", "settle_end", "imprint_end", "imprint_on", "imprint_slot",
-                    "hold_end", "cue_period", "cue_steps")
+                    "cue_period", "cue_steps", "tests")
 """Leading int64 values of the stimulus file, in this order (steps of the point's schedule)."""
 
 
 def _stimulus_file(path: Path, handles: Handles, learned: bool) -> None:
     """Write the stimulus function's input: header, cue order, imprint members, cued members.
 
-    Layout (little-endian): int64 header (:data:`_STIMULUS_HEADER`); int64 assembly per cue slot;
+    Layout (little-endian): int64 header (:data:`_STIMULUS_HEADER`); int64 first step of each
+    recall test; int64 assembly per cue slot (the same order in every test);
     uint8 membership matrices (count x n_exc) of the imprint input (members; zeros unless learned)
     and of the cue input (cued members).
     """
@@ -220,9 +221,10 @@ def _stimulus_file(path: Path, handles: Handles, learned: bool) -> None:
     count, n_exc = members.shape
     values = {"n_exc": n_exc, "count": count, "learned": int(learned), "settle_end": sched.settle_end,
               "imprint_end": sched.imprint_end, "imprint_on": sched.imprint_on, "imprint_slot": sched.imprint_slot,
-              "hold_end": sched.hold_end, "cue_period": sched.cue_period, "cue_steps": sched.cue_steps}
+              "cue_period": sched.cue_period, "cue_steps": sched.cue_steps, "tests": len(sched.test_starts)}
     with open(path, "wb") as out:
         np.array([values[name] for name in _STIMULUS_HEADER], dtype="<i8").tofile(out)
+        np.array(sched.test_starts, dtype="<i8").tofile(out)
         np.array([k for k, _, _ in sched.cue_windows], dtype="<i8").tofile(out)
         np.asarray(members if learned else np.zeros_like(members), dtype=np.uint8).tofile(out)
         np.asarray(cued, dtype=np.uint8).tofile(out)
@@ -244,8 +246,13 @@ class _Build:
 _CURRENT: dict[str, _Build] = {}
 
 
-def _watch_function(handles: Handles, watch: b2.NeuronGroup, snapshots: b2.NeuronGroup) -> b2.Function:
-    """The C++ ``capsweep_watch(step)`` function, with the array names of this build filled in."""
+def _watch_function(handles: Handles, watch: b2.NeuronGroup, snapshots: b2.NeuronGroup,
+                    stimulus: b2.Function) -> b2.Function:
+    """The C++ ``capsweep_watch(step)`` function, with the array names of this build filled in.
+
+    It asks the ``stimulus`` function (kind 2) whether a cue is on, to leave cue periods out of
+    the runaway test as :func:`capsweep.runners.protocol.cue_bins` does offline.
+    """
     device = b2.get_device()
 
     def array(group: Any, name: str, dynamic: bool = False) -> str:
@@ -258,11 +265,12 @@ def _watch_function(handles: Handles, watch: b2.NeuronGroup, snapshots: b2.Neuro
         for s in range(len(snapshots)))
     code = (_WATCH_CODE.replace("SNAPSHOTS", copies)
             .replace("SPIKES", array(handles.mon_exc, "t", dynamic=True))
-            .replace("N_EXC", f"{len(handles.exc)}.0").replace("MARGIN", repr(_MARGIN)))
+            .replace("N_EXC", f"{len(handles.exc)}.0").replace("MARGIN", repr(_MARGIN))
+            .replace("STIM_NAME", STIMULUS_FUNCTION))
     for name in watch.equations.names:
         code = code.replace(f"W({name})", f"{array(watch, name)}[0]")
     fn = b2.Function(lambda step: 0, arg_units=[1], return_unit=1, arg_types=["integer"], return_type="integer")
-    fn.implementations.add_implementation("cpp", code, name="capsweep_watch",
+    fn.implementations.add_implementation("cpp", code, name="capsweep_watch", dependencies={STIMULUS_FUNCTION: stimulus},
                                           compiler_kwds={"headers": ['"network.h"']})
     return fn
 
@@ -270,9 +278,7 @@ def _watch_function(handles: Handles, watch: b2.NeuronGroup, snapshots: b2.Neuro
 def _watch_values(cfg: dict, seed: int, sched: protocol.Schedule) -> dict[str, Any]:
     det, bin_s = cfg["detection"], cfg["detection"]["trace_bin_ms"] * 1e-3
     return {
-        "end_step": sched.end, "settle_end": sched.settle_end, "hold_end": sched.hold_end,
-        "baseline_start": sched.baseline_start,
-        "cue_period": sched.cue_period, "cue_steps": sched.cue_steps, "cue_count": len(sched.cue_windows),
+        "end_step": sched.end, "settle_end": sched.settle_end, "baseline_start": sched.baseline_start,
         "bin_steps": int(round(bin_s / sched.dt_s)), "smooth_bins": max(int(round(det["smoothing_s"] / bin_s)), 1),
         "hold_bins": int(round(det["runaway_hold_s"] / bin_s)), "abort": int(cfg["execution"]["abort_on_runaway"]),
         "baseline_s": sched.seconds(sched.settle_end - sched.baseline_start), "bin_s": bin_s, "factor": det["runaway_factor"],
@@ -299,7 +305,8 @@ def _compile(cfg: dict, seed: int, wiring_seed: int | None, key: str) -> _Build:
     network, ns, handles = build_network(cfg, seed, wiring_seed, standalone=True)
     watch = b2.NeuronGroup(1, _WATCH_EQUATIONS, name="watch")
     snapshots = b2.NeuronGroup(len(handles.schedule.snapshots) + 1, "step : integer (constant)", name="snapshots")
-    ns = {**ns, "capsweep_watch": _watch_function(handles, watch, snapshots), STIMULUS_FUNCTION: _stimulus_function()}
+    stimulus = _stimulus_function()
+    ns = {**ns, "capsweep_watch": _watch_function(handles, watch, snapshots, stimulus), STIMULUS_FUNCTION: stimulus}
     watch.run_regularly("flag = capsweep_watch(timestep(t, dt))", when="start", name="watch_tick")
     network.add(watch, snapshots)
     device.apply_run_args()

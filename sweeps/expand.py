@@ -97,10 +97,21 @@ _RULES: tuple[tuple[Callable[[dict[str, Any]], bool], str], ...] = (
     (lambda f: f["detection.baseline_start_s"] < f["protocol.settle_s"] or f["protocol.settle_s"] == 0,
      "detection.baseline_start_s ({detection.baseline_start_s}) must be shorter than protocol.settle_s "
      "({protocol.settle_s}): the baseline window runs from the one to the other"),
+    (lambda f: _retention_tests_fit(f),
+     "protocol.retention_delays_s ({protocol.retention_delays_s}) must leave each recall test (assemblies.count x "
+     "(protocol.cue_duration_s + protocol.cue_gap_s)) room before the next one and before the end of "
+     "protocol.hold_s ({protocol.hold_s})"),
     (lambda f: f["protocol.cue_skip_s"] < f["protocol.cue_duration_s"],
      "protocol.cue_skip_s ({protocol.cue_skip_s}) must be shorter than protocol.cue_duration_s "
      "({protocol.cue_duration_s})"),
 )
+
+
+def _retention_tests_fit(flat: dict[str, Any]) -> bool:
+    """Whether every recall test during the hold ends before the next test starts and before the hold ends."""
+    length = flat["assemblies.count"] * (flat["protocol.cue_duration_s"] + flat["protocol.cue_gap_s"])
+    starts = [*flat["protocol.retention_delays_s"], flat["protocol.hold_s"]]
+    return all(a + length <= b + 1e-9 for a, b in zip(starts, starts[1:]))
 
 
 def check_consistency(flat: dict[str, Any], where: str) -> None:
@@ -136,6 +147,7 @@ def grid_spec(sweep: Sweep, points: list[Point], attrs: dict[str, Any]) -> GridS
         replicates=sweep.replicates,
         n_assembly=max(1, max(p.config["assemblies"]["count"] for p in points)),
         n_snapshot=sweep.base["protocol.snapshots"],
+        n_retention=len(sweep.base["protocol.retention_delays_s"]) + 1,
         n_time_bin=int(math.ceil(longest / bin_s - 1e-9)),
         time_bin_s=bin_s,
         fingerprint=fingerprint(sweep),

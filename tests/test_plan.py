@@ -52,6 +52,8 @@ def test_point_cost_scales_with_size_and_duration() -> None:
     small = next(p for p in points if p.labels["n_exc"] == 300)
     large = next(p for p in points if p.labels["n_exc"] == 600)
     costs = {300: Cost(overhead_s=1.0, per_sim_s=0.5)}
-    planned = 1.0 + 4.0 + 4 * (0.2 + 0.5)  # settle + hold + four cues with gaps, s (registry defaults)
+    # settle + hold + four cues with gaps + the tail that completes runaway_hold_s + smoothing_s (1 + 0.5 s)
+    # after the last cue, s (registry defaults)
+    planned = 1.0 + 4.0 + 4 * (0.2 + 0.5) + (1.5 - 0.5)
     assert abs(point_cost(small, costs) - (1.0 + 0.5 * planned)) < 1e-9
     assert abs(point_cost(large, costs) - (1.0 + 0.5 * 2 * planned)) < 1e-9  # twice the cells

@@ -2,12 +2,14 @@
 
 from __future__ import annotations
 
+from types import SimpleNamespace
+
 import numpy as np
 import pytest
 
 from capsweep.registry import defaults, nest
 from capsweep.runners import metrics, protocol
-from capsweep.runners.scoring import baseline_rate, onset_in_schedule
+from capsweep.runners.scoring import baseline_rate, onset_in_schedule, recall_metrics, retention_metrics
 
 CONFIG = nest({**defaults(), "assemblies.count": 3, "protocol.hold_s": 2.0, "protocol.cue_gap_s": 0.5})
 
@@ -52,3 +54,38 @@ def test_baseline_window_skips_the_start_up_transient() -> None:
     t = np.concatenate([rng.uniform(0, 0.2, 100 * 10), rng.uniform(0.2, 1.0, int(100 * 3 * 0.8))])
     assert baseline_rate(t, 100, sched) == pytest.approx(3.0, rel=0.01)
     assert metrics.mean_rate(t, 100, 0.0, 1.0) > 4.0  # what a window from 0 would have said
+
+
+def test_retention_scores_each_recall_test_and_the_last_delay_recalled_in_a_row() -> None:
+    """Two assemblies, recall tests at 1 s and 3 s after hold start and the final one at 6 s.
+
+    Spikes are made by hand: in every cue window the cued members and (for a recalled assembly)
+    its uncued members fire, others stay silent. Assembly 0 is recalled in all three tests,
+    assembly 1 only in the first, so retention_s is 6 s and 1 s and the tests recall 2, 1, 1.
+    """
+    cfg = nest({**defaults(), "assemblies.count": 2, "protocol.hold_s": 6.0, "protocol.retention_delays_s": [1.0, 3.0],
+                "protocol.settle_s": 1.0})
+    sched = protocol.schedule(cfg, [1, 0])
+    members = np.zeros((2, 40), dtype=bool)
+    members[0, :20], members[1, 20:] = True, True
+    cued = members & (np.arange(40) % 20 < 10)
+    handles = SimpleNamespace(schedule=sched, memberships=members, cued=cued, exc=np.zeros(40))
+    times, cells = [], []
+    for test, cues in enumerate([sched.retention_windows[:2], sched.retention_windows[2:], sched.cue_windows]):
+        for k, a, b in cues:
+            recalled = k == 0 or test == 0
+            firing = np.flatnonzero(members[k] if recalled else cued[k])
+            for cell in firing:  # 20 spikes per cell spread over the cue window
+                times += list(np.linspace(sched.seconds(a) + 0.03, sched.seconds(b) - 1e-3, 20))
+                cells += [cell] * 20
+    times_a, cells_a = np.array(times), np.array(cells)
+    final = recall_metrics(cfg, handles, times_a, cells_a, 3.0, True)  # type: ignore[arg-type]
+    out = retention_metrics(cfg, handles, times_a, cells_a, final, sched.seconds(sched.end))  # type: ignore[arg-type]
+    np.testing.assert_allclose(out["retention_delay_s"], [1.0, 3.0, 6.0])
+    np.testing.assert_array_equal(out["retention_recalled"], [2, 1, 1])
+    np.testing.assert_allclose(out["retention_s"], [6.0, 1.0])
+    # a run that stopped (runaway) before the second test: only the first test was reached
+    cut = retention_metrics(cfg, handles, times_a, cells_a, {k: v * np.nan for k, v in final.items()},
+                            sched.seconds(sched.retention_windows[1][2]) + 0.2)  # type: ignore[arg-type]
+    np.testing.assert_array_equal(cut["retention_recalled"], [2, -1, -1])
+    np.testing.assert_allclose(cut["retention_s"], [1.0, 1.0])

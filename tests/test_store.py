@@ -64,13 +64,18 @@ def point_result(n_assemblies: int, recalled: int) -> dict:
         "cross_talk": np.full(n_assemblies, 0.05), "weight_correlation": [1.0, 0.97],
         "assembly_contrast": [5.0, 4.8], "snapshot_time_s": [1.0, 5.5],
         "rate_exc_hz": np.arange(30, dtype=float), "rate_inh_hz": np.arange(30, dtype=float) * 2,
+        "rate_exc_tail_hz": 3.1, "recall_score": np.linspace(0.95, 0.7, n_assemblies),
+        "persistence_score": np.full(n_assemblies, 0.2), "recall_contrast": np.full(n_assemblies, 4.0),
+        "cue_time_s": 8.0 + 0.7 * np.arange(n_assemblies), "retention_s": np.full(n_assemblies, 7.0),
+        "retention_delay_s": [7.0], "retention_recalled": [recalled], "retention_score": [0.8],
+        "weight_in": [0.05, 0.06], "weight_out": [0.05, 0.04], "weight_within": [0.25, 0.27],
     }
 
 
 def test_template_opens_with_plain_xarray(tmp_path):
     ds = plain_open(make_store(tmp_path))  # exactly xr.open_zarr(path)
     assert dict(ds.sizes) == {"n_assemblies": 3, "beta": 2, "imprint": 2, "replicate": 2,
-                              "assembly": 4, "snapshot": 3, "time_bin": 50}
+                              "assembly": 4, "snapshot": 3, "time_bin": 50, "retention": 1}
     assert ds.n_assemblies.values.tolist() == [1, 2, 4]
     assert ds.beta.values.tolist() == [0.0, 0.05]
     assert ds.imprint.values.tolist() == ["prewired", "learned"]

@@ -64,6 +64,16 @@ def run_cli(tmp_path: Path, text: str) -> tuple[int, str]:
         (('store = "{store}"', "store = "), ["not valid TOML"]),
         (("values = [1, 2]", "values = [1, 6]"), ["6 x 40", "network.n_exc (200)", "n_assemblies=6"]),
         (('key = "assemblies.count"', 'key = "network.dt_ms"'), ["network.dt_ms cannot be swept"]),
+        (("size = 40", "size = 40\n[plasticity.heterosynaptic]\nbeta = nan"), ["beta = nan", "from 0 to 10"]),
+        (("size = 40", "size = 40\n[protocol]\nhold_s = inf"), ["hold_s = inf", "from 0 to 1e+06"]),
+        (("size = 40", "size = 40\n[protocol]\nretention_delays_s = [3.0, 1.0]"),
+         ["retention_delays_s = [3.0, 1.0]", "increasing list"]),
+        (("size = 40", "size = 40\n[protocol]\nhold_s = 4.0\nretention_delays_s = [1.0, 1.5]"),
+         ["retention_delays_s", "room before the next"]),
+        (("size = 40", "size = 40\n[protocol]\nhold_s = 4.0\nretention_delays_s = [3.5]"),
+         ["retention_delays_s", "protocol.hold_s (4.0)"]),
+        (("n_exc = 200", "n_exc = 200\n[detection]\nbaseline_start_s = 2.0"),
+         ["detection.baseline_start_s (2.0)", "protocol.settle_s"]),
     ],
 )
 def test_bad_sweep_file_gives_one_clear_message(tmp_path: Path, edit: tuple[str, str], needles: list[str]) -> None:
