@@ -133,6 +133,9 @@ KEYS: tuple[Key, ...] = (
     # --- assemblies
     _k("assemblies.count", 4, "1", "Number of cell assemblies", low=0, high=1000),
     _k("assemblies.size", 120, "1", "Excitatory cells per assembly", low=2, high=50000),
+    _k("assemblies.coding_level", 0.0, "1",
+       "Assembly size as a fraction of network.n_exc, rounded (0 = use assemblies.size); keeps the coding level "
+       "fixed when the network size is swept", low=0.0, high=1.0),
     _k("assemblies.overlap", "disjoint", "1", "Membership policy: disjoint groups or independent random draws",
        choices=("disjoint", "random")),
     _k("assemblies.imprint", "prewired", "1", "How assemblies come to exist",
@@ -279,3 +282,9 @@ def with_execution(cfg: dict[str, Any], **changes: Any) -> dict[str, Any]:
 def inhibitory_count(n_exc: int, inh_per_exc: float) -> int:
     """Number of inhibitory cells: ``round(n_exc * inh_per_exc)``, at least 1."""
     return max(1, int(round(n_exc * inh_per_exc)))
+
+
+def resolve_derived(flat: dict[str, Any]) -> dict[str, Any]:
+    """A flat config with the keys that other keys imply filled in (assemblies.size from a coding level)."""
+    level = flat["assemblies.coding_level"]
+    return {**flat, "assemblies.size": int(round(level * flat["network.n_exc"]))} if level > 0 else flat

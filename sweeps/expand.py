@@ -19,7 +19,7 @@ import numpy as np
 from ..results_schema.layout import GridSpec
 from ..runners.protocol import total_duration_s
 from ..errors import ConfigError
-from ..registry import inhibitory_count, nest
+from ..registry import inhibitory_count, nest, resolve_derived
 from .sweepfile import Sweep
 
 
@@ -69,6 +69,7 @@ def expand(sweep: Sweep) -> list[Point]:
             flat.update(sweep.variants[axis.name][value] if axis.name in sweep.variants else {axis.key: value})
             labels[axis.name] = value
         labels["replicate"] = replicate
+        flat = resolve_derived(flat)
         check_consistency(flat, f"{sweep.source}: point {_describe(labels)}")
         pid = point_id(flat, replicate)
         wiring = point_seed(sweep.base_seed, f"wiring/{replicate}")
@@ -86,6 +87,9 @@ _RULES: tuple[tuple[Callable[[dict[str, Any]], bool], str], ...] = (
     (lambda f: f["network.indegree_inh"] <= inhibitory_count(f["network.n_exc"], f["network.inh_per_exc"]),
      "network.indegree_inh ({network.indegree_inh}) must not exceed the inhibitory count "
      "round(network.n_exc x network.inh_per_exc)"),
+    (lambda f: f["assemblies.size"] >= 2,
+     "assemblies.size ({assemblies.size}) must be at least 2 (assemblies.coding_level x network.n_exc rounds "
+     "below 2 here)"),
     (lambda f: f["assemblies.size"] <= f["network.n_exc"],
      "assemblies.size ({assemblies.size}) must not exceed network.n_exc ({network.n_exc})"),
     (lambda f: f["assemblies.overlap"] != "disjoint"

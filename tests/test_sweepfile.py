@@ -196,3 +196,15 @@ def test_bad_variant_is_named(edit: tuple[str, str], needle: str) -> None:
     with pytest.raises(ConfigError) as info:
         parse_sweep(text)
     assert needle in str(info.value)
+
+
+def test_coding_level_sets_the_assembly_size_per_network_size() -> None:
+    text = GOOD.replace("size = 40", "coding_level = 0.1").replace("[network]\nn_exc = 200", "") + """
+[[sweep.axis]]
+name = "n_exc"
+key = "network.n_exc"
+values = [300, 1200]
+"""
+    points = expand(parse_sweep(text))
+    sizes = {(p.labels["n_exc"], p.config["assemblies"]["size"]) for p in points}
+    assert sizes == {(300, 30), (1200, 120)}
