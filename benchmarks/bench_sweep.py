@@ -9,7 +9,8 @@ One invocation measures, on the same machine:
    time from process start to exit, first with an empty build cache (compile included:
    ``speedup_vs_plain_loop``), then again on a new store with the cache it left
    (``speedup_warm_builds``: a modeller's second sweep over the same network structure).
-2. plain loop (once, or ``--plain-loops`` times, after the repeats): what a modeller would otherwise write: the same 16 points as a sequential loop of
+2. plain loop (once, or ``--plain-loops`` times, after the repeats): what a modeller would otherwise write:
+   the same 16 points as a sequential loop of
    Brian2 runtime (cython) simulations in one fresh process, same model and durations, no build
    reuse, no early abort.
 3. bare engine (every repeat): the work capsweep does (same engine, abort on runaway, same submission order) in
@@ -47,13 +48,13 @@ import subprocess
 import sys
 import tempfile
 import time
-from pathlib import Path
 from collections.abc import Callable
+from pathlib import Path
 from typing import Any
 
 import xarray as xr
-
 from engine_only import run_one
+
 from capsweep.registry import with_execution
 from capsweep.runners.builds import BUILD_DIR_ENV
 from capsweep.sweeps.expand import Point, expand
@@ -142,7 +143,8 @@ def one_repeat(points: list[Point], workdir: Path, repeat: int) -> dict[str, flo
     os.environ[BUILD_DIR_ENV] = cap_env[BUILD_DIR_ENV]
     ds = xr.open_zarr(cold_store)
     return {
-        "capsweep_cold_s": t_cold, "capsweep_warm_s": t_warm, "bare_engine_s": t_bare, "bare_engine_warm_s": t_bare_warm,
+        "capsweep_cold_s": t_cold, "capsweep_warm_s": t_warm,
+        "bare_engine_s": t_bare, "bare_engine_warm_s": t_bare_warm,
         "paired_overhead_pct": 100.0 * (t_cold - t_bare) / t_bare,
         "paired_overhead_warm_pct": 100.0 * (t_warm - t_bare_warm) / t_bare_warm,
         "runaway_cost_pct": runaway_cost(points, cold_store),

@@ -27,7 +27,7 @@ _API = {
     "capacity_table": "capsweep.sweeps.query",
     "prescreen_sweep": "capsweep.sweeps.prescreen",
 }
-__all__ = ["__version__", *_API]
+__all__ = ["__version__", "RunOptions", "capacity_table", "load_sweep", "open_dataset", "prescreen_sweep", "run_sweep"]
 
 if TYPE_CHECKING:
     from .results_schema.dataset import open_dataset

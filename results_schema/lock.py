@@ -10,10 +10,11 @@ from __future__ import annotations
 import json
 import os
 import socket
+from collections.abc import Iterator
 from contextlib import contextmanager
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any, Iterator
+from typing import Any
 
 from ..errors import StoreError
 
@@ -39,7 +40,7 @@ def _acquire(lock: Path) -> str:
     claim = json.dumps({
         "host": socket.gethostname(),
         "pid": os.getpid(),
-        "since": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+        "since": datetime.now(UTC).isoformat(timespec="seconds"),
     })
     for _ in range(3):
         try:

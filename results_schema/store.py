@@ -19,20 +19,21 @@ import importlib.metadata
 import shutil
 import struct
 import warnings
-from datetime import datetime, timezone
+from collections.abc import Mapping
+from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any, Mapping
+from typing import Any, Literal
 
 import numpy as np
 import zarr
 from zarr.core.sync import sync
 from zarr.errors import ZarrUserWarning
 
-from . import layout
 from ..axes import Axis
-from ..flags import STATUSES
-from .layout import GridSpec
 from ..errors import StoreError
+from ..flags import STATUSES
+from . import layout
+from .layout import GridSpec
 
 REPLICATE = "replicate"
 ATTR_SCHEMA = "capsweep_schema_version"
@@ -85,12 +86,12 @@ class ResultStore:
     def __init__(self, path: Path, group: zarr.Group) -> None:
         self.path = path
         self._group = group
-        self._arrays: dict[str, zarr.Array] = {name: group[name] for name in _stored_variables()}
-        self._seeds = self._arrays["seed"][...]
+        self._arrays: dict[str, zarr.Array] = {name: _array(group, name) for name in _stored_variables()}
+        self._seeds = np.asarray(self._arrays["seed"][...])
         self._fills = {name: self._fill_block(layout.BY_NAME[name]) for name in REQUIRED_RESULTS}
 
     @classmethod
-    def open(cls, path: str | Path, fingerprint: str | None = None) -> "ResultStore":
+    def open(cls, path: str | Path, fingerprint: str | None = None) -> ResultStore:
         """Open the store at ``path`` for writing.
 
         Raises StoreError naming the path if it is missing, not a capsweep store, of another
@@ -107,7 +108,7 @@ class ResultStore:
     @property
     def sweep_dims(self) -> tuple[str, ...]:
         """Dims that index a point: the axis names, then ``replicate``."""
-        return (*self._group.attrs[ATTR_AXES], REPLICATE)
+        return (*_names(self._group.attrs[ATTR_AXES]), REPLICATE)
 
     @property
     def shape(self) -> tuple[int, ...]:
@@ -116,7 +117,7 @@ class ResultStore:
 
     def status(self) -> np.ndarray:
         """Status code of every point (capsweep.flags.STATUSES index), int8 over the sweep dims."""
-        return self._arrays[layout.STATUS.name][...]
+        return np.asarray(self._arrays[layout.STATUS.name][...])
 
     def write_point(self, index: tuple[int, ...], result: Mapping[str, Any]) -> None:
         """Write a finished point: every result variable and an empty error, then status done.
@@ -257,8 +258,8 @@ def _write_template(path: Path, grid: GridSpec, sweep_shape: tuple[int, ...],
     for name, long_name in STRING_VARIABLES.items():
         _create_variable(group, name, sweep_dims, sweep_shape, str, "", {"units": "1", "long_name": long_name},
                          len(sweep_dims))
-    group["seed"][...] = np.asarray(seeds, dtype=np.int64)
-    group[layout.POINT_ID][...] = np.asarray(point_ids, dtype=object)
+    _array(group, "seed")[...] = np.asarray(seeds, dtype=np.int64)
+    _array(group, layout.POINT_ID)[...] = np.asarray(point_ids, dtype=object)
     group.attrs[ATTR_SCHEMA] = layout.SCHEMA_VERSION
     with warnings.catch_warnings():
         # Consolidated metadata is not yet in the Zarr v3 spec; xarray reads it and without it
@@ -272,7 +273,7 @@ def _write_coordinates(group: zarr.Group, grid: GridSpec) -> None:
         values = _axis_array(axis)
         _create_variable(group, axis.name, (axis.name,), values.shape, values.dtype if values.dtype != object else str,
                          None, {"units": axis.units, "long_name": axis.long_name, AXIS_KEY_ATTR: axis.key})
-        group[axis.name][...] = values
+        _array(group, axis.name)[...] = values
     counters = (
         (REPLICATE, grid.replicates, "replicate (independent seed) of a grid cell"),
         ("assembly", grid.n_assembly, "assembly index"),
@@ -281,17 +282,18 @@ def _write_coordinates(group: zarr.Group, grid: GridSpec) -> None:
     )
     for name, size, long_name in counters:
         _create_variable(group, name, (name,), (size,), "int64", None, {"units": "1", "long_name": long_name})
-        group[name][...] = np.arange(size)
+        _array(group, name)[...] = np.arange(size)
     _create_variable(group, "time_bin", ("time_bin",), (grid.n_time_bin,), "float64", None,
                      {"units": "s", "long_name": "start time of the population rate bin"})
-    group["time_bin"][...] = np.arange(grid.n_time_bin) * grid.time_bin_s
+    _array(group, "time_bin")[...] = np.arange(grid.n_time_bin) * grid.time_bin_s
 
 
 def _axis_array(axis: Axis) -> np.ndarray:
     """Axis values as an array of one kind: bool, int64, float64 or str (object)."""
     values = np.asarray(axis.values)
     kinds = {"b": bool, "i": np.int64, "u": np.int64, "f": np.float64, "U": object}
-    if values.dtype.kind not in kinds or (values.dtype.kind == "U" and not all(isinstance(v, str) for v in axis.values)):
+    mixed = values.dtype.kind == "U" and not all(isinstance(v, str) for v in axis.values)
+    if values.dtype.kind not in kinds or mixed:
         raise ValueError(f"axis {axis.name} values must be all int, all float, all str or all bool: {axis.values}")
     return values.astype(kinds[values.dtype.kind])
 
@@ -306,7 +308,7 @@ def _create_variable(group: zarr.Group, name: str, dims: tuple[str, ...], shape:
     chunks = (*(1 for _ in shape[:n_point_dims]), *(max(n, 1) for n in shape[n_point_dims:]))
     per_point_scalar = 0 < n_point_dims == len(shape)
     group.create_array(name, shape=shape, chunks=chunks, dtype=dtype, dimension_names=dims, fill_value=fill,
-                       attributes=attrs, **({"compressors": None} if per_point_scalar else {}))
+                       attributes=attrs, compressors=None if per_point_scalar else "auto")
 
 
 def _zarr_fill(var: layout.Variable) -> float | int:
@@ -336,7 +338,7 @@ def _root_attrs(grid: GridSpec) -> dict[str, Any]:
         ATTR_FINGERPRINT: grid.fingerprint,
         ATTR_AXES: [axis.name for axis in grid.axes],
         ATTR_TIME_BIN: float(grid.time_bin_s),
-        ATTR_CREATED: datetime.now(timezone.utc).isoformat(timespec="seconds"),
+        ATTR_CREATED: datetime.now(UTC).isoformat(timespec="seconds"),
         **{f"version_{name}": _package_version(name) for name in VERSIONED_PACKAGES},
         **grid.attrs,
     }
@@ -349,7 +351,20 @@ def _package_version(name: str) -> str:
         return "unknown"
 
 
-def _open_group(path: Path, mode: str = "r+") -> zarr.Group:
+def _array(group: zarr.Group, name: str) -> zarr.Array:
+    """The array ``name`` of ``group`` (StoreError if it is a group: a damaged store)."""
+    node = group[name]
+    if not isinstance(node, zarr.Array):
+        raise StoreError(f"{group.store} is damaged: {name} is not an array")
+    return node
+
+
+def _names(value: Any) -> list[str]:
+    """A JSON attribute that holds a list of names, as a list of str."""
+    return [str(v) for v in value] if isinstance(value, list) else []
+
+
+def _open_group(path: Path, mode: Literal["r", "r+"] = "r+") -> zarr.Group:
     if not path.exists():
         raise StoreError(f"no result store at {path}")
     try:

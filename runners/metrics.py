@@ -52,12 +52,12 @@ def smoothed_rate(rate_hz: np.ndarray, bin_s: float, window_s: float, exclude: n
 
 
 def threshold_above_baseline(baseline_hz: float, factor: float, floor_hz: float) -> float:
-    """A rate threshold (Hz) relative to a baseline: ``max(factor * baseline, floor)``; the floor when baseline is NaN."""
+    """A rate threshold (Hz) relative to a baseline: ``max(factor * baseline, floor)``; the floor if baseline is NaN."""
     return float(floor_hz) if not np.isfinite(baseline_hz) else float(max(factor * baseline_hz, floor_hz))
 
 
 def runaway_threshold(det: dict, baseline_hz: float) -> float:
-    """Runaway threshold (Hz) of ``[detection]`` settings ``det``: runaway_factor x baseline, at least runaway_floor_hz."""
+    """Runaway threshold (Hz) of ``[detection]`` settings: runaway_factor x baseline, at least runaway_floor_hz."""
     return threshold_above_baseline(baseline_hz, det["runaway_factor"], det["runaway_floor_hz"])
 
 
@@ -189,7 +189,8 @@ def assembly_contrast(w: np.ndarray, within: np.ndarray) -> float:
 
 
 def outcome(onset_s: float, rate_before_recall_hz: float, rate_after_recall_hz: float, silence_hz: float) -> str:
-    """'runaway' if an onset was found, else 'silent' if the E rate (Hz) before or after recall is below silence_hz, else 'stable'.
+    """'runaway' if an onset was found, else 'silent' if the E rate (Hz) before or after recall is below
+    silence_hz, else 'stable'.
 
     A NaN rate (a phase the run did not reach) does not count as silent.
     """

@@ -29,9 +29,9 @@ from typing import Any
 import brian2 as b2
 import numpy as np
 
-from . import protocol, rules
 from ..errors import ConfigError
 from ..registry import inhibitory_count
+from . import protocol, rules
 
 _NEURON = """
 dv/dt = (e_leak - v + g_e * (e_exc - v) + g_i * (e_inh - v){adapt_term}) / tau_m : volt (unless refractory)
@@ -76,13 +76,15 @@ def draw_assemblies(cfg: dict, wiring: np.random.Generator, rng: np.random.Gener
     cued = np.zeros((count, n_exc), dtype=bool)
     order = wiring.permutation(n_exc)
     for k in range(count):
-        idx = order[k * size:(k + 1) * size] if a["overlap"] == "disjoint" else wiring.choice(n_exc, size, replace=False)
+        disjoint = a["overlap"] == "disjoint"
+        idx = order[k * size:(k + 1) * size] if disjoint else wiring.choice(n_exc, size, replace=False)
         members[k, idx] = True
         cued[k, rng.permutation(idx)[:n_cued]] = True
     return members, cued
 
 
-def fixed_indegree(n_pre: int, n_post: int, k: int, rng: np.random.Generator, *, no_self: bool) -> tuple[np.ndarray, np.ndarray]:
+def fixed_indegree(n_pre: int, n_post: int, k: int, rng: np.random.Generator, *,
+                   no_self: bool) -> tuple[np.ndarray, np.ndarray]:
     """(i, j) arrays: each post cell gets ``k`` distinct random pre cells (never itself if ``no_self``)."""
     pool = n_pre - 1 if no_self else n_pre
     if k > pool:
@@ -256,7 +258,8 @@ def build_network(cfg: dict, seed: int, wiring_seed: int | None = None, *,
     """Build the point's network; run it with ``net.run(duration, namespace=namespace)``.
 
     ``wiring_seed`` draws membership and connectivity, ``seed`` everything else drawn in numpy
-    (cued members, initial voltages); without ``wiring_seed`` one stream from ``seed`` draws all. The caller seeds Brian2's RNG and selects the device / code generation
+    (cued members, initial voltages); without ``wiring_seed`` one stream from ``seed`` draws all.
+    The caller seeds Brian2's RNG and selects the device / code generation
     target. With ``standalone`` the point's values are in ``handles.settings`` (pass them as
     ``run_args``), not yet in the objects. Raises ConfigError when assemblies or in-degrees do
     not fit the network.
@@ -317,7 +320,7 @@ def build_network(cfg: dict, seed: int, wiring_seed: int | None = None, *,
     # recompile it, depend on what a process built before and when its garbage was collected.
     network = b2.Network(*objects, name="capsweep_network")
     n_syn = len(i_ee) + len(i_ie) + len(i_ei) + len(i_ii)
-    wiring = {"ee": (i_ee, j_ee), "ie": (i_ie, j_ie), "ei": (i_ei, j_ei), "ii": (i_ii, j_ii)}
+    pathways = {"ee": (i_ee, j_ee), "ie": (i_ie, j_ie), "ei": (i_ei, j_ei), "ii": (i_ii, j_ii)}
     handles = Handles(exc, inh, s_ee, mon_exc, mon_inh, memberships, cued, within, n_syn, sched, const.settings,
-                      wiring)
+                      pathways)
     return network, const.namespace, handles

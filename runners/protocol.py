@@ -18,8 +18,8 @@ runaway set off by that cue to be established before the run ends.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
 from collections.abc import Sequence
+from dataclasses import dataclass
 from functools import reduce
 
 import numpy as np

@@ -14,7 +14,6 @@ import numpy as np
 from .model import Handles, build_network
 from .scoring import Recording, baseline_rate, onset_in_schedule
 
-
 CHECK_INTERVAL_S = 0.1
 """How often (simulated s) the early-abort watch re-evaluates runaway onset."""
 
@@ -56,7 +55,7 @@ class RunawayWatch:
 
 
 def _simulate(cfg: dict, network: b2.Network, ns: dict[str, Any], h: Handles,
-              watch: "RunawayWatch | None") -> tuple[dict[str, np.ndarray], list[np.ndarray]]:
+              watch: RunawayWatch | None) -> tuple[dict[str, np.ndarray], list[np.ndarray]]:
     """Run the phases; return weights at named moments and the hold snapshots taken."""
     sched, dt = h.schedule, h.schedule.dt_s
     marks = [("settle", sched.settle_end), ("imprint", sched.imprint_end)]

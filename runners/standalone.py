@@ -270,7 +270,8 @@ def _watch_function(handles: Handles, watch: b2.NeuronGroup, snapshots: b2.Neuro
     for name in watch.equations.names:
         code = code.replace(f"W({name})", f"{array(watch, name)}[0]")
     fn = b2.Function(lambda step: 0, arg_units=[1], return_unit=1, arg_types=["integer"], return_type="integer")
-    fn.implementations.add_implementation("cpp", code, name="capsweep_watch", dependencies={STIMULUS_FUNCTION: stimulus},
+    fn.implementations.add_implementation("cpp", code, name="capsweep_watch",
+                                          dependencies={STIMULUS_FUNCTION: stimulus},
                                           compiler_kwds={"headers": ['"network.h"']})
     return fn
 
@@ -281,7 +282,8 @@ def _watch_values(cfg: dict, seed: int, sched: protocol.Schedule) -> dict[str, A
         "end_step": sched.end, "settle_end": sched.settle_end, "baseline_start": sched.baseline_start,
         "bin_steps": int(round(bin_s / sched.dt_s)), "smooth_bins": max(int(round(det["smoothing_s"] / bin_s)), 1),
         "hold_bins": int(round(det["runaway_hold_s"] / bin_s)), "abort": int(cfg["execution"]["abort_on_runaway"]),
-        "baseline_s": sched.seconds(sched.settle_end - sched.baseline_start), "bin_s": bin_s, "factor": det["runaway_factor"],
+        "baseline_s": sched.seconds(sched.settle_end - sched.baseline_start), "bin_s": bin_s,
+        "factor": det["runaway_factor"],
         "floor_hz": det["runaway_floor_hz"], "rng_seed": float(seed % 2**53),
         "stop_step": -1,  # written by the watch; passing it makes Brian2 read it back from the run
     }

@@ -11,15 +11,16 @@ import hashlib
 import itertools
 import json
 import math
+from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Any, Callable
+from typing import Any
 
 import numpy as np
 
-from ..results_schema.layout import GridSpec
-from ..runners.protocol import total_duration_s
 from ..errors import ConfigError
 from ..registry import inhibitory_count, nest, resolve_derived
+from ..results_schema.layout import GridSpec
+from ..runners.protocol import total_duration_s
 from .sweepfile import Sweep
 
 

@@ -16,8 +16,8 @@ from typing import Any
 
 from ..axes import VARIANT_KEY, Axis, key_axis, variant_axis
 from ..errors import ConfigError
-from ..results_schema.layout import INNER_DIMS
 from ..registry import SECTIONS, Key, defaults, flatten, lookup
+from ..results_schema.layout import INNER_DIMS
 
 SWEEP_KEYS = {
     "name": "sweep name (a non-empty string)",

@@ -15,14 +15,14 @@ import pytest
 import xarray as xr
 import zarr
 
+from capsweep.axes import key_axis
+from capsweep.errors import StoreError
 from capsweep.flags import OUTCOMES, STATUSES
 from capsweep.results_schema import layout
-from capsweep.results_schema.lock import LOCK_NAME, store_lock
-from capsweep.axes import key_axis
-from capsweep.results_schema.layout import GridSpec
 from capsweep.results_schema.dataset import flag_labels, open_dataset
+from capsweep.results_schema.layout import GridSpec
+from capsweep.results_schema.lock import LOCK_NAME, store_lock
 from capsweep.results_schema.store import ResultStore, create_store
-from capsweep.errors import StoreError
 
 AXES = (
     key_axis("n_assemblies", "assemblies.count", (1, 2, 4)),

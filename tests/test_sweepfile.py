@@ -16,10 +16,10 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from typer.testing import CliRunner
 
-from capsweep.sweeps.cli import app
 from capsweep.errors import ConfigError
-from capsweep.sweeps.expand import expand, grid_shape, point_id
 from capsweep.registry import KEYS, defaults
+from capsweep.sweeps.cli import app
+from capsweep.sweeps.expand import expand, grid_shape, point_id
 from capsweep.sweeps.sweepfile import parse_sweep
 
 GOOD = """
