@@ -24,7 +24,7 @@ _API = {
     "RunOptions": "capsweep.sweeps.launch",
     "load_sweep": "capsweep.sweeps.sweepfile",
     "open_dataset": "capsweep.results_schema.dataset",
-    "capacity_table": "capsweep.sweeps.query",
+    "capacity_table": "capsweep.sweeps.capacity",
     "prescreen_sweep": "capsweep.sweeps.prescreen",
 }
 __all__ = ["__version__", "RunOptions", "capacity_table", "load_sweep", "open_dataset", "prescreen_sweep", "run_sweep"]
@@ -33,7 +33,7 @@ if TYPE_CHECKING:
     from .results_schema.dataset import open_dataset
     from .sweeps.launch import RunOptions, run_sweep
     from .sweeps.prescreen import prescreen_sweep
-    from .sweeps.query import capacity_table
+    from .sweeps.capacity import capacity_table
     from .sweeps.sweepfile import load_sweep
 
 

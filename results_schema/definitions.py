@@ -1,26 +1,46 @@
-"""Fixed metric definitions, stored verbatim in every store's root attrs and shown in the README.
+"""Fixed metric, success and capacity definitions, stored verbatim in every store's root attrs and shown in the README.
 
 Notation: A_k is assembly k, C_k its cued members, U_k = A_k minus C_k, O = excitatory cells
 outside A_k. Rates are in Hz, times in s.
 """
 
 DEFINITIONS = """\
-recall_quality[k]: Pearson correlation, over the uncued excitatory cells (U_k and O), between each cell's spike \
-count in the recall window (the cue period minus its first protocol.cue_skip_s) and membership of A_k. \
-1 = perfect completion with no spurious activity; about 0 = nothing recalled.
-persistence[k]: the same correlation in the protocol.persistence_window_s after the cue ends.
+baseline E rate: mean excitatory rate from detection.baseline_start_s to the end of the settle phase (the \
+start-up transient left out).
+recall tests: at each of protocol.retention_delays_s after hold start and once after the hold, every assembly is \
+cued in turn (an order drawn per point) for protocol.cue_duration_s, followed by protocol.cue_gap_s. After the \
+last cue the run goes on with background only for at least detection.runaway_hold_s + detection.smoothing_s.
+recall_score[k]: the overlap of Amit, Gutfreund & Sompolinsky (1985, Phys Rev Lett 55:1530) on rates, \
+m = sum_i (xi_i - a) r_i / (N a (1 - a) mean rate of members), over the N excitatory cells not cued (U_k and O), \
+with xi membership of A_k, a the fraction of members among them and r_i spike counts in the recall window (the \
+cue period minus its first protocol.cue_skip_s); equal to 1 - mean rate of O / mean rate of U_k. 1 = perfect \
+completion, 0 = chance, whatever the network size or coding level.
+persistence_score[k]: recall_score in the protocol.persistence_window_s after the cue ends.
+recall_quality[k], persistence[k]: Pearson correlation, over U_k and O, between spike count and membership of \
+A_k, in the same windows (kept for continuity; it falls with the coding level).
+recall_contrast[k]: mean count of U_k minus mean count of O, in units of the standard deviation over O.
 completion[k]: fraction of U_k active in the recall window; spurious[k]: fraction of O active. A cell is active \
-when its window rate exceeds max(detection.active_factor x baseline E rate, detection.active_floor_hz); the \
-baseline E rate is the mean excitatory rate over the settle phase.
-cross_talk[k]: the largest recall_quality of any other assembly j != k computed while k is cued.
-recalled_count: number of assemblies with recall_quality >= detection.recall_threshold.
+when its window rate exceeds max(detection.active_factor x baseline E rate, detection.active_floor_hz).
+cross_talk[k]: the largest recall_score of any other assembly j != k over the cells outside A_k while k is cued.
+recalled_count: number of assemblies whose score in detection.recall_mode (cued: recall_score, persistent: \
+persistence_score) in the final recall test is >= detection.recall_threshold.
+retention_recalled[t], retention_score[t]: assemblies recalled, and their mean score, in recall test t; \
+retention_s[k]: the longest delay after hold start up to which assembly k was recalled in every recall test \
+(0 if not in the first).
 weight_correlation[s]: Pearson correlation over all E->E synapses between the weights at hold snapshot s and at \
-hold start. assembly_contrast[s]: mean within-assembly E->E weight / mean of all other E->E weights.
+hold start. assembly_contrast[s]: mean within-assembly E->E weight / mean of all other E->E weights. \
+weight_in[s], weight_out[s], weight_within[s]: mean E->E weight into members from cells in no assembly, from \
+members to such cells, and between members of a shared assembly.
 runaway_onset_s: first time the excitatory population rate, smoothed over detection.smoothing_s, stays above \
 max(detection.runaway_factor x baseline E rate, detection.runaway_floor_hz) for detection.runaway_hold_s; cue \
 periods are excluded. NaN if never.
 outcome: runaway if a runaway onset exists; else silent if the E rate over the last smoothing window before \
-recall is below detection.silence_hz; else stable.
-capacity (derived at query time): for each cell of the other axes, the largest assemblies.count whose points are \
-stable with every assembly recalled, in every replicate.
+recall, or over the background-only tail after it, is below detection.silence_hz; else stable.
+success of a point: status done, outcome stable and recalled_count equal to its assemblies.count. A failed \
+(crashed) point is neither success nor failure; a pending one leaves its cell undecided.
+capacity (derived at query time): for each cell of the other axes, the largest assemblies.count k such that \
+every count <= k in the grid succeeds in at least a stated fraction (default 0.5) of its done replicates; 0 if \
+the smallest count fails; 'at least' when k is the top of the grid; NA while points are pending. Per count: \
+the success fraction with a 95 % Wilson score interval. Interval on k: the range of the per-replicate \
+capacities (largest k with every count <= k successful in that replicate).
 """

@@ -10,7 +10,7 @@ import functools
 import os
 import sys
 from collections.abc import Callable
-from enum import Enum
+from enum import StrEnum
 from pathlib import Path
 from typing import Any
 
@@ -18,8 +18,8 @@ import typer
 from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn, TimeRemainingColumn
 
-from ..errors import CapsweepError
 from ..engines import ENGINES, NAMES
+from ..errors import CapsweepError
 
 app = typer.Typer(
     add_completion=False, no_args_is_help=True, pretty_exceptions_enable=False,
@@ -29,7 +29,7 @@ err = Console(stderr=True)
 out = Console()
 
 
-class TableFormat(str, Enum):
+class TableFormat(StrEnum):
     table = "table"
     csv = "csv"
     json = "json"
@@ -92,7 +92,7 @@ class _ProgressView:
         self.task: Any = None
         self.dashboard_shown = False
 
-    def __enter__(self) -> "_ProgressView":
+    def __enter__(self) -> _ProgressView:
         return self
 
     def __exit__(self, *exc: object) -> None:
@@ -176,13 +176,53 @@ def query(
 @user_errors
 def capacity(
     store: Path = typer.Argument(..., help="Zarr store directory"),
+    min_fraction: float = typer.Option(0.5, "--min-fraction",
+                                       help="fraction of replicates in which each count up to capacity must succeed"),
+    per_count: bool = typer.Option(False, "--per-count", help="csv/json: the per-count success table instead"),
     fmt: TableFormat = typer.Option(TableFormat.table, "--format", help="table, csv or json"),
 ) -> None:
-    """Largest assembly count stored stably and fully recalled, per cell of the other axes."""
-    from ..results_schema.dataset import open_dataset
-    from .query import capacity_table
+    """Capacity per cell of the other axes: largest assembly count whose every smaller count succeeds.
 
-    _emit(capacity_table(open_dataset(store)), fmt)
+    A point succeeds when it is done, stable and recalls every assembly. The table shows each
+    count's success fraction with its 95 % Wilson interval, then the capacity with the range of
+    the per-replicate capacities; 'at least' marks the top of the grid, NA a cell with pending points.
+    """
+    from ..results_schema.dataset import open_dataset
+    from .capacity import capacity_table, count_dim, success_table
+
+    ds = open_dataset(store)
+    table = capacity_table(ds, min_fraction)
+    if fmt is not TableFormat.table:
+        _emit(success_table(ds) if per_count else table, fmt)
+        return
+    out.print("success per count (n = done replicates; 95 % Wilson interval; crashed points left out):",
+              highlight=False)
+    _emit(success_table(ds), fmt)
+    out.print(f"\ncapacity (every count up to it succeeds in >= {min_fraction:g} of replicates; "
+              "range over replicates):", highlight=False)
+    _emit(_capacity_display(table), fmt)
+    others = [c for c in table.columns if c not in _CAPACITY_COLUMNS]
+    for _, row in table[table["non_monotone"]].iterrows():
+        where = ", ".join(f"{c}={row[c]}" for c in others) or "the grid"
+        out.print(f"warning: success is not monotone in {count_dim(ds)} for {where}: a larger count succeeds "
+                  "after a smaller one failed", highlight=False)
+
+
+_CAPACITY_COLUMNS = ("capacity", "capacity_lo", "capacity_hi", "at_least", "non_monotone", "replicates_used",
+                     "pending", "failed")
+
+
+def _capacity_display(table: Any) -> Any:
+    """The capacity table as shown on screen: 'at least k' at the top of the grid, NA for undecided cells."""
+    import pandas as pd
+
+    shown = table.drop(columns=["capacity_lo", "capacity_hi", "at_least"])
+    shown["capacity"] = ["NA" if pd.isna(row.capacity) else f"at least {row.capacity}" if row.at_least
+                         else str(row.capacity) for row in table.itertuples()]
+    shown.insert(shown.columns.get_loc("capacity") + 1, "replicate_range",
+                 ["NA" if pd.isna(row.capacity_lo) else f"{row.capacity_lo}-{row.capacity_hi}"
+                  for row in table.itertuples()])
+    return shown
 
 
 @app.command()

@@ -5,26 +5,21 @@ All functions read a dataset opened with plain xarray and write one PNG (matplot
 
 from __future__ import annotations
 
-import itertools
 from pathlib import Path
 
 import matplotlib
 
 matplotlib.use("Agg")
-import matplotlib.pyplot as plt  # noqa: E402
-import numpy as np  # noqa: E402
-import xarray as xr  # noqa: E402
+import matplotlib.pyplot as plt
+import numpy as np
+import pandas as pd
+import xarray as xr
+from matplotlib.ticker import MaxNLocator
 
-from .query import COUNT_KEY, QueryError, axis_keys, labelled  # noqa: E402
+from .capacity import MIN_FRACTION, capacity_table, count_dim, point_success, success_table
+from .query import COUNT_KEY, QueryError, axis_keys, labelled
 
 OUTCOME_COLOURS = {"stable": "tab:green", "runaway": "tab:red", "silent": "tab:grey"}
-
-
-def success(ds: xr.Dataset) -> xr.DataArray:
-    """1 where a point is done, stable and recalled every one of its assemblies, else 0."""
-    ok = (labelled(ds, "status") == "done") & (labelled(ds, "outcome") == "stable")
-    scored = ds["recall_quality"].notnull().sum("assembly")
-    return (ok & (ds["recalled_count"] >= scored)).astype(float)
 
 
 def stability_map(ds: xr.Dataset, path: Path, x: str | None = None, y: str | None = None) -> Path:
@@ -35,7 +30,7 @@ def stability_map(ds: xr.Dataset, path: Path, x: str | None = None, y: str | Non
     for name in (x, y):
         if name not in ds.dims:
             raise QueryError(f"--x/--y {name!r} is not a sweep axis; axes: {', '.join(axes + ['replicate'])}")
-    frac = _average_to(success(ds), x, y)
+    frac = _average_to(point_success(ds), x, y)
     runaway = _average_to((labelled(ds, "outcome") == "runaway").astype(float), x, y)
     fig, ax = plt.subplots(figsize=(max(5.0, 1.5 + 1.1 * frac.sizes[x]), max(3.5, 1.2 + 0.7 * frac.sizes[y])))
     image = ax.imshow(frac.values, origin="lower", cmap="viridis", vmin=0, vmax=1, aspect="auto")
@@ -52,28 +47,37 @@ def stability_map(ds: xr.Dataset, path: Path, x: str | None = None, y: str | Non
 
 
 def _average_to(values: xr.DataArray, x: str, y: str) -> xr.DataArray:
-    """Mean of ``values`` over every dim but ``x`` and ``y``, laid out (y, x)."""
-    return values.mean([d for d in values.dims if d not in (x, y)]).transpose(y, x)
+    """Mean of ``values`` over every dim but ``x`` and ``y`` (NaN left out), laid out (y, x)."""
+    return values.mean([d for d in values.dims if d not in (x, y)], skipna=True).transpose(y, x)
 
 
-def capacity_curves(ds: xr.Dataset, path: Path) -> Path:
-    """Fraction of replicates stable with full recall against assembly count, one line per other cell."""
-    keys = axis_keys(ds)
-    count = next((d for d, k in keys.items() if k == COUNT_KEY), None)
-    if count is None:
-        raise QueryError(f"capacity curves need an axis over {COUNT_KEY}")
-    frac = success(ds).mean("replicate")
-    others = [d for d in frac.dims if d != count]
-    fig, ax = plt.subplots(figsize=(5.5, 3.8))
-    for combo in itertools.product(*(range(frac.sizes[d]) for d in others)):
-        line = frac.isel(dict(zip(others, combo)))
-        label = ", ".join(f"{d}={ds[d].values[i]}" for d, i in zip(others, combo)) or "all"
-        ax.plot(ds[count].values, line.values, marker="o", label=label)
+def capacity_curves(ds: xr.Dataset, path: Path, min_fraction: float = MIN_FRACTION) -> Path:
+    """Success fraction against assembly count with 95 % Wilson intervals, one line per cell of the other axes.
+
+    Counts without a done replicate (pending or crashed) are not drawn; the legend gives each
+    cell's capacity, and the dashed line the fraction that capacity requires.
+    """
+    count = count_dim(ds)
+    table = success_table(ds)
+    capacities = capacity_table(ds, min_fraction)
+    others = [c for c in capacities.columns if c in ds.dims and c != count]
+    fig, ax = plt.subplots(figsize=(6.0, 4.0))
+    groups = list(table.groupby(others, sort=False)) if others else [((), table)]
+    for i, ((key, rows), (_, cap)) in enumerate(zip(groups, capacities.iterrows())):
+        rows = rows[rows["n"] > 0]
+        label = ", ".join(f"{d}={v}" for d, v in zip(others, np.atleast_1d(key))) or "all"
+        shown = "NA" if pd.isna(cap["capacity"]) else f"{'>=' if cap['at_least'] else ''}{cap['capacity']}"
+        yerr = np.vstack([rows["fraction"] - rows["wilson_lo"], rows["wilson_hi"] - rows["fraction"]])
+        dodge = 0.05 * (i - (len(groups) - 1) / 2)  # side by side, so the intervals stay readable
+        ax.errorbar(rows[count] + dodge, rows["fraction"], yerr=yerr, marker="o", capsize=3,
+                    label=f"{label}: capacity {shown} (n={int(rows['n'].max()) if len(rows) else 0})")
+    ax.axhline(min_fraction, color="grey", ls="--", lw=0.8)
+    ax.xaxis.set_major_locator(MaxNLocator(integer=True))
     ax.set_xlabel(_axis_label(ds, count))
-    ax.set_ylabel("fraction stable with all recalled")
+    ax.set_ylabel("fraction of replicates: stable, all recalled")
     ax.set_ylim(-0.05, 1.05)
     ax.legend(fontsize=7, loc="best")
-    ax.set_title("capacity curves", fontsize=9)
+    ax.set_title("capacity curves (95 % Wilson intervals)", fontsize=9)
     return _save(fig, path)
 
 

@@ -1,7 +1,8 @@
-"""Answer questions from a store: point tables, filters, status counts and capacity.
+"""Answer questions from a store: point tables, filters, status counts, plausibility.
 
-Everything here reads the store with plain xarray; filters use pandas' expression engine
-(``DataFrame.query``), never Python ``eval`` on user text.
+Capacity is in :mod:`capsweep.sweeps.capacity`. Everything here reads the store with plain
+xarray; filters use pandas' expression engine (``DataFrame.query``), never Python ``eval`` on
+user text.
 """
 
 from __future__ import annotations
@@ -12,9 +13,9 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from ..results_schema.layout import STATUS
-from ..results_schema.dataset import flag_labels
 from ..errors import CapsweepError
+from ..results_schema.dataset import flag_labels
+from ..results_schema.layout import STATUS
 
 DEFAULT_WHERE = 'status == "done" and outcome == "stable"'
 COUNT_KEY = "assemblies.count"
@@ -65,7 +66,7 @@ def select(frame: pd.DataFrame, where: str = DEFAULT_WHERE) -> pd.DataFrame:
         return frame
     try:
         return frame.query(where, engine="python")
-    except Exception as exc:  # noqa: BLE001 - pandas raises many kinds for a bad expression
+    except Exception as exc:
         raise QueryError(
             f"--where {where!r} is not a valid filter ({type(exc).__name__}: {exc}). "
             f"Columns: {', '.join(frame.columns)}. Text values need quotes, e.g. outcome == \"stable\""
@@ -117,30 +118,3 @@ def plausibility(ds: xr.Dataset) -> Plausibility:
     if cv[0] < 0.5:
         warnings.append(f"some base networks fire regularly (ISI CV down to {cv[0]:.2f}), not irregularly")
     return Plausibility(exc, inh, cv, tuple(warnings))
-
-
-def capacity_table(ds: xr.Dataset) -> pd.DataFrame:
-    """Capacity per cell of the other axes: the largest assembly count stable and fully recalled.
-
-    A count qualifies when, in every replicate, its point is done, its outcome stable and its
-    recalled_count equals the count. ``capacity`` is 0 when no count qualifies; ``complete`` is
-    False while some point of the cell is not done (the capacity may still change).
-    """
-    keys = axis_keys(ds)
-    count_dims = [d for d, k in keys.items() if k == COUNT_KEY]
-    if not count_dims:
-        raise QueryError(f"capacity needs an axis over {COUNT_KEY}; this store's axes set: "
-                         + ", ".join(f"{d} ({k})" for d, k in keys.items()))
-    count = count_dims[0]
-    done = labelled(ds, "status") == "done"
-    ok = done & (labelled(ds, "outcome") == "stable") & (ds["recalled_count"] == ds[count])
-    cell_ok = ok.all("replicate")
-    done = done.all("replicate").all(count)
-    counts = xr.where(cell_ok, ds[count], 0)
-    capacity = counts.max(count)
-    table = xr.Dataset({"capacity": capacity, "complete": done})
-    if not table["capacity"].dims:
-        table = table.expand_dims(cell=[0])
-    frame = table.to_dataframe().reset_index()
-    return frame.drop(columns=["cell"], errors="ignore")
-

@@ -9,31 +9,40 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import pytest
+from typer.testing import CliRunner
 
 from capsweep.axes import key_axis
-from capsweep.results_schema.layout import GridSpec
 from capsweep.results_schema.dataset import open_dataset
+from capsweep.results_schema.layout import VARIABLES, GridSpec
 from capsweep.results_schema.store import ResultStore, create_store
+from capsweep.sweeps.capacity import capacity_table, success_table, wilson_interval
+from capsweep.sweeps.cli import app
 from capsweep.sweeps.plots import all_plots
-from capsweep.sweeps.query import QueryError, capacity_table, plausibility, point_table, select, status_counts
+from capsweep.sweeps.query import QueryError, plausibility, point_table, select, status_counts
 
 AXES = (key_axis("n_odours", "assemblies.count", (1, 2, 3, 4)), key_axis("beta", "plasticity.heterosynaptic.beta", (0.0, 0.05)))
 SHAPE = (4, 2, 2)
 
 
 def result(count: int, outcome: str, recalled: int, seed: int) -> dict:
-    quality = np.where(np.arange(count) < recalled, 0.8, 0.1)
-    return {
-        "outcome": outcome, "engine": "cython", "seed": seed,
+    """A runner result with every layout variable (unset ones NaN), invented for the query logic."""
+    score = np.where(np.arange(count) < recalled, 0.8, 0.1)
+    out: dict = {v.name: (np.full(1, np.nan) if v.inner else np.nan) for v in VARIABLES
+                 if not v.flags and not v.dtype.startswith("int")}
+    out.update({
+        "outcome": outcome, "engine": "cython", "seed": seed, "predicted_outcome": None,
         "runaway_onset_s": 5.0 if outcome == "runaway" else np.nan, "recalled_count": recalled,
+        "n_synapses": 1000, "retention_recalled": [recalled],
         "rate_exc_baseline_hz": 3.0, "rate_inh_baseline_hz": 7.0, "isi_cv_exc": 0.9, "rate_exc_hold_end_hz": 3.5,
-        "imprint_contrast": np.nan, "wall_time_s": 10.0, "simulated_time_s": 8.0, "n_synapses": 1000,
-        "recall_quality": quality, "persistence": quality / 2, "completion": quality, "spurious": 1 - quality,
-        "cross_talk": np.full(count, 0.05), "weight_correlation": np.array([1.0, 0.9, 0.8]),
+        "wall_time_s": 10.0, "simulated_time_s": 8.0,
+        "recall_quality": score, "recall_score": score, "persistence": score / 2, "completion": score,
+        "spurious": 1 - score, "cross_talk": np.full(count, 0.05), "weight_correlation": np.array([1.0, 0.9, 0.8]),
         "assembly_contrast": np.array([5.0, 4.5, 4.0]), "snapshot_time_s": np.array([1.0, 3.0, 5.0]),
         "rate_exc_hz": np.full(20, 3.0), "rate_inh_hz": np.full(20, 7.0),
-    }
+    })
+    return out
 
 
 # (count index, beta index, replicate) -> (outcome, recalled); anything not listed: stable, all recalled
@@ -61,13 +70,74 @@ def store(tmp_path: Path) -> Path:
     return path
 
 
-def test_capacity_takes_the_largest_count_stable_and_recalled_in_every_replicate(store: Path) -> None:
+def test_capacity_needs_every_smaller_count_to_succeed_and_waits_for_pending_points(store: Path) -> None:
+    """Hand-worked on SPECIAL: beta 0 succeeds at counts 1, 2 (2/2), 3 (1/2), not 4 (0/2): with the
+    default fraction 0.5 the capacity is 3, its replicates' capacities 3 and 2. beta 0.05 has a
+    pending point: NA, not 0."""
     table = capacity_table(open_dataset(store)).set_index("beta")
-    # beta 0: counts 1, 2 succeed in both replicates; 3 misses an assembly once; 4 runs away -> 2
-    assert table.loc[0.0, "capacity"] == 2
-    # beta 0.05: count 1 has a pending replicate, 2 fails once, 3 and 4 succeed -> 4 (largest, as defined)
-    assert table.loc[0.05, "capacity"] == 4
-    assert bool(table.loc[0.0, "complete"]) and not bool(table.loc[0.05, "complete"])
+    assert table.loc[0.0, "capacity"] == 3 and not table.loc[0.0, "at_least"]
+    assert (table.loc[0.0, "capacity_lo"], table.loc[0.0, "capacity_hi"]) == (2, 3)
+    assert pd.isna(table.loc[0.05, "capacity"]) and table.loc[0.05, "pending"] == 1
+    strict = capacity_table(open_dataset(store), min_fraction=1.0).set_index("beta")
+    assert strict.loc[0.0, "capacity"] == 2  # count 3 succeeds in only one of two replicates
+
+
+def _filled_store(tmp_path: Path, pattern: dict[tuple[int, int, int], tuple[str, int] | None],
+                  replicates: int = 2) -> Path:
+    """A store over n_odours 1-4 x beta (one value) x replicates; every point stable and fully
+    recalled unless ``pattern`` says otherwise ((outcome, recalled), or None for a crash)."""
+    axes = (AXES[0], key_axis("beta", "plasticity.heterosynaptic.beta", (0.0,)))
+    shape = (4, 1, replicates)
+    path = tmp_path / "pattern.zarr"
+    seeds = np.arange(np.prod(shape)).reshape(shape)
+    ids = np.array([f"p{i}" for i in range(np.prod(shape))], dtype=object).reshape(shape)
+    create_store(path, GridSpec(axes, replicates, 4, 3, 20, 0.5, "fp", {}), ids, seeds)
+    writer = ResultStore.open(path)
+    for index in np.ndindex(*shape):
+        count = axes[0].values[index[0]]
+        spec = pattern.get(index, ("stable", count))
+        if spec is None:
+            writer.write_failure(index, "RuntimeError: worker lost")
+        else:
+            writer.write_point(index, result(count, spec[0], spec[1], int(seeds[index])))
+    return path
+
+
+def test_non_monotone_success_is_flagged_and_warned(tmp_path: Path) -> None:
+    """Count 2 fails in 2 of 3 replicates while count 3 succeeds in all: capacity 1, non-monotone."""
+    path = _filled_store(tmp_path, {(1, 0, 0): ("stable", 1), (1, 0, 1): ("runaway", 0),
+                                    (3, 0, 0): ("runaway", 0), (3, 0, 1): ("runaway", 0), (3, 0, 2): ("runaway", 0)},
+                         replicates=3)
+    row = capacity_table(open_dataset(path)).iloc[0]
+    assert row["capacity"] == 1 and bool(row["non_monotone"]) and not bool(row["at_least"])
+    result_ = CliRunner().invoke(app, ["capacity", str(path)])
+    assert result_.exit_code == 0, result_.output
+    assert "warning" in result_.output and "not monotone" in result_.output
+
+
+def test_top_of_the_grid_is_only_a_lower_bound(tmp_path: Path) -> None:
+    row = capacity_table(open_dataset(_filled_store(tmp_path, {}))).iloc[0]
+    assert row["capacity"] == 4 and bool(row["at_least"]) and not bool(row["non_monotone"])
+
+
+def test_crashed_points_are_left_out_and_counted(tmp_path: Path) -> None:
+    """Count 2 crashed in replicate 0 and succeeded in replicate 1: the fraction is 1/1, not 1/2,
+    and replicate 0's capacity is unknown (its run of successes ends at the crash)."""
+    path = _filled_store(tmp_path, {(1, 0, 0): None})
+    ds = open_dataset(path)
+    counts = success_table(ds).set_index("n_odours")
+    assert counts.loc[2, "n"] == 1 and counts.loc[2, "fraction"] == 1.0 and counts.loc[2, "failed"] == 1
+    row = capacity_table(ds).iloc[0]
+    assert row["capacity"] == 4 and row["failed"] == 1 and row["replicates_used"] == 1
+
+
+@pytest.mark.parametrize(("successes", "trials", "low", "high"), [
+    (81, 263, 0.2553, 0.3662), (15, 148, 0.0624, 0.1605), (0, 20, 0.0, 0.1611), (1, 29, 0.0061, 0.1718),
+])
+def test_wilson_interval_matches_published_examples(successes: int, trials: int, low: float, high: float) -> None:
+    """Newcombe 1998, Statistics in Medicine 17:857, Table I, score method without continuity
+    correction (Wilson 1927) [memory: recalled, not re-read]."""
+    assert wilson_interval(successes, trials) == pytest.approx((low, high), abs=1e-4)
 
 
 def test_status_counts_and_default_filter(store: Path) -> None:

@@ -1,0 +1,158 @@
+"""Capacity from a store: success of each point, success fractions with intervals, capacity per cell.
+
+Definitions (the same words are stored in every store's attrs, see
+``capsweep.results_schema.definitions``):
+
+- A point *succeeds* when it is done, its outcome is stable and every one of its assemblies was
+  recalled (``recalled_count == assemblies.count``; recall is decided by the coding-level
+  normalised recall score). A failed (crashed) point is neither success nor failure: it is left
+  out and counted. A pending point leaves its cell undecided.
+- Per grid cell (one combination of the axes other than the count axis) and count: the success
+  fraction over the done replicates, with a 95 % Wilson score interval (Wilson 1927, J Am Stat
+  Assoc 22:209).
+- The *capacity* of a cell is the largest count k such that every count <= k in the grid succeeds
+  in at least ``min_fraction`` of its done replicates; 0 when the smallest count already fails. It
+  is only a lower bound (``at_least``) when k is the top of the grid, NA while a point of the cell
+  is pending or a count has no done replicate, and flagged ``non_monotone`` when a count succeeds
+  after a smaller one failed.
+- Its interval is the range of the per-replicate capacities (replicate r: the largest k with every
+  count <= k successful in r), a distribution-free summary; a replicate whose run of successes
+  ends at a crashed point is left out (its capacity is unknown).
+"""
+
+from __future__ import annotations
+
+import itertools
+from collections.abc import Iterator
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+import xarray as xr
+from scipy.stats import binomtest
+
+from .query import COUNT_KEY, QueryError, axis_keys, labelled
+
+MIN_FRACTION = 0.5
+"""Default fraction of replicates in which a count must succeed to count towards capacity."""
+CONFIDENCE = 0.95
+"""Confidence level of the Wilson intervals."""
+
+
+def point_success(ds: xr.Dataset) -> xr.DataArray:
+    """Per point: 1.0 success, 0.0 failure, NaN undecided (pending or crashed); see the module docstring."""
+    status, outcome = labelled(ds, "status"), labelled(ds, "outcome")
+    count = _count_values(ds)
+    ok = (outcome == "stable") & (ds["recalled_count"] == count)
+    return xr.where(status == "done", ok.astype(float), np.nan)
+
+
+def count_dim(ds: xr.Dataset) -> str:
+    """The sweep dim over ``assemblies.count``; QueryError naming the store's axes if there is none."""
+    keys = axis_keys(ds)
+    dims = [d for d, k in keys.items() if k == COUNT_KEY]
+    if not dims:
+        raise QueryError(f"capacity needs an axis over {COUNT_KEY}; this store's axes set: "
+                         + (", ".join(f"{d} ({k})" for d, k in keys.items()) or "nothing"))
+    return dims[0]
+
+
+def _count_values(ds: xr.Dataset) -> xr.DataArray | int:
+    """Each point's assembly count: the count axis, or the base config's count when no axis sets it."""
+    dims = [d for d, k in axis_keys(ds).items() if k == COUNT_KEY]
+    return ds[dims[0]] if dims else int(ds["recall_score"].sizes["assembly"])
+
+
+@dataclass(frozen=True)
+class _Cell:
+    """One grid cell: its labels (other axes) and per-point arrays over (count, replicate)."""
+
+    labels: dict[str, object]
+    counts: np.ndarray  # ascending
+    success: np.ndarray  # 1 / 0 / NaN, shape (count, replicate)
+    status: np.ndarray  # labels, shape (count, replicate)
+
+
+def _cells(ds: xr.Dataset) -> Iterator[_Cell]:
+    count = count_dim(ds)
+    success, status = point_success(ds), labelled(ds, "status")
+    order = np.argsort(ds[count].values)
+    others = [d for d in success.dims if d not in (count, "replicate")]
+    for combo in itertools.product(*(range(ds.sizes[d]) for d in others)):
+        where = dict(zip(others, combo))
+        labels = {d: ds[d].values.tolist()[i] for d, i in where.items()}
+        yield _Cell(labels, ds[count].values[order],
+                    success.isel(where).transpose(count, "replicate").values[order],
+                    status.isel(where).transpose(count, "replicate").values[order])
+
+
+def wilson_interval(successes: int, trials: int) -> tuple[float, float]:
+    """95 % Wilson score interval of a success fraction (NaN, NaN for no trials)."""
+    if trials == 0:
+        return float("nan"), float("nan")
+    ci = binomtest(successes, trials).proportion_ci(confidence_level=CONFIDENCE, method="wilson")
+    return float(ci.low), float(ci.high)
+
+
+def success_table(ds: xr.Dataset) -> pd.DataFrame:
+    """Per cell and count: done replicates, successes, fraction with its Wilson interval, failed, pending."""
+    count = count_dim(ds)
+    rows = []
+    for cell in _cells(ds):
+        for k, row, status in zip(cell.counts, cell.success, cell.status):
+            done = int(np.sum(np.isfinite(row)))
+            wins = int(np.nansum(row))
+            low, high = wilson_interval(wins, done)
+            rows.append({**cell.labels, count: int(k), "n": done, "successes": wins,
+                         "fraction": wins / done if done else np.nan, "wilson_lo": low, "wilson_hi": high,
+                         "failed": int(np.sum(status == "failed")), "pending": int(np.sum(status == "pending"))})
+    return pd.DataFrame(rows)
+
+
+def _leading_successes(fractions: np.ndarray, min_fraction: float) -> int:
+    """Number of counts, from the smallest, that all reach ``min_fraction``."""
+    passed = fractions >= min_fraction
+    return int(np.argmin(passed)) if not passed.all() else len(passed)
+
+
+def _replicate_capacities(cell: _Cell) -> list[int]:
+    """Capacity of each replicate whose run of successes ends at a decided point (not a crash)."""
+    capacities = []
+    for r in range(cell.success.shape[1]):
+        column = cell.success[:, r]
+        lead = _leading_successes(np.nan_to_num(column, nan=-1.0), 1.0)
+        if lead < len(column) and np.isnan(column[lead]):
+            continue  # the run ends at a crashed or pending point: capacity unknown
+        capacities.append(int(cell.counts[lead - 1]) if lead else 0)
+    return capacities
+
+
+def capacity_table(ds: xr.Dataset, min_fraction: float = MIN_FRACTION) -> pd.DataFrame:
+    """Capacity per cell with its replicate range and flags (see the module docstring)."""
+    if not 0.0 < min_fraction <= 1.0:
+        raise QueryError(f"--min-fraction {min_fraction} is not allowed: expected a number in (0, 1]")
+    rows = []
+    for cell in _cells(ds):
+        done = np.isfinite(cell.success).sum(axis=1)
+        with np.errstate(invalid="ignore"):
+            fractions = np.where(done > 0, np.nansum(cell.success, axis=1) / np.maximum(done, 1), np.nan)
+        lead = _leading_successes(np.nan_to_num(fractions, nan=-1.0), min_fraction)
+        pending = int(np.sum(cell.status == "pending"))
+        undecided = pending > 0 or bool(np.any(done == 0))
+        passed = fractions >= min_fraction
+        replicates = _replicate_capacities(cell) if not pending else []
+        rows.append({
+            **cell.labels,
+            "capacity": pd.NA if undecided else int(cell.counts[lead - 1]) if lead else 0,
+            "capacity_lo": min(replicates) if replicates else pd.NA,
+            "capacity_hi": max(replicates) if replicates else pd.NA,
+            "at_least": not undecided and lead == len(cell.counts),
+            "non_monotone": bool(np.any(passed[lead:])) if lead < len(passed) else False,
+            "replicates_used": len(replicates),
+            "pending": pending,
+            "failed": int(np.sum(cell.status == "failed")),
+        })
+    table = pd.DataFrame(rows)
+    for column in ("capacity", "capacity_lo", "capacity_hi"):
+        table[column] = table[column].astype("Int64")
+    return table
