@@ -144,6 +144,9 @@ KEYS: tuple[Key, ...] = (
     _k("assemblies.prewire_gain", 5.0, "1", "Within-assembly E->E weight as a multiple of w_e_to_e (prewired)",
        low=0.0, high=100.0),
     # --- plasticity: every term switchable, every coefficient sweepable
+    _k("plasticity.freeze_after_imprint", False, "1",
+       "Stop every weight change at the end of imprinting (of settle, for prewired assemblies): the control that "
+       "shows what ongoing plasticity does"),
     _k("plasticity.triplet.enabled", True, "1", "Minimal triplet STDP on E->E"),
     _k("plasticity.triplet.a_ltp", 0.02, "g_leak", "Triplet LTP amplitude A", low=0.0, high=1.0),
     _k("plasticity.triplet.b_ltd", 0.004, "g_leak", "Pair LTD amplitude B", low=0.0, high=1.0),

@@ -45,9 +45,10 @@ def compiled_form(cfg: dict) -> dict:
     and triplet STDP alone). Weights still pass through the [0, w_max] clip on each spike, which
     changes nothing while initial weights lie inside it.
     """
-    plasticity = {}
-    for term, table in cfg["plasticity"].items():
-        zeroed = {} if table["enabled"] else dict.fromkeys(_COEFFICIENTS_OF[term], 0.0)
+    plasticity = dict(cfg["plasticity"])
+    for term, coefficients in _COEFFICIENTS_OF.items():
+        table = plasticity[term]
+        zeroed = {} if table["enabled"] else dict.fromkeys(coefficients, 0.0)
         plasticity[term] = {**table, **zeroed, "enabled": True}
     return {**cfg, "plasticity": plasticity}
 

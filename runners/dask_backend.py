@@ -43,7 +43,7 @@ def simulate_task(config: dict[str, Any], seed: int, wiring_seed: int) -> dict[s
         summary = f"{type(exc).__name__}: {exc}"
         return TaskFailure(summary + "\n" + traceback.format_exc(limit=6))
     if config["execution"]["prescreen"]:
-        from .theory import predict
+        from .theory.prediction import predict
 
         result["predicted_outcome"] = predict(config).outcome
     return result

@@ -10,14 +10,30 @@ E->E (``ee_rule``), each term switched by its ``enabled`` key:
 - minimal triplet STDP (Pfister & Gerstner 2006): on a post spike
   ``w += A * z_plus * z_slow`` with the slow post trace read *before* its own increment;
   on a pre spike ``w -= B * z_minus``;
-- heterosynaptic term (Zenke, Agnes & Gerstner 2015): on a post spike
-  ``w -= beta * (w - w_ref) * z_minus**3`` (``z_minus`` read before its increment);
+- heterosynaptic term (Zenke, Agnes & Gerstner 2015, Nat Commun 6:6922): on a post spike the
+  published ``dw = -beta * (w - w_ref) * z_minus**3`` (``z_minus`` read before its increment),
+  integrated exactly over the spike as ``w <- w_ref + (w - w_ref) * exp(-beta * z_minus**3)``:
+  equal to the published step to first order in ``beta * z_minus**3``, and it never overshoots
+  ``w_ref`` (at member rates near 80 Hz with tau_minus = 33.7 ms, ``beta * z_minus**3`` exceeds 1
+  for beta >= 0.03, where the linear step would flip the sign of ``w - w_ref``);
+- order on a post spike: (1) the heterosynaptic relaxation of the weight the spike found,
+  (2) plus this spike's triplet LTP, (3) the clip, (4) the increments of ``z_minus`` and
+  ``z_slow``. Both terms read the traces before their increments (4), as the published rules
+  do. The relaxation goes first because the published terms are both evaluated at the weight
+  before the spike: relaxing first keeps this spike's LTP whole, whereas relaxing after it
+  would shrink the LTP by ``exp(-beta * z_minus**3)``, a change of order beta*z^3 in the LTP
+  itself that the published sum does not have (the two orders agree only to first order);
 - transmitter-induced term: on a pre spike ``w += delta``;
 
 all clipped to ``[0, w_max]``. ``w_ref`` is the synapse's initial weight (the builder sets it),
 fixed or consolidating as ``tau_consolidation dw_ref/dt = w - w_ref`` (``consolidation_step``).
 
-I->E (``ie_rule``): inhibitory STDP (Vogels et al. 2011): on a pre spike
+Every weight change (E->E and I->E) is multiplied by ``plastic = int(t < freeze_time)``: with
+``plasticity.freeze_after_imprint`` the weights stop changing at the end of the imprint phase
+(of settle, for prewired assemblies), the control that shows what ongoing plasticity does;
+otherwise ``freeze_time`` lies beyond any run.
+
+I->E (``ie_rule``): inhibitory STDP (Vogels et al. 2011, Science 334:1569): on a pre spike
 ``w += eta * (z_exc - alpha)``, on a post spike ``w += eta * z_inh``, ``alpha = 2 rho0 tau``,
 clipped to ``[0, w_max]``.
 """
@@ -28,6 +44,8 @@ from dataclasses import dataclass
 from typing import Any
 
 import brian2 as b2
+
+from . import protocol
 
 CONSOLIDATION_DT_S = 0.1
 """Update interval (s) of the consolidating reference weight (tau_consolidation >= 0.1 s)."""
@@ -43,12 +61,29 @@ class Rule:
     namespace: dict[str, Any]
 
 
+NEVER_FROZEN_S = 1e12
+"""``freeze_time`` (s) when plasticity never freezes: beyond any run."""
+_GATE = "plastic = int(t < freeze_time)"
+
+
+def freeze_time_s(cfg: dict) -> float:
+    """Simulated time (s) from which weights stop changing: the end of imprinting if frozen, else never."""
+    if not cfg["plasticity"]["freeze_after_imprint"]:
+        return NEVER_FROZEN_S
+    sched = protocol.schedule(cfg)
+    return sched.seconds(sched.imprint_end)
+
+
 def _clip(expr: str, bound: str) -> str:
     return f"w = clip({expr}, 0, {bound})"
 
 
 def ee_rule(cfg: dict) -> Rule:
-    """E->E rule from ``cfg['plasticity']`` (triplet, heterosynaptic, transmitter sub-tables)."""
+    """E->E rule from ``cfg['plasticity']`` (triplet, heterosynaptic, transmitter sub-tables).
+
+    ``on_post`` relaxes ``w`` toward ``w_ref``, adds the triplet LTP, clips, then increments the
+    post traces (order and reason: module docstring).
+    """
     p = cfg["plasticity"]
     tri, het, trans = p["triplet"], p["heterosynaptic"], p["transmitter"]
     model = [
@@ -58,18 +93,18 @@ def ee_rule(cfg: dict) -> Rule:
         "dz_minus/dt = -z_minus / tau_minus : 1 (event-driven)",
         "dz_slow/dt = -z_slow / tau_slow : 1 (event-driven)",
     ]
-    pre_terms, post_terms = [], []
+    pre_terms, post = [], "w"
+    if het["enabled"]:
+        post = "w_ref + (w - w_ref) * exp(-plastic * beta * z_minus**3)"
     if tri["enabled"]:
         pre_terms.append("- b_ltd * z_minus")
-        post_terms.append("+ a_ltp * z_plus * z_slow")
+        post += " + plastic * a_ltp * z_plus * z_slow"
     if trans["enabled"]:
         pre_terms.append("+ delta")
-    if het["enabled"]:
-        post_terms.append("- beta * (w - w_ref) * z_minus**3")
     on_pre = ["z_plus += 1"]
     if pre_terms:
-        on_pre.append(_clip("w " + " ".join(pre_terms), "w_max"))
-    on_post = [_clip("w " + " ".join(post_terms), "w_max")] if post_terms else []
+        on_pre += [_GATE, _clip("w + plastic * (" + " ".join(pre_terms) + ")", "w_max")]
+    on_post = [_GATE, _clip(post, "w_max")] if post != "w" else []
     on_post += ["z_minus += 1", "z_slow += 1"]  # after the weight update: traces read before increment
     namespace = {
         "tau_plus": tri["tau_plus_ms"] * b2.ms,
@@ -82,6 +117,7 @@ def ee_rule(cfg: dict) -> Rule:
         "delta": trans["delta"],
         "tau_consolidation": het["tau_consolidation_s"] * b2.second,
         "consolidation_dt": CONSOLIDATION_DT_S * b2.second,
+        "freeze_time": freeze_time_s(cfg) * b2.second,
     }
     return Rule("\n".join(model), "\n".join(on_pre), "\n".join(on_post), namespace)
 
@@ -110,14 +146,15 @@ def ie_rule(cfg: dict) -> Rule:
         "dz_inh/dt = -z_inh / tau_istdp : 1 (event-driven)",
         "dz_exc/dt = -z_exc / tau_istdp : 1 (event-driven)",
     ])
-    on_pre = "z_inh += 1\n" + _clip("w + eta * (z_exc - alpha)", "w_max_inh")
-    on_post = "z_exc += 1\n" + _clip("w + eta * z_inh", "w_max_inh")
+    on_pre = "\n".join(["z_inh += 1", _GATE, _clip("w + plastic * eta * (z_exc - alpha)", "w_max_inh")])
+    on_post = "\n".join(["z_exc += 1", _GATE, _clip("w + plastic * eta * z_inh", "w_max_inh")])
     tau = inh["tau_ms"] * b2.ms
     namespace = {
         "tau_istdp": tau,
         "eta": inh["eta"],
         "alpha": 2 * inh["rho0_hz"] * inh["tau_ms"] * 1e-3,
         "w_max_inh": inh["w_max"],
+        "freeze_time": freeze_time_s(cfg) * b2.second,
     }
     return Rule(model, on_pre, on_post, namespace)
 

@@ -33,6 +33,7 @@ decided by :func:`capsweep.runners.builds.unsupported`.
 from __future__ import annotations
 
 import contextlib
+import gc
 import shutil
 import tempfile
 import time
@@ -297,6 +298,10 @@ def _use_standalone(directory: Path, fresh: bool) -> Any:
         device.reinit()
         device.activate(build_on_run=False, directory=str(directory))
         _CURRENT.clear()
+        # Brian2 names code objects uniquely among the instances alive: objects of an earlier build
+        # still waiting for the cycle collector would make this build's names (and so its code, and
+        # the need to recompile it) depend on what the process ran before.
+        gc.collect()
     return device
 
 

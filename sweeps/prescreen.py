@@ -1,6 +1,6 @@
 """Theory prescreen of a whole sweep: a predicted outcome per grid cell, before any simulation.
 
-The prediction is deterministic (mean-field theory, :func:`capsweep.runners.theory.predict`), so one
+The prediction is deterministic (mean-field theory, :func:`capsweep.runners.theory.prediction.predict`), so one
 prediction serves every replicate of a cell. Cells are predicted in parallel on Dask.
 """
 
@@ -19,7 +19,7 @@ from .sweepfile import load_sweep
 
 def predict_row(config: dict[str, Any]) -> dict[str, Any]:
     """Worker-side: the prediction of one config as a flat table row."""
-    from ..runners.theory import predict
+    from ..runners.theory.prediction import predict
 
     p = predict(config)
     return {

@@ -8,13 +8,15 @@ from pathlib import Path
 import matplotlib
 
 matplotlib.use("Agg")
-import matplotlib.pyplot as plt  # noqa: E402
-import numpy as np  # noqa: E402
+import matplotlib.pyplot as plt
+import numpy as np
 
-from ..runners import theory  # noqa: E402
+from ..runners.drift import bcm_threshold_hz, drift_zero_crossings, rule_drift
+from ..runners.meanfield import TransferCurve, initial_weights, population_rates
+from ..runners.metrics import active_threshold
 
 
-def _mark_fixed_points(ax, curve: theory.TransferCurve, color: str) -> None:
+def _mark_fixed_points(ax, curve: TransferCurve, color: str) -> None:
     for fp in curve.fixed_points:
         face = color if fp.stable else "white"
         ax.plot(fp.rate_hz, fp.rate_hz, "o", ms=8, mfc=face, mec=color, mew=1.5, zorder=3)
@@ -30,7 +32,7 @@ def plot_transfer(cfg: dict, path: str | Path) -> Path:
     assembly's members (co-members clamped at the input rate, rest solved), at the initial
     within weight and at w_max. Rates in Hz.
     """
-    rates = theory.population_rates(cfg, with_cue=False)
+    rates = population_rates(cfg, with_cue=False)
     fig, axes = plt.subplots(1, 2, figsize=(10, 4.2))
     ax = axes[0]
     curve = rates.background_curve
@@ -44,10 +46,10 @@ def plot_transfer(cfg: dict, path: str | Path) -> Path:
     ax.set_ylabel("output E rate (Hz)")
     ax = axes[1]
     if rates.assembly_curve is not None:
-        w0 = theory.initial_weights(cfg)
+        w0 = initial_weights(cfg)
         w_max = cfg["plasticity"]["triplet"]["w_max"]
-        on_hz = theory.active_threshold_hz(cfg, rates.background_exc_hz)
-        at_max = theory.population_rates(cfg, replace(w0, within=w_max), with_cue=False, active_hz=on_hz)
+        on_hz = active_threshold(cfg["detection"], rates.background_exc_hz)
+        at_max = population_rates(cfg, replace(w0, within=w_max), with_cue=False, active_hz=on_hz)
         for curve, color, label in ((rates.assembly_curve, "C1", f"within w = {w0.within:g}"),
                                     (at_max.assembly_curve, "C3", f"within w = w_max = {w_max:g}")):
             ax.plot(curve.input_hz, curve.output_hz, color=color, label=label)
@@ -81,11 +83,11 @@ def plot_drift(cfg: dict, path: str | Path, rate_pre_hz: float | None = None,
     fig, ax = plt.subplots(figsize=(7, 4.5))
     for i, ratio in enumerate(ratios):
         w = ratio * w_ref
-        drift = [theory.rule_drift(cfg, pre, r, w, w_ref) for r in post]
+        drift = [rule_drift(cfg, pre, r, w, w_ref) for r in post]
         ax.plot(post, drift, color=f"C{i}", label=f"w/w_ref = {ratio:g}")
-        for x in theory.drift_zero_crossings(cfg, pre, w, w_ref, max_rate_hz):
+        for x in drift_zero_crossings(cfg, pre, w, w_ref, max_rate_hz):
             ax.plot(x, 0.0, "o", color=f"C{i}", ms=6)
-    theta = theory.bcm_threshold_hz(cfg)
+    theta = bcm_threshold_hz(cfg)
     if np.isfinite(theta) and theta <= max_rate_hz:
         ax.axvline(theta, color="grey", ls=":", label=f"BCM-like threshold {theta:.1f} Hz")
     ax.axhline(0.0, color="k", lw=0.8)

