@@ -31,9 +31,9 @@ __all__ = ["__version__", "RunOptions", "capacity_table", "load_sweep", "open_da
 
 if TYPE_CHECKING:
     from .results_schema.dataset import open_dataset
+    from .sweeps.capacity import capacity_table
     from .sweeps.launch import RunOptions, run_sweep
     from .sweeps.prescreen import prescreen_sweep
-    from .sweeps.capacity import capacity_table
     from .sweeps.sweepfile import load_sweep
 
 

@@ -69,7 +69,8 @@ def engine(name: str) -> Engine:
 def resolve(ref: str) -> Callable[..., Any]:
     """The function a ``module:function`` reference names (imported now)."""
     module, _, function = ref.partition(":")
-    return getattr(import_module(module), function)  # type: ignore[no-any-return]
+    found: Callable[..., Any] = getattr(import_module(module), function)
+    return found
 
 
 def engine_for(cfg: dict[str, Any]) -> tuple[Engine, str | None]:

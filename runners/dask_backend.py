@@ -39,7 +39,7 @@ def simulate_task(config: dict[str, Any], seed: int, wiring_seed: int) -> dict[s
     BrianLogger.log_level_error()
     try:
         result = run_point(config, seed, wiring_seed=wiring_seed)
-    except Exception as exc:  # noqa: BLE001 - every failure is recorded, none may kill the sweep
+    except Exception as exc:  # every failure is recorded, none may kill the sweep
         summary = f"{type(exc).__name__}: {exc}"
         return TaskFailure(summary + "\n" + traceback.format_exc(limit=6))
     if config["execution"]["prescreen"]:
@@ -55,8 +55,9 @@ class PrepareWorker(WorkerPlugin):
     - Brian2 and the point runner are imported in the worker's main thread: Brian2 installs a
       SIGINT handler when first imported, which Python allows only in the main thread (tasks run
       in an executor thread). Workers of the local cluster have them already: they import
-      ``capsweep.runners.model`` (the Brian2 network, imported by every engine) as a Dask preload, before they register, which spares the round trip of
-      a plugin that still has work to do.
+      ``capsweep.runners.model`` (the Brian2 network, imported by every engine) as a Dask
+      preload, before they register, which spares the round trip of a plugin that still has
+      work to do.
     - With ``leave_fast`` (workers of capsweep's own local cluster), a worker process closed
       cleanly exits without interpreter teardown, which takes about 0.5 s with Brian2 loaded and
       has nothing left to save. Workers of a cluster someone else runs keep their normal exit.
@@ -153,7 +154,7 @@ class EarlyClient:
         """The started client; raises what starting it raised (e.g. an unreachable scheduler)."""
         return self.start().result()
 
-    def __enter__(self) -> "EarlyClient":
+    def __enter__(self) -> EarlyClient:
         return self
 
     def __exit__(self, *exc: object) -> None:
@@ -181,7 +182,7 @@ def run_tasks(
             tag = futures.pop(future)
             try:
                 result = future.result()
-            except Exception as exc:  # noqa: BLE001 - a dead worker is a failed point, not a dead sweep
+            except Exception as exc:  # a dead worker is a failed point, not a dead sweep
                 result = TaskFailure(f"worker lost: {type(exc).__name__}: {exc}")
             yield tag, result
     finally:

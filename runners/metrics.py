@@ -207,7 +207,7 @@ def pathway_means(w: np.ndarray, pre: np.ndarray, post: np.ndarray, members: np.
     membership matrix: "within" means pre and post share an assembly, "in" a post cell in some
     assembly with a pre cell in none, "out" the reverse. NaN for an empty pathway.
     """
-    in_any = members.any(axis=0)
+    in_any = np.asarray(members.any(axis=0))
     within = (members[:, pre] & members[:, post]).any(axis=0)
     into = in_any[post] & ~in_any[pre]
     out = in_any[pre] & ~in_any[post]

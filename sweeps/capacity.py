@@ -77,7 +77,7 @@ def _cells(ds: xr.Dataset) -> Iterator[_Cell]:
     count = count_dim(ds)
     success, status = point_success(ds), labelled(ds, "status")
     order = np.argsort(ds[count].values)
-    others = [d for d in success.dims if d not in (count, "replicate")]
+    others = [str(d) for d in success.dims if d not in (count, "replicate")]
     for combo in itertools.product(*(range(ds.sizes[d]) for d in others)):
         where = dict(zip(others, combo))
         labels = {d: ds[d].values.tolist()[i] for d, i in where.items()}

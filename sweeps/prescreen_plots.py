@@ -11,9 +11,9 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt
 import numpy as np
 
-from ..runners.drift import bcm_threshold_hz, drift_zero_crossings, rule_drift
-from ..runners.meanfield import TransferCurve, initial_weights, population_rates
 from ..runners.metrics import active_threshold
+from ..runners.theory.drift import bcm_threshold_hz, drift_zero_crossings, rule_drift
+from ..runners.theory.meanfield import TransferCurve, initial_weights, population_rates
 
 
 def _mark_fixed_points(ax, curve: TransferCurve, color: str) -> None:
@@ -50,10 +50,11 @@ def plot_transfer(cfg: dict, path: str | Path) -> Path:
         w_max = cfg["plasticity"]["triplet"]["w_max"]
         on_hz = active_threshold(cfg["detection"], rates.background_exc_hz)
         at_max = population_rates(cfg, replace(w0, within=w_max), with_cue=False, active_hz=on_hz)
-        for curve, color, label in ((rates.assembly_curve, "C1", f"within w = {w0.within:g}"),
-                                    (at_max.assembly_curve, "C3", f"within w = w_max = {w_max:g}")):
-            ax.plot(curve.input_hz, curve.output_hz, color=color, label=label)
-            _mark_fixed_points(ax, curve, color)
+        for member_curve, color, label in ((rates.assembly_curve, "C1", f"within w = {w0.within:g}"),
+                                           (at_max.assembly_curve, "C3", f"within w = w_max = {w_max:g}")):
+            if member_curve is not None:
+                ax.plot(member_curve.input_hz, member_curve.output_hz, color=color, label=label)
+                _mark_fixed_points(ax, member_curve, color)
         ax.axhline(on_hz, color="grey", ls=":", lw=1, label=f"active threshold {on_hz:.1f} Hz")
     else:
         ax.text(0.5, 0.5, "no assemblies", ha="center", transform=ax.transAxes)

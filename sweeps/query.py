@@ -27,7 +27,7 @@ class QueryError(CapsweepError):
 
 def sweep_dims(ds: xr.Dataset) -> list[str]:
     """The store's sweep dims (one per axis, then ``replicate``)."""
-    return list(ds[STATUS.name].dims)
+    return [str(d) for d in ds[STATUS.name].dims]
 
 
 def axis_keys(ds: xr.Dataset) -> dict[str, str]:
@@ -44,7 +44,8 @@ def point_table(ds: xr.Dataset) -> pd.DataFrame:
     """One row per point: axis values, replicate, labels, scalar metrics and per-point summaries."""
     dims = sweep_dims(ds)
     columns: dict[str, xr.DataArray] = {}
-    for name, var in ds.data_vars.items():
+    for key, var in ds.data_vars.items():
+        name = str(key)
         if tuple(var.dims) != tuple(dims) or name in ("point_id", "error"):
             continue
         columns[name] = labelled(ds, name) if "flag_meanings" in var.attrs else var

@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, replace
+from typing import Any
 
 import numpy as np
 
@@ -129,7 +130,7 @@ def _background_at_end_weights(cfg: dict, r: _Reasoning) -> None:
     r.reasons.append(f"background at w_max: E {end.background_exc_hz:.2f} Hz")
 
 
-def _verdict(cfg: dict, r: _Reasoning, common: dict) -> Prediction:
+def _verdict(cfg: dict, r: _Reasoning, common: dict[str, Any]) -> Prediction:
     """Step 6: runaway if a high-rate state exceeds the threshold, else stable."""
     if r.istdp and not (r.high_exc_hz > r.threshold_hz):
         r.held_by_istdp = True
@@ -176,7 +177,7 @@ def predict(cfg: dict) -> Prediction:
     r = _start(cfg)
     start, bg = r.start, r.start.background_exc_hz
     member_bg = start.background["U"] if start.assembly_curve is not None else bg
-    common = dict(
+    common: dict[str, Any] = dict(
         recall_state_exists=start.assembly is not None, background_rate_hz=bg,
         assembly_rate_hz=start.assembly.rate_hz if start.assembly else math.nan,
         drift_zero_crossings_hz=drift_zero_crossings(cfg, member_bg, cfg["plasticity"]["triplet"]["w_max"],
