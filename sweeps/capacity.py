@@ -156,3 +156,63 @@ def capacity_table(ds: xr.Dataset, min_fraction: float = MIN_FRACTION) -> pd.Dat
     for column in ("capacity", "capacity_lo", "capacity_hi"):
         table[column] = table[column].astype("Int64")
     return table
+
+
+SIZE_KEY = "network.n_exc"
+BOOTSTRAP_RESAMPLES = 2000
+
+
+@dataclass(frozen=True)
+class ScalingFit:
+    """Capacity against network size: capacity ~ prefactor * n_exc ** exponent."""
+
+    exponent: float
+    exponent_lo: float  # 95 % bootstrap interval over replicates
+    exponent_hi: float
+    prefactor: float
+    sizes: list[int]  # network sizes used in the fit
+    mean_capacity: list[float]  # mean per-replicate capacity at each size
+    lower_bounds: list[int]  # sizes whose capacity reached the top of the grid (only a lower bound)
+
+
+def size_dim(ds: xr.Dataset) -> str | None:
+    """The sweep dim over ``network.n_exc``, if any."""
+    return next((d for d, k in axis_keys(ds).items() if k == SIZE_KEY), None)
+
+
+def scaling_fit(ds: xr.Dataset, seed: int = 0) -> ScalingFit | None:
+    """Least-squares fit of log capacity against log n_exc, with a bootstrap interval on the exponent.
+
+    Per size, the mean of the per-replicate capacities (see the module docstring); sizes with a
+    mean of 0 are left out (no logarithm). The interval resamples each size's replicates with
+    replacement (``BOOTSTRAP_RESAMPLES`` times, percentile 2.5-97.5). Needs axes over n_exc and
+    the assembly count and no other axis with more than one value; None with fewer than two
+    usable sizes. Sizes whose capacity is the top of the count grid are named in
+    ``lower_bounds``: there the fit underestimates.
+    """
+    size = size_dim(ds)
+    if size is None or any(ds.sizes[d] > 1 for d in axis_keys(ds) if d not in (size, count_dim(ds))):
+        return None
+    per_size: dict[int, np.ndarray] = {}
+    top: list[int] = []
+    for cell in _cells(ds):
+        n = int(cell.labels[size])  # type: ignore[call-overload]
+        capacities = np.array(_replicate_capacities(cell), dtype=float)
+        if len(capacities) and capacities.mean() > 0:
+            per_size[n] = capacities
+            top += [n] if capacities.max() >= cell.counts[-1] else []
+    if len(per_size) < 2:
+        return None
+    sizes = sorted(per_size)
+    log_n = np.log(sizes)
+    means = np.array([per_size[n].mean() for n in sizes])
+    slope, intercept = np.polyfit(log_n, np.log(means), 1)
+    rng = np.random.default_rng(seed)
+    slopes = []
+    for _ in range(BOOTSTRAP_RESAMPLES):
+        resampled = np.array([rng.choice(per_size[n], len(per_size[n])).mean() for n in sizes])
+        if np.all(resampled > 0):
+            slopes.append(np.polyfit(log_n, np.log(resampled), 1)[0])
+    lo, hi = np.percentile(slopes, [2.5, 97.5])
+    return ScalingFit(float(slope), float(lo), float(hi), float(np.exp(intercept)), sizes,
+                      [float(m) for m in means], top)

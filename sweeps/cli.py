@@ -188,7 +188,7 @@ def capacity(
     the per-replicate capacities; 'at least' marks the top of the grid, NA a cell with pending points.
     """
     from ..results_schema.dataset import open_dataset
-    from .capacity import capacity_table, count_dim, success_table
+    from .capacity import capacity_table, count_dim, scaling_fit, success_table
 
     ds = open_dataset(store)
     table = capacity_table(ds, min_fraction)
@@ -201,6 +201,13 @@ def capacity(
     out.print(f"\ncapacity (every count up to it succeeds in >= {min_fraction:g} of replicates; "
               "range over replicates):", highlight=False)
     _emit(_capacity_display(table), fmt)
+    fit = scaling_fit(ds)
+    if fit is not None:
+        out.print(f"capacity ~ {fit.prefactor:.3g} x n_exc^b, b = {fit.exponent:.2f} "
+                  f"[{fit.exponent_lo:.2f}, {fit.exponent_hi:.2f}] (95 % bootstrap over replicates; sizes "
+                  f"{', '.join(map(str, fit.sizes))}"
+                  + (f"; at the top of the grid, so underestimated: {fit.lower_bounds}" if fit.lower_bounds else "")
+                  + ")", highlight=False)
     others = [c for c in table.columns if c not in _CAPACITY_COLUMNS]
     for _, row in table[table["non_monotone"]].iterrows():
         where = ", ".join(f"{c}={row[c]}" for c in others) or "the grid"

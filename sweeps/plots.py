@@ -16,7 +16,7 @@ import pandas as pd
 import xarray as xr
 from matplotlib.ticker import MaxNLocator
 
-from .capacity import MIN_FRACTION, capacity_table, count_dim, point_success, success_table
+from .capacity import MIN_FRACTION, capacity_table, count_dim, point_success, scaling_fit, size_dim, success_table
 from .query import COUNT_KEY, QueryError, axis_keys, labelled
 
 OUTCOME_COLOURS = {"stable": "tab:green", "runaway": "tab:red", "silent": "tab:grey"}
@@ -81,6 +81,37 @@ def capacity_curves(ds: xr.Dataset, path: Path, min_fraction: float = MIN_FRACTI
     return _save(fig, path)
 
 
+def capacity_scaling(ds: xr.Dataset, path: Path) -> Path | None:
+    """Capacity against network size (log-log): per-replicate capacities, their mean, the fitted power law.
+
+    None when the store has no axis over network.n_exc (see :func:`capsweep.sweeps.capacity.scaling_fit`).
+    """
+    fit = scaling_fit(ds)
+    if fit is None:
+        return None
+    size, count = size_dim(ds), count_dim(ds)
+    fig, ax = plt.subplots(figsize=(5.5, 4.0))
+    for cell in capacity_table(ds).itertuples():
+        n = getattr(cell, str(size))
+        if not pd.isna(cell.capacity_lo):
+            ax.plot([n, n], [cell.capacity_lo, cell.capacity_hi], color="grey", lw=2, alpha=0.6)
+    ax.plot(fit.sizes, fit.mean_capacity, "o", color="C0", label="mean over replicates (bar: range)")
+    grid = np.geomspace(min(fit.sizes), max(fit.sizes), 50)
+    ax.plot(grid, fit.prefactor * grid**fit.exponent, color="C1",
+            label=f"fit: exponent {fit.exponent:.2f} [{fit.exponent_lo:.2f}, {fit.exponent_hi:.2f}]")
+    for n in fit.lower_bounds:
+        ax.annotate("top of grid", (n, fit.mean_capacity[fit.sizes.index(n)]), fontsize=7,
+                    xytext=(4, 4), textcoords="offset points")
+    ax.set_xscale("log")
+    ax.set_yscale("log")
+    ax.set_xticks(fit.sizes, [str(n) for n in fit.sizes])
+    ax.set_xlabel(_axis_label(ds, str(size)))
+    ax.set_ylabel(f"capacity ({count}, per replicate)")
+    ax.legend(fontsize=7)
+    ax.set_title("capacity against network size (95 % bootstrap interval on the exponent)", fontsize=8)
+    return _save(fig, path)
+
+
 def rate_traces(ds: xr.Dataset, path: Path, per_outcome: int = 6, smooth_s: float = 0.1) -> Path:
     """Excitatory population rate against time (moving average over ``smooth_s`` s), a few points
     per outcome, one panel per outcome."""
@@ -128,6 +159,8 @@ def all_plots(ds: xr.Dataset, out_dir: Path, x: str | None = None, y: str | None
     ]
     if any(k == COUNT_KEY for k in axis_keys(ds).values()):
         paths.append(capacity_curves(ds, out_dir / "capacity_curves.png"))
+        scaling = capacity_scaling(ds, out_dir / "capacity_scaling.png")
+        paths += [scaling] if scaling is not None else []
     return paths
 
 
@@ -138,6 +171,6 @@ def _axis_label(ds: xr.Dataset, dim: str) -> str:
 
 def _save(fig: plt.Figure, path: Path) -> Path:
     fig.tight_layout()
-    fig.savefig(path, dpi=120)
+    fig.savefig(path, dpi=150)
     plt.close(fig)
     return path

@@ -11,13 +11,14 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from scipy.stats import linregress
 from typer.testing import CliRunner
 
 from capsweep.axes import key_axis
 from capsweep.results_schema.dataset import open_dataset
 from capsweep.results_schema.layout import VARIABLES, GridSpec
 from capsweep.results_schema.store import ResultStore, create_store
-from capsweep.sweeps.capacity import capacity_table, success_table, wilson_interval
+from capsweep.sweeps.capacity import capacity_table, scaling_fit, success_table, wilson_interval
 from capsweep.sweeps.cli import app
 from capsweep.sweeps.plots import all_plots
 from capsweep.sweeps.query import QueryError, plausibility, point_table, select, status_counts
@@ -167,3 +168,36 @@ def test_plots_are_written_as_png(store: Path, tmp_path: Path) -> None:
                                        "capacity_curves.png"}
     for path in paths:
         assert path.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and path.stat().st_size > 5000
+
+
+def _scaling_store(tmp_path: Path, capacities: dict[int, list[int]]) -> Path:
+    """A store over n_exc x n_odours (1-8) x 3 replicates where replicate r of size n succeeds up to
+    ``capacities[n][r]`` assemblies and runs away above."""
+    counts = (1, 2, 3, 4, 5, 6, 7, 8)
+    axes = (key_axis("n_exc", "network.n_exc", tuple(capacities)), key_axis("n_odours", "assemblies.count", counts))
+    shape = (len(capacities), len(counts), 3)
+    path = tmp_path / "scaling.zarr"
+    seeds = np.arange(np.prod(shape)).reshape(shape)
+    ids = np.array([f"p{i}" for i in range(np.prod(shape))], dtype=object).reshape(shape)
+    create_store(path, GridSpec(axes, 3, 8, 3, 20, 0.5, "fp", {}), ids, seeds)
+    writer = ResultStore.open(path)
+    for (i, j, r) in np.ndindex(*shape):
+        count = counts[j]
+        ok = count <= list(capacities.values())[i][r]
+        writer.write_point((i, j, r), result(count, "stable" if ok else "runaway", count if ok else 0, int(seeds[i, j, r])))
+    return path
+
+
+def test_scaling_exponent_is_the_log_log_slope_of_mean_capacities(tmp_path: Path) -> None:
+    """Per-replicate capacities 1-3 at 300, 2-5 at 1200, 5-7 at 4800 cells: the exponent is the
+    least-squares slope of log(mean capacity) on log(n_exc), checked with scipy.stats.linregress;
+    the bootstrap interval contains it, and a size at the top of the grid is named."""
+    capacities = {300: [1, 2, 3], 1200: [2, 4, 5], 4800: [5, 6, 8]}
+    fit = scaling_fit(open_dataset(_scaling_store(tmp_path, capacities)))
+    assert fit is not None
+    means = [np.mean(c) for c in capacities.values()]
+    expected = linregress(np.log(list(capacities)), np.log(means))
+    assert fit.exponent == pytest.approx(expected.slope, rel=1e-9)
+    assert fit.prefactor == pytest.approx(np.exp(expected.intercept), rel=1e-9)
+    assert fit.exponent_lo < fit.exponent < fit.exponent_hi
+    assert fit.lower_bounds == [4800]  # replicate 2 succeeds at the top count 8
