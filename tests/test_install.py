@@ -26,10 +26,11 @@ def test_the_distribution_exposes_only_capsweep() -> None:
 
 def test_every_package_folder_is_packaged() -> None:
     """A subpackage missing from [tool.setuptools] packages works in an editable install but not from a wheel."""
-    folders = {package: Path(folder) for package, folder in PYPROJECT["tool"]["setuptools"]["package-dir"].items()}
-    on_disk = {f"{package}.{'.'.join(init.parent.relative_to(ROOT / folder).parts)}".rstrip(".")
-               for package, folder in folders.items() for init in (ROOT / folder).rglob("__init__.py")}
-    assert on_disk <= set(PYPROJECT["tool"]["setuptools"]["packages"]), sorted(on_disk)
+    setup = PYPROJECT["tool"]["setuptools"]
+    on_disk = {".".join([package, *init.parent.relative_to(ROOT / folder).parts])
+               for package, folder in setup["package-dir"].items() for init in (ROOT / folder).rglob("__init__.py")}
+    missing = sorted(on_disk - set(setup["packages"]))
+    assert not missing, f"pyproject.toml [tool.setuptools] packages lacks {missing}: a wheel would not contain them"
 
 
 def test_imports_work_from_outside_the_checkout_beside_a_users_own_modules(tmp_path: Path) -> None:
