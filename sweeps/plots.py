@@ -14,7 +14,7 @@ import matplotlib.pyplot as plt
 import numpy as np
 import pandas as pd
 import xarray as xr
-from matplotlib.ticker import MaxNLocator
+from matplotlib.ticker import MaxNLocator, NullFormatter
 
 from .capacity import MIN_FRACTION, capacity_table, count_dim, point_success, scaling_fit, size_dim, success_table
 from .query import COUNT_KEY, QueryError, axis_keys, labelled
@@ -105,6 +105,10 @@ def capacity_scaling(ds: xr.Dataset, path: Path) -> Path | None:
     ax.set_xscale("log")
     ax.set_yscale("log")
     ax.set_xticks(fit.sizes, [str(n) for n in fit.sizes])
+    top = int(np.nanmax(capacity_table(ds)["capacity_hi"].astype(float))) + 1
+    ax.set_yticks(range(1, top + 1), [str(k) for k in range(1, top + 1)])
+    for axis in (ax.xaxis, ax.yaxis):
+        axis.set_minor_formatter(NullFormatter())
     ax.set_xlabel(_axis_label(ds, str(size)))
     ax.set_ylabel(f"capacity ({count}, per replicate)")
     ax.legend(fontsize=7)
