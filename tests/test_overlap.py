@@ -20,8 +20,10 @@ CONFIG = {
     "network.n_exc": 120, "assemblies.count": 4, "assemblies.size": 40, "assemblies.overlap": "random",
     "assemblies.prewire_gain": 1.0, "protocol.cue_fraction": 1.0, "protocol.settle_s": 0.3,
     "protocol.hold_s": 0.2, "protocol.cue_duration_s": 0.1, "protocol.cue_gap_s": 0.1,
-    "protocol.cue_rate_hz": 4000.0, "protocol.cue_weight": 0.3, "execution.abort_on_runaway": False,
+    "network.w_e_to_e": 0.01, "plasticity.freeze_after_imprint": True, "protocol.cue_weight": 0.2,
+    "execution.abort_on_runaway": False,
 }
+"""Weak, frozen E->E weights: the cue's own input, not recurrent spread, decides who fires in a window."""
 
 
 @pytest.mark.parametrize("engine", [name for name in ENGINES if name != "numpy"])
