@@ -148,7 +148,7 @@ def status(store: Path = typer.Argument(..., help="Zarr store directory")) -> No
 
 
 SUMMARY_COLUMNS = (
-    "outcome", "recalled_count", "recall_quality_min", "runaway_onset_s", "rate_exc_baseline_hz",
+    "outcome", "recalled_count", "recall_score_min", "runaway_onset_s", "rate_exc_baseline_hz",
     "weight_correlation_end", "assembly_contrast_end", "wall_time_s",
 )
 

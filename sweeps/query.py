@@ -50,15 +50,15 @@ def point_table(ds: xr.Dataset) -> pd.DataFrame:
             continue
         columns[name] = labelled(ds, name) if "flag_meanings" in var.attrs else var
     summaries = {
+        "recall_score_min": ds["recall_score"].min("assembly", skipna=True),
         "recall_quality_min": ds["recall_quality"].min("assembly", skipna=True),
         "recall_quality_mean": ds["recall_quality"].mean("assembly", skipna=True),
         "cross_talk_max": ds["cross_talk"].max("assembly", skipna=True),
         "weight_correlation_end": ds["weight_correlation"].isel(snapshot=-1),
         "assembly_contrast_end": ds["assembly_contrast"].isel(snapshot=-1),
     }
-    frame = xr.Dataset({**columns, **summaries}).reset_coords(drop=True).to_dataframe().reset_index()
-    frame.insert(len(dims), "point_id", ds["point_id"].values.reshape(-1).astype(object))
-    return frame
+    table = xr.Dataset({"point_id": ds["point_id"], **columns, **summaries}).reset_coords(drop=True)
+    return table.to_dataframe(dim_order=dims).reset_index()
 
 
 def select(frame: pd.DataFrame, where: str = DEFAULT_WHERE) -> pd.DataFrame:

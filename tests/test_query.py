@@ -201,3 +201,14 @@ def test_scaling_exponent_is_the_log_log_slope_of_mean_capacities(tmp_path: Path
     assert fit.prefactor == pytest.approx(np.exp(expected.intercept), rel=1e-9)
     assert fit.exponent_lo < fit.exponent < fit.exponent_hi
     assert fit.lower_bounds == [4800]  # replicate 2 succeeds at the top count 8
+
+
+def test_point_table_rows_keep_their_own_point_id_and_sweep_order(store: Path) -> None:
+    """The store's dims are (n_odours, beta, replicate), not alphabetical: each row's point_id must be
+    the one stored at that row's labels, and rows come in the sweep file's axis order."""
+    ds = open_dataset(store)
+    frame = point_table(ds)
+    assert list(frame.columns[:3]) == ["n_odours", "beta", "replicate"]
+    for row in frame.itertuples():
+        stored = ds["point_id"].sel(n_odours=row.n_odours, beta=row.beta, replicate=row.replicate).item()
+        assert row.point_id == stored
