@@ -36,11 +36,16 @@ max(detection.runaway_factor x baseline E rate, detection.runaway_floor_hz) for 
 periods are excluded. NaN if never.
 outcome: runaway if a runaway onset exists; else silent if the E rate over the last smoothing window before \
 recall, or over the background-only tail after it, is below detection.silence_hz; else stable.
-success of a point: status done, outcome stable and recalled_count equal to its assemblies.count. A failed \
-(crashed) point is neither success nor failure; a pending one leaves its cell undecided.
+success of a point: status done, outcome stable and recalled_count equal to its assemblies.count (every assembly \
+recalled). A failed (crashed) point is neither success nor failure: it is left out and counted; a pending one \
+leaves its cell undecided.
 capacity (derived at query time): for each cell of the other axes, the largest assemblies.count k such that \
 every count <= k in the grid succeeds in at least a stated fraction (default 0.5) of its done replicates; 0 if \
-the smallest count fails; 'at least' when k is the top of the grid; NA while points are pending. Per count: \
-the success fraction with a 95 % Wilson score interval. Interval on k: the range of the per-replicate \
-capacities (largest k with every count <= k successful in that replicate).
+the smallest count fails; 'at least' (only a lower bound) when k is the top of the grid; NA while a point of the \
+cell is pending or a count up to the deciding one has no done replicate; flagged non-monotone when a count \
+reaches that fraction after a smaller one did not. Per count: the success fraction over done replicates with a \
+95 % Wilson score interval. \
+Interval on k: the range (min, max) of the per-replicate capacities (replicate r: the largest k with every count \
+<= k successful in r), a distribution-free summary; a replicate whose run of successes ends at a crashed point \
+is left out.
 """

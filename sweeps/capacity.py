@@ -13,8 +13,9 @@ Definitions (the same words are stored in every store's attrs, see
 - The *capacity* of a cell is the largest count k such that every count <= k in the grid succeeds
   in at least ``min_fraction`` of its done replicates; 0 when the smallest count already fails. It
   is only a lower bound (``at_least``) when k is the top of the grid, NA while a point of the cell
-  is pending or a count has no done replicate, and flagged ``non_monotone`` when a count succeeds
-  after a smaller one failed.
+  is pending or a count up to the deciding one (the first that falls short) has no done
+  replicate, and flagged ``non_monotone`` when a count reaches ``min_fraction`` after a smaller
+  one fell short (rises of the fraction that do not cross it are left to the per-count table).
 - Its interval is the range of the per-replicate capacities (replicate r: the largest k with every
   count <= k successful in r), a distribution-free summary; a replicate whose run of successes
   ends at a crashed point is left out (its capacity is unknown).
@@ -138,7 +139,7 @@ def capacity_table(ds: xr.Dataset, min_fraction: float = MIN_FRACTION) -> pd.Dat
             fractions = np.where(done > 0, np.nansum(cell.success, axis=1) / np.maximum(done, 1), np.nan)
         lead = _leading_successes(np.nan_to_num(fractions, nan=-1.0), min_fraction)
         pending = int(np.sum(cell.status == "pending"))
-        undecided = pending > 0 or bool(np.any(done == 0))
+        undecided = pending > 0 or bool(np.any(done[:lead + 1] == 0))  # counts above the deciding one do not matter
         passed = fractions >= min_fraction
         replicates = _replicate_capacities(cell) if not pending else []
         rows.append({

@@ -195,24 +195,28 @@ def capacity(
     if fmt is not TableFormat.table:
         _emit(success_table(ds) if per_count else table, fmt)
         return
-    out.print("success per count (n = done replicates; 95 % Wilson interval; crashed points left out):",
-              highlight=False)
+    _say("success per count (n = done replicates; 95 % Wilson interval; crashed points left out):")
     _emit(success_table(ds), fmt)
-    out.print(f"\ncapacity (every count up to it succeeds in >= {min_fraction:g} of replicates; "
-              "range over replicates):", highlight=False)
+    _say(f"\ncapacity (every count up to it succeeds in >= {min_fraction:g} of replicates; "
+         "range over replicates):")
     _emit(_capacity_display(table), fmt)
     fit = scaling_fit(ds)
     if fit is not None:
-        out.print(f"capacity ~ {fit.prefactor:.3g} x n_exc^b, b = {fit.exponent:.2f} "
-                  f"[{fit.exponent_lo:.2f}, {fit.exponent_hi:.2f}] (95 % bootstrap over replicates; sizes "
-                  f"{', '.join(map(str, fit.sizes))}"
-                  + (f"; at the top of the grid, so underestimated: {fit.lower_bounds}" if fit.lower_bounds else "")
-                  + ")", highlight=False)
+        _say(f"capacity ~ {fit.prefactor:.3g} x n_exc^b, b = {fit.exponent:.2f} "
+             f"[{fit.exponent_lo:.2f}, {fit.exponent_hi:.2f}] (95 % bootstrap over replicates; sizes "
+             f"{', '.join(map(str, fit.sizes))}"
+             + (f"; at the top of the grid, so underestimated: {fit.lower_bounds}" if fit.lower_bounds else "")
+             + ")")
     others = [c for c in table.columns if c not in _CAPACITY_COLUMNS]
     for _, row in table[table["non_monotone"]].iterrows():
         where = ", ".join(f"{c}={row[c]}" for c in others) or "the grid"
-        out.print(f"warning: success is not monotone in {count_dim(ds)} for {where}: a larger count succeeds "
-                  "after a smaller one failed", highlight=False)
+        _say(f"warning: success is not monotone in {count_dim(ds)} for {where}: a larger count succeeds "
+             "after a smaller one failed")
+
+
+def _say(line: str) -> None:
+    """One line of the capacity report, never wrapped at the terminal width (so it stays greppable)."""
+    out.print(line, highlight=False, markup=False, soft_wrap=True)
 
 
 _CAPACITY_COLUMNS = ("capacity", "capacity_lo", "capacity_hi", "at_least", "non_monotone", "replicates_used",

@@ -15,6 +15,7 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 from matplotlib.ticker import MaxNLocator, NullFormatter
+from matplotlib.typing import ColorType
 
 from .capacity import MIN_FRACTION, capacity_table, count_dim, point_success, scaling_fit, size_dim, success_table
 from .query import COUNT_KEY, QueryError, axis_keys, labelled
@@ -54,8 +55,9 @@ def _average_to(values: xr.DataArray, x: str, y: str) -> xr.DataArray:
 def capacity_curves(ds: xr.Dataset, path: Path, min_fraction: float = MIN_FRACTION) -> Path:
     """Success fraction against assembly count with 95 % Wilson intervals, one line per cell of the other axes.
 
-    Counts without a done replicate (pending or crashed) are not drawn; the legend gives each
-    cell's capacity, and the dashed line the fraction that capacity requires.
+    Counts without a done replicate (pending or crashed) are not drawn (never as 0); the legend
+    gives each cell's capacity and its number n of done replicates per count, a point with fewer
+    is marked with its own n, and the dashed line is the fraction that capacity requires.
     """
     count = count_dim(ds)
     table = success_table(ds)
@@ -69,8 +71,10 @@ def capacity_curves(ds: xr.Dataset, path: Path, min_fraction: float = MIN_FRACTI
         shown = "NA" if pd.isna(cap["capacity"]) else f"{'>=' if cap['at_least'] else ''}{cap['capacity']}"
         yerr = np.vstack([rows["fraction"] - rows["wilson_lo"], rows["wilson_hi"] - rows["fraction"]])
         dodge = 0.05 * (i - (len(groups) - 1) / 2)  # side by side, so the intervals stay readable
-        ax.errorbar(rows[count] + dodge, rows["fraction"], yerr=yerr, marker="o", capsize=3,
-                    label=f"{label}: capacity {shown} (n={int(rows['n'].max()) if len(rows) else 0})")
+        n_most = int(rows["n"].max()) if len(rows) else 0
+        line = ax.errorbar(rows[count] + dodge, rows["fraction"], yerr=yerr, marker="o", capsize=3,
+                           label=f"{label}: capacity {shown} (n={n_most} per count)")
+        _mark_fewer(ax, rows[count] + dodge, rows["fraction"], rows["n"], n_most, line.lines[0].get_color())
     ax.axhline(min_fraction, color="grey", ls="--", lw=0.8)
     ax.xaxis.set_major_locator(MaxNLocator(integer=True))
     ax.set_xlabel(_axis_label(ds, count))
@@ -79,6 +83,13 @@ def capacity_curves(ds: xr.Dataset, path: Path, min_fraction: float = MIN_FRACTI
     ax.legend(fontsize=7, loc="best")
     ax.set_title("capacity curves (95 % Wilson intervals)", fontsize=9)
     return _save(fig, path)
+
+
+def _mark_fewer(ax: plt.Axes, x: pd.Series, y: pd.Series, n: pd.Series, n_most: int, colour: ColorType) -> None:
+    """Write its own n beside each point with fewer done replicates than the legend's n."""
+    for xi, yi, ni in zip(x, y, n):
+        if ni < n_most:
+            ax.annotate(f"n={ni}", (xi, yi), xytext=(4, -10), textcoords="offset points", fontsize=6, color=colour)
 
 
 def capacity_scaling(ds: xr.Dataset, path: Path) -> Path | None:

@@ -6,12 +6,14 @@ query logic: filters, status counts, and the capacity rule, whose answers are wo
 
 from __future__ import annotations
 
+import io
+import json
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 import pytest
-from scipy.stats import linregress
+from scipy.stats import linregress, norm
 from typer.testing import CliRunner
 
 from capsweep.axes import key_axis
@@ -113,7 +115,8 @@ def test_non_monotone_success_is_flagged_and_warned(tmp_path: Path) -> None:
     assert row["capacity"] == 1 and bool(row["non_monotone"]) and not bool(row["at_least"])
     result_ = CliRunner().invoke(app, ["capacity", str(path)])
     assert result_.exit_code == 0, result_.output
-    assert "warning" in result_.output and "not monotone" in result_.output
+    warnings = [line for line in result_.output.splitlines() if line.startswith("warning:")]
+    assert len(warnings) == 1 and "beta=0.0" in warnings[0] and warnings[0].endswith("after a smaller one failed")
 
 
 def test_top_of_the_grid_is_only_a_lower_bound(tmp_path: Path) -> None:
@@ -130,6 +133,69 @@ def test_crashed_points_are_left_out_and_counted(tmp_path: Path) -> None:
     assert counts.loc[2, "n"] == 1 and counts.loc[2, "fraction"] == 1.0 and counts.loc[2, "failed"] == 1
     row = capacity_table(ds).iloc[0]
     assert row["capacity"] == 4 and row["failed"] == 1 and row["replicates_used"] == 1
+
+
+def _wilson(successes: int, trials: int, confidence: float = 0.95) -> tuple[float, float]:
+    """Wilson 1927, J Am Stat Assoc 22:209, score interval without continuity correction [memory: recalled]:
+    (p + z^2/2n -+ z sqrt(p(1-p)/n + z^2/4n^2)) / (1 + z^2/n), z the normal quantile at (1 + confidence)/2."""
+    z, n, p = norm.ppf((1 + confidence) / 2), trials, successes / trials
+    centre, half = p + z**2 / (2 * n), z * np.sqrt(p * (1 - p) / n + z**2 / (4 * n**2))
+    return (centre - half) / (1 + z**2 / n), (centre + half) / (1 + z**2 / n)
+
+
+# replicate 0 fails everywhere, 1 succeeds at count 1 only, 2 up to 3, 3 everywhere; 4 succeeds at 1, crashes at 2
+RANGE_PATTERN: dict[tuple[int, int, int], tuple[str, int] | None] = {
+    (0, 0, 0): ("runaway", 0), (1, 0, 0): ("runaway", 0), (2, 0, 0): ("runaway", 0), (3, 0, 0): ("runaway", 0),
+    (1, 0, 1): ("stable", 1), (2, 0, 1): ("stable", 2), (3, 0, 1): ("runaway", 0),
+    (3, 0, 2): ("stable", 3),
+    (1, 0, 4): None, (2, 0, 4): ("silent", 0), (3, 0, 4): ("runaway", 0),
+}
+
+
+def test_capacity_and_replicate_range_on_a_hand_worked_pattern(tmp_path: Path) -> None:
+    """RANGE_PATTERN by hand [derived]: successes per count 1-4 are 4/5, 2/4 (one crash), 2/5, 1/5.
+    Capacity at fraction 0.5: counts 1 (0.8) and 2 (0.5) pass, 3 (0.4) fails -> 2; at 0.4 -> 3; at 0.9
+    count 1 already fails -> 0, not NA. Per-replicate capacities 0, 1, 3, 4 (replicate 4's run of
+    successes ends at its crash: left out) -> range 0-4 over 4 replicates; the top count 4 is
+    reached by replicate 3 only, so the cell's capacity is no lower bound."""
+    ds = open_dataset(_filled_store(tmp_path, RANGE_PATTERN, replicates=5))
+    row = capacity_table(ds).iloc[0]
+    assert (row["capacity"], row["capacity_lo"], row["capacity_hi"]) == (2, 0, 4)
+    assert (row["replicates_used"], row["failed"], row["pending"]) == (4, 1, 0)
+    assert not bool(row["at_least"]) and not bool(row["non_monotone"])
+    assert capacity_table(ds, min_fraction=0.4).iloc[0]["capacity"] == 3
+    assert capacity_table(ds, min_fraction=0.9).iloc[0]["capacity"] == 0
+    counts = success_table(ds).set_index("n_odours")
+    assert list(counts["successes"]) == [4, 2, 2, 1] and list(counts["n"]) == [5, 4, 5, 5]
+    for k, (wins, done) in zip((1, 2, 3, 4), ((4, 5), (2, 4), (2, 5), (1, 5))):
+        assert (counts.loc[k, "wilson_lo"], counts.loc[k, "wilson_hi"]) == pytest.approx(_wilson(wins, done), abs=1e-12)
+
+
+def test_capacity_csv_and_json_keep_integers_and_write_na_as_empty(store: Path) -> None:
+    """SPECIAL: beta 0 has capacity 3 (replicates 2-3), beta 0.05 a pending point (NA)."""
+    runner = CliRunner()
+    csv_out = runner.invoke(app, ["capacity", str(store), "--format", "csv"])
+    assert csv_out.exit_code == 0, csv_out.output
+    rows = pd.read_csv(io.StringIO(csv_out.output), dtype=str, keep_default_na=False)
+    assert list(rows["capacity"]) == ["3", ""] and list(rows["capacity_lo"]) == ["2", ""]
+    assert list(rows["pending"]) == ["0", "1"]
+    records = json.loads(runner.invoke(app, ["capacity", str(store), "--format", "json"]).output)
+    assert records[0]["capacity"] == 3 and isinstance(records[0]["capacity"], int)
+    assert records[1]["capacity"] is None
+    per_count = runner.invoke(app, ["capacity", str(store), "--format", "csv", "--per-count"])
+    counts = pd.read_csv(io.StringIO(per_count.output), dtype=str)
+    assert list(counts.columns[2:]) == ["n", "successes", "fraction", "wilson_lo", "wilson_hi", "failed", "pending"]
+    assert list(counts["n"][:4]) == ["2", "2", "2", "2"] and list(counts["successes"][:4]) == ["2", "2", "1", "0"]
+
+
+def test_capacity_of_a_store_without_a_count_axis_is_one_error_line(tmp_path: Path) -> None:
+    axes = (key_axis("beta", "plasticity.heterosynaptic.beta", (0.0, 0.05)),)
+    path = tmp_path / "no_count.zarr"
+    create_store(path, GridSpec(axes, 1, 4, 3, 20, 0.5, "fp", {}), np.array([["p0"], ["p1"]], dtype=object),
+                 np.arange(2).reshape(2, 1))
+    result_ = CliRunner().invoke(app, ["capacity", str(path)])
+    assert result_.exit_code == 2 and "Traceback" not in result_.output
+    assert result_.output.count("\n") == 1 and "assemblies.count" in result_.output and "beta" in result_.output
 
 
 @pytest.mark.parametrize(("successes", "trials", "low", "high"), [
@@ -212,3 +278,11 @@ def test_point_table_rows_keep_their_own_point_id_and_sweep_order(store: Path) -
     for row in frame.itertuples():
         stored = ds["point_id"].sel(n_odours=row.n_odours, beta=row.beta, replicate=row.replicate).item()
         assert row.point_id == stored
+
+
+def test_crashes_above_the_deciding_count_do_not_hide_the_capacity(tmp_path: Path) -> None:
+    """Count 2 fails in both replicates and every count-4 point crashed: capacity is 1, decided at
+    count 2; what happened above it does not matter (worked by hand)."""
+    pattern = {(1, 0, 0): ("runaway", 0), (1, 0, 1): ("runaway", 0), (3, 0, 0): None, (3, 0, 1): None}
+    row = capacity_table(open_dataset(_filled_store(tmp_path, pattern))).iloc[0]
+    assert row["capacity"] == 1 and row["failed"] == 2 and bool(row["non_monotone"])
