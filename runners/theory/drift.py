@@ -25,8 +25,10 @@ def _trace_third_moment(rate_hz: float, tau_s: float) -> float:
 def rule_drift(cfg: dict, rate_pre_hz: float, rate_post_hz: float, w: float, w_ref: float) -> float:
     """Mean E->E weight drift (g_leak/s) for independent Poisson pre and post trains.
 
-    Rate form of the rule in ``runners/rules.py`` (REFERENCES.md 2; Zenke, Agnes & Gerstner
-    2015), each term only when its ``enabled`` key is true::
+    Rate form of the rule in :mod:`capsweep.runners.rules` (Zenke, Agnes & Gerstner 2015, Nat
+    Commun 6:6922), each term only when its ``enabled`` key is true; the heterosynaptic term is
+    the published linear step, which the rule's exact per-spike step equals to first order in
+    beta z^3::
 
         triplet:        A tau_plus tau_slow rx ry^2 - B tau_minus rx ry
         heterosynaptic: - beta (w - w_ref) ry E[z_minus^3]
