@@ -153,7 +153,7 @@ def test_background_fixed_point_is_self_consistent():
 
     assert rate(n["drive_rate_exc_hz"], n["w_e_to_e"], n["w_i_to_e"], n["refractory_exc_ms"]) == pytest.approx(r_e, rel=0.02)
     assert rate(n["drive_rate_inh_hz"], n["w_e_to_i"], n["w_i_to_i"], n["refractory_inh_ms"]) == pytest.approx(r_i, rel=0.02)
-    # base network measured with capsweep on this machine, December 2026 (Brian2, 800/200 cells): E 2.8 Hz, I 7.4 Hz; the mean field is calibrated
+    # base network measured with capsweep's own network on this machine, December 2026 (Brian2, 800/200 cells): E 2.8 Hz, I 7.4 Hz; the mean field is calibrated
     # to within a factor 1.6 (E) and 15 % (I) of it [common practice: mean-field accuracy for AI states].
     assert 2.8 / 1.6 < r_e < 2.8 * 1.6
     assert r_i == pytest.approx(7.4, rel=0.15)

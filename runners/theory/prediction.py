@@ -11,9 +11,13 @@ from typing import Any
 
 import numpy as np
 
+from ...flags import OUTCOMES
 from ..metrics import active_threshold, runaway_threshold
 from .drift import bcm_threshold_hz, drift_zero_crossings, rule_drift, weight_equilibrium
 from .meanfield import FixedPoint, PopulationRates, Weights, initial_weights, max_rate, population_rates
+
+STABLE, RUNAWAY, SILENT = OUTCOMES[:3]
+"""Outcome labels of :data:`capsweep.flags.OUTCOMES` (their positions are stored integers, so fixed)."""
 
 
 @dataclass(frozen=True)
@@ -83,7 +87,7 @@ class _Reasoning:
 
 
 def _start(cfg: dict) -> _Reasoning:
-    """Steps 1-2: the background at the initial weights and the runaway threshold it implies."""
+    """Step 2: the background at the initial weights (which step 1 reads) and the runaway threshold it implies."""
     p = cfg["plasticity"]
     w0 = initial_weights(cfg)
     start = population_rates(cfg, w0)
@@ -94,6 +98,29 @@ def _start(cfg: dict) -> _Reasoning:
                f"{threshold:.1f} Hz; BCM-like threshold {bcm_threshold_hz(cfg):.2f} Hz"]
     return _Reasoning(start, threshold, w0, rule_drift(cfg, top, top, p["triplet"]["w_max"], w0.within) < 0.0,
                       p["inhibitory"]["enabled"] and p["inhibitory"]["eta"] > 0, reasons, w_end=w0.within)
+
+
+def _common(cfg: dict, r: _Reasoning) -> dict[str, Any]:
+    """The Prediction fields every outcome reports: states at the initial weights and the threshold."""
+    start, bg = r.start, r.start.background_exc_hz
+    member_bg = start.background["U"] if start.assembly_curve is not None else bg
+    return dict(
+        recall_state_exists=start.assembly is not None, background_rate_hz=bg,
+        assembly_rate_hz=start.assembly.rate_hz if start.assembly else math.nan,
+        drift_zero_crossings_hz=drift_zero_crossings(cfg, member_bg, cfg["plasticity"]["triplet"]["w_max"],
+                                                     r.weights.within),
+        runaway_threshold_hz=r.threshold_hz,
+        cued_rate_hz=start.cue["C"] if start.cue else math.nan,
+        uncued_member_rate_hz=start.cue["U"] if start.cue else math.nan)
+
+
+def _silent(cfg: dict, r: _Reasoning, common: dict[str, Any]) -> Prediction | None:
+    """Step 1: silent when the background E rate is below ``detection.silence_hz``, else None."""
+    silence_hz = cfg["detection"]["silence_hz"]
+    if not r.start.background_exc_hz < silence_hz:
+        return None
+    r.reasons.append(f"background below silence threshold {silence_hz} Hz")
+    return Prediction(SILENT, high_rate_bounded=True, reasons="; ".join(r.reasons), **common)
 
 
 def _network_wide_growth(cfg: dict, r: _Reasoning) -> None:
@@ -140,7 +167,7 @@ def _verdict(cfg: dict, r: _Reasoning, common: dict[str, Any]) -> Prediction:
     if r.held_by_istdp:
         rho0 = cfg["plasticity"]["inhibitory"]["rho0_hz"]
         r.reasons.append(f"inhibitory STDP can hold members near rho0 = {rho0} Hz")
-    outcome = "runaway" if r.high_exc_hz > r.threshold_hz else "stable"
+    outcome = RUNAWAY if r.high_exc_hz > r.threshold_hz else STABLE
     return Prediction(outcome, high_rate_bounded=bounded, reasons="; ".join(r.reasons), end_within_weight=r.w_end,
                       end_assembly_exc_hz=r.high_exc_hz, **common)
 
@@ -161,9 +188,9 @@ def predict(cfg: dict) -> Prediction:
        threshold, so the weight goes to w_max; with the heterosynaptic term on, the drift for
        w > w_ref turns negative at high post rates and the weight settles at a finite value.
        The weight is then iterated with the rate of the self-sustained state it supports.
-    4. Inhibitory STDP (if on, eta > 0) raises I->E weights onto over-active cells until they
-       fire at rho0; it can at most reach its cap, so the check uses I->E onto members at
-       max(initial, w_max of the inhibitory rule).
+    4. Inhibitory STDP (Vogels et al. 2011, Science 334:1569; if on, eta > 0) raises I->E
+       weights onto over-active cells until they fire at rho0; it can at most reach its cap,
+       so the check uses I->E onto members at max(initial, w_max of the inhibitory rule).
     5. Network-wide growth: if the rule has no bound and its drift at the background rates is
        positive, every E->E weight goes to w_max; the background state is re-solved there.
     6. Runaway if, at those end weights, a stable self-sustained state exists whose population
@@ -175,19 +202,10 @@ def predict(cfg: dict) -> Prediction:
     the time it takes plasticity to act are ignored; assemblies are treated as disjoint.
     """
     r = _start(cfg)
-    start, bg = r.start, r.start.background_exc_hz
-    member_bg = start.background["U"] if start.assembly_curve is not None else bg
-    common: dict[str, Any] = dict(
-        recall_state_exists=start.assembly is not None, background_rate_hz=bg,
-        assembly_rate_hz=start.assembly.rate_hz if start.assembly else math.nan,
-        drift_zero_crossings_hz=drift_zero_crossings(cfg, member_bg, cfg["plasticity"]["triplet"]["w_max"],
-                                                     r.weights.within),
-        runaway_threshold_hz=r.threshold_hz,
-        cued_rate_hz=start.cue["C"] if start.cue else math.nan,
-        uncued_member_rate_hz=start.cue["U"] if start.cue else math.nan)
-    if bg < cfg["detection"]["silence_hz"]:
-        r.reasons.append(f"background below silence threshold {cfg['detection']['silence_hz']} Hz")
-        return Prediction("silent", high_rate_bounded=True, reasons="; ".join(r.reasons), **common)
+    common = _common(cfg, r)
+    silent = _silent(cfg, r, common)
+    if silent is not None:
+        return silent
     _network_wide_growth(cfg, r)
     _assembly_under_plasticity(cfg, r)
     _background_at_end_weights(cfg, r)

@@ -21,7 +21,7 @@ def lif_rate_noise_free(mu_mv: float, tau_m_s: float, t_ref_s: float, v_th_mv: f
                         v_reset_mv: float) -> float:
     """Rate (Hz) of a LIF neuron with constant drive: 1/(t_ref + tau ln((mu-Vr)/(mu-Vth))), 0 below threshold.
 
-    Dayan & Abbott 2001, Theoretical Neuroscience, eq. 5.11; ``mu_mv`` is the steady-state
+    Dayan & Abbott 2001, Theoretical Neuroscience, eq. 5.11 [memory]; ``mu_mv`` is the steady-state
     potential the drive would hold the membrane at without a threshold.
     """
     if mu_mv <= v_th_mv:
