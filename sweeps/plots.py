@@ -102,7 +102,8 @@ def capacity_scaling(ds: xr.Dataset, path: Path) -> Path | None:
         return None
     size, count = size_dim(ds), count_dim(ds)
     fig, ax = plt.subplots(figsize=(5.5, 4.0))
-    for cell in capacity_table(ds).itertuples():
+    capacities = capacity_table(ds)
+    for cell in capacities.itertuples():
         n = getattr(cell, str(size))
         if not pd.isna(cell.capacity_lo):
             ax.plot([n, n], [cell.capacity_lo, cell.capacity_hi], color="grey", lw=2, alpha=0.6)
@@ -116,7 +117,7 @@ def capacity_scaling(ds: xr.Dataset, path: Path) -> Path | None:
     ax.set_xscale("log")
     ax.set_yscale("log")
     ax.set_xticks(fit.sizes, [str(n) for n in fit.sizes])
-    top = int(np.nanmax(capacity_table(ds)["capacity_hi"].astype(float))) + 1
+    top = int(np.nanmax(capacities["capacity_hi"].astype(float))) + 1
     ax.set_yticks(range(1, top + 1), [str(k) for k in range(1, top + 1)])
     for axis in (ax.xaxis, ax.yaxis):
         axis.set_minor_formatter(NullFormatter())
