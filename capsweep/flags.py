@@ -5,8 +5,9 @@ The position of a label is the integer stored for it, so these tuples only ever 
 
 from __future__ import annotations
 
-STATUSES: tuple[str, ...] = ("pending", "done", "failed")
-"""Run status of a point, owned by the runner: not yet run, stored, or crashed."""
+STATUSES: tuple[str, ...] = ("pending", "done", "failed", "unneeded")
+"""Run status of a point, owned by the runner: not yet run, stored, crashed, or never needed by an adaptive
+capacity search (its count lies beyond the bracket the search closed; see ``capsweep.sweeps.search``)."""
 
 OUTCOMES: tuple[str, ...] = ("stable", "runaway", "silent")
 """What the network did over a point's run (see the ``outcome`` metric definition)."""

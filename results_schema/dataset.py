@@ -15,7 +15,7 @@ def open_dataset(path: str | Path, chunks: Any = None) -> xr.Dataset:
     """Open a store as an xarray Dataset (``xr.open_zarr``; ``chunks=None`` loads lazily without dask).
 
     Flag variables decode to float with NaN where unset; ``flag_labels`` turns them into labels.
-    Raises StoreError if ``path`` is not a capsweep store.
+    Raises StoreError if ``path`` is not a capsweep store, or one whose growth was cut short.
     """
     check_store(path)
     return xr.open_zarr(path, chunks=chunks)

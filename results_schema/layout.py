@@ -72,7 +72,9 @@ VARIABLES: tuple[Variable, ...] = (
     Variable("rate_exc_hold_end_hz", "Hz", "mean excitatory rate over the last smoothing window of the hold phase"),
     Variable("rate_exc_tail_hz", "Hz", "mean excitatory rate over the background-only tail after the last cue"),
     Variable("imprint_contrast", "1", "assembly_contrast at the end of imprinting (learned assemblies)"),
-    Variable("wall_time_s", "s", "wall-clock time of the point's simulation"),
+    Variable("wall_time_s", "s", "wall-clock time of the point's simulation and scoring, setup_time_s excluded"),
+    Variable("setup_time_s", "s", "wall-clock time before the first simulated step: building the network, "
+             "generating and compiling its code (the compile, paid by the first point of a build, lands here)"),
     Variable("simulated_time_s", "s", "biological time simulated (shorter than planned after an early abort)"),
     Variable("n_synapses", "1", "number of synapses in the network", dtype="int64"),
     Variable("recall_quality", "1", "Pearson r over uncued E cells between recall-window spike count and "
@@ -113,6 +115,9 @@ VARIABLES: tuple[Variable, ...] = (
 BY_NAME: dict[str, Variable] = {v.name: v for v in VARIABLES}
 
 # Written last for each point, so a crash never leaves a point that looks done but is not.
+TIMINGS: tuple[str, ...] = ("wall_time_s", "setup_time_s")
+"""Variables that measure the machine, not the model: the only ones two runs of a point may differ in."""
+
 STATUS = Variable("status", "1", "run status of the point", dtype="int8", flags=STATUSES)
 ERROR = "error"  # per-point error text for failed points (string variable, '' when none)
 POINT_ID = "point_id"  # per-point hash of the resolved config (string variable)

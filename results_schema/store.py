@@ -5,28 +5,35 @@ that a run, which only writes, never imports xarray (about 0.7 s).
 
 ``create_store`` lays out the whole grid once as an empty template: one array per variable of
 ``layout`` over the sweep dims (one per axis, then ``replicate``) plus the variable's inner dim.
-Every array is chunked one point per chunk, so each finished point fills its own chunks and
-nothing else. ``ResultStore`` keeps one opened Zarr group and writes a point's region straight
-with Zarr: data variables first, ``status`` last, so a point whose write was cut short still
-reads as pending. See SPEC.md beside this module for the full layout.
+Each variable keeps a block of points per file (``point_block``): a variable with an inner dim is
+a Zarr shard of one compressed chunk per point, a per-point scalar one uncompressed chunk. Zarr
+rewrites a touched file whole, through a temporary file renamed over the old one, so a write
+killed midway leaves every file as it was before or after. ``ResultStore`` writes points in
+batches: every data variable of the batch first, ``status`` last, so a point whose write was
+cut short still reads as pending. ``grow_store`` extends a store in place to a larger grid.
+See SPEC.md beside this module for the full layout.
 """
 
 from __future__ import annotations
 
-import asyncio
 import base64
 import importlib.metadata
+import json
+import math
 import shutil
 import struct
+import threading
+import time
 import warnings
 from collections.abc import Mapping
+from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
+from types import TracebackType
 from typing import Any, Literal
 
 import numpy as np
 import zarr
-from zarr.core.sync import sync
 from zarr.errors import ZarrUserWarning
 
 from ..axes import Axis
@@ -42,9 +49,11 @@ ATTR_AXES = "sweep_axes"
 ATTR_CREATED = "created_utc"
 ATTR_TIME_BIN = "time_bin_s"
 AXIS_KEY_ATTR = "config_key"
+CF_CONVENTIONS = "CF-1.11"  # the newest CF version the IOOS compliance checker (6.1) has a suite for
+CF_ATTRS: tuple[str, ...] = ("Conventions", "title", "history")
 VERSIONED_PACKAGES: tuple[str, ...] = ("capsweep", "brian2", "numpy", "xarray", "zarr", "dask")
 RESERVED_ATTRS: frozenset[str] = frozenset(
-    {ATTR_SCHEMA, ATTR_FINGERPRINT, ATTR_AXES, ATTR_CREATED, ATTR_TIME_BIN}
+    {ATTR_SCHEMA, ATTR_FINGERPRINT, ATTR_AXES, ATTR_CREATED, ATTR_TIME_BIN, *CF_ATTRS}
     | {f"version_{name}" for name in VERSIONED_PACKAGES}
 )
 
@@ -58,6 +67,27 @@ STRING_VARIABLES: dict[str, str] = {
 # Result variables a runner result must hold; seed is fixed at creation, the prediction optional.
 OPTIONAL_RESULTS: frozenset[str] = frozenset({"seed", "predicted_outcome"})
 REQUIRED_RESULTS: tuple[str, ...] = tuple(v.name for v in layout.VARIABLES if v.name not in OPTIONAL_RESULTS)
+
+# Points per file: a file holds about FILE_BYTES of one variable (uncompressed), at most MAX_POINTS_PER_FILE points.
+# Larger files mean fewer files but more bytes rewritten per batch (bench_store.py measures both).
+FILE_BYTES = 256 * 1024
+MAX_POINTS_PER_FILE = 4096
+STRING_BYTES = 32  # assumed per point of a string variable (a point id is 16 characters, error text mostly empty)
+GROWING_NAME = ".capsweep.growing"  # present while grow_store extends the store; holds the target fingerprint
+
+
+@dataclass(frozen=True)
+class Batching:
+    """When the writer flushes buffered points: at ``points`` points, or once the oldest waited ``delay_s`` s."""
+
+    points: int = 1
+    delay_s: float = 0.0
+
+
+IMMEDIATE = Batching()
+"""Write every point at once (the default of :meth:`ResultStore.open`)."""
+WRITER_BATCHING = Batching(points=64, delay_s=1.0)
+"""How ``capsweep run`` writes: a batch of 64 points mostly shares each variable's files (bench_store.py)."""
 
 
 def create_store(path: str | Path, grid: GridSpec, point_ids: np.ndarray, seeds: np.ndarray) -> None:
@@ -81,29 +111,52 @@ def create_store(path: str | Path, grid: GridSpec, point_ids: np.ndarray, seeds:
 
 
 class ResultStore:
-    """An opened result store; the single writer of a sweep writes points through it."""
+    """An opened result store; the single writer of a sweep writes points through it.
 
-    def __init__(self, path: Path, group: zarr.Group) -> None:
+    Points are buffered and written in batches (see :class:`Batching`); a background thread
+    flushes a batch whose oldest point waited ``delay_s``. Reads (``status``, ``scalar_values``)
+    flush first. Use the store as a context manager, or call ``close``, to flush the last batch:
+    points still buffered when the process dies read as pending and run again.
+    """
+
+    def __init__(self, path: Path, group: zarr.Group, batching: Batching = IMMEDIATE) -> None:
         self.path = path
         self._group = group
         self._arrays: dict[str, zarr.Array] = {name: _array(group, name) for name in _stored_variables()}
         self._seeds = np.asarray(self._arrays["seed"][...])
         self._fills = {name: self._fill_block(layout.BY_NAME[name]) for name in REQUIRED_RESULTS}
+        self._batching = batching
+        self._buffer: dict[tuple[int, ...], tuple[dict[str, Any], str]] = {}
+        self._oldest = 0.0  # time.monotonic() when the oldest buffered point arrived
+        self._lock = threading.Lock()
+        self._closed = threading.Event()
+        self._failure: BaseException | None = None  # raised by the flush thread, re-raised to the caller
+        self._flusher: threading.Thread | None = None
+        if batching.points > 1 and batching.delay_s > 0:
+            self._flusher = threading.Thread(target=self._flush_when_due, name="capsweep-store-flush", daemon=True)
+            self._flusher.start()
 
     @classmethod
-    def open(cls, path: str | Path, fingerprint: str | None = None) -> ResultStore:
+    def open(cls, path: str | Path, fingerprint: str | None = None, batching: Batching = IMMEDIATE) -> ResultStore:
         """Open the store at ``path`` for writing.
 
         Raises StoreError naming the path if it is missing, not a capsweep store, of another
-        schema version, damaged, or (with ``fingerprint``) built from another grid.
+        schema version, damaged, half grown, or (with ``fingerprint``) built from another grid.
         """
         path = Path(path)
-        group = _open_group(path)
+        group = _open_group(path, consolidated=False)
         _check_identity(path, dict(group.attrs), fingerprint)
-        missing = sorted(set(_stored_variables()) - set(group.array_keys()))
+        missing = [name for name in _stored_variables() if name not in group]  # no listing: the lock file is there
         if missing:
             raise StoreError(f"{path} is damaged: variables {', '.join(missing)} are missing")
-        return cls(path, group)
+        return cls(path, group, batching)
+
+    def __enter__(self) -> ResultStore:
+        return self
+
+    def __exit__(self, kind: type[BaseException] | None, error: BaseException | None,
+                 trace: TracebackType | None) -> None:
+        self.close()
 
     @property
     def sweep_dims(self) -> tuple[str, ...]:
@@ -117,7 +170,19 @@ class ResultStore:
 
     def status(self) -> np.ndarray:
         """Status code of every point (capsweep.flags.STATUSES index), int8 over the sweep dims."""
+        self.flush()
         return np.asarray(self._arrays[layout.STATUS.name][...])
+
+    def scalar_values(self, name: str) -> np.ndarray:
+        """Stored codes of a per-point scalar variable (e.g. outcome, recalled_count), over the sweep dims."""
+        if layout.BY_NAME[name].inner is not None:
+            raise ValueError(f"{name} has an inner dim; scalar_values reads per-point scalars only")
+        self.flush()
+        return np.asarray(self._arrays[name][...])
+
+    def mark_unneeded(self, index: tuple[int, ...]) -> None:
+        """Set a pending point's status to unneeded: an adaptive search decided without it (nothing else written)."""
+        self._queue(self._check_index(index), {}, "unneeded")
 
     def write_point(self, index: tuple[int, ...], result: Mapping[str, Any]) -> None:
         """Write a finished point: every result variable and an empty error, then status done.
@@ -130,31 +195,68 @@ class ResultStore:
         index = self._check_index(index)
         values = self._encode_result(index, result)
         values[layout.ERROR] = ""
-        self._write_values(index, values)
-        self._set_status(index, "done")
+        self._queue(index, values, "done")
 
     def write_failure(self, index: tuple[int, ...], error_text: str) -> None:
         """Record a failed point: error text, fill in every result, then status failed."""
         index = self._check_index(index)
         values = {name: self._fills[name] for name in REQUIRED_RESULTS}
         values[layout.ERROR] = str(error_text)
-        self._write_values(index, values)
-        self._set_status(index, "failed")
+        self._queue(index, values, "failed")
 
-    def _write_values(self, index: tuple[int, ...], values: Mapping[str, Any]) -> None:
-        """Write encoded per-point values into their chunks, all at once; returns when all are on disk.
+    def flush(self) -> None:
+        """Write every buffered point now (data first, status last); returns when all are on disk."""
+        with self._lock:
+            self._raise_failure()
+            self._flush_locked()
 
-        Concurrent chunk writes take about half the time of one-by-one writes (one file per
-        variable and point). Status is never among them: it is written after they all finished.
+    def close(self) -> None:
+        """Stop the flush thread and write the points still buffered."""
+        self._closed.set()
+        if self._flusher is not None:
+            self._flusher.join()
+        self.flush()
+
+    def _queue(self, index: tuple[int, ...], values: dict[str, Any], label: str) -> None:
+        with self._lock:
+            self._raise_failure()
+            if not self._buffer:
+                self._oldest = time.monotonic()
+            self._buffer[index] = (values, label)
+            if len(self._buffer) >= self._batching.points:
+                self._flush_locked()
+
+    def _flush_when_due(self) -> None:
+        """Flush thread: every quarter of ``delay_s``, flush a batch whose oldest point waited ``delay_s``."""
+        while not self._closed.wait(self._batching.delay_s / 4):
+            with self._lock:
+                if self._buffer and time.monotonic() - self._oldest >= self._batching.delay_s:
+                    try:
+                        self._flush_locked()
+                    except BaseException as exc:  # handed to the writer's next call
+                        self._failure = exc
+                        return
+
+    def _raise_failure(self) -> None:
+        if self._failure is not None:
+            failure, self._failure = self._failure, None
+            raise failure
+
+    def _flush_locked(self) -> None:
+        """Write the buffered batch: each data variable in one Zarr call (one rewrite per touched file), then status.
+
+        The batch leaves the buffer first: if a data write raises, none of its points gets a
+        status, so all read as pending and run again.
         """
-        async def write_all() -> None:
-            await asyncio.gather(*(self._arrays[name].async_array.setitem(index, value)
-                                   for name, value in values.items()))
-
-        sync(write_all())
-
-    def _set_status(self, index: tuple[int, ...], label: str) -> None:
-        self._arrays[layout.STATUS.name][index] = STATUSES.index(label)
+        batch, self._buffer = self._buffer, {}
+        if not batch:
+            return
+        names = dict.fromkeys(name for values, _ in batch.values() for name in values)
+        for name in names:
+            _set_points(self._arrays[name], {index: values[name] for index, (values, _) in batch.items()
+                                             if name in values})
+        _set_points(self._arrays[layout.STATUS.name],
+                    {index: STATUSES.index(label) for index, (_, label) in batch.items()})
 
     def _encode_result(self, index: tuple[int, ...], result: Mapping[str, Any]) -> dict[str, Any]:
         unknown = sorted(set(result) - set(layout.BY_NAME))
@@ -184,10 +286,93 @@ class ResultStore:
         return var.fill if size is None else np.full(size, var.fill, dtype=var.dtype)
 
 
+def _set_points(array: zarr.Array, values: Mapping[tuple[int, ...], Any]) -> None:
+    """Write one value (a row, for an inner dim) per point index into ``array``: one rewrite per touched file."""
+    coords = np.array(list(values), dtype=np.int64).T
+    n_sweep = coords.shape[0]
+    if array.ndim == n_sweep:
+        data = np.array(list(values.values()), dtype=object if array.dtype.kind in "OTU" else array.dtype)
+        array.set_coordinate_selection(tuple(coords), data)
+        return
+    inner = np.arange(array.shape[-1])[None, :]
+    array.set_coordinate_selection((*(c[:, None] for c in coords), inner), np.stack(list(values.values())))
+
+
 def check_store(path: str | Path) -> None:
-    """Raise StoreError unless ``path`` is a capsweep store of this schema (opens it read-only)."""
+    """Raise StoreError unless ``path`` is a capsweep store of this schema, not half grown (opens it read-only)."""
+    stored_attrs(path)
+
+
+def stored_attrs(path: str | Path, growing: str | None = None) -> dict[str, Any]:
+    """Root attributes of the capsweep store at ``path`` (StoreError as ``check_store``).
+
+    ``growing``: a fingerprint; the store may be half grown to that grid.
+    """
     path = Path(path)
-    _check_identity(path, dict(_open_group(path, mode="r").attrs), None)
+    attrs = dict(_open_group(path, mode="r", consolidated=False).attrs)
+    _check_identity(path, attrs, None, growing)
+    return attrs
+
+
+def growing_to(path: str | Path) -> str | None:
+    """Fingerprint of the grid an interrupted ``grow_store`` was extending ``path`` to, None if none was."""
+    marker = Path(path) / GROWING_NAME
+    return str(json.loads(marker.read_text())["fingerprint"]) if marker.exists() else None
+
+
+def grow_store(path: str | Path, grid: GridSpec, point_ids: np.ndarray, seeds: np.ndarray) -> None:
+    """Extend the store at ``path`` in place to ``grid``, whose axes extend the stored ones by appended values.
+
+    Axis values may be appended, replicates and inner dims may grow; stored values stay as they
+    are (bitwise), new points read as pending. ``point_ids`` and ``seeds`` cover the new grid and
+    must equal the stored ones where a point is stored. While growing, ``<path>/.capsweep.growing``
+    names the target: a grow killed midway is finished by calling ``grow_store`` again with the
+    same grid, and every other open is refused until then. Raises StoreError otherwise.
+    """
+    path = Path(path)
+    group = _open_group(path, consolidated=False)
+    _check_identity(path, dict(group.attrs), None, growing=grid.fingerprint)
+    shape = _check_grid(grid, point_ids, seeds)
+    if growing_to(path) is None:
+        _check_extension(path, group, grid, shape, point_ids)
+        (path / GROWING_NAME).write_text(json.dumps({"fingerprint": grid.fingerprint}))
+    sizes = _inner_sizes(grid)
+    for var in (*layout.VARIABLES, layout.STATUS):
+        _array(group, var.name).resize((*shape, *((sizes[var.inner],) if var.inner else ())))
+    for name in STRING_VARIABLES:
+        _array(group, name).resize(shape)
+    for name, (values, _) in _coordinates(grid).items():
+        _array(group, name).resize(values.shape)
+        _array(group, name)[...] = values
+    _fill_ids_and_seeds(group, point_ids, seeds)
+    history = f"{group.attrs.get('history', '')}\n{_now()} capsweep {_package_version('capsweep')}: grown to {shape}"
+    group.attrs.update({**grid.attrs, ATTR_FINGERPRINT: grid.fingerprint, "history": history.strip()})
+    _consolidate(path)
+    (path / GROWING_NAME).unlink()
+
+
+def _check_extension(path: Path, group: zarr.Group, grid: GridSpec, shape: tuple[int, ...],
+                     point_ids: np.ndarray) -> None:
+    """Raise StoreError unless ``grid`` keeps every stored coordinate and point id where it is."""
+    stored_axes = _names(group.attrs[ATTR_AXES])
+    if stored_axes != [axis.name for axis in grid.axes]:
+        raise StoreError(f"{path} has axes {stored_axes}; a grown grid must keep them, in order")
+    if group.attrs[ATTR_TIME_BIN] != float(grid.time_bin_s):
+        raise StoreError(f"{path} has rate bins of {group.attrs[ATTR_TIME_BIN]} s; a grown grid must keep them")
+    stored_ids = np.asarray(_array(group, layout.POINT_ID)[...])
+    if any(n < m for n, m in zip(shape, stored_ids.shape)):
+        raise StoreError(f"{path} has sweep shape {stored_ids.shape}; a grown grid cannot be smaller: {shape}")
+    for name, (values, _) in _coordinates(grid).items():
+        stored = np.asarray(_array(group, name)[...])
+        if _kind(stored) != _kind(values) or stored.tolist() != values[: stored.size].tolist():
+            raise StoreError(f"{path}: coordinate {name} {stored.tolist()} is not the start of {values.tolist()}")
+    if not np.array_equal(stored_ids, np.asarray(point_ids)[tuple(slice(0, n) for n in stored_ids.shape)]):
+        raise StoreError(f"{path}: the stored point ids differ from this sweep's; it was made by another capsweep")
+
+
+def _kind(values: np.ndarray) -> str:
+    """Kind of an array's values: 'b' bool, 'i' int, 'f' float, 's' text (however it is held)."""
+    return "s" if values.dtype.kind in "OTU" else values.dtype.kind
 
 
 def _stored_variables() -> tuple[str, ...]:
@@ -248,19 +433,30 @@ def _write_template(path: Path, grid: GridSpec, sweep_shape: tuple[int, ...],
     """Create the group, coordinates and empty variables; mark it a capsweep store last."""
     group = zarr.create_group(path, zarr_format=3, attributes=_root_attrs(grid))
     sweep_dims = (*(axis.name for axis in grid.axes), REPLICATE)
-    inner_sizes = {"assembly": grid.n_assembly, "snapshot": grid.n_snapshot, "time_bin": grid.n_time_bin,
-                   "retention": grid.n_retention}
-    _write_coordinates(group, grid)
+    sizes = _inner_sizes(grid)
+    for name, (values, attrs) in _coordinates(grid).items():
+        dtype = str if values.dtype == object else values.dtype
+        group.create_array(name, shape=values.shape, chunks=(max(values.size, 1),), dtype=dtype,
+                           dimension_names=(name,), fill_value=None, attributes=attrs)
+        _array(group, name)[...] = values
     for var in layout.VARIABLES + (layout.STATUS,):
         inner = () if var.inner is None else (var.inner,)
-        _create_variable(group, var.name, sweep_dims + inner, (*sweep_shape, *(inner_sizes[d] for d in inner)),
-                         var.dtype, _zarr_fill(var), _variable_attrs(var), len(sweep_dims))
+        _create_point_variable(group, var.name, sweep_dims, sweep_shape, inner, tuple(sizes[d] for d in inner),
+                               var.dtype, _zarr_fill(var), _variable_attrs(var))
     for name, long_name in STRING_VARIABLES.items():
-        _create_variable(group, name, sweep_dims, sweep_shape, str, "", {"units": "1", "long_name": long_name},
-                         len(sweep_dims))
+        _create_point_variable(group, name, sweep_dims, sweep_shape, (), (), str, "",
+                               {"units": "1", "long_name": long_name})
+    _fill_ids_and_seeds(group, point_ids, seeds)
+    group.attrs[ATTR_SCHEMA] = layout.SCHEMA_VERSION
+    _consolidate(path)
+
+
+def _fill_ids_and_seeds(group: zarr.Group, point_ids: np.ndarray, seeds: np.ndarray) -> None:
     _array(group, "seed")[...] = np.asarray(seeds, dtype=np.int64)
     _array(group, layout.POINT_ID)[...] = np.asarray(point_ids, dtype=object)
-    group.attrs[ATTR_SCHEMA] = layout.SCHEMA_VERSION
+
+
+def _consolidate(path: Path) -> None:
     with warnings.catch_warnings():
         # Consolidated metadata is not yet in the Zarr v3 spec; xarray reads it and without it
         # plain xr.open_zarr(path) warns on every open.
@@ -268,12 +464,15 @@ def _write_template(path: Path, grid: GridSpec, sweep_shape: tuple[int, ...],
         zarr.consolidate_metadata(path)
 
 
-def _write_coordinates(group: zarr.Group, grid: GridSpec) -> None:
-    for axis in grid.axes:
-        values = _axis_array(axis)
-        _create_variable(group, axis.name, (axis.name,), values.shape, values.dtype if values.dtype != object else str,
-                         None, {"units": axis.units, "long_name": axis.long_name, AXIS_KEY_ATTR: axis.key})
-        _array(group, axis.name)[...] = values
+def _inner_sizes(grid: GridSpec) -> dict[str, int]:
+    return {"assembly": grid.n_assembly, "snapshot": grid.n_snapshot, "time_bin": grid.n_time_bin,
+            "retention": grid.n_retention}
+
+
+def _coordinates(grid: GridSpec) -> dict[str, tuple[np.ndarray, dict[str, Any]]]:
+    """Every coordinate of ``grid``: name -> (values, attrs); axes first, then the counters and time_bin."""
+    coords = {axis.name: (_axis_array(axis), {"units": axis.units, "long_name": axis.long_name,
+                                              AXIS_KEY_ATTR: axis.key}) for axis in grid.axes}
     counters = (
         (REPLICATE, grid.replicates, "replicate (independent seed) of a grid cell"),
         ("assembly", grid.n_assembly, "assembly index"),
@@ -281,11 +480,10 @@ def _write_coordinates(group: zarr.Group, grid: GridSpec) -> None:
         ("retention", grid.n_retention, "recall test index (tests during the hold, then the final test)"),
     )
     for name, size, long_name in counters:
-        _create_variable(group, name, (name,), (size,), "int64", None, {"units": "1", "long_name": long_name})
-        _array(group, name)[...] = np.arange(size)
-    _create_variable(group, "time_bin", ("time_bin",), (grid.n_time_bin,), "float64", None,
-                     {"units": "s", "long_name": "start time of the population rate bin"})
-    _array(group, "time_bin")[...] = np.arange(grid.n_time_bin) * grid.time_bin_s
+        coords[name] = (np.arange(size, dtype=np.int64), {"units": "1", "long_name": long_name})
+    coords["time_bin"] = (np.arange(grid.n_time_bin) * grid.time_bin_s,
+                          {"units": "s", "long_name": "start time of the population rate bin"})
+    return coords
 
 
 def _axis_array(axis: Axis) -> np.ndarray:
@@ -298,17 +496,33 @@ def _axis_array(axis: Axis) -> np.ndarray:
     return values.astype(kinds[values.dtype.kind])
 
 
-def _create_variable(group: zarr.Group, name: str, dims: tuple[str, ...], shape: tuple[int, ...],
-                     dtype: Any, fill: Any, attrs: dict[str, Any], n_point_dims: int = 0) -> None:
-    """Create one array chunked 1 along its first ``n_point_dims`` dims and whole along the rest.
+def _create_point_variable(group: zarr.Group, name: str, sweep_dims: tuple[str, ...], sweep_shape: tuple[int, ...],
+                           inner_dims: tuple[str, ...], inner_shape: tuple[int, ...], dtype: Any, fill: Any,
+                           attrs: dict[str, Any]) -> None:
+    """Create one per-point array whose chunks (one file each) hold ``point_block`` points, whole along inner dims.
 
-    Arrays of one value per point are stored uncompressed: compressing a few bytes costs time
-    on every point write and saves nothing.
+    Variables with an inner dim are compressed (zstd); per-point scalars are not (a few bytes a
+    point: compressing them costs time on every write and saves little).
     """
-    chunks = (*(1 for _ in shape[:n_point_dims]), *(max(n, 1) for n in shape[n_point_dims:]))
-    per_point_scalar = 0 < n_point_dims == len(shape)
-    group.create_array(name, shape=shape, chunks=chunks, dtype=dtype, dimension_names=dims, fill_value=fill,
-                       attributes=attrs, compressors=None if per_point_scalar else "auto")
+    itemsize = STRING_BYTES if dtype is str else np.dtype(dtype).itemsize
+    inner = tuple(max(n, 1) for n in inner_shape)
+    block = point_block(sweep_shape, max(1, min(MAX_POINTS_PER_FILE, FILE_BYTES // (itemsize * math.prod(inner)))))
+    group.create_array(name, shape=(*sweep_shape, *inner_shape), chunks=(*block, *inner), dtype=dtype,
+                       dimension_names=(*sweep_dims, *inner_dims), fill_value=fill, attributes=attrs,
+                       compressors="auto" if inner else None)
+
+
+def point_block(sweep_shape: tuple[int, ...], points: int) -> tuple[int, ...]:
+    """A block of about ``points`` neighbouring points (at most the grid): whole trailing dims first, as in C order.
+
+    Points run in about grid order, so the points of one write batch mostly share a block (file).
+    """
+    block = []
+    for size in reversed(sweep_shape):
+        side = max(1, min(size, points))
+        block.append(side)
+        points = max(1, points // side)
+    return tuple(reversed(block))
 
 
 def _zarr_fill(var: layout.Variable) -> float | int:
@@ -333,14 +547,29 @@ def _fill_attr(fill: float | int) -> float | int | str:
     return fill
 
 
+def _now() -> str:
+    return datetime.now(UTC).isoformat(timespec="seconds")
+
+
 def _root_attrs(grid: GridSpec) -> dict[str, Any]:
+    created = _now()
     return {
+        **cf_root_attrs(str(grid.attrs.get("sweep_name", "")), created),
         ATTR_FINGERPRINT: grid.fingerprint,
         ATTR_AXES: [axis.name for axis in grid.axes],
         ATTR_TIME_BIN: float(grid.time_bin_s),
-        ATTR_CREATED: datetime.now(UTC).isoformat(timespec="seconds"),
+        ATTR_CREATED: created,
         **{f"version_{name}": _package_version(name) for name in VERSIONED_PACKAGES},
         **grid.attrs,
+    }
+
+
+def cf_root_attrs(sweep_name: str, created_utc: str) -> dict[str, str]:
+    """The CF global attributes of a store of sweep ``sweep_name`` created at ``created_utc`` (ISO 8601, UTC)."""
+    return {
+        "Conventions": CF_CONVENTIONS,
+        "title": f"capsweep results of sweep {sweep_name or '(unnamed)'}: memory capacity of a plastic spiking network",
+        "history": f"{created_utc} capsweep {_package_version('capsweep')}: store created",
     }
 
 
@@ -364,23 +593,33 @@ def _names(value: Any) -> list[str]:
     return [str(v) for v in value] if isinstance(value, list) else []
 
 
-def _open_group(path: Path, mode: Literal["r", "r+"] = "r+") -> zarr.Group:
+def _open_group(path: Path, mode: Literal["r", "r+"] = "r+", consolidated: bool | None = None) -> zarr.Group:
+    """The store's root group; ``consolidated=False`` reads every array's own metadata (what a writer needs)."""
     if not path.exists():
         raise StoreError(f"no result store at {path}")
     try:
-        return zarr.open_group(path, mode=mode)
+        return zarr.open_group(path, mode=mode, use_consolidated=consolidated)
     except (FileNotFoundError, NotADirectoryError, ValueError) as exc:
         raise StoreError(f"{path} is not a capsweep result store (no Zarr v3 group there: {exc})") from None
 
 
-def _check_identity(path: Path, attrs: dict[str, Any], fingerprint: str | None) -> None:
-    """Raise StoreError unless ``attrs`` are those of a capsweep store of this schema (and grid)."""
+def _check_identity(path: Path, attrs: dict[str, Any], fingerprint: str | None, growing: str | None = None) -> None:
+    """Raise StoreError unless ``attrs`` are those of a capsweep store of this schema (and grid), not half grown.
+
+    ``growing``: the fingerprint of the grid the caller grows the store to (a half-grown store is then accepted).
+    """
     if ATTR_SCHEMA not in attrs:
         raise StoreError(f"{path} is not a capsweep result store (its root attributes lack {ATTR_SCHEMA})")
     if attrs[ATTR_SCHEMA] != layout.SCHEMA_VERSION:
         raise StoreError(
             f"{path} has store schema version {attrs[ATTR_SCHEMA]}, this capsweep writes version "
             f"{layout.SCHEMA_VERSION}; use the capsweep version that made it or start a new store"
+        )
+    target = growing_to(path)
+    if target is not None and target != growing:
+        raise StoreError(
+            f"{path} was being grown to a larger sweep grid (fingerprint {target}) when it stopped; run the sweep "
+            "file that grows it again to finish"
         )
     if fingerprint is not None and attrs.get(ATTR_FINGERPRINT) != fingerprint:
         raise StoreError(
