@@ -10,6 +10,8 @@ from typing import Any
 
 from .registry import BY_PATH
 
+COUNT_KEY = "assemblies.count"
+"""The config key of an assembly-count axis (the axis capacity is measured along)."""
 VARIANT_KEY = "variants"
 """The ``key`` of an axis over named variants (each a table of config overrides)."""
 

@@ -16,6 +16,9 @@ Definitions (the same words are stored in every store's attrs, see
   is pending or a count up to the deciding one (the first that falls short) has no done
   replicate, and flagged ``non_monotone`` when a count reaches ``min_fraction`` after a smaller
   one fell short (rises of the fraction that do not cross it are left to the per-count table).
+- In a store filled by an adaptive count search (``capsweep.sweeps.search``), counts the search never
+  ran (status unneeded) take the verdict monotonicity implies: passing when a larger count passed,
+  falling short when a smaller one fell short; the search ran every count this rule needs.
 - Its interval is the range of the per-replicate capacities (replicate r: the largest k with every
   count <= k successful in r), a distribution-free summary; a replicate whose run of successes
   ends at a crashed point is left out (its capacity is unknown).
@@ -32,19 +35,18 @@ import pandas as pd
 import xarray as xr
 from scipy.stats import binomtest
 
-from .query import COUNT_KEY, QueryError, axis_keys, labelled
+from ..axes import COUNT_KEY
+from .query import QueryError, axis_keys, labelled
+from .success import MIN_FRACTION, count_passes, succeeds
 
-MIN_FRACTION = 0.5
-"""Default fraction of replicates in which a count must succeed to count towards capacity."""
 CONFIDENCE = 0.95
 """Confidence level of the Wilson intervals."""
 
 
 def point_success(ds: xr.Dataset) -> xr.DataArray:
-    """Per point: 1.0 success, 0.0 failure, NaN undecided (pending or crashed); see the module docstring."""
+    """Per point: 1.0 success, 0.0 failure, NaN undecided (pending, crashed or unneeded); see the module docstring."""
     status, outcome = labelled(ds, "status"), labelled(ds, "outcome")
-    count = _count_values(ds)
-    ok = (outcome == "stable") & (ds["recalled_count"] == count)
+    ok = succeeds(outcome, ds["recalled_count"], _count_values(ds))
     return xr.where(status == "done", ok.astype(float), np.nan)
 
 
@@ -106,7 +108,8 @@ def success_table(ds: xr.Dataset) -> pd.DataFrame:
             low, high = wilson_interval(wins, done)
             rows.append({**cell.labels, count: int(k), "n": done, "successes": wins,
                          "fraction": wins / done if done else np.nan, "wilson_lo": low, "wilson_hi": high,
-                         "failed": int(np.sum(status == "failed")), "pending": int(np.sum(status == "pending"))})
+                         "failed": int(np.sum(status == "failed")), "pending": int(np.sum(status == "pending")),
+                         "unneeded": int(np.sum(status == "unneeded"))})
     return pd.DataFrame(rows)
 
 
@@ -116,11 +119,31 @@ def _leading_successes(fractions: np.ndarray, min_fraction: float) -> int:
     return int(np.argmin(passed)) if not passed.all() else len(passed)
 
 
-def _replicate_capacities(cell: _Cell) -> list[int]:
-    """Capacity of each replicate whose run of successes ends at a decided point (not a crash)."""
+def _count_verdicts(cell: _Cell, min_fraction: float) -> np.ndarray:
+    """Per count: 1.0 passes, 0.0 falls short of ``min_fraction``, NaN undecided (no done replicate).
+
+    Counts an adaptive search never ran (every replicate unneeded) take the verdict monotonicity
+    implies: pass when a larger count passed, fall short when a smaller one did, NaN if both or neither.
+    """
+    done = np.isfinite(cell.success).sum(axis=1)
+    wins = np.nansum(cell.success, axis=1).astype(int)
+    verdicts = np.array([np.nan if (v := count_passes(w, d, min_fraction)) is None else float(v)
+                         for w, d in zip(wins, done)])
+    inferred = verdicts.copy()
+    for k in np.flatnonzero(np.all(cell.status == "unneeded", axis=1)):
+        above, below = bool(np.any(verdicts[k:] == 1.0)), bool(np.any(verdicts[:k] == 0.0))
+        inferred[k] = 1.0 if above and not below else 0.0 if below and not above else np.nan
+    return inferred
+
+
+def _replicate_capacities(cell: _Cell, verdicts: np.ndarray) -> list[int]:
+    """Capacity of each replicate whose run of successes ends at a decided point (not a crash).
+
+    Unneeded points (never run by a search) count as the verdict inferred for their count.
+    """
     capacities = []
     for r in range(cell.success.shape[1]):
-        column = cell.success[:, r]
+        column = np.where(cell.status[:, r] == "unneeded", verdicts, cell.success[:, r])
         lead = _leading_successes(np.nan_to_num(column, nan=-1.0), 1.0)
         if lead < len(column) and np.isnan(column[lead]):
             continue  # the run ends at a crashed or pending point: capacity unknown
@@ -134,14 +157,12 @@ def capacity_table(ds: xr.Dataset, min_fraction: float = MIN_FRACTION) -> pd.Dat
         raise QueryError(f"--min-fraction {min_fraction} is not allowed: expected a number in (0, 1]")
     rows = []
     for cell in _cells(ds):
-        done = np.isfinite(cell.success).sum(axis=1)
-        with np.errstate(invalid="ignore"):
-            fractions = np.where(done > 0, np.nansum(cell.success, axis=1) / np.maximum(done, 1), np.nan)
-        lead = _leading_successes(np.nan_to_num(fractions, nan=-1.0), min_fraction)
+        verdicts = _count_verdicts(cell, min_fraction)
+        lead = _leading_successes(np.nan_to_num(verdicts, nan=-1.0), 1.0)
         pending = int(np.sum(cell.status == "pending"))
-        undecided = pending > 0 or bool(np.any(done[:lead + 1] == 0))  # counts above the deciding one do not matter
-        passed = fractions >= min_fraction
-        replicates = _replicate_capacities(cell) if not pending else []
+        undecided = pending > 0 or bool(np.any(np.isnan(verdicts[:lead + 1])))  # counts above the deciding one
+        passed = verdicts == 1.0                                                  # do not matter
+        replicates = _replicate_capacities(cell, verdicts) if not pending else []
         rows.append({
             **cell.labels,
             "capacity": pd.NA if undecided else int(cell.counts[lead - 1]) if lead else 0,
@@ -152,6 +173,7 @@ def capacity_table(ds: xr.Dataset, min_fraction: float = MIN_FRACTION) -> pd.Dat
             "replicates_used": len(replicates),
             "pending": pending,
             "failed": int(np.sum(cell.status == "failed")),
+            "unneeded": int(np.sum(cell.status == "unneeded")),
         })
     table = pd.DataFrame(rows)
     for column in ("capacity", "capacity_lo", "capacity_hi"):
@@ -198,7 +220,7 @@ def scaling_fit(ds: xr.Dataset, seed: int = 0) -> ScalingFit | None:
     top: list[int] = []
     for cell in _cells(ds):
         n = int(cell.labels[size])  # type: ignore[call-overload]
-        capacities = np.array(_replicate_capacities(cell), dtype=float)
+        capacities = np.array(_replicate_capacities(cell, _count_verdicts(cell, MIN_FRACTION)), dtype=float)
         if len(capacities) and capacities.mean() > 0:
             per_size[n] = capacities
             top += [n] if capacities.max() >= cell.counts[-1] else []

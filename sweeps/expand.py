@@ -7,6 +7,7 @@ from ``base_seed`` and that id, so results never depend on execution order or wo
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import itertools
 import json
@@ -129,17 +130,17 @@ def check_consistency(flat: dict[str, Any], where: str) -> None:
 
 
 def fingerprint(sweep: Sweep) -> str:
-    """Hash of everything that fixes the grid: axes, replicates, base seed and base science config."""
-    blob = json.dumps(
-        {
-            "axes": [[a.name, a.key, list(a.values)] for a in sweep.axes],
-            "variants": sweep.variants,
-            "replicates": sweep.replicates,
-            "base_seed": sweep.base_seed,
-            "base": identity_config(sweep.base),
-        },
-        sort_keys=True,
-    )
+    """Hash of everything that fixes the grid: axes, replicates, base seed, base science config, count search."""
+    identity: dict[str, Any] = {
+        "axes": [[a.name, a.key, list(a.values)] for a in sweep.axes],
+        "variants": sweep.variants,
+        "replicates": sweep.replicates,
+        "base_seed": sweep.base_seed,
+        "base": identity_config(sweep.base),
+    }
+    if sweep.search is not None:  # only then, so that stores of grids without a search keep their fingerprint
+        identity["search"] = dataclasses.asdict(sweep.search)
+    blob = json.dumps(identity, sort_keys=True)
     return hashlib.sha256(blob.encode()).hexdigest()[:16]
 
 

@@ -1,0 +1,159 @@
+"""Adaptive capacity search: per cell of the other axes, run only the counts that decide the capacity.
+
+A sweep whose count axis says ``search = {low, high, start, method}`` lays out every count from
+low to high in the store, but runs only the counts that decide each cell's capacity. A count
+*passes* when its replicates succeed in at least ``MIN_FRACTION`` of the done ones (the rule of
+the capacity table, :func:`capsweep.sweeps.success.count_passes`). Two methods:
+
+- ``scan`` (default, exact): the capacity is the largest k whose every count <= k passes, so the
+  counts 1..capacity + 1 are exactly what certifies it, and nothing above the first failing count
+  is needed. The scan runs every count from the bottom up to ``start`` at once (a seed, e.g. the
+  prescreen's predicted capacity, buys parallel wall time), then one count at a time, and stops
+  at the first failing count. It gives the full grid's capacity on any grid.
+- ``bisect`` (fewer points for large capacities, assumes success falls monotonically with the
+  count): keep the largest passing index ``lo`` (-1: none yet) and the smallest failing index
+  ``hi`` (len: none yet), probe the start count first, gallop up (start + 1, + 3, + 7, ...) while
+  nothing failed, gallop down (start - 1, - 3, - 7, ...) while nothing passed, then bisect until
+  ``hi - lo == 1``. Counts it skipped below the capacity are assumed to pass: on a noisy grid (a
+  failing count below a passing one) it can report more than the full grid would.
+
+Every step is a function of the verdicts stored so far, so a killed search resumes exactly where
+it stopped and gives the same capacities. When a cell closes, its points never run get status
+``unneeded``; the capacity table infers their verdicts by monotonicity (pass below a passing
+count, fail above a failing one). Verdicts that contradict monotonicity (a pass above a failure, e.g.
+after ``--retry-failed``) stop a bisect at once; the capacity table flags the cell non-monotone.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ..flags import OUTCOMES, STATUSES
+from .expand import Point
+from .success import count_passes, succeeds
+
+Verdict = bool | None
+"""Success of one point: True, False, or None when it crashed (left out of the count's fraction)."""
+
+
+@dataclass
+class CellSearch:
+    """The search of one cell: which count indices passed or failed, and what to probe next."""
+
+    n_counts: int
+    start: int  # index of the count probed first (bisect) or scanned up to at once (scan)
+    method: str = "scan"  # one of SEARCH_METHODS
+    verdicts: dict[int, bool] = field(default_factory=dict)  # count index -> passes
+
+    def bounds(self) -> tuple[int, int]:
+        """(largest passing index or -1, smallest failing index or n_counts)."""
+        lo = max((k for k, ok in self.verdicts.items() if ok), default=-1)
+        hi = min((k for k, ok in self.verdicts.items() if not ok), default=self.n_counts)
+        return lo, hi
+
+    def next_probes(self) -> list[int]:
+        """Count indices to run now (empty when the cell's capacity is decided)."""
+        if self.method == "scan":
+            return self._scan()
+        probe = self._bisect()
+        return [] if probe is None else [probe]
+
+    def _scan(self) -> list[int]:
+        """Every undecided index from the bottom up to max(start, first index not yet known to pass)."""
+        lead = next((k for k in range(self.n_counts) if not self.verdicts.get(k, False)), self.n_counts)
+        if lead == self.n_counts or self.verdicts.get(lead) is False:
+            return []
+        return [k for k in range(min(max(self.start, lead), self.n_counts - 1) + 1) if k not in self.verdicts]
+
+    def _bisect(self) -> int | None:
+        """Next index of the bracket-and-bisect search, or None when decided."""
+        lo, hi = self.bounds()
+        if hi - lo <= 1:
+            return None
+        if not self.verdicts:
+            return self.start
+        if hi == self.n_counts:
+            return min(self.start + 2 * (lo - self.start) + 1, self.n_counts - 1)
+        if lo == -1:
+            return max(2 * hi - self.start - 1, 0)
+        return (lo + hi) // 2
+
+
+@dataclass
+class SearchRun:
+    """Every cell's search over one sweep's points, fed with point verdicts as they are stored."""
+
+    count_axis: int  # position of the count axis in a point's index
+    cells: dict[tuple[int, ...], CellSearch]
+    points: dict[tuple[tuple[int, ...], int], list[Point]]  # (cell, count index) -> its replicates
+    verdicts: dict[tuple[int, ...], Verdict]  # point index -> verdict, for finished points
+    submitted: set[tuple[int, ...]] = field(default_factory=set)
+    marked: set[tuple[int, ...]] = field(default_factory=set)  # points already given status unneeded
+
+    def record(self, point: Point, verdict: Verdict) -> None:
+        """A point finished with ``verdict``."""
+        self.verdicts[point.index] = verdict
+
+    def wanted(self) -> list[Point]:
+        """Points to submit now: the unfinished, unsubmitted replicates of every open cell's next probe."""
+        out = []
+        for key, cell in self.cells.items():
+            for probe in self._advance(key, cell):
+                for point in self.points[key, probe]:
+                    if point.index not in self.verdicts and point.index not in self.submitted:
+                        self.submitted.add(point.index)
+                        out.append(point)
+        return out
+
+    def _advance(self, key: tuple[int, ...], cell: CellSearch) -> list[int]:
+        """Record the verdicts of finished probes; the cell's probes still open (empty: decided)."""
+        while probes := cell.next_probes():
+            still_open = []
+            for probe in probes:
+                replicates = [p.index for p in self.points[key, probe]]
+                if any(index not in self.verdicts for index in replicates):
+                    still_open.append(probe)
+                    continue
+                done = [v for index in replicates if (v := self.verdicts[index]) is not None]
+                cell.verdicts[probe] = bool(count_passes(sum(done), len(done)))  # all crashed: a failing count
+            if len(still_open) == len(probes):
+                return still_open
+        return []
+
+    def unneeded(self) -> list[Point]:
+        """Points of decided cells that never ran nor were submitted, not yet marked unneeded (then marked)."""
+        new = [p for (key, _), group in self.points.items() if not self.cells[key].next_probes()
+               for p in group if p.index not in self.verdicts.keys() | self.submitted | self.marked]
+        self.marked.update(p.index for p in new)
+        return new
+
+
+def plan_search(points: list[Point], count_axis: int, starts: dict[tuple[int, ...], int], method: str,
+                status: np.ndarray, outcome: np.ndarray, recalled: np.ndarray, retry_failed: bool) -> SearchRun:
+    """A SearchRun over ``points`` with the verdicts already stored (status/outcome/recalled_count codes).
+
+    ``starts`` maps each cell key to its start index; ``method`` is "scan" or "bisect". Failed points count as
+    crashed verdicts unless ``retry_failed``; unneeded points as not yet run.
+    """
+    run = SearchRun(count_axis, {}, {}, {})
+    n_counts = max(p.index[count_axis] for p in points) + 1
+    for point in points:
+        key, k = cell_key(point.index, count_axis), point.index[count_axis]
+        run.cells.setdefault(key, CellSearch(n_counts, starts[key], method))
+        run.points.setdefault((key, k), []).append(point)
+        label = STATUSES[int(status[point.index])]
+        if label == "done":
+            count = point.config["assemblies"]["count"]
+            run.record(point, bool(succeeds(OUTCOMES[int(outcome[point.index])], int(recalled[point.index]), count)))
+        elif label == "failed" and not retry_failed:
+            run.record(point, None)
+        elif label == "unneeded":
+            run.marked.add(point.index)
+    return run
+
+
+def cell_key(index: tuple[int, ...], count_axis: int) -> tuple[int, ...]:
+    """A point's cell: its grid index without the count position and the replicate."""
+    return index[:count_axis] + index[count_axis + 1:-1]
