@@ -1,4 +1,4 @@
-"""Figures of the theory prescreen: rate transfer curves and plasticity drift (PNG, matplotlib Agg)."""
+"""Figures of the theory prescreen: rate transfer curves, plasticity drift, agreement with a store (PNG, Agg)."""
 
 from __future__ import annotations
 
@@ -10,7 +10,9 @@ import matplotlib
 matplotlib.use("Agg")
 import matplotlib.pyplot as plt
 import numpy as np
+import pandas as pd
 
+from ..flags import OUTCOMES
 from ..runners.metrics import active_threshold
 from ..runners.theory.drift import bcm_threshold_hz, drift_zero_crossings, rule_drift
 from ..runners.theory.meanfield import TransferCurve, initial_weights, population_rates
@@ -107,3 +109,41 @@ def _save(fig, path: str | Path) -> Path:
     fig.savefig(out, dpi=110)
     plt.close(fig)
     return out
+
+
+def plot_agreement(confusion: pd.DataFrame, capacity: pd.DataFrame, agreement: float, path: str | Path) -> Path:
+    """Left: confusion heatmap (rows predicted, columns simulated outcome; point counts). Right: predicted against
+    simulated capacity per cell (open markers: the simulated capacity is only a lower bound, the top of the grid)."""
+    fig, axes = plt.subplots(1, 2, figsize=(10, 4.2))
+    ax = axes[0]
+    labels = list(OUTCOMES[:3])
+    table = confusion.reindex(index=labels, columns=labels, fill_value=0).fillna(0).to_numpy(dtype=int)
+    ax.imshow(table, cmap="Blues")
+    for (i, j), n in np.ndenumerate(table):
+        ax.text(j, i, str(n), ha="center", va="center", color="white" if n > table.max() / 2 else "black")
+    ax.set_xticks(range(3), labels)
+    ax.set_yticks(range(3), labels)
+    ax.set_xlabel("simulated outcome")
+    ax.set_ylabel("predicted outcome")
+    ax.set_title(f"Outcome per point: agreement {agreement:.0%}")
+    ax = axes[1]
+    if capacity.empty or capacity["simulated_capacity"].isna().all():
+        ax.text(0.5, 0.5, "no capacity (no count axis or undecided cells)", ha="center", transform=ax.transAxes)
+    else:
+        decided = capacity.dropna(subset=["simulated_capacity"])
+        sim = decided["simulated_capacity"].astype(float).to_numpy()
+        pred = decided["predicted_capacity"].astype(float).to_numpy()
+        jitter = np.linspace(-0.12, 0.12, len(sim)) if len(sim) > 1 else np.zeros(1)
+        bound = decided["at_least"].astype(bool).to_numpy()
+        ax.plot(sim[~bound] + jitter[~bound], pred[~bound], "o", color="C0", label="simulated capacity")
+        ax.plot(sim[bound] + jitter[bound], pred[bound], "o", mfc="white", color="C0", label="simulated: at least")
+        top = max(sim.max(), pred.max()) + 0.5
+        ax.plot([-0.5, top], [-0.5, top], "k--", lw=1, label="identity")
+        ax.set_xlim(-0.5, top)
+        ax.set_ylim(-0.5, top)
+        ax.legend(fontsize=8, loc="upper left")
+    ax.set_xlabel("simulated capacity (assemblies)")
+    ax.set_ylabel("predicted capacity (assemblies)")
+    ax.set_title("Capacity per cell")
+    fig.tight_layout()
+    return _save(fig, path)

@@ -18,10 +18,12 @@ the free membrane potential; the rate then follows from the Siegert formula.
 Populations in the mean field: cued members ``C`` and uncued members ``U`` of one assembly
 (the "focal" assembly), members ``B`` of the other assemblies, non-members ``O`` and
 inhibitory cells ``I``. Assemblies are treated as disjoint groups of ``assemblies.size``
-cells; connections are random with fixed in-degree, so a cell receives
+cells (random overlap only shrinks the other assemblies' share); connections are random with
+fixed in-degree, so a cell receives
 ``indegree_exc * (group size / n_exc)`` inputs from each excitatory group.
 
 Modules: :mod:`.drift` (rate form of the plasticity rules), :mod:`.transfer` (LIF transfer
 functions of one conductance-based cell), :mod:`.meanfield` (populations, fixed points, transfer
-curves), :mod:`.prediction` (the prescreen's verdict).
+curves), :mod:`.dynamics` (weights and rates integrated over a point's protocol), :mod:`.prediction`
+(the prescreen's verdict).
 """

@@ -20,68 +20,105 @@ E_GROUPS = ("C", "U", "B", "O")
 """Excitatory groups: cued / uncued members of the focal assembly, other members, non-members."""
 
 
+MEMBERS = ("C", "U", "B")
+"""Groups of assembly members (C and U: the focal assembly; B: the other assemblies)."""
+
+
 @dataclass(frozen=True)
 class Weights:
-    """Synaptic weights (g_leak) the mean field uses; I->E may differ per E group (inhibitory STDP)."""
+    """Synaptic weights (g_leak) the mean field uses, per E->E pathway; I->E per E group (inhibitory STDP)."""
 
-    within: float  # E->E inside an assembly
-    between: float  # every other E->E synapse
+    within: float  # E->E inside the focal assembly
+    between: float  # E->E among non-members
     e_to_i: float
     i_to_i: float
     i_to_e: dict[str, float] = field(default_factory=dict)  # E group -> weight
+    within_other: float = math.nan  # inside each other assembly (NaN: as ``within``)
+    into: float = math.nan  # non-member -> member (NaN: as ``between``)
+    out: float = math.nan  # member -> non-member (NaN: as ``between``)
+    across: float = math.nan  # member -> member of another assembly (NaN: as ``between``)
+    focal: dict[tuple[str, str], float] = field(default_factory=dict)  # (pre, post) in C/U -> weight (else within)
+
+    def ee(self, pre: str, post: str) -> float:
+        """E->E weight from a cell of group ``pre`` to one of group ``post`` (not the same assembly unless both
+        are focal groups; a B cell's own assembly is :meth:`own_other`)."""
+        if pre in ("C", "U") and post in ("C", "U"):
+            return self.focal.get((pre, post), self.within)
+        if pre == "O" and post == "O":
+            return self.between
+        chosen = self.into if pre == "O" else self.out if post == "O" else self.across
+        return self.between if math.isnan(chosen) else chosen
+
+    def own_other(self) -> float:
+        """Weight inside a B cell's own assembly."""
+        return self.within if math.isnan(self.within_other) else self.within_other
 
 
 def initial_weights(cfg: dict) -> Weights:
-    """Weights at the start of a run: prewired assemblies at prewire_gain x w_e_to_e."""
+    """Weights at the start of a run: prewired assemblies at prewire_gain x w_e_to_e, every other E->E at w_e_to_e."""
     net, asm = cfg["network"], cfg["assemblies"]
     gain = asm["prewire_gain"] if asm["imprint"] == "prewired" else 1.0
-    return Weights(within=gain * net["w_e_to_e"], between=net["w_e_to_e"], e_to_i=net["w_e_to_i"],
-                   i_to_i=net["w_i_to_i"], i_to_e={g: net["w_i_to_e"] for g in E_GROUPS})
+    w = net["w_e_to_e"]
+    return Weights(within=gain * w, between=w, e_to_i=net["w_e_to_i"], i_to_i=net["w_i_to_i"],
+                   i_to_e={g: net["w_i_to_e"] for g in E_GROUPS}, within_other=gain * w, into=w, out=w, across=w)
 
 
-def group_fractions(cfg: dict, cued: bool = False) -> dict[str, float]:
-    """Fraction of the E cells in each group (disjoint assemblies, capped at n_exc)."""
-    net, asm, pr = cfg["network"], cfg["assemblies"], cfg["protocol"]
+def group_fractions(cfg: dict, cued: float = 0.0) -> dict[str, float]:
+    """Fraction of the E cells in each group, the fraction ``cued`` of the focal assembly in group C.
+
+    Disjoint assemblies are capped at n_exc. With ``assemblies.overlap = "random"`` the union of
+    ``count`` independent draws of ``size`` cells covers ``1 - (1 - size/n)^count`` of the cells, so the
+    other assemblies add only the part of that union outside the focal assembly.
+    """
+    net, asm = cfg["network"], cfg["assemblies"]
     n = net["n_exc"]
     f = min(asm["size"], n) / n if asm["count"] > 0 else 0.0
-    f_other = min(max(asm["count"] - 1, 0) * f, 1.0 - f)
-    c = pr["cue_fraction"] if cued else 0.0
-    return {"C": c * f, "U": (1.0 - c) * f, "B": f_other, "O": max(1.0 - f - f_other, 0.0)}
+    if asm["overlap"] == "random":
+        union = 1.0 - (1.0 - f) ** asm["count"] if asm["count"] > 0 else 0.0
+        f_other = max(union - f, 0.0)
+    else:
+        f_other = min(max(asm["count"] - 1, 0) * f, 1.0 - f)
+    return {"C": cued * f, "U": (1.0 - cued) * f, "B": f_other, "O": max(1.0 - f - f_other, 0.0)}
 
 
 @dataclass(frozen=True)
 class Scenario:
-    """What the mean field is asked about: weights, group sizes and whether the cue is on."""
+    """What the mean field is asked about: weights, group sizes and the extra Poisson input onto group C."""
 
     weights: Weights
     fractions: dict[str, float]
-    cue_on: bool = False
+    stimulus: tuple[float, float] | None = None  # (weight in g_leak, rate in Hz) of one input per target cell
+    targets: tuple[str, ...] = ("C",)  # groups the stimulus reaches
 
 
 def _inputs(cfg: dict, sc: Scenario, target: str, rates: dict[str, float]) -> list[Input]:
     """Poisson inputs onto one cell of group ``target`` ("I" or an E group) at the given rates."""
-    net, pr = cfg["network"], cfg["protocol"]
+    net = cfg["network"]
     k_e, k_i, w = net["indegree_exc"], net["indegree_inh"], sc.weights
-    members = ("C", "U")
     if target == "I":
         ins = [Input(net["drive_inputs"], net["drive_weight"], net["drive_rate_inh_hz"], True)]
         ins += [Input(k_e * sc.fractions[g], w.e_to_i, rates[g], True) for g in E_GROUPS]
         ins.append(Input(k_i, w.i_to_i, rates["I"], False))
         return ins
     ins = [Input(net["drive_inputs"], net["drive_weight"], net["drive_rate_exc_hz"], True)]
-    if target == "C" and sc.cue_on:
-        ins.append(Input(1.0, pr["cue_weight"], pr["cue_rate_hz"], True))
+    if target in sc.targets and sc.stimulus is not None:
+        ins.append(Input(1.0, sc.stimulus[0], sc.stimulus[1], True))
     size_frac = sc.fractions["C"] + sc.fractions["U"]
     for g in E_GROUPS:
-        same = (target in members and g in members)
         frac = sc.fractions[g]
         if target == "B" and g == "B":  # a B cell's own assembly is one of the other assemblies
             own = min(size_frac, frac)
-            ins.append(Input(k_e * own, w.within, rates[g], True))
+            ins.append(Input(k_e * own, w.own_other(), rates[g], True))
             frac -= own
-        ins.append(Input(k_e * frac, w.within if same else w.between, rates[g], True))
+        ins.append(Input(k_e * frac, w.ee(g, target), rates[g], True))
     ins.append(Input(k_i, w.i_to_e[target], rates["I"], False))
     return ins
+
+
+def cue_stimulus(cfg: dict) -> tuple[float, float]:
+    """(weight in g_leak, rate in Hz) of the cue input each cued cell receives."""
+    pr = cfg["protocol"]
+    return pr["cue_weight"], pr["cue_rate_hz"]
 
 
 def group_rate(cfg: dict, sc: Scenario, target: str, rates: dict[str, float]) -> float:
@@ -96,9 +133,17 @@ def max_rate(cfg: dict, excitatory: bool) -> float:
 
 
 def _solve_inh(cfg: dict, sc: Scenario, rates: dict[str, float]) -> float:
-    """Self-consistent I rate (Hz) for fixed E rates: unique, since I->I only inhibits."""
+    """Self-consistent I rate (Hz) for fixed E rates: unique, since I->I only inhibits.
+
+    The root is bracketed first within 10 % of ``rates["I"]`` (the previous iterate), else over the whole range.
+    """
     top = max_rate(cfg, False) * 0.999
     f = lambda r: group_rate(cfg, sc, "I", {**rates, "I": r}) - r
+    guess = rates.get("I", 0.0)
+    if 0.0 < guess < top:
+        lo, hi = 0.9 * guess, min(1.1 * guess, top)
+        if f(lo) > 0.0 > f(hi):
+            return float(optimize.brentq(f, lo, hi, xtol=1e-6))
     if f(0.0) <= 0.0:
         return 0.0
     return float(optimize.brentq(f, 0.0, top, xtol=1e-6))
@@ -271,7 +316,7 @@ def population_rates(cfg: dict, weights: Weights | None = None, with_cue: bool =
             active_threshold(cfg["detection"], mean_exc_rate(sc, background))
         active = _active_state(asm_curve, on_hz)
         if with_cue:
-            sc_cue = Scenario(w, group_fractions(cfg, cued=True), cue_on=True)
+            sc_cue = Scenario(w, group_fractions(cfg, cfg["protocol"]["cue_fraction"]), cue_stimulus(cfg))
             cue = solve_rates(cfg, sc_cue, {}, background)
     active_exc = mean_exc_rate(sc, active.rates) if active else math.nan
     return PopulationRates(background, mean_exc_rate(sc, background), bg_curve, asm_curve, active,

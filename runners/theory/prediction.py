@@ -1,20 +1,48 @@
-"""The prescreen's verdict for one point: outcome, recall state, boundedness of high rates.
+"""The prescreen's verdict for one point: outcome, recall during the final test and at the end weights.
 
-Rates in Hz, weights in g_leak.
+The verdict comes from integrating the rate form of the plasticity rules over the point's own protocol
+(:func:`.dynamics.integrate`): the within-assembly, into/out-of-assembly, across-assembly and background
+E->E weights and the I->E weights onto members and non-members move at the mean-field rates, which are
+re-solved as the weights move, with each cue's (or imprint's) input while it is on. The predicted E rate
+trace is then scored by the simulation's own rules: runaway onset by
+:func:`capsweep.runners.scoring.onset_in_schedule`, outcome by :func:`capsweep.runners.metrics.outcome`,
+recall by :func:`capsweep.runners.metrics.recall_score` and ``detection.recall_threshold``.
+
+So the verdict depends on the assembly count (group fractions: more members, more excitatory feedback
+and more cue periods; the across-assembly weights carry interference), size and overlap, the rule's
+coefficients (beta, delta, A, B, its time constants, eta, rho0), the clips (w_max of both rules against
+the initial weights), the prewiring gain, and time (settle, hold and cue durations against the learning
+rates).
+
+What the prediction ignores:
+
+- spike correlations: STDP is taken for independent Poisson trains, so the extra potentiation of
+  synapses inside a synchronously firing assembly, and synchrony itself, are missing;
+- the spread of weights within a pathway (each pathway is one mean weight) and of in-degrees;
+- cells of several assemblies (random overlap only changes the group fractions) and which cells a
+  cue picks; the cue order is 0, 1, ... (the simulation draws it per seed);
+- the stability of a state against oscillations and finite-size fluctuations: a state counts as
+  stable when the rate iteration converges to it (static slope below 1), so a high asynchronous
+  state of an assembly after its cue persists in the prediction, where the simulated network (60
+  cells per assembly, strong E-I loop) falls out of it into short bursts within ~0.1 s. This is the
+  main source of predicted runaways that simulation does not show (capsweep on this machine,
+  December 2026: 10 ms population rate after a cue of one assembly of the demo network);
+- the transient of rates (they follow the weights instantly) and spike-frequency adaptation;
+- a previous assembly still active when the next one is cued is not followed (the new focal
+  assembly starts from the other assemblies' rates).
+
+Rates in Hz, weights in g_leak, times in s.
 """
 
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, replace
-from typing import Any
-
-import numpy as np
+from dataclasses import dataclass
 
 from ...flags import OUTCOMES
-from ..metrics import active_threshold, runaway_threshold
-from .drift import bcm_threshold_hz, drift_zero_crossings, rule_drift, weight_equilibrium
-from .meanfield import FixedPoint, PopulationRates, Weights, initial_weights, max_rate, population_rates
+from .. import metrics, protocol
+from .dynamics import Run, baseline_hz, final_cue_rates, integrate, onset_s, recall_at_end, recall_score
+from .meanfield import group_fractions
 
 STABLE, RUNAWAY, SILENT = OUTCOMES[:3]
 """Outcome labels of :data:`capsweep.flags.OUTCOMES` (their positions are stored integers, so fixed)."""
@@ -25,188 +53,78 @@ class Prediction:
     """Theory prescreen verdict for one point."""
 
     outcome: str  # one of capsweep.flags.OUTCOMES
-    recall_state_exists: bool  # self-sustained active assembly state at the initial weights
-    high_rate_bounded: bool  # plasticity keeps a high-rate state from growing without bound
-    background_rate_hz: float  # mean E rate of the background state, initial weights
-    assembly_rate_hz: float  # member rate of the self-sustained state at initial weights (NaN if none)
-    drift_zero_crossings_hz: list[float]  # of assembly synapses at w_max, pre at the member background rate
+    recalled_count: int  # assemblies whose final-test cue reaches the recall criterion
+    recall_state_exists: bool  # a cue at the end weights completes the assembly (members active, score reached)
+    recall_state_stable: bool  # ... and that state returns after a nudge
+    background_rate_hz: float  # predicted baseline E rate (settle phase)
+    runaway_threshold_hz: float
+    runaway_onset_s: float  # NaN if none
+    peak_exc_hz: float  # highest predicted population E rate outside stimuli
+    end_within_weight: float  # mean within-assembly weight at the end (g_leak)
+    end_i_to_members: float  # mean I->E weight onto members at the end (g_leak)
+    cued_rate_hz: float  # cued members during a cue at the end weights
+    uncued_member_rate_hz: float  # uncued members then (pattern completion)
+    count: int  # assemblies of the point
+    steps: int  # rate solves in the integration
     reasons: str
-    runaway_threshold_hz: float = math.nan
-    cued_rate_hz: float = math.nan  # cued members during a cue, initial weights
-    uncued_member_rate_hz: float = math.nan  # uncued members during a cue (pattern completion)
-    end_within_weight: float = math.nan  # assembly weight plasticity drives toward (g_leak)
-    end_assembly_exc_hz: float = math.nan  # population E rate with the focal assembly active at the end weights
+
+    @property
+    def success(self) -> bool:
+        """Predicted success: stable, every assembly recalled in the final test, a stable recall state at the end.
+
+        The simulation's success (:mod:`capsweep.sweeps.capacity`) is the first two; the third asks that the
+        memories can still be recalled with the weights the protocol leaves.
+        """
+        return self.outcome == STABLE and self.recalled_count == self.count and self.recall_state_stable
 
 
-def _end_within_weight(cfg: dict, weights: Weights, drive_hz: float, istdp_cap: bool,
-                       active_hz: float) -> tuple[float, FixedPoint | None, float]:
-    """Joint (rate, weight) equilibrium of an assembly pushed into activity at ``drive_hz``.
-
-    Start from the weight the rule settles at with members firing at ``drive_hz`` (a cue), then
-    alternate: self-sustained state at that weight -> weight equilibrium at that state's rate.
-    Returns (weight, active state or None, its population E rate).
-    """
-    w_ref = weights.within
-    w = weight_equilibrium(cfg, drive_hz, drive_hz, w_ref)
-    active, exc = None, math.nan
-    for _ in range(3):
-        trial = _with_within(cfg, weights, w, istdp_cap)
-        rates = population_rates(cfg, trial, with_cue=False, active_hz=active_hz)
-        active, exc = rates.assembly, rates.assembly_exc_hz
-        if active is None:
-            break
-        w_next = weight_equilibrium(cfg, active.rate_hz, active.rate_hz, w_ref)
-        if abs(w_next - w) < 1e-3 * max(w, 1e-6):
-            break
-        w = w_next
-    return w, active, exc
+def _peak(run: Run) -> float:
+    """Highest population E rate (Hz) of a stimulus-free step after settle."""
+    settle = run.schedule.seconds(run.schedule.settle_end)
+    rates = [s.exc_hz for s in run.steps if s.segment.stimulus is None and s.t1 > settle]
+    return max(rates) if rates else math.nan
 
 
-def _with_within(cfg: dict, weights: Weights, within: float, istdp_cap: bool) -> Weights:
-    """Weights with the assembly weight set, and I->E onto members at the iSTDP cap if asked."""
-    i_to_e = dict(weights.i_to_e)
-    if istdp_cap:
-        cap = cfg["plasticity"]["inhibitory"]["w_max"]
-        i_to_e.update({g: max(cap, i_to_e[g]) for g in ("C", "U", "B")})
-    return replace(weights, within=within, i_to_e=i_to_e)
-
-
-@dataclass
-class _Reasoning:
-    """What the steps of :func:`predict` have established so far."""
-
-    start: PopulationRates  # states at the initial weights
-    threshold_hz: float  # runaway threshold
-    weights: Weights  # end weights so far
-    rule_bounded: bool  # the E->E drift turns negative at high post rates
-    istdp: bool  # inhibitory STDP is on with eta > 0
-    reasons: list[str]
-    w_end: float = math.nan  # assembly weight at the end
-    high_exc_hz: float = math.nan  # population E rate of the worst high-rate state found
-    held_by_istdp: bool = False
-
-
-def _start(cfg: dict) -> _Reasoning:
-    """Step 2: the background at the initial weights (which step 1 reads) and the runaway threshold it implies."""
-    p = cfg["plasticity"]
-    w0 = initial_weights(cfg)
-    start = population_rates(cfg, w0)
-    bg = start.background_exc_hz
-    threshold = runaway_threshold(cfg["detection"], bg)
-    top = 0.97 * max_rate(cfg, True)
-    reasons = [f"background E {bg:.2f} Hz, I {start.background['I']:.2f} Hz; runaway threshold "
-               f"{threshold:.1f} Hz; BCM-like threshold {bcm_threshold_hz(cfg):.2f} Hz"]
-    return _Reasoning(start, threshold, w0, rule_drift(cfg, top, top, p["triplet"]["w_max"], w0.within) < 0.0,
-                      p["inhibitory"]["enabled"] and p["inhibitory"]["eta"] > 0, reasons, w_end=w0.within)
-
-
-def _common(cfg: dict, r: _Reasoning) -> dict[str, Any]:
-    """The Prediction fields every outcome reports: states at the initial weights and the threshold."""
-    start, bg = r.start, r.start.background_exc_hz
-    member_bg = start.background["U"] if start.assembly_curve is not None else bg
-    return dict(
-        recall_state_exists=start.assembly is not None, background_rate_hz=bg,
-        assembly_rate_hz=start.assembly.rate_hz if start.assembly else math.nan,
-        drift_zero_crossings_hz=drift_zero_crossings(cfg, member_bg, cfg["plasticity"]["triplet"]["w_max"],
-                                                     r.weights.within),
-        runaway_threshold_hz=r.threshold_hz,
-        cued_rate_hz=start.cue["C"] if start.cue else math.nan,
-        uncued_member_rate_hz=start.cue["U"] if start.cue else math.nan)
-
-
-def _silent(cfg: dict, r: _Reasoning, common: dict[str, Any]) -> Prediction | None:
-    """Step 1: silent when the background E rate is below ``detection.silence_hz``, else None."""
-    silence_hz = cfg["detection"]["silence_hz"]
-    if not r.start.background_exc_hz < silence_hz:
-        return None
-    r.reasons.append(f"background below silence threshold {silence_hz} Hz")
-    return Prediction(SILENT, high_rate_bounded=True, reasons="; ".join(r.reasons), **common)
-
-
-def _network_wide_growth(cfg: dict, r: _Reasoning) -> None:
-    """Step 5 (needed first by step 3): unbounded positive drift at background rates sends every weight to w_max."""
-    bg, w_max = r.start.background_exc_hz, cfg["plasticity"]["triplet"]["w_max"]
-    if weight_equilibrium(cfg, bg, bg, r.weights.between) >= w_max and not r.rule_bounded:
-        r.weights = replace(r.weights, between=w_max)
-        r.reasons.append("drift at background rates is positive and unbounded: all E->E weights go to w_max")
-
-
-def _assembly_under_plasticity(cfg: dict, r: _Reasoning) -> None:
-    """Steps 3-4: the assembly weight the cue drives, and the self-sustained state it supports."""
-    if r.start.cue is None:
-        return
-    drive, active_hz = r.start.cue["C"], active_threshold(cfg["detection"], r.start.background_exc_hz)
-    r.w_end, active, r.high_exc_hz = _end_within_weight(cfg, r.weights, drive, r.istdp, active_hz)
-    r.reasons.append(f"assembly weight -> {r.w_end:.3f} (from {r.weights.within:.3f}) "
-                     f"after cue at {drive:.1f} Hz")
-    if active is None:
-        r.reasons.append("no self-sustained assembly state at that weight")
-    else:
-        r.reasons.append(f"self-sustained assembly state {active.rate_hz:.1f} Hz, E mean {r.high_exc_hz:.2f} Hz")
-    if r.istdp and active is not None and r.high_exc_hz <= r.threshold_hz:
-        r.held_by_istdp = True
-
-
-def _background_at_end_weights(cfg: dict, r: _Reasoning) -> None:
-    """Step 5: with every weight at w_max, the background state at the end weights."""
-    if r.weights.between != cfg["plasticity"]["triplet"]["w_max"]:
-        return
-    active_hz = active_threshold(cfg["detection"], r.start.background_exc_hz)
-    end = population_rates(cfg, _with_within(cfg, r.weights, r.w_end, r.istdp), with_cue=False, active_hz=active_hz)
-    r.high_exc_hz = float(np.nanmax([r.high_exc_hz, end.background_exc_hz]))
-    r.reasons.append(f"background at w_max: E {end.background_exc_hz:.2f} Hz")
-
-
-def _verdict(cfg: dict, r: _Reasoning, common: dict[str, Any]) -> Prediction:
-    """Step 6: runaway if a high-rate state exceeds the threshold, else stable."""
-    if r.istdp and not (r.high_exc_hz > r.threshold_hz):
-        r.held_by_istdp = True
-    bounded = r.rule_bounded or r.held_by_istdp or not (r.high_exc_hz > r.threshold_hz)
-    if r.rule_bounded:
-        r.reasons.append("drift turns negative at high post rates (heterosynaptic term)")
-    if r.held_by_istdp:
-        rho0 = cfg["plasticity"]["inhibitory"]["rho0_hz"]
-        r.reasons.append(f"inhibitory STDP can hold members near rho0 = {rho0} Hz")
-    outcome = RUNAWAY if r.high_exc_hz > r.threshold_hz else STABLE
-    return Prediction(outcome, high_rate_bounded=bounded, reasons="; ".join(r.reasons), end_within_weight=r.w_end,
-                      end_assembly_exc_hz=r.high_exc_hz, **common)
+def _recalled(cfg: dict, run: Run, baseline: float) -> int:
+    """Final-test cues whose uncued members are active and whose recall score reaches the threshold."""
+    det = cfg["detection"]
+    active = metrics.active_threshold(det, baseline)
+    fractions = group_fractions(cfg, cfg["protocol"]["cue_fraction"])
+    return sum(1 for r in final_cue_rates(cfg, run)
+               if r["U"] > active and recall_score(cfg, r, fractions) >= det["recall_threshold"])
 
 
 def predict(cfg: dict) -> Prediction:
-    """Predict a point's outcome (stable | runaway | silent) from mean-field theory.
-
-    Reasoning, in order:
-
-    1. Silent: the background fixed point at the initial weights has a mean E rate below
-       ``detection.silence_hz``.
-    2. Runaway threshold: max(runaway_factor x background rate, runaway_floor_hz), as the
-       simulation's detector uses it.
-    3. Assembly weights under plasticity (plasticity never switches off; every assembly is
-       cued, so members are driven to the cue rate): the E->E rule drives the within weight to
-       its equilibrium at that rate (:func:`weight_equilibrium`). Without a heterosynaptic term
-       (or with beta = 0) the triplet rule potentiates without bound above its BCM-like
-       threshold, so the weight goes to w_max; with the heterosynaptic term on, the drift for
-       w > w_ref turns negative at high post rates and the weight settles at a finite value.
-       The weight is then iterated with the rate of the self-sustained state it supports.
-    4. Inhibitory STDP (Vogels et al. 2011, Science 334:1569; if on, eta > 0) raises I->E
-       weights onto over-active cells until they fire at rho0; it can at most reach its cap,
-       so the check uses I->E onto members at max(initial, w_max of the inhibitory rule).
-    5. Network-wide growth: if the rule has no bound and its drift at the background rates is
-       positive, every E->E weight goes to w_max; the background state is re-solved there.
-    6. Runaway if, at those end weights, a stable self-sustained state exists whose population
-       E rate exceeds the threshold (one assembly active), or the background itself does;
-       otherwise stable. ``high_rate_bounded`` says whether the rule or inhibitory STDP holds
-       high rates in check.
-
-    Limitations: spike correlations (which add STDP potentiation inside active assemblies) and
-    the time it takes plasticity to act are ignored; assemblies are treated as disjoint.
-    """
-    r = _start(cfg)
-    common = _common(cfg, r)
-    silent = _silent(cfg, r, common)
-    if silent is not None:
-        return silent
-    _network_wide_growth(cfg, r)
-    _assembly_under_plasticity(cfg, r)
-    _background_at_end_weights(cfg, r)
-    return _verdict(cfg, r, common)
+    """Predict a point's outcome (stable | runaway | silent), its recall and its end weights (see the module)."""
+    det = cfg["detection"]
+    run = integrate(cfg)
+    sched = run.schedule
+    baseline = baseline_hz(run)
+    onset = onset_s(cfg, run)
+    smooth = det["smoothing_s"]
+    hold_end = sched.seconds(sched.hold_end)
+    hold_rate = run.mean_exc(max(hold_end - smooth, 0.0), hold_end)
+    tail_rate = run.mean_exc(sched.seconds(protocol.recall_end(sched)), sched.seconds(sched.end))
+    outcome = metrics.outcome(onset, hold_rate, tail_rate, det["silence_hz"])
+    recalled = _recalled(cfg, run, baseline) if outcome != RUNAWAY else 0
+    exists, stable, end_rates = recall_at_end(cfg, run)
+    end, cued = run.plastic[-1], cfg["protocol"]["cue_fraction"]
+    within, i_members = float(end.mean_within(cued).mean()), float(end.mean_i_members(cued).mean())
+    count = cfg["assemblies"]["count"]
+    threshold = metrics.runaway_threshold(det, baseline)
+    peak = _peak(run)
+    reasons = [f"baseline E {baseline:.2f} Hz, runaway threshold {threshold:.1f} Hz",
+               f"end weights: within {within:.3f}, into/out/across/between "
+               + "/".join(f"{w:.3f}" for w in end.paths)
+               + f", I->members {i_members:.2f}, I->others {end.i_others:.2f}",
+               f"peak E outside stimuli {peak:.1f} Hz"
+               + (f", runaway at {onset:.2f} s" if math.isfinite(onset) else ""),
+               f"recalled {recalled} of {count} in the final test",
+               f"recall state at end weights: {'stable' if stable else 'exists, unstable' if exists else 'none'}"]
+    return Prediction(
+        outcome=outcome, recalled_count=recalled, recall_state_exists=exists,
+        recall_state_stable=stable, background_rate_hz=baseline,
+        runaway_threshold_hz=threshold, runaway_onset_s=onset, peak_exc_hz=peak,
+        end_within_weight=within, end_i_to_members=i_members,
+        cued_rate_hz=end_rates.get("C", math.nan), uncued_member_rate_hz=end_rates.get("U", math.nan),
+        count=count, steps=len(run.steps), reasons="; ".join(reasons))
