@@ -9,6 +9,8 @@ from __future__ import annotations
 import functools
 import os
 import sys
+import tomllib
+import warnings
 from collections.abc import Callable
 from enum import StrEnum
 from pathlib import Path
@@ -16,10 +18,22 @@ from typing import Any
 
 import typer
 from rich.console import Console
-from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn, TimeRemainingColumn
+from rich.progress import (
+    BarColumn,
+    MofNCompleteColumn,
+    Progress,
+    ProgressColumn,
+    Task,
+    TextColumn,
+    TimeElapsedColumn,
+    TimeRemainingColumn,
+)
+from rich.text import Text
 
+from .. import __version__
 from ..engines import ENGINES, NAMES
 from ..errors import CapsweepError
+from ..registry import BY_PATH, ImplausibleValue
 
 app = typer.Typer(
     add_completion=False, no_args_is_help=True, pretty_exceptions_enable=False,
@@ -33,6 +47,31 @@ class TableFormat(StrEnum):
     table = "table"
     csv = "csv"
     json = "json"
+
+
+def _show_version(value: bool) -> None:
+    if value:
+        typer.echo(__version__)
+        raise typer.Exit()
+
+
+def _show_warning(message: Warning | str, category: type[Warning], filename: str, lineno: int,
+                  file: Any = None, line: str | None = None) -> None:
+    """A warning about the user's input as one 'capsweep: warning:' line on stderr; others as Python shows them."""
+    if issubclass(category, ImplausibleValue):
+        typer.echo(f"capsweep: warning: {message}", err=True)
+    else:
+        sys.stderr.write(warnings.formatwarning(message, category, filename, lineno, line))
+
+
+@app.callback()
+def _every_command(
+    version: bool = typer.Option(False, "--version", callback=_show_version, is_eager=True,
+                                 help="print the capsweep version and exit"),
+) -> None:
+    """Show plausibility warnings about sweep files as one line each (they never stop a command)."""
+    warnings.simplefilter("always", ImplausibleValue)
+    warnings.showwarning = _show_warning
 
 
 def user_errors(command: Callable[..., Any]) -> Callable[..., Any]:
@@ -57,7 +96,7 @@ def user_errors(command: Callable[..., Any]) -> Callable[..., Any]:
 @user_errors
 def run(
     sweep_file: Path = typer.Argument(..., help="TOML sweep file"),
-    store: Path = typer.Option(None, "--store", help="Zarr store directory (default: [sweep].store)"),
+    store: Path = typer.Option(None, "--store", help="Zarr store directory (default: \\[sweep].store)"),
     workers: int = typer.Option(None, "--workers", min=1, help="local Dask worker processes"),
     scheduler: str = typer.Option(None, "--scheduler", help="address of a running Dask scheduler"),
     dashboard: bool = typer.Option(None, "--dashboard/--no-dashboard",
@@ -66,13 +105,18 @@ def run(
     retry_failed: bool = typer.Option(False, "--retry-failed", help="run failed points again"),
     prescreen: bool = typer.Option(None, "--prescreen/--no-prescreen",
                                    help="store the theory prediction beside each point (default: execution.prescreen)"),
+    cluster: str = typer.Option(None, "--cluster", help="override execution.cluster.kind: "
+                                + ", ".join(BY_PATH["execution.cluster.kind"].choices)),
+    cluster_set: list[str] = typer.Option(None, "--cluster-set", metavar="NAME=VALUE",
+                                          help="override execution.cluster.NAME (repeatable), e.g. max_jobs=8"),
 ) -> None:
     """Run every point of SWEEP_FILE not yet done, writing each result into the store as it arrives."""
     from .launch import RunOptions, run_sweep
 
     _check_engine(engine)
     options = RunOptions(store=store, workers=workers, scheduler=scheduler, dashboard=dashboard, engine=engine,
-                         prescreen=prescreen, retry_failed=retry_failed)
+                         prescreen=prescreen, retry_failed=retry_failed,
+                         cluster=_cluster_entries(cluster, cluster_set or []))
     with _ProgressView() as view:
         final = run_sweep(sweep_file, options, on_event=view.update)
     _print_run_summary(final)
@@ -80,13 +124,35 @@ def run(
         raise typer.Exit(1)
 
 
+def _cluster_entries(kind: str | None, pairs: list[str]) -> dict[str, Any]:
+    """``--cluster`` and ``--cluster-set NAME=VALUE`` as [execution.cluster] entries; VALUE is read as TOML
+    (``8``, ``1.5``, ``true``), else kept as text. The registry checks names and values later."""
+    entries: dict[str, Any] = {} if kind is None else {"kind": kind}
+    for pair in pairs:
+        name, sep, text = pair.partition("=")
+        if not sep or not name.strip():
+            raise CapsweepError(f"--cluster-set {pair!r} is not allowed: write NAME=VALUE, e.g. max_jobs=8")
+        try:
+            entries[name.strip()] = tomllib.loads(f"v = {text}")["v"]
+        except tomllib.TOMLDecodeError:
+            entries[name.strip()] = text
+    return entries
+
+
+class _WorkersColumn(ProgressColumn):
+    """The number of Dask workers connected now, asked at each refresh (batch jobs start and end between points)."""
+
+    def render(self, task: Task) -> Text:
+        return Text(f"workers {task.fields['workers']()}")
+
+
 class _ProgressView:
-    """Renders launch.Progress events as a rich progress bar with failures and ETA."""
+    """Renders launch.Progress events as a rich progress bar with failures, workers and ETA."""
 
     def __init__(self) -> None:
         self.bar = Progress(
             TextColumn("[bold]points"), BarColumn(), MofNCompleteColumn(),
-            TextColumn("failed {task.fields[failed]}"), TimeElapsedColumn(), TextColumn("ETA"),
+            TextColumn("failed {task.fields[failed]}"), _WorkersColumn(), TimeElapsedColumn(), TextColumn("ETA"),
             TimeRemainingColumn(), TextColumn("[dim]{task.fields[last]}"), console=err, refresh_per_second=2,
         )
         self.task: Any = None
@@ -104,11 +170,13 @@ class _ProgressView:
         if self.task is None:
             err.print(f"{progress.total} points: {progress.already_done} stored before, {progress.to_run} to run")
             self.bar.start()
-            self.task = self.bar.add_task("run", total=progress.to_run, failed=0, last="")
+            self.task = self.bar.add_task("run", total=progress.to_run, failed=0, last="",
+                                          workers=progress.worker_count)
         if progress.dashboard and not self.dashboard_shown:
             self.bar.console.print(f"Dask dashboard: {progress.dashboard}")
             self.dashboard_shown = True
-        self.bar.update(self.task, completed=progress.finished, failed=progress.failed, last=progress.last)
+        self.bar.update(self.task, completed=progress.finished, total=progress.to_run - progress.unneeded,
+                        failed=progress.failed, last=progress.last, workers=progress.worker_count)
 
 
 def _print_run_summary(progress: Any) -> None:
@@ -118,6 +186,7 @@ def _print_run_summary(progress: Any) -> None:
         f"ran {progress.finished} of {progress.to_run} points in {progress.elapsed_s:.1f} s "
         f"({progress.failed} failed; outcomes: {outcomes}; engines: {engines}); "
         f"{progress.already_done} were already stored"
+        + (f"; {progress.unneeded} the count search did not need" if progress.unneeded else "")
     )
     asked = ENGINES.get(progress.engine)
     if asked is not None and asked.fallback and progress.engines.get(asked.fallback):
@@ -127,16 +196,28 @@ def _print_run_summary(progress: Any) -> None:
 
 @app.command()
 @user_errors
-def status(store: Path = typer.Argument(..., help="Zarr store directory")) -> None:
-    """Counts of points by status and outcome, and the base network's plausibility."""
-    from ..results_schema.dataset import open_dataset
-    from .query import plausibility, status_counts
+def status(
+    store: Path = typer.Argument(..., help="Zarr store directory"),
+    failed: bool = typer.Option(False, "--failed", help="list each failed point: its labels, id and error line"),
+) -> None:
+    """Counts of points by every status and by outcome, and the base network's plausibility."""
+    from .query import failed_points, open_store, plausibility, status_counts
 
-    ds = open_dataset(store)
+    ds = open_store(store, "status")
     counts = status_counts(ds)
-    out.print(f"store {store}: sweep {ds.attrs.get('sweep_name', '?')!r}, {int(ds['status'].size)} points")
-    out.print("status:  " + ", ".join(f"{k} {v}" for k, v in counts["status"].items()))
-    out.print("outcome: " + ", ".join(f"{k} {v}" for k, v in counts["outcome"].items()) + "  (done points)")
+    out.print(f"store {store}: sweep {ds.attrs.get('sweep_name', '?')!r}, {int(ds['status'].size)} points",
+              markup=False, highlight=False)
+    out.print("status:  " + ", ".join(f"{k} {v}" for k, v in counts["status"].items()), highlight=False)
+    out.print("outcome: " + ", ".join(f"{k} {v}" for k, v in counts["outcome"].items()) + "  (done points)",
+              highlight=False)
+    if failed:
+        for point in failed_points(ds):
+            labels = " ".join(f"{dim}={value}" for dim, value in point.labels.items())
+            out.print(f"failed {labels} ({point.point_id}): {point.error}", markup=False, highlight=False,
+                      soft_wrap=True)
+    if counts["status"]["done"] == 0:
+        out.print("no point done yet")
+        return
     check = plausibility(ds)
     out.print(
         f"baseline E rate {check.rate_exc_hz[0]:.2f}-{check.rate_exc_hz[1]:.2f} Hz, "
@@ -159,17 +240,28 @@ def query(
     store: Path = typer.Argument(..., help="Zarr store directory"),
     where: str = typer.Option(None, "--where", help='pandas filter, e.g. \'outcome == "stable" and beta > 0\''),
     fmt: TableFormat = typer.Option(TableFormat.table, "--format", help="table, csv or json"),
-    everything: bool = typer.Option(False, "--all", help="every point, not only the stable ones"),
+    everything: bool = typer.Option(False, "--all",
+                                    help="drop the default filter (done, stable); --where still applies"),
 ) -> None:
-    """List configurations with their outcome and metrics (default: the stable ones)."""
-    from ..results_schema.dataset import open_dataset
-    from .query import DEFAULT_WHERE, point_table, select, sweep_dims
+    """List points with their outcome and metrics in sweep order (default: the done, stable ones).
 
-    ds = open_dataset(store)
-    rows = select(point_table(ds), "" if everything else (where or DEFAULT_WHERE))
+    The table names its filter on stderr. Columns of csv and json: the sweep axes in sweep-file order,
+    replicate, point_id, status, the scalar metrics, then per-point summaries. Integers have no decimals;
+    missing values are empty (csv) or null (json). csv: a column with a physical unit (the store's CF units)
+    is headed 'name [unit]' unless its name ends in the unit (wall_time_s). json: one object
+    {"units": {column: unit}, "filter": expression, "rows": [{column: value}, ...]}.
+    """
+    from .query import active_filter, column_units, open_store, point_table, select, sweep_dims, table_csv, table_json
+
+    ds = open_store(store, "query")
+    expression, description = active_filter(where, everything)
+    rows = select(point_table(ds), expression)
     if fmt is TableFormat.table:
-        rows = rows[[*sweep_dims(ds), *SUMMARY_COLUMNS]]
-    _emit(rows, fmt)
+        err.print(f"filter: {description}", markup=False, highlight=False, soft_wrap=True)
+        _emit(rows[[*sweep_dims(ds), *SUMMARY_COLUMNS]], fmt)
+        return
+    units = column_units(ds, list(rows.columns))
+    sys.stdout.write(table_csv(rows, units) if fmt is TableFormat.csv else table_json(rows, units, expression))
 
 
 @app.command()
@@ -187,10 +279,10 @@ def capacity(
     count's success fraction with its 95 % Wilson interval, then the capacity with the range of
     the per-replicate capacities; 'at least' marks the top of the grid, NA a cell with pending points.
     """
-    from ..results_schema.dataset import open_dataset
     from .capacity import capacity_table, count_dim, scaling_fit, success_table
+    from .query import open_store
 
-    ds = open_dataset(store)
+    ds = open_store(store, "capacity")
     table = capacity_table(ds, min_fraction)
     if fmt is not TableFormat.table:
         _emit(success_table(ds) if per_count else table, fmt)
@@ -220,7 +312,7 @@ def _say(line: str) -> None:
 
 
 _CAPACITY_COLUMNS = ("capacity", "capacity_lo", "capacity_hi", "at_least", "non_monotone", "replicates_used",
-                     "pending", "failed")
+                     "pending", "failed", "unneeded")
 
 
 def _capacity_display(table: Any) -> Any:
@@ -240,16 +332,53 @@ def _capacity_display(table: Any) -> Any:
 @user_errors
 def plot(
     store: Path = typer.Argument(..., help="Zarr store directory"),
-    out_dir: Path = typer.Option(Path("plots"), "--out", help="folder for the PNG files"),
-    x: str = typer.Option(None, "--x", help="axis across the stability map (default: the first axis)"),
-    y: str = typer.Option(None, "--y", help="axis up the stability map (default: the second axis)"),
+    out_dir: Path = typer.Option(Path("plots"), "--out", help="folder for the figures (created if missing)"),
+    x: str = typer.Option(None, "--x", help="sweep dim across the stability map (default: the first axis)"),
+    y: str = typer.Option(None, "--y", help="sweep dim up the stability map (default: the first other axis; "
+                          "none: one row)"),
+    capacity_axis: str = typer.Option(None, "--capacity-against",
+                                      help="axis to draw capacity against (default: every axis but the count)"),
+    formats: list[str] = typer.Option(None, "--format", help="png, svg or pdf; repeat or comma-separate "
+                                      "(default: png)"),
+    dpi: int = typer.Option(None, "--dpi", help="resolution of PNG files, dots per inch (default: 200)"),
 ) -> None:
-    """Write PNGs: stability map, capacity curves, rate traces and weight drift."""
-    from ..results_schema.dataset import open_dataset
+    """Write figures: stability map, capacity curves and against each axis, recall per assembly, prediction
+    against simulation, rate traces with the protocol shaded, weight drift."""
     from .plots import all_plots
+    from .query import open_store
 
-    for path in all_plots(open_dataset(store), out_dir, x, y):
+    written = all_plots(open_store(store, "plot"), out_dir, x, y, formats, dpi, capacity_axis)
+    for path in written.paths:
         out.print(str(path), markup=False, highlight=False)
+    for note in written.notes:
+        typer.echo(f"note: {note}", err=True)
+
+
+@app.command()
+@user_errors
+def export(
+    store: Path = typer.Argument(..., help="Zarr store directory"),
+    netcdf: Path = typer.Option(None, "--netcdf", help="new netCDF-4 file: the whole store, CF conventions"),
+    csv: Path = typer.Option(None, "--csv", help="new CSV file: every point, columns as `query --format csv`"),
+) -> None:
+    """Write the store for other tools; existing files are never overwritten.
+
+    --netcdf writes every variable with its CF metadata (checked with the IOOS compliance checker's CF
+    suite); text axes become an index with the values in '<axis>_value'. --csv writes the point table of
+    every point, with units in the headers as `capsweep query --format csv` writes them.
+    """
+    from .export import write_csv, write_netcdf
+    from .query import open_store
+
+    if netcdf is None and csv is None:
+        raise CapsweepError("capsweep export needs --netcdf FILE, --csv FILE or both")
+    ds = open_store(store, "export")
+    if netcdf is not None:
+        write_netcdf(ds, store, netcdf)
+        out.print(str(netcdf), markup=False, highlight=False)
+    if csv is not None:
+        write_csv(ds, csv)
+        out.print(str(csv), markup=False, highlight=False)
 
 
 @app.command("prescreen")
@@ -260,21 +389,100 @@ def prescreen_command(
     workers: int = typer.Option(None, "--workers", min=1, help="local Dask worker processes"),
     scheduler: str = typer.Option(None, "--scheduler", help="address of a running Dask scheduler"),
     fmt: TableFormat = typer.Option(TableFormat.table, "--format", help="table, csv or json"),
+    against: Path = typer.Option(None, "--against",
+                                 help="store this sweep ran into: print agreement with it and write a PNG "
+                                      "(into --plots, else next to the store)"),
 ) -> None:
-    """Predict each grid cell's outcome from mean-field theory, without simulating."""
-    from .prescreen import prescreen_sweep
+    """Predict each grid point's outcome and each cell's capacity from rate-form theory, without simulating."""
+    from .prescreen import agreement_plot_path, check_against, compare, outcome_table, prescreen_sweep
 
+    if against is not None:
+        check_against(sweep_file, against)
     with Progress(TextColumn("[bold]cells"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
                   console=err) as bar:
         task = bar.add_task("prescreen", total=None)
         table = prescreen_sweep(sweep_file, workers, scheduler, plots,
                                 on_done=lambda done, total: bar.update(task, completed=done, total=total))
-    _emit(table.drop(columns=["reasons"]) if fmt is TableFormat.table else table, fmt)
+    if against is None:
+        _emit(table.drop(columns=["reasons"]) if fmt is TableFormat.table else table, fmt)
+        return
+    from .prescreen_plots import plot_agreement
+
+    result = compare(sweep_file, against, table)
+    _say("predicted vs simulated outcome per grid point (simulated: one per done replicate):")
+    _emit(outcome_table(result.points), fmt)
+    if not result.capacity.empty:
+        _say("capacity per cell (simulated: capsweep capacity; at_least = top of the grid):")
+        _emit(result.capacity, fmt)
+    _say(f"outcome agreement: {result.agreement:.0%} of {len(result.points)} done points")
+    _say("confusion (rows: predicted, columns: simulated):\n" + result.confusion.to_string())
+    path = plot_agreement(result.confusion, result.capacity, result.agreement, agreement_plot_path(against, plots))
+    _say(str(path))
 
 
 @app.command()
 @user_errors
-def plan(
+def check(sweep_file: Path = typer.Argument(..., help="TOML sweep file")) -> None:
+    r"""Validate SWEEP_FILE and show its grid, distinct builds and simulated time, without simulating anything.
+
+    A value outside its key's plausible range (a likely unit slip) prints a warning and is still accepted.
+    To silence it, list the key in the sweep file: \[sweep] quiet_warnings = ["protocol.hold_s"].
+    `capsweep keys` shows every key's allowed and plausible range.
+    """
+    from .plan import grid_summary
+    from .sweepfile import load_sweep
+
+    sweep = load_sweep(sweep_file)
+    grid = grid_summary(sweep)
+    _say(f"{sweep_file}: valid; sweep {sweep.name!r}, store {sweep.store}")
+    _print_grid(grid)
+
+
+def _print_grid(grid: Any) -> None:
+    """A plan.Grid: points by axis and replicates, each axis's values, builds and simulated time."""
+    axes = " x ".join(f"{name} {len(values)}" for name, values in grid.axes.items()) or "no axes"
+    _say(f"{len(grid.points)} points: {axes} x {grid.replicates} replicates")
+    for name, values in grid.axes.items():
+        _say(f"  {name}: {', '.join(map(str, values))}")
+    _say(f"distinct network builds: {grid.builds}; simulated time in all: {grid.simulated_s:.0f} s")
+
+
+@app.command()
+@user_errors
+def keys(
+    table: str = typer.Option(None, "--table", help="only the keys under this table, e.g. plasticity.triplet"),
+    markdown: bool = typer.Option(False, "--markdown", help="a markdown table (as in the README)"),
+) -> None:
+    """Every sweep-file key: default, unit, allowed values (and plausible range), description."""
+    from .reference import keys_markdown, keys_text, keys_under
+
+    chosen = keys_under(table)
+    sys.stdout.write(keys_markdown(chosen) if markdown else keys_text(chosen))
+
+
+@app.command("examples")
+@user_errors
+def examples_command(
+    name: str = typer.Argument(None, help="the example to copy (without it: list the examples)"),
+    to: Path = typer.Option(Path("."), "--to", help="folder to copy the example into"),
+) -> None:
+    """List the example sweep files shipped with capsweep, or copy example NAME into the working directory."""
+    from .reference import copy_example, example_summary, examples
+
+    if name is None:
+        shipped = examples()
+        width = max(map(len, shipped)) + 2
+        for label, example in shipped.items():
+            _say(f"{label:<{width}}{example_summary(example)}")
+        _say("copy one with: capsweep examples NAME [--to DIR]")
+        return
+    target = copy_example(name, to)
+    _say(f"wrote {target}; run it with: capsweep run {target}")
+
+
+@app.command()
+@user_errors
+def estimate(
     sweep_file: Path = typer.Argument(..., help="TOML sweep file"),
     workers: int = typer.Option(None, "--workers", min=1, help="worker count to estimate for"),
     engine: str = typer.Option(None, "--engine", help=f"engine to estimate for: {', '.join(NAMES)}"),
@@ -285,9 +493,7 @@ def plan(
     _check_engine(engine)
     result = plan_sweep(sweep_file, workers, engine,
                         on_probe=lambda n: err.print(f"probing a network of {n} E cells ..."))
-    axes = " x ".join(f"{name} {n}" for name, n in result.axes.items()) or "no axes"
-    out.print(f"{result.points} points: {axes} x {result.replicates} replicates", highlight=False)
-    out.print(f"distinct network builds: {result.builds}; simulated time in all: {result.simulated_s:.0f} s")
+    _print_grid(result.grid)
     for size, cost in sorted(result.costs.items()):
         out.print(f"  N_E {size}: {cost.per_sim_s:.2f} s wall per simulated s + {cost.overhead_s:.1f} s per point "
                   f"({result.engine})", highlight=False)
@@ -306,15 +512,15 @@ def _check_engine(engine: str | None) -> None:
         raise CapsweepError(f"--engine {engine!r} is not allowed: expected one of {', '.join(NAMES)}")
 
 
-@app.command("prune-builds")
+@app.command("trim-builds")
 @user_errors
-def prune_builds_command(
-    keep_mib: float = typer.Option(2048.0, "--keep-mib", min=0.0, help="disk the build cache may keep, MiB"),
+def trim_builds_command(
+    max_mib: float = typer.Option(2048.0, "--max-mib", min=0.0, help="disk the build cache may keep, MiB"),
 ) -> None:
-    """Remove least-recently-used compiled builds until the cache fits in --keep-mib."""
+    """Remove least-recently-used compiled builds until the cache fits in --max-mib."""
     from ..runners.builds import build_root, prune_builds
 
-    removed = prune_builds(int(keep_mib * 2**20))
+    removed = prune_builds(int(max_mib * 2**20))
     out.print(f"removed {removed} builds from {build_root()}", markup=False, highlight=False)
 
 

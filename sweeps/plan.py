@@ -1,4 +1,7 @@
-"""Plan a sweep before running it: grid size, distinct builds, and an estimated wall time.
+"""Look at a sweep before running it: grid size, distinct builds, and an estimated wall time.
+
+:func:`grid_summary` needs no simulation (``capsweep check``); :func:`plan_sweep` adds the
+wall-time estimate (``capsweep estimate``).
 
 The estimate is calibrated by probe simulations of each distinct network size: after one
 uncounted run that compiles the size's build (which stays cached for the sweep), two short runs
@@ -20,7 +23,7 @@ from .. import engines
 from ..registry import with_execution
 from ..runners.protocol import total_duration_s
 from .expand import Point, expand
-from .sweepfile import load_sweep
+from .sweepfile import Sweep, load_sweep
 
 PROBE_HOLD_S = (1.0, 5.0)  # hold lengths of the two probe runs, s
 MAX_PROBES = 4  # distinct network sizes probed; others are scaled from the nearest probed size
@@ -36,14 +39,21 @@ class Cost:
 
 
 @dataclass(frozen=True)
-class Plan:
-    """What a run of the sweep will do and roughly how long it takes."""
+class Grid:
+    """What a run of the sweep will do, known without simulating."""
 
-    points: int
-    axes: dict[str, int]  # axis name -> number of values
+    points: list[Point]
+    axes: dict[str, tuple[Any, ...]]  # axis name -> its values, in grid order
     replicates: int
     builds: int  # distinct network structures (compiled once per worker with build reuse)
     simulated_s: float  # total planned simulated time, s
+
+
+@dataclass(frozen=True)
+class Plan:
+    """What a run of the sweep will do and roughly how long it takes."""
+
+    grid: Grid
     workers: int
     engine: str
     costs: dict[int, Cost]  # n_exc -> measured cost model
@@ -62,11 +72,13 @@ def structure_key(point: Point) -> str:
     return build_key(point.config)
 
 
-def probe(config: dict[str, Any], engine: str, seed: int = 1) -> Cost:
+def probe(config: dict[str, Any], engine: str, seed: int = 1, clock: Callable[[], float] = time.perf_counter) -> Cost:
     """Measure a network's cost with two short runs of different hold lengths.
 
     A first, uncounted run compiles or generates code (standalone build, cython cache) so that
-    the two timed runs see what every later point of the sweep sees.
+    the two timed runs see what every later point of the sweep sees. ``clock`` (s) measures the
+    runs: wall time by default; a CPU clock (benchmarks on a shared machine) leaves out other
+    processes' load.
     """
     from ..runners.point import run_point
 
@@ -74,9 +86,9 @@ def probe(config: dict[str, Any], engine: str, seed: int = 1) -> Cost:
     walls = []
     for hold in PROBE_HOLD_S:
         cfg = _probe_config(config, engine, hold)
-        start = time.perf_counter()
+        start = clock()
         run_point(cfg, seed)
-        walls.append((time.perf_counter() - start, total_duration_s(cfg)))
+        walls.append((clock() - start, total_duration_s(cfg)))
     (w1, t1), (w2, t2) = walls
     per_sim = max((w2 - w1) / (t2 - t1), 0.0)
     return Cost(overhead_s=max(w1 - per_sim * t1, 0.0), per_sim_s=per_sim)
@@ -89,7 +101,12 @@ def _probe_config(config: dict[str, Any], engine: str, hold_s: float) -> dict[st
 
 
 def point_cost(point: Point, costs: dict[int, Cost]) -> float:
-    """Estimated wall seconds of one point, scaling from the nearest probed size by cell count."""
+    """Estimated wall seconds of one point, scaling from the nearest probed size by cell count.
+
+    Cell count, not synapse count: at N_E = 8000 and 16,000 a network with a fixed connection
+    probability (2-4 times the synapses) cost what the fixed in-degree network of its size did
+    (``benchmarks/bench_scaling.py``, December 2026): the per-cell drive and integration dominate.
+    """
     size = size_key(point)
     nearest = min(costs, key=lambda s: abs(s - size))
     scale = size / nearest
@@ -105,6 +122,18 @@ def makespan(durations: list[float], workers: int) -> float:
     return max(loads)
 
 
+def grid_summary(sweep: Sweep) -> Grid:
+    """Expand ``sweep`` (raising ConfigError on an inconsistent point) and count its points, builds and time."""
+    points = expand(sweep)
+    return Grid(
+        points=points,
+        axes={a.name: a.values for a in sweep.axes},
+        replicates=sweep.replicates,
+        builds=len({structure_key(p) for p in points}),
+        simulated_s=sum(total_duration_s(p.config) for p in points),
+    )
+
+
 def plan_sweep(
     sweep_file: str | Path,
     workers: int | None = None,
@@ -112,8 +141,8 @@ def plan_sweep(
     on_probe: Callable[[int], None] = lambda n_exc: None,
 ) -> Plan:
     """Expand ``sweep_file``, probe its network sizes, and estimate the run's wall time."""
-    sweep = load_sweep(sweep_file)
-    points = expand(sweep)
+    grid = grid_summary(load_sweep(sweep_file))
+    points = grid.points
     execution = points[0].config["execution"]
     workers = workers or execution["workers"]
     engine = engine or execution["engine"]
@@ -124,11 +153,7 @@ def plan_sweep(
         costs[size] = probe(example.config, engine)
     durations = [point_cost(p, costs) for p in points]
     return Plan(
-        points=len(points),
-        axes={a.name: len(a.values) for a in sweep.axes},
-        replicates=sweep.replicates,
-        builds=len({structure_key(p) for p in points}),
-        simulated_s=sum(total_duration_s(p.config) for p in points),
+        grid=grid,
         workers=workers,
         engine=engine,
         costs=costs,

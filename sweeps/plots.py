@@ -1,11 +1,20 @@
-"""PNG pictures of a store: stability map, capacity curves, rate traces, weight drift.
+"""Figures of a store: stability map, capacity curves, capacity against an axis, recall per assembly,
+prescreen prediction against simulated outcome, rate traces, weight drift.
 
-All functions read a dataset opened with plain xarray and write one PNG (matplotlib, Agg).
+Every figure function returns a matplotlib Figure (Agg) and writes nothing, so its axes can be read
+back. :func:`all_plots` checks every option against the store first, draws every figure that fits,
+and only then creates the folder and saves each figure in the asked formats: an error leaves
+nothing behind. Points that are not done (pending or crashed) are never drawn as 0: they are
+marked as such or left out with their count stated.
 """
 
 from __future__ import annotations
 
+import itertools
+from collections.abc import Sequence
+from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import matplotlib
 
@@ -14,85 +23,277 @@ import matplotlib.pyplot as plt
 import numpy as np
 import pandas as pd
 import xarray as xr
+from matplotlib.artist import Artist
+from matplotlib.figure import Figure
+from matplotlib.lines import Line2D
+from matplotlib.patches import Patch
 from matplotlib.ticker import MaxNLocator, NullFormatter
+from matplotlib.transforms import blended_transform_factory
 from matplotlib.typing import ColorType
 
-from .capacity import MIN_FRACTION, capacity_table, count_dim, point_success, scaling_fit, size_dim, success_table
-from .query import COUNT_KEY, QueryError, axis_keys, labelled
+from ..errors import CapsweepError, ConfigError
+from ..flags import OUTCOMES
+from ..runners.protocol import Schedule, cue_order, recall_end, schedule
+from .capacity import (
+    MIN_FRACTION,
+    capacity_table,
+    count_dim,
+    point_success,
+    scaling_fit,
+    size_dim,
+    success_table,
+    wilson_interval,
+)
+from .expand import expand, grid_shape
+from .query import COUNT_KEY, QueryError, axis_keys, labelled, sweep_dims
+from .sweepfile import parse_sweep
 
-OUTCOME_COLOURS = {"stable": "tab:green", "runaway": "tab:red", "silent": "tab:grey"}
+OUTCOME_COLOURS = dict(zip(OUTCOMES, ("tab:green", "tab:red", "tab:grey")))
+FORMATS = ("png", "svg", "pdf")
+"""Figure file formats ``--format`` accepts."""
+DEFAULT_DPI = 200
+"""Resolution of raster output (dots per inch)."""
+DPI_RANGE = (50, 1200)
+PENDING = "0.85"
+"""Colour of cells and marks that hold no done point."""
+PHASE_COLOURS = {"settle": "0.85", "imprint": "tab:purple", "final recall": "tab:blue", "tail": "0.92"}
+CUE_COLOUR = "tab:orange"
 
 
-def stability_map(ds: xr.Dataset, path: Path, x: str | None = None, y: str | None = None) -> Path:
-    """Heat map of the fraction of points stable with full recall over two axes (others averaged)."""
-    axes = list(axis_keys(ds))
-    x = x or (axes[0] if axes else "replicate")
-    y = y or (axes[1] if len(axes) > 1 else "replicate")
-    for name in (x, y):
-        if name not in ds.dims:
-            raise QueryError(f"--x/--y {name!r} is not a sweep axis; axes: {', '.join(axes + ['replicate'])}")
-    frac = _average_to(point_success(ds), x, y)
-    runaway = _average_to((labelled(ds, "outcome") == "runaway").astype(float), x, y)
-    fig, ax = plt.subplots(figsize=(max(5.0, 1.5 + 1.1 * frac.sizes[x]), max(3.5, 1.2 + 0.7 * frac.sizes[y])))
-    image = ax.imshow(frac.values, origin="lower", cmap="viridis", vmin=0, vmax=1, aspect="auto")
-    for (i, j), value in np.ndenumerate(frac.values):
-        label = f"{value:.2f}\nR {runaway.values[i, j]:.2f}"
-        ax.text(j, i, label, ha="center", va="center", fontsize=7, color="white" if value < 0.6 else "black")
-    ax.set_xticks(range(frac.sizes[x]), [str(v) for v in ds[x].values])
-    ax.set_yticks(range(frac.sizes[y]), [str(v) for v in ds[y].values])
+@dataclass(frozen=True)
+class PlotSet:
+    """What :func:`all_plots` wrote, and why a figure was left out (one sentence each)."""
+
+    paths: list[Path]
+    notes: list[str] = field(default_factory=list)
+
+
+# ---------------------------------------------------------------- options
+
+
+def map_axes(ds: xr.Dataset, x: str | None = None, y: str | None = None) -> tuple[str, str | None]:
+    """The stability map's dims: ``x`` (default the first axis) and ``y`` (default the first other axis;
+    None for a one-row map when there is none). QueryError naming the option and the allowed dims."""
+    dims = sweep_dims(ds)
+    for option, name in (("--x", x), ("--y", y)):
+        if name is not None and name not in dims:
+            raise QueryError(f"{option} {name!r} is not a sweep dim of this store; allowed: {', '.join(dims)}")
+    axes = [d for d in dims if d != "replicate"]
+    x = x or next((d for d in axes if d != y), "replicate")
+    if x == y:
+        raise QueryError(f"--y {y!r} is the same dim as --x; choose another of: {', '.join(d for d in dims if d != x)}")
+    return x, y or next((d for d in axes if d != x), None)
+
+
+def output_formats(formats: Sequence[str] | None) -> tuple[str, ...]:
+    """Formats from repeated and/or comma-separated ``--format`` values (default PNG only)."""
+    names = [f.strip().lower() for item in formats or () for f in item.split(",") if f.strip()]
+    bad = [n for n in names if n not in FORMATS]
+    if bad:
+        raise CapsweepError(f"--format {bad[0]!r} is not allowed: expected {', '.join(FORMATS)} "
+                            "(repeat the option or separate with commas)")
+    return tuple(dict.fromkeys(names)) or ("png",)
+
+
+def check_dpi(dpi: int) -> int:
+    """``dpi`` if it lies in DPI_RANGE, else CapsweepError naming --dpi."""
+    if not DPI_RANGE[0] <= dpi <= DPI_RANGE[1]:
+        raise CapsweepError(f"--dpi {dpi} is not allowed: expected a whole number from {DPI_RANGE[0]} to "
+                            f"{DPI_RANGE[1]}")
+    return dpi
+
+
+def check_folder(out_dir: Path) -> Path:
+    """``out_dir`` if it is a folder or can become one (its nearest existing ancestor is a folder)."""
+    existing = next(p for p in (out_dir, *out_dir.absolute().parents) if p.exists())
+    if not existing.is_dir():
+        what = "is a file" if existing == out_dir else f"lies under the file {existing}"
+        raise CapsweepError(f"--out {out_dir} {what}; expected a folder (existing or new)")
+    return out_dir
+
+
+def capacity_axes(ds: xr.Dataset, axis: str | None = None) -> list[str]:
+    """Axes to draw capacity against: ``axis`` (checked), else every axis but the count (none without one)."""
+    keys = axis_keys(ds)
+    if axis is None:
+        return [d for d, k in keys.items() if k != COUNT_KEY] if COUNT_KEY in keys.values() else []
+    count = count_dim(ds)
+    allowed = [d for d in keys if d != count]
+    if axis not in allowed:
+        raise QueryError(f"--capacity-against {axis!r} is not allowed: expected a sweep axis other than "
+                         f"{count}: {', '.join(allowed) or 'this store has none'}")
+    return [axis]
+
+
+# ---------------------------------------------------------------- stability map
+
+
+def stability_map(ds: xr.Dataset, x: str, y: str | None = None) -> Figure:
+    """Fraction of done points stable with full recall per (y, x) cell, pooled over the other sweep dims.
+
+    Each cell states the fraction, its 95 % Wilson interval, n (done points), the runaway fraction and
+    how many points are pending; a cell without a done point is grey, hatched and labelled.
+    """
+    success, status = point_success(ds), labelled(ds, "status")
+    kept = [x] + ([y] if y else [])
+    pooled = [str(d) for d in success.dims if d not in kept]
+
+    def grid(values: xr.DataArray) -> np.ndarray:
+        summed = values.sum(pooled)
+        return summed.transpose(y, x).values if y else summed.values[None, :]
+
+    done, wins = grid(success.notnull()).astype(int), grid(success.fillna(0)).astype(int)
+    runaway, pending = grid(labelled(ds, "outcome") == "runaway"), grid(status == "pending")
+    frac = np.ma.masked_where(done == 0, wins / np.maximum(done, 1))
+    fig, ax = plt.subplots(figsize=(max(5.0, 1.6 + 1.3 * frac.shape[1]), max(2.6, 1.4 + 0.9 * frac.shape[0])))
+    image = ax.imshow(frac, origin="lower", cmap=plt.get_cmap("viridis").with_extremes(bad=PENDING),
+                      vmin=0, vmax=1, aspect="auto")
+    for (i, j), n in np.ndenumerate(done):
+        ax.text(j, i, _cell_text(int(wins[i, j]), int(n), int(runaway[i, j]), int(pending[i, j])), ha="center",
+                va="center", fontsize=6.5, color="white" if n and frac[i, j] < 0.6 else "black")
+        if not n:
+            ax.add_patch(plt.Rectangle((j - 0.5, i - 0.5), 1, 1, fill=False, hatch="///", lw=0, ec="0.6"))
+    _category_ticks(ax.set_xticks, ds, x)
     ax.set_xlabel(_axis_label(ds, x))
-    ax.set_ylabel(_axis_label(ds, y))
-    ax.set_title("fraction stable with full recall (R = fraction runaway)", fontsize=9)
-    fig.colorbar(image, ax=ax, label="fraction of points")
-    return _save(fig, path)
+    if y:
+        _category_ticks(ax.set_yticks, ds, y)
+        ax.set_ylabel(_axis_label(ds, y))
+    else:
+        ax.set_yticks([])
+    ax.set_title("fraction stable with full recall [95 % Wilson], n done points, R runaway fraction\n"
+                 + _pooled_text(pooled), fontsize=8)
+    fig.colorbar(image, ax=ax, label="fraction of done points")
+    return _finish(fig)
 
 
-def _average_to(values: xr.DataArray, x: str, y: str) -> xr.DataArray:
-    """Mean of ``values`` over every dim but ``x`` and ``y`` (NaN left out), laid out (y, x)."""
-    return values.mean([d for d in values.dims if d not in (x, y)], skipna=True).transpose(y, x)
+def _cell_text(wins: int, n: int, runaway: int, pending: int) -> str:
+    """A stability-map cell: fraction, Wilson interval, n, runaway fraction; or why it holds no fraction."""
+    waiting = f"{pending} pending" if pending else ""
+    if not n:
+        return waiting or "no done point"
+    low, high = wilson_interval(wins, n)
+    lines = [f"{wins / n:.2f} (n={n})", f"[{low:.2f}, {high:.2f}]", f"R {runaway / n:.2f}"]
+    return "\n".join(lines + ([f"+{waiting}"] if waiting else []))
 
 
-def capacity_curves(ds: xr.Dataset, path: Path, min_fraction: float = MIN_FRACTION) -> Path:
+def _pooled_text(pooled: list[str]) -> str:
+    """'pooled over rule, beta and replicate' (the dims a map cell sums over)."""
+    if not pooled:
+        return "one point per cell"
+    return "pooled over " + (f"{', '.join(pooled[:-1])} and {pooled[-1]}" if len(pooled) > 1 else pooled[0])
+
+
+# ---------------------------------------------------------------- capacity
+
+
+def capacity_curves(ds: xr.Dataset, min_fraction: float = MIN_FRACTION) -> Figure:
     """Success fraction against assembly count with 95 % Wilson intervals, one line per cell of the other axes.
 
-    Counts without a done replicate (pending or crashed) are not drawn (never as 0); the legend
-    gives each cell's capacity and its number n of done replicates per count, a point with fewer
-    is marked with its own n, and the dashed line is the fraction that capacity requires.
+    Counts without a done replicate are not drawn but labelled "pending" (or "crashed"); the legend
+    gives each cell's capacity and its n of done replicates per count, a point with fewer or with
+    pending replicates is marked with its own n, and the dashed line is the fraction capacity requires.
     """
     count = count_dim(ds)
     table = success_table(ds)
     capacities = capacity_table(ds, min_fraction)
-    others = [c for c in capacities.columns if c in ds.dims and c != count]
+    others = _other_axes(ds, count)
+    shown = ["NA" if pd.isna(c.capacity) else f"{'>=' if c.at_least else ''}{c.capacity}"
+             for c in capacities.itertuples()]
+    missing = np.select([table["pending"] > 0, table["unneeded"] > 0], ["pending", "not needed by the search"],
+                        "crashed")
     fig, ax = plt.subplots(figsize=(6.0, 4.0))
-    groups = list(table.groupby(others, sort=False)) if others else [((), table)]
-    for i, ((key, rows), (_, cap)) in enumerate(zip(groups, capacities.iterrows())):
-        rows = rows[rows["n"] > 0]
-        label = ", ".join(f"{d}={v}" for d, v in zip(others, np.atleast_1d(key))) or "all"
-        shown = "NA" if pd.isna(cap["capacity"]) else f"{'>=' if cap['at_least'] else ''}{cap['capacity']}"
-        yerr = np.vstack([rows["fraction"] - rows["wilson_lo"], rows["wilson_hi"] - rows["fraction"]])
-        dodge = 0.05 * (i - (len(groups) - 1) / 2)  # side by side, so the intervals stay readable
-        n_most = int(rows["n"].max()) if len(rows) else 0
-        line = ax.errorbar(rows[count] + dodge, rows["fraction"], yerr=yerr, marker="o", capsize=3,
-                           label=f"{label}: capacity {shown} (n={n_most} per count)")
-        _mark_fewer(ax, rows[count] + dodge, rows["fraction"], rows["n"], n_most, line.lines[0].get_color())
+    _count_lines(ax, table.assign(missing=missing), count, others, ("fraction", "wilson_lo", "wilson_hi"),
+                 [f": capacity {c}" for c in shown])
     ax.axhline(min_fraction, color="grey", ls="--", lw=0.8)
-    ax.xaxis.set_major_locator(MaxNLocator(integer=True))
     ax.set_xlabel(_axis_label(ds, count))
     ax.set_ylabel("fraction of replicates: stable, all recalled")
     ax.set_ylim(-0.05, 1.05)
     ax.legend(fontsize=7, loc="best")
-    ax.set_title("capacity curves (95 % Wilson intervals)", fontsize=9)
-    return _save(fig, path)
+    ax.set_title("capacity curves (95 % Wilson intervals; one line per " + (", ".join(others) or "store")
+                 + f"; dashed: {min_fraction:g})", fontsize=8)
+    return _finish(fig)
 
 
-def _mark_fewer(ax: plt.Axes, x: pd.Series, y: pd.Series, n: pd.Series, n_most: int, colour: ColorType) -> None:
-    """Write its own n beside each point with fewer done replicates than the legend's n."""
-    for xi, yi, ni in zip(x, y, n):
-        if ni < n_most:
-            ax.annotate(f"n={ni}", (xi, yi), xytext=(4, -10), textcoords="offset points", fontsize=6, color=colour)
+def _count_lines(ax: plt.Axes, table: pd.DataFrame, count: str, others: list[str], columns: tuple[str, str, str],
+                 legend_extra: list[str] | None = None) -> None:
+    """One line per cell of ``others`` (table order): the ``columns`` (value, low, high) against ``count`` with
+    bars from low to high, integer ticks at the counts; ``legend_extra`` follows each cell's legend label.
+    Rows need ``n`` (values behind a point) and ``pending``; a row with n = 0 is not drawn but labelled
+    with its ``missing`` text."""
+    value, low, high = columns
+    groups = _groups(table, others)
+    for i, ((key, rows), extra) in enumerate(zip(groups, legend_extra or [""] * len(groups))):
+        dodge = 0.05 * (i - (len(groups) - 1) / 2)  # side by side, so the bars stay readable
+        drawn = rows[rows["n"] > 0]
+        n_most = int(drawn["n"].max()) if len(drawn) else 0
+        yerr = np.vstack([drawn[value] - drawn[low], drawn[high] - drawn[value]])
+        line = ax.errorbar(drawn[count] + dodge, drawn[value], yerr=yerr, marker="o", capsize=3,
+                           label=f"{_cell_label(others, key)}{extra} (n={n_most} per count)")
+        colour = line.lines[0].get_color()
+        _mark_fewer(ax, drawn[count] + dodge, drawn[value], drawn["n"], drawn["pending"], n_most, colour)
+        for row in rows[rows["n"] == 0].itertuples():
+            _mark_missing(ax, getattr(row, count) + dodge, str(row.missing), colour)
+    _integer_ticks(ax.set_xticks, sorted(table[count].unique()))
 
 
-def capacity_scaling(ds: xr.Dataset, path: Path) -> Path | None:
+def _mark_fewer(ax: plt.Axes, x: pd.Series, y: pd.Series, n: pd.Series, pending: pd.Series, n_most: int,
+                colour: ColorType) -> None:
+    """Write its own n beside each point with fewer done replicates than the legend's n or with pending ones."""
+    for xi, yi, ni, pi in zip(x, y, n, pending):
+        if ni < n_most or pi:
+            text = f"n={ni}" + (f" +{pi} pending" if pi else "")
+            ax.annotate(text, (xi, yi), xytext=(4, -10), textcoords="offset points", fontsize=6, color=colour)
+
+
+def _mark_missing(ax: plt.Axes, x: float, text: str, colour: ColorType) -> None:
+    """Label data position ``x`` as holding no value (e.g. pending), upright in the middle of the axes."""
+    at = blended_transform_factory(ax.transData, ax.transAxes)
+    ax.text(x, 0.5, text, transform=at, rotation=90, ha="center", va="center", fontsize=7, color=colour,
+            style="italic", bbox={"fc": "white", "ec": PENDING, "lw": 0.5})
+
+
+def capacity_against(ds: xr.Dataset, axis: str, min_fraction: float = MIN_FRACTION) -> Figure:
+    """Capacity of each cell against ``axis`` (one line per value of the remaining axes); the vertical bar is
+    the range of the per-replicate capacities, a triangle a lower bound (top of the count grid), and an
+    undecided capacity (NA) is labelled with its reason instead of drawn."""
+    count = count_dim(ds)
+    table = capacity_table(ds, min_fraction)
+    others = [d for d in _other_axes(ds, count) if d != axis]
+    values = list(ds[axis].values)
+    numeric = ds[axis].dtype.kind in "iuf"
+    spacing = float(np.ptp(values)) / max(len(values) - 1, 1) if numeric else 1.0
+    fig, ax = plt.subplots(figsize=(6.0, 4.0))
+    groups = _groups(table, others)
+    for i, (key, rows) in enumerate(groups):
+        dodge = 0.06 * spacing * (i - (len(groups) - 1) / 2)
+        x = np.array([(v if numeric else values.index(v)) for v in rows[axis]], dtype=float) + dodge
+        known = rows["capacity"].notna().to_numpy()
+        line, = ax.plot(x[known], rows["capacity"][known].astype(float), marker="o",
+                        label=_cell_label(others, key))
+        colour = line.get_color()
+        ranged = rows["capacity_lo"].notna().to_numpy()
+        ax.vlines(x[ranged], rows["capacity_lo"][ranged].astype(float), rows["capacity_hi"][ranged].astype(float),
+                  colors=colour, lw=2.5, alpha=0.4, gid="replicate_range")
+        top = (rows["at_least"] & known).to_numpy()
+        ax.plot(x[top], rows["capacity"][top].astype(float), "^", ms=9, mfc="none", mec=colour)
+        for xi, row in zip(x[~known], rows[~known].itertuples()):
+            _mark_missing(ax, xi, "NA: pending" if row.pending else "NA: crashed", colour)
+    if numeric:
+        (_integer_ticks if ds[axis].dtype.kind in "iu" else _value_ticks)(ax.set_xticks, values)
+    else:
+        _category_ticks(ax.set_xticks, ds, axis)
+    ax.yaxis.set_major_locator(MaxNLocator(integer=True))
+    ax.plot([], [], "^", mfc="none", mec="k", label="at least (top of the count grid)")
+    ax.plot([], [], color="k", lw=2.5, alpha=0.4, label="range over replicates")
+    ax.set_xlabel(_axis_label(ds, axis))
+    ax.set_ylabel(f"capacity ({count})")
+    ax.legend(fontsize=7, loc="best")
+    ax.set_title(f"capacity against {axis} (every count up to it succeeds in >= {min_fraction:g} of replicates)",
+                 fontsize=8)
+    return _finish(fig)
+
+
+def capacity_scaling(ds: xr.Dataset) -> Figure | None:
     """Capacity against network size (log-log): per-replicate capacities, their mean, the fitted power law.
 
     None when the store has no axis over network.n_exc (see :func:`capsweep.sweeps.capacity.scaling_fit`).
@@ -116,68 +317,276 @@ def capacity_scaling(ds: xr.Dataset, path: Path) -> Path | None:
                     xytext=(4, 4), textcoords="offset points")
     ax.set_xscale("log")
     ax.set_yscale("log")
-    ax.set_xticks(fit.sizes, [str(n) for n in fit.sizes])
+    _integer_ticks(ax.set_xticks, fit.sizes)
     top = int(np.nanmax(capacities["capacity_hi"].astype(float))) + 1
-    ax.set_yticks(range(1, top + 1), [str(k) for k in range(1, top + 1)])
+    _integer_ticks(ax.set_yticks, range(1, top + 1))
     for axis in (ax.xaxis, ax.yaxis):
         axis.set_minor_formatter(NullFormatter())
     ax.set_xlabel(_axis_label(ds, str(size)))
     ax.set_ylabel(f"capacity ({count}, per replicate)")
     ax.legend(fontsize=7)
     ax.set_title("capacity against network size (95 % bootstrap interval on the exponent)", fontsize=8)
-    return _save(fig, path)
+    return _finish(fig)
 
 
-def rate_traces(ds: xr.Dataset, path: Path, per_outcome: int = 6, smooth_s: float = 0.1) -> Path:
-    """Excitatory population rate against time (moving average over ``smooth_s`` s), a few points
-    per outcome, one panel per outcome."""
-    outcome = labelled(ds, "outcome").values.ravel()
+# ---------------------------------------------------------------- recall and prediction
+
+
+def recall_per_assembly(ds: xr.Dataset) -> Figure:
+    """Recall score per assembly (mean over a done point's assemblies) against assembly count: mean over
+    replicates with their range as bars, one line per cell of the other axes; counts without a scored
+    replicate are labelled with the reason (pending, crashed, or done without a recall score, as after
+    an early abort), fewer replicates than the most are marked with their n."""
+    count, status = count_dim(ds), labelled(ds, "status")
+    per_point = ds["recall_score"].where(status == "done").mean("assembly", skipna=True)
+    stats = xr.Dataset({"mean": per_point.mean("replicate"), "lo": per_point.min("replicate"),
+                        "hi": per_point.max("replicate"), "n": per_point.notnull().sum("replicate"),
+                        "done": (status == "done").sum("replicate"), "pending": (status == "pending").sum("replicate"),
+                        "unneeded": (status == "unneeded").sum("replicate")})
+    table = stats.to_dataframe().reset_index().sort_values(count)
+    missing = np.select([table["pending"] > 0, table["unneeded"] > 0, table["done"] > 0],
+                        ["pending", "not needed by the search", "no recall score"], "crashed")
+    others = _other_axes(ds, count)
+    fig, ax = plt.subplots(figsize=(6.0, 4.0))
+    _count_lines(ax, table.assign(missing=missing), count, others, ("mean", "lo", "hi"))
+    ax.set_xlabel(_axis_label(ds, count))
+    ax.set_ylabel("recall score per assembly\n(1 perfect completion, 0 chance)")
+    ax.legend(fontsize=7, loc="best")
+    ax.set_title("recall per assembly: mean over replicates (bar: range over replicates)", fontsize=8)
+    return _finish(fig)
+
+
+def prediction_confusion(ds: xr.Dataset) -> Figure | None:
+    """Counts of done points by prescreen-predicted outcome (rows) and simulated outcome (columns);
+    None when no done point holds a prediction."""
+    predicted = labelled(ds, "predicted_outcome").values.ravel()
+    simulated = labelled(ds, "outcome").values.ravel()
+    both = (labelled(ds, "status").values.ravel() == "done") & (predicted != "") & (simulated != "")
+    if not both.any():
+        return None
+    matrix = np.array([[np.sum(both & (predicted == p) & (simulated == s)) for s in OUTCOMES] for p in OUTCOMES])
+    fig, ax = plt.subplots(figsize=(4.6, 3.8))
+    image = ax.imshow(matrix, cmap="Blues", vmin=0)
+    for (i, j), n in np.ndenumerate(matrix):
+        ax.text(j, i, str(n), ha="center", va="center", fontsize=9,
+                color="white" if n > 0.6 * matrix.max() else "black")
+    ax.set_xticks(range(len(OUTCOMES)), OUTCOMES)
+    ax.set_yticks(range(len(OUTCOMES)), OUTCOMES)
+    ax.set_xlabel("simulated outcome")
+    ax.set_ylabel("prescreen prediction")
+    agree = int(np.trace(matrix))
+    ax.set_title(f"prediction against simulation: {agree} of {int(matrix.sum())} done points agree", fontsize=8)
+    fig.colorbar(image, ax=ax, label="done points")
+    return _finish(fig)
+
+
+# ---------------------------------------------------------------- time courses
+
+
+def point_schedules(ds: xr.Dataset) -> dict[tuple[int, ...], Schedule]:
+    """Protocol timeline of each point, from the sweep file text the store holds (``sweep_text``) and the
+    point's stored seed (which draws its cue order).
+
+    A timeline is kept only where it agrees with what the point stored: the start of each assembly's
+    final cue (``cue_time_s``), where written. None at all when the store holds no readable sweep text.
+    """
+    ids = ds["point_id"].values
+    try:
+        sweep = parse_sweep(str(ds.attrs.get("sweep_text", "")))
+        points = expand(sweep) if grid_shape(sweep) == ids.shape else []
+    except ConfigError:
+        return {}
+    seeds, stored = ds["seed"].values, ds["cue_time_s"].values
+    timelines = {}
+    for p in points:
+        sched = schedule(p.config, cue_order(p.config["assemblies"]["count"], int(seeds[p.index])))
+        planned = np.full(stored.shape[-1], np.nan)
+        for k, start, _ in sched.cue_windows:
+            planned[k] = sched.seconds(start)
+        written = np.isfinite(stored[p.index])
+        if np.allclose(stored[p.index][written], planned[written], atol=1e-9):
+            timelines[p.index] = sched
+    return timelines
+
+
+def rate_traces(ds: xr.Dataset, schedules: dict[tuple[int, ...], Schedule], per_outcome: int = 3,
+                smooth_s: float = 0.1) -> Figure:
+    """Excitatory population rate (Hz; moving average over ``smooth_s`` s) of up to ``per_outcome`` done
+    points per outcome spread over the grid, one panel per point titled with its labels; protocol phases
+    and cue windows of ``schedules`` shaded, a dotted line where a run stopped before its planned end."""
+    outcome, status = labelled(ds, "outcome").values, labelled(ds, "status").values
+    present = [o for o in OUTCOMES if np.any((status == "done") & (outcome == o))]
     width = max(1, int(round(smooth_s / float(ds.attrs["time_bin_s"]))))
-    raw = ds["rate_exc_hz"].values.reshape(outcome.size, -1)
-    traces = np.apply_along_axis(lambda r: np.convolve(r, np.ones(width) / width, mode="same"), 1, raw)
     t = ds["time_bin"].values
-    shown = [o for o in OUTCOME_COLOURS if np.any(outcome == o)] or ["stable"]
-    fig, axs = plt.subplots(len(shown), 1, figsize=(7, 2.2 * len(shown)), sharex=True, squeeze=False)
-    for ax, name in zip(axs[:, 0], shown):
-        for row in np.flatnonzero(outcome == name)[:per_outcome]:
-            ax.plot(t, traces[row], lw=0.7, color=OUTCOME_COLOURS[name], alpha=0.8)
-        ax.set_ylabel("E rate (Hz)")
-        ax.set_title(f"{name} points (up to {per_outcome}; {smooth_s * 1000:.0f} ms moving average)", fontsize=9)
-    axs[-1, 0].set_xlabel("time (s)")
-    return _save(fig, path)
+    fig, axs = plt.subplots(len(present), per_outcome, figsize=(3.6 * per_outcome, 2.3 * len(present)),
+                            sharex=True, squeeze=False)
+    shaded: set[str] = set()
+    for ax_row, name in zip(axs, present):
+        chosen = np.argwhere((status == "done") & (outcome == name))
+        picks = np.unique(np.linspace(0, len(chosen) - 1, per_outcome).round().astype(int))
+        for ax, index in itertools.zip_longest(ax_row, (tuple(int(i) for i in chosen[k]) for k in picks)):
+            if index is None:
+                ax.set_visible(False)
+                continue
+            rate = ds["rate_exc_hz"].values[index]
+            ax.plot(t, np.convolve(rate, np.ones(width) / width, mode="same"), lw=0.7, color=OUTCOME_COLOURS[name])
+            shaded |= _shade_schedule(ax, schedules.get(index))
+            stopped = float(ds["simulated_time_s"].values[index])
+            if index in schedules and stopped < schedules[index].seconds(schedules[index].end):
+                ax.axvline(stopped, color="k", ls=":", lw=1, gid="stopped")
+                shaded.add("run stopped early")
+            ax.set_title(_point_label(ds, index) + ("" if index in schedules else "\n(cue schedule unknown)"),
+                         fontsize=7)
+        ax_row[0].set_ylabel("E rate (Hz)")
+    for ax in axs[-1]:
+        ax.set_xlabel("time (s)")
+    handles: list[Artist] = [Patch(color=c, alpha=_alpha(p), label=p)
+                             for p, c in {**PHASE_COLOURS, "cue": CUE_COLOUR}.items() if p in shaded]
+    handles += [Line2D([], [], color="k", ls=":", label="run stopped early")] if "run stopped early" in shaded else []
+    if handles:
+        fig.legend(handles=handles, loc="lower center", ncol=len(handles), fontsize=7, frameon=False)
+    fig.suptitle(f"excitatory rate, {smooth_s * 1000:.0f} ms moving average (white: hold)", fontsize=9)
+    fig.tight_layout(rect=(0, 0.05 if handles else 0, 1, 1))
+    return fig
 
 
-def weight_drift(ds: xr.Dataset, path: Path) -> Path:
-    """Weight correlation with hold start against snapshot time, coloured by outcome."""
-    outcome = labelled(ds, "outcome").values.ravel()
-    corr = ds["weight_correlation"].values.reshape(outcome.size, -1)
-    times = ds["snapshot_time_s"].values.reshape(outcome.size, -1)
+def _alpha(phase: str) -> float:
+    return 0.35 if phase == "cue" else 0.12 if phase in ("imprint", "final recall") else 0.6
+
+
+def _shade_schedule(ax: plt.Axes, sched: Schedule | None) -> set[str]:
+    """Shade the phases and every cue window of ``sched`` on ``ax``; the names shaded."""
+    if sched is None:
+        return set()
+    spans = {"settle": (0, sched.settle_end), "imprint": (sched.settle_end, sched.imprint_end),
+             "final recall": (sched.hold_end, recall_end(sched)), "tail": (recall_end(sched), sched.end)}
+    drawn = {name for name, (a, b) in spans.items() if b > a}
+    for name in drawn:
+        a, b = spans[name]
+        ax.axvspan(sched.seconds(a), sched.seconds(b), color=PHASE_COLOURS[name], alpha=_alpha(name), lw=0,
+                   gid=name, zorder=0)
+    for _, a, b in sched.all_cues:
+        ax.axvspan(sched.seconds(a), sched.seconds(b), color=CUE_COLOUR, alpha=_alpha("cue"), lw=0, gid="cue",
+                   zorder=0)
+    return drawn | ({"cue"} if sched.all_cues else set())
+
+
+def weight_drift(ds: xr.Dataset) -> Figure:
+    """Weight correlation with hold start against snapshot time (s) of every done point, coloured by outcome."""
+    done = labelled(ds, "status").values.ravel() == "done"
+    outcome = labelled(ds, "outcome").values.ravel()[done]
+    corr = ds["weight_correlation"].values.reshape(done.size, -1)[done]
+    times = ds["snapshot_time_s"].values.reshape(done.size, -1)[done]
     fig, ax = plt.subplots(figsize=(5.5, 3.8))
     for row, name in enumerate(outcome):
-        if name in OUTCOME_COLOURS:
-            ax.plot(times[row], corr[row], color=OUTCOME_COLOURS[name], alpha=0.6, marker=".")
-    for name, colour in OUTCOME_COLOURS.items():
-        ax.plot([], [], color=colour, label=name)
+        ax.plot(times[row], corr[row], color=OUTCOME_COLOURS[name], alpha=0.6, marker=".")
+    for name in (o for o in OUTCOMES if o in outcome):
+        ax.plot([], [], color=OUTCOME_COLOURS[name], label=f"{name} (n={int(np.sum(outcome == name))})")
     ax.set_xlabel("time (s)")
     ax.set_ylabel("corr(w(t), w(hold start))")
     ax.legend(fontsize=7)
-    ax.set_title("E->E weight drift during hold", fontsize=9)
-    return _save(fig, path)
+    ax.set_title("E->E weight drift during hold (done points)", fontsize=9)
+    return _finish(fig)
 
 
-def all_plots(ds: xr.Dataset, out_dir: Path, x: str | None = None, y: str | None = None) -> list[Path]:
-    """Write every picture that fits the store into ``out_dir``; return their paths."""
-    out_dir.mkdir(parents=True, exist_ok=True)
-    paths = [
-        stability_map(ds, out_dir / "stability_map.png", x, y),
-        rate_traces(ds, out_dir / "rate_traces.png"),
-        weight_drift(ds, out_dir / "weight_drift.png"),
-    ]
-    if any(k == COUNT_KEY for k in axis_keys(ds).values()):
-        paths.append(capacity_curves(ds, out_dir / "capacity_curves.png"))
-        scaling = capacity_scaling(ds, out_dir / "capacity_scaling.png")
-        paths += [scaling] if scaling is not None else []
-    return paths
+# ---------------------------------------------------------------- all together
+
+
+def all_plots(ds: xr.Dataset, out_dir: Path, x: str | None = None, y: str | None = None,
+              formats: Sequence[str] | None = None, dpi: int | None = None,
+              capacity_axis: str | None = None) -> PlotSet:
+    """Check every option, draw every figure that fits the store, then write them into ``out_dir``
+    (``dpi`` default DEFAULT_DPI, ``formats`` default PNG)."""
+    x, y = map_axes(ds, x, y)
+    kinds, dpi = output_formats(formats), check_dpi(DEFAULT_DPI if dpi is None else dpi)
+    against = capacity_axes(ds, capacity_axis)
+    check_folder(out_dir)
+    figures, notes = _figures(ds, x, y, against)
+    try:
+        out_dir.mkdir(parents=True, exist_ok=True)
+        paths = [_save(fig, out_dir / f"{stem}.{kind}", dpi) for stem, fig in figures.items() for kind in kinds]
+    finally:
+        for fig in figures.values():
+            plt.close(fig)
+    return PlotSet(paths, notes)
+
+
+def _figures(ds: xr.Dataset, x: str, y: str | None, against: list[str]) -> tuple[dict[str, Figure], list[str]]:
+    """Every figure that fits ``ds``, by file stem, and a note for each one left out."""
+    figures: dict[str, Figure] = {"stability_map": stability_map(ds, x, y)}
+    notes = []
+    if np.any(labelled(ds, "status").values == "done"):
+        schedules = point_schedules(ds)
+        figures["rate_traces"] = rate_traces(ds, schedules)
+        figures["weight_drift"] = weight_drift(ds)
+        if not schedules:
+            notes.append("rate traces: no cue schedule shaded (the store holds no readable sweep file text)")
+    else:
+        notes.append("rate traces and weight drift left out: no point is done yet")
+    if COUNT_KEY in axis_keys(ds).values():
+        figures["capacity_curves"] = capacity_curves(ds)
+        figures["recall_per_assembly"] = recall_per_assembly(ds)
+        figures.update({f"capacity_against_{axis}": capacity_against(ds, axis) for axis in against})
+        scaling = capacity_scaling(ds)
+        figures.update({"capacity_scaling": scaling} if scaling is not None else {})
+    else:
+        notes.append(f"capacity figures left out: the store has no axis over {COUNT_KEY}")
+    confusion = prediction_confusion(ds)
+    if confusion is None:
+        notes.append("prediction against simulation left out: no done point holds a prescreen prediction "
+                     "(run with --prescreen)")
+    else:
+        figures["predicted_vs_simulated"] = confusion
+    return figures, notes
+
+
+# ---------------------------------------------------------------- helpers
+
+
+def _other_axes(ds: xr.Dataset, count: str) -> list[str]:
+    """Sweep axes other than the count axis (replicate excluded), in store order."""
+    return [d for d in axis_keys(ds) if d != count]
+
+
+def _groups(table: pd.DataFrame, others: list[str]) -> list[tuple[Any, pd.DataFrame]]:
+    """Rows of ``table`` per cell of the ``others`` axes, in table order (one group of all rows if none)."""
+    return list(table.groupby(others, sort=False)) if others else [((), table)]
+
+
+def _cell_label(others: list[str], key: Any) -> str:
+    return ", ".join(f"{d}={_tick_text(v)}" for d, v in zip(others, np.atleast_1d(key))) or "all"
+
+
+def _point_label(ds: xr.Dataset, index: tuple[int, ...]) -> str:
+    """'n_odours=3, beta=0.05, replicate 1: runaway' for the point at positional ``index``."""
+    dims = sweep_dims(ds)
+    labels = [f"{d}={_tick_text(ds[d].values[i])}" for d, i in zip(dims, index) if d != "replicate"]
+    return ", ".join(labels + [f"replicate {index[-1]}: {labelled(ds, 'outcome').values[index]}"])
+
+
+def _tick_text(value: Any) -> str:
+    """A coordinate value as a label: integers as integers, reals in the shortest form, the rest as text."""
+    if isinstance(value, (bool, np.bool_)):
+        return str(bool(value))
+    if isinstance(value, (int, np.integer)):
+        return str(int(value))
+    return f"{value:g}" if isinstance(value, (float, np.floating)) else str(value)
+
+
+def _category_ticks(set_ticks: Any, ds: xr.Dataset, dim: str) -> None:
+    """One tick per coordinate value of ``dim`` at positions 0, 1, ..."""
+    set_ticks(range(ds.sizes[dim]), [_tick_text(v) for v in ds[dim].values])
+
+
+def _integer_ticks(set_ticks: Any, values: Any) -> None:
+    """Ticks at whole-number data values, labelled without a decimal point."""
+    ints = [int(v) for v in values]
+    set_ticks(ints, [str(v) for v in ints])
+
+
+def _value_ticks(set_ticks: Any, values: Any) -> None:
+    """Ticks at the coordinate values of a real-valued axis."""
+    set_ticks(list(values), [f"{v:g}" for v in values])
 
 
 def _axis_label(ds: xr.Dataset, dim: str) -> str:
@@ -185,8 +594,11 @@ def _axis_label(ds: xr.Dataset, dim: str) -> str:
     return f"{dim} ({key})" if key else dim
 
 
-def _save(fig: plt.Figure, path: Path) -> Path:
+def _finish(fig: Figure) -> Figure:
     fig.tight_layout()
-    fig.savefig(path, dpi=150)
-    plt.close(fig)
+    return fig
+
+
+def _save(fig: Figure, path: Path, dpi: int) -> Path:
+    fig.savefig(path, dpi=dpi, format=path.suffix[1:])
     return path

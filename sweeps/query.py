@@ -7,18 +7,34 @@ user text.
 
 from __future__ import annotations
 
+import json
+from collections.abc import Callable
 from dataclasses import dataclass
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
 import xarray as xr
 
+from ..axes import COUNT_KEY  # noqa: F401  (re-exported for plots)
 from ..errors import CapsweepError
-from ..results_schema.dataset import flag_labels
+from ..flags import OUTCOMES, STATUSES
+from ..results_schema import layout
+from ..results_schema.dataset import flag_labels, open_dataset
 from ..results_schema.layout import STATUS
 
 DEFAULT_WHERE = 'status == "done" and outcome == "stable"'
-COUNT_KEY = "assemblies.count"
+DIMENSIONLESS = "1"
+
+# Per-point summaries of inner-dim variables: column -> (source variable, reduction).
+SUMMARIES: dict[str, tuple[str, Callable[[xr.DataArray], xr.DataArray]]] = {
+    "recall_score_min": ("recall_score", lambda v: v.min("assembly", skipna=True)),
+    "recall_quality_min": ("recall_quality", lambda v: v.min("assembly", skipna=True)),
+    "recall_quality_mean": ("recall_quality", lambda v: v.mean("assembly", skipna=True)),
+    "cross_talk_max": ("cross_talk", lambda v: v.max("assembly", skipna=True)),
+    "weight_correlation_end": ("weight_correlation", lambda v: v.isel(snapshot=-1)),
+    "assembly_contrast_end": ("assembly_contrast", lambda v: v.isel(snapshot=-1)),
+}
 
 
 class QueryError(CapsweepError):
@@ -40,25 +56,74 @@ def labelled(ds: xr.Dataset, name: str) -> xr.DataArray:
     return flag_labels(ds[name])
 
 
+def open_store(path: str | Path, command: str) -> xr.Dataset:
+    """Open the store at ``path`` for ``capsweep COMMAND``; a sweep file given instead names its store.
+
+    Raises StoreError if ``path`` is not a store, CapsweepError naming the store if it is a sweep file.
+    """
+    path = Path(path)
+    if path.is_file():
+        from .sweepfile import load_sweep
+
+        store = load_sweep(path).store
+        raise CapsweepError(f"{path} is a sweep file; its store is {store} (run `capsweep {command} {store}`)")
+    return open_dataset(path)
+
+
 def point_table(ds: xr.Dataset) -> pd.DataFrame:
-    """One row per point: axis values, replicate, labels, scalar metrics and per-point summaries."""
+    """One row per point, in sweep order (axes and values as in the sweep file, then replicate).
+
+    Columns: the sweep dims, ``point_id``, ``status``, the scalar variables in layout order (flags
+    as labels, integers as pandas ``Int64`` with missing values as NA), then the ``SUMMARIES``.
+    """
     dims = sweep_dims(ds)
-    columns: dict[str, xr.DataArray] = {}
-    for key, var in ds.data_vars.items():
-        name = str(key)
-        if tuple(var.dims) != tuple(dims) or name in ("point_id", "error"):
-            continue
-        columns[name] = labelled(ds, name) if "flag_meanings" in var.attrs else var
-    summaries = {
-        "recall_score_min": ds["recall_score"].min("assembly", skipna=True),
-        "recall_quality_min": ds["recall_quality"].min("assembly", skipna=True),
-        "recall_quality_mean": ds["recall_quality"].mean("assembly", skipna=True),
-        "cross_talk_max": ds["cross_talk"].max("assembly", skipna=True),
-        "weight_correlation_end": ds["weight_correlation"].isel(snapshot=-1),
-        "assembly_contrast_end": ds["assembly_contrast"].isel(snapshot=-1),
-    }
-    table = xr.Dataset({"point_id": ds["point_id"], **columns, **summaries}).reset_coords(drop=True)
-    return table.to_dataframe(dim_order=dims).reset_index()
+    scalars = [v for v in layout.VARIABLES if tuple(ds[v.name].dims) == tuple(dims)]
+    columns: dict[str, xr.DataArray] = {"point_id": ds[layout.POINT_ID], "status": labelled(ds, STATUS.name)}
+    for var in scalars:
+        columns[var.name] = labelled(ds, var.name) if var.flags else ds[var.name]
+    columns.update({name: reduce(ds[source]) for name, (source, reduce) in SUMMARIES.items()})
+    frame = xr.Dataset(columns).reset_coords(drop=True).to_dataframe(dim_order=dims).reset_index()
+    integers = [v.name for v in scalars if v.dtype.startswith("int") and not v.flags]
+    return frame.astype({name: "Int64" for name in integers})
+
+
+def column_units(ds: xr.Dataset, columns: list[str]) -> dict[str, str]:
+    """CF ``units`` of each of ``columns`` that has a physical unit (not "1"); labels have none."""
+    units = {}
+    for name in columns:
+        source = SUMMARIES[name][0] if name in SUMMARIES else name
+        unit = str(ds[source].attrs.get("units", DIMENSIONLESS)) if source in ds.variables else DIMENSIONLESS
+        if unit != DIMENSIONLESS:
+            units[name] = unit
+    return units
+
+
+def table_csv(frame: pd.DataFrame, units: dict[str, str]) -> str:
+    """``frame`` as CSV; a column whose name does not already end in its unit is headed ``name [unit]``."""
+    def header(name: str) -> str:
+        unit = units.get(name)
+        return name if unit is None or name.lower().endswith("_" + unit.lower()) else f"{name} [{unit}]"
+
+    return frame.rename(columns=header).to_csv(index=False)
+
+
+def table_json(frame: pd.DataFrame, units: dict[str, str], where: str) -> str:
+    """``frame`` as one JSON document: ``{"units": {column: unit}, "filter": where, "rows": [...]}``."""
+    rows = json.loads(frame.to_json(orient="records"))
+    return json.dumps({"units": units, "filter": where, "rows": rows}, indent=1) + "\n"
+
+
+def active_filter(where: str | None, every_point: bool) -> tuple[str, str]:
+    """The filter expression a query applies and how to describe it.
+
+    ``where`` replaces the default filter (done and stable points); ``every_point`` (``--all``) only
+    drops the default, so ``where`` applies with it too.
+    """
+    if where:
+        return where, where
+    if every_point:
+        return "", "none (--all: every point)"
+    return DEFAULT_WHERE, f"{DEFAULT_WHERE} (default; --all for every point)"
 
 
 def select(frame: pd.DataFrame, where: str = DEFAULT_WHERE) -> pd.DataFrame:
@@ -75,15 +140,32 @@ def select(frame: pd.DataFrame, where: str = DEFAULT_WHERE) -> pd.DataFrame:
 
 
 def status_counts(ds: xr.Dataset) -> dict[str, dict[str, int]]:
-    """Counts of points by status and, among done points, by outcome."""
-    status = labelled(ds, "status").values.ravel()
+    """Counts of points by every status of ``capsweep.flags.STATUSES`` and, among done points, by outcome."""
+    status = labelled(ds, STATUS.name).values.ravel()
     outcome = labelled(ds, "outcome").values.ravel()[status == "done"]
-    flags = ds[STATUS.name].attrs["flag_meanings"].split()
-    outcomes = ds["outcome"].attrs["flag_meanings"].split()
     return {
-        "status": {f: int(np.sum(status == f)) for f in flags},
-        "outcome": {o: int(np.sum(outcome == o)) for o in outcomes},
+        "status": {label: int(np.sum(status == label)) for label in STATUSES},
+        "outcome": {label: int(np.sum(outcome == label)) for label in OUTCOMES},
     }
+
+
+@dataclass(frozen=True)
+class FailedPoint:
+    """A failed point: its labels along the sweep dims, its id and the first line of its stored error."""
+
+    labels: dict[str, object]
+    point_id: str
+    error: str
+
+
+def failed_points(ds: xr.Dataset) -> list[FailedPoint]:
+    """Every failed point in sweep order, with the first line of its error text."""
+    frame = xr.Dataset({"status": labelled(ds, STATUS.name), "point_id": ds[layout.POINT_ID],
+                        "error": ds[layout.ERROR]}).to_dataframe(dim_order=sweep_dims(ds)).reset_index()
+    failed = frame[frame["status"] == "failed"]
+    return [FailedPoint({d: row[d] for d in sweep_dims(ds)}, str(row["point_id"]),
+                        (str(row["error"]).strip().splitlines() or [""])[0])
+            for _, row in failed.iterrows()]
 
 
 @dataclass(frozen=True)

@@ -2,7 +2,9 @@
 
 Every key is checked against :mod:`capsweep.registry`; an unknown key, a wrong type or an
 out-of-range value raises :class:`~capsweep.errors.ConfigError` whose message names the file,
-the key, the value and what is allowed.
+the key, the value and what is allowed. A value that is allowed but outside its key's plausible range
+(a likely unit slip) only warns (:class:`~capsweep.registry.ImplausibleValue`), unless the file lists the key
+in ``[sweep] quiet_warnings``.
 """
 
 from __future__ import annotations
@@ -10,13 +12,14 @@ from __future__ import annotations
 import hashlib
 import re
 import tomllib
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from ..axes import VARIANT_KEY, Axis, key_axis, variant_axis
+from ..axes import COUNT_KEY, VARIANT_KEY, Axis, key_axis, variant_axis
 from ..errors import ConfigError
-from ..registry import SECTIONS, Key, defaults, flatten, lookup
+from ..registry import BY_PATH, SECTIONS, ImplausibleValue, Key, defaults, did_you_mean, flatten, lookup
 from ..results_schema.layout import INNER_DIMS
 
 SWEEP_KEYS = {
@@ -25,15 +28,33 @@ SWEEP_KEYS = {
     "replicates": "seeds per grid cell (integer >= 1)",
     "base_seed": "seed all point seeds derive from (integer >= 0)",
     "axis": "array of tables [[sweep.axis]] with name, key, values",
+    "quiet_warnings": "list of config keys whose plausibility warnings are not shown, e.g. [\"protocol.hold_s\"]",
 }
 AXIS_KEYS = {
     "name": "dim name",
     "key": "config key it sets",
     "values": "list of values",
     "variants": "table of named variants, each a table of config overrides (instead of key and values)",
+    "search": "adaptive capacity search over assemblies.count instead of values: "
+              "{low = 1, high = 32, start = 1, method = \"scan\"} (start: a count, or \"prescreen\" for the "
+              "theory's predicted capacity; method: \"scan\" (exact) or \"bisect\" (assumes monotone success))",
 }
+SEARCH_KEYS = ("low", "high", "start", "method")
+SEARCH_METHODS = ("scan", "bisect")
+"""How a count search moves: see ``capsweep.sweeps.search``."""
+PRESCREEN_START = "prescreen"
+"""``start`` value that seeds a count search with the prescreen's predicted capacity."""
 _DIM_NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
 _RESERVED_DIMS = set(INNER_DIMS) | {"replicate"}
+
+
+@dataclass(frozen=True)
+class CountSearch:
+    """An adaptive capacity search over the count axis ``axis`` (its values: every count from low to high)."""
+
+    axis: str
+    start: int | None  # count probed first (bisect) or scanned up to at once (scan); None: the prescreen's capacity
+    method: str = "scan"  # one of SEARCH_METHODS
 
 
 @dataclass(frozen=True)
@@ -49,6 +70,7 @@ class Sweep:
     text: str = field(repr=False)
     source: Path = Path("<memory>")
     variants: dict[str, dict[str, dict[str, Any]]] = field(default_factory=dict, repr=False)
+    search: CountSearch | None = None
 
     @property
     def text_sha256(self) -> str:
@@ -74,10 +96,8 @@ def parse_sweep(text: str, source: Path = Path("<memory>"), store: str | Path | 
         raise ConfigError(f"{source}: not valid TOML: {exc}") from None
     unknown = sorted(set(doc) - {"sweep", *SECTIONS})
     if unknown:
-        raise ConfigError(
-            f"{source}: unknown table [{unknown[0]}]; valid tables: [sweep], "
-            + ", ".join(f"[{s}]" for s in SECTIONS)
-        )
+        hint = did_you_mean(f"[{unknown[0]}]", [f"[{s}]" for s in ("sweep", *SECTIONS)], "valid tables")
+        raise ConfigError(f"{source}: unknown table [{unknown[0]}]; {hint}")
     base = _base_config(doc, source)
     head = _sweep_table(doc, source)
     parsed = [_axis(raw, i, source) for i, raw in enumerate(head.get("axis", []))]
@@ -87,7 +107,7 @@ def parse_sweep(text: str, source: Path = Path("<memory>"), store: str | Path | 
     clash = sorted(touched & {a.key for a in axes})
     if clash:
         raise ConfigError(f"{source}: {clash[0]} is set both by an axis and by a variant; set it in one place")
-    return Sweep(
+    sweep = Sweep(
         name=head["name"],
         store=Path(store) if store is not None else Path(head["store"]),
         replicates=head["replicates"],
@@ -95,9 +115,27 @@ def parse_sweep(text: str, source: Path = Path("<memory>"), store: str | Path | 
         axes=axes,
         base=base,
         variants={axis.name: table for axis, table in parsed if table},
+        search=_count_search(head.get("axis", []), axes, source),
         text=text,
         source=source,
     )
+    _warn_implausible(sweep, head["quiet_warnings"])
+    return sweep
+
+
+def _warn_implausible(sweep: Sweep, quiet: frozenset[str]) -> None:
+    """Warn (ImplausibleValue, one line each) about values outside their key's plausible range, unless quieted."""
+    settings = [(sweep.base, str(sweep.source))]
+    settings += [({axis.key: value}, f"{sweep.source} (axis {axis.name})")
+                 for axis in sweep.axes if axis.key != VARIANT_KEY for value in axis.values]
+    settings += [(overrides, f"{sweep.source} (variant {label})")
+                 for table in sweep.variants.values() for label, overrides in table.items()]
+    for values, where in settings:
+        for path, value in values.items():
+            message = BY_PATH[path].implausible(value, where)
+            if message and path not in quiet:
+                warnings.warn(f'{message}; to silence: [sweep] quiet_warnings = ["{path}"]', ImplausibleValue,
+                              stacklevel=2)
 
 
 def _sweep_table(doc: dict[str, Any], source: Path) -> dict[str, Any]:
@@ -106,14 +144,15 @@ def _sweep_table(doc: dict[str, Any], source: Path) -> dict[str, Any]:
         raise ConfigError(f"{source}: missing table [sweep] (needs at least name and store)")
     for key in head:
         if key not in SWEEP_KEYS:
-            valid = ", ".join(f"sweep.{k}" for k in SWEEP_KEYS)
-            raise ConfigError(f"{source}: unknown key sweep.{key}; valid keys: {valid}")
+            hint = did_you_mean(f"sweep.{key}", (f"sweep.{k}" for k in SWEEP_KEYS))
+            raise ConfigError(f"{source}: unknown key sweep.{key}; {hint}")
     for key in ("name", "store"):
         if not isinstance(head.get(key), str) or not head[key].strip():
             raise ConfigError(f"{source}: sweep.{key} is required: {SWEEP_KEYS[key]}")
     out = dict(head)
     out["replicates"] = _bounded_int(head, "replicates", 1, 1, source)
     out["base_seed"] = _bounded_int(head, "base_seed", 0, 0, source)
+    out["quiet_warnings"] = _quiet_warnings(head, source)
     if not isinstance(head.get("axis", []), list):
         raise ConfigError(f"{source}: sweep.axis must be written as [[sweep.axis]] tables")
     return out
@@ -124,6 +163,14 @@ def _bounded_int(head: dict[str, Any], key: str, default: int, low: int, source:
     if isinstance(value, bool) or not isinstance(value, int) or value < low:
         raise ConfigError(f"{source}: sweep.{key} = {value!r} is not allowed: {SWEEP_KEYS[key]}")
     return value
+
+
+def _quiet_warnings(head: dict[str, Any], source: Path) -> frozenset[str]:
+    """The config keys listed in ``sweep.quiet_warnings``, each checked against the registry."""
+    keys = head.get("quiet_warnings", [])
+    if not isinstance(keys, list) or not all(isinstance(k, str) for k in keys):
+        raise ConfigError(f"{source}: sweep.quiet_warnings = {keys!r} is not allowed: {SWEEP_KEYS['quiet_warnings']}")
+    return frozenset(lookup(k, where=f"{source} (sweep.quiet_warnings)").path for k in keys)
 
 
 def _base_config(doc: dict[str, Any], source: Path) -> dict[str, Any]:
@@ -144,7 +191,7 @@ def _axis(raw: Any, position: int, source: Path) -> tuple[Axis, dict[str, dict[s
         raise ConfigError(f"{where} must be a table with name, key, values (or name, variants)")
     for key in raw:
         if key not in AXIS_KEYS:
-            raise ConfigError(f"{where}: unknown key {key!r}; valid keys: {', '.join(AXIS_KEYS)}")
+            raise ConfigError(f"{where}: unknown key {key!r}; {did_you_mean(key, AXIS_KEYS)}")
     name = raw.get("name")
     if not isinstance(name, str) or not _DIM_NAME.match(name) or name in _RESERVED_DIMS:
         raise ConfigError(
@@ -153,6 +200,8 @@ def _axis(raw: Any, position: int, source: Path) -> tuple[Axis, dict[str, dict[s
         )
     if "variants" in raw:
         return _variant_axis(raw, name, where)
+    if "search" in raw:
+        raw = {**raw, "values": _search_values(raw, where)}
     missing = [k for k in ("key", "values") if k not in raw]
     if missing:
         raise ConfigError(f"{where}: missing {', '.join(missing)} (each axis needs name, key, values, "
@@ -198,3 +247,40 @@ def _check_axis_names(axes: tuple[Axis, ...], source: Path) -> None:
         repeated = sorted({x for x in labels if labels.count(x) > 1})
         if repeated:
             raise ConfigError(f"{source}: two axes share the {attr} {repeated[0]!r}; each axis needs its own")
+
+
+def _search_values(raw: dict[str, Any], where: str) -> list[int]:
+    """Every count from ``search.low`` to ``search.high`` of a searched axis (its grid in the store)."""
+    table = raw["search"]
+    if "values" in raw or raw.get("key") != COUNT_KEY or not isinstance(table, dict):
+        raise ConfigError(f"{where}: search must be a table {{low = 1, high = 32, start = 1}} on key {COUNT_KEY}, "
+                          "without values")
+    unknown = sorted(set(table) - set(SEARCH_KEYS))
+    if unknown:
+        raise ConfigError(f"{where}: unknown key search.{unknown[0]}; valid keys: {', '.join(SEARCH_KEYS)}")
+    count = lookup(COUNT_KEY, where=where)
+    low = count.check(table.get("low", 1), where=f"{where} (search.low)")
+    high = count.check(table.get("high", low), where=f"{where} (search.high)")
+    if high <= low:
+        raise ConfigError(f"{where}: search.high = {table.get('high')!r} is not allowed: expected an integer "
+                          f"above search.low ({low}) and at most {count.high:g}")
+    return list(range(low, high + 1))
+
+
+def _count_search(raw_axes: list[Any], axes: tuple[Axis, ...], source: Path) -> CountSearch | None:
+    """The sweep's count search, if an axis asks for one (its table was checked by ``_search_values``)."""
+    searched = [(raw["search"], axis) for raw, axis in zip(raw_axes, axes) if "search" in raw]
+    if not searched:
+        return None
+    table, axis = searched[0]
+    method = table.get("method", SEARCH_METHODS[0])
+    if method not in SEARCH_METHODS:
+        raise ConfigError(f"{source}: sweep.axis {axis.name!r}: search.method = {method!r} is not allowed: expected "
+                          + " or ".join(repr(m) for m in SEARCH_METHODS))
+    start = table.get("start", axis.values[0])
+    if start == PRESCREEN_START:
+        return CountSearch(axis.name, None, method)
+    if isinstance(start, bool) or start not in axis.values:
+        raise ConfigError(f"{source}: sweep.axis {axis.name!r}: search.start = {start!r} is not allowed: expected "
+                          f"a count from {axis.values[0]} to {axis.values[-1]} or {PRESCREEN_START!r}")
+    return CountSearch(axis.name, int(start), method)

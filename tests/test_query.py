@@ -17,12 +17,12 @@ from scipy.stats import linregress, norm
 from typer.testing import CliRunner
 
 from capsweep.axes import key_axis
+from capsweep.flags import STATUSES
 from capsweep.results_schema.dataset import open_dataset
 from capsweep.results_schema.layout import VARIABLES, GridSpec
 from capsweep.results_schema.store import ResultStore, create_store
 from capsweep.sweeps.capacity import capacity_table, scaling_fit, success_table, wilson_interval
 from capsweep.sweeps.cli import app
-from capsweep.sweeps.plots import all_plots
 from capsweep.sweeps.query import QueryError, plausibility, point_table, select, status_counts
 
 AXES = (key_axis("n_odours", "assemblies.count", (1, 2, 3, 4)), key_axis("beta", "plasticity.heterosynaptic.beta", (0.0, 0.05)))
@@ -184,7 +184,8 @@ def test_capacity_csv_and_json_keep_integers_and_write_na_as_empty(store: Path) 
     assert records[1]["capacity"] is None
     per_count = runner.invoke(app, ["capacity", str(store), "--format", "csv", "--per-count"])
     counts = pd.read_csv(io.StringIO(per_count.output), dtype=str)
-    assert list(counts.columns[2:]) == ["n", "successes", "fraction", "wilson_lo", "wilson_hi", "failed", "pending"]
+    assert list(counts.columns[2:]) == ["n", "successes", "fraction", "wilson_lo", "wilson_hi", "failed", "pending",
+                                      "unneeded"]
     assert list(counts["n"][:4]) == ["2", "2", "2", "2"] and list(counts["successes"][:4]) == ["2", "2", "1", "0"]
 
 
@@ -210,7 +211,7 @@ def test_wilson_interval_matches_published_examples(successes: int, trials: int,
 def test_status_counts_and_default_filter(store: Path) -> None:
     ds = open_dataset(store)
     counts = status_counts(ds)
-    assert counts["status"] == {"pending": 1, "done": 15, "failed": 0}
+    assert counts["status"] == {"pending": 1, "done": 15, "failed": 0, "unneeded": 0}
     assert counts["outcome"] == {"stable": 13, "runaway": 2, "silent": 0}
     stable = select(point_table(ds))
     assert len(stable) == 13 and set(stable["outcome"]) == {"stable"}
@@ -226,14 +227,6 @@ def test_bad_filter_names_the_columns(store: Path) -> None:
 def test_plausibility_flags_nothing_for_a_few_hertz_irregular_base(store: Path) -> None:
     check = plausibility(open_dataset(store))
     assert check.rate_exc_hz == (3.0, 3.0) and check.warnings == ()
-
-
-def test_plots_are_written_as_png(store: Path, tmp_path: Path) -> None:
-    paths = all_plots(open_dataset(store), tmp_path / "plots")
-    assert {p.name for p in paths} == {"stability_map.png", "rate_traces.png", "weight_drift.png",
-                                       "capacity_curves.png"}
-    for path in paths:
-        assert path.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and path.stat().st_size > 5000
 
 
 def _scaling_store(tmp_path: Path, capacities: dict[int, list[int]]) -> Path:
@@ -286,3 +279,99 @@ def test_crashes_above_the_deciding_count_do_not_hide_the_capacity(tmp_path: Pat
     pattern = {(1, 0, 0): ("runaway", 0), (1, 0, 1): ("runaway", 0), (3, 0, 0): None, (3, 0, 1): None}
     row = capacity_table(open_dataset(_filled_store(tmp_path, pattern))).iloc[0]
     assert row["capacity"] == 1 and row["failed"] == 2 and bool(row["non_monotone"])
+
+
+def test_where_applies_together_with_all_and_the_table_names_its_filter(store: Path) -> None:
+    """--all drops only the default filter: with --where, only the matching points remain (all 4 count-4
+    points are done, one runs away in each replicate of beta 0 per SPECIAL)."""
+    runner = CliRunner()
+    shown = json.loads(runner.invoke(app, ["query", str(store), "--all", "--where", "n_odours == 4",
+                                           "--format", "json"]).stdout)
+    assert [(r["beta"], r["replicate"], r["outcome"]) for r in shown["rows"]] == [
+        (0.0, 0, "runaway"), (0.0, 1, "runaway"), (0.05, 0, "stable"), (0.05, 1, "stable")]
+    assert shown["filter"] == "n_odours == 4"
+    table = runner.invoke(app, ["query", str(store)])
+    assert table.exit_code == 0 and table.stderr.splitlines() == [
+        'filter: status == "done" and outcome == "stable" (default; --all for every point)']
+    everything = runner.invoke(app, ["query", str(store), "--all", "--format", "json"])
+    assert len(json.loads(everything.stdout)["rows"]) == 16  # 15 done and 1 pending point
+
+
+def test_rows_and_columns_follow_the_sweep_file_not_the_alphabet(tmp_path: Path) -> None:
+    """Axis values given out of order (count 3, 1; beta 0.05, 0.0) stay in that order; the columns are the
+    axes in sweep-file order, replicate, point_id, status, then the layout's scalars in layout order."""
+    axes = (key_axis("n_odours", "assemblies.count", (3, 1)),
+            key_axis("beta", "plasticity.heterosynaptic.beta", (0.05, 0.0)))
+    path = tmp_path / "order.zarr"
+    ids = np.array([f"q{i}" for i in range(4)], dtype=object).reshape(2, 2, 1)
+    create_store(path, GridSpec(axes, 1, 3, 3, 20, 0.5, "fp", {}), ids, np.arange(4).reshape(2, 2, 1))
+    frame = point_table(open_dataset(path))
+    assert [(r.n_odours, r.beta) for r in frame.itertuples()] == [(3, 0.05), (3, 0.0), (1, 0.05), (1, 0.0)]
+    assert list(frame["point_id"]) == ["q0", "q1", "q2", "q3"]
+    scalars = [v.name for v in VARIABLES if v.inner is None]
+    assert list(frame.columns[:5]) == ["n_odours", "beta", "replicate", "point_id", "status"]
+    assert list(frame.columns[5:5 + len(scalars)]) == scalars
+
+
+def test_integers_stay_integers_and_missing_values_are_empty(store: Path) -> None:
+    """recalled_count 2 at count 3, beta 0, replicate 1 (SPECIAL); the pending point (1, 0.05, 1) has none."""
+    runner = CliRunner()
+    rows = json.loads(runner.invoke(app, ["query", str(store), "--all", "--format", "json"]).stdout)["rows"]
+    by_point = {(r["n_odours"], r["beta"], r["replicate"]): r for r in rows}
+    assert by_point[(3, 0.0, 1)]["recalled_count"] == 2 and isinstance(by_point[(3, 0.0, 1)]["recalled_count"], int)
+    assert isinstance(by_point[(3, 0.0, 1)]["n_synapses"], int)
+    assert by_point[(1, 0.05, 1)]["recalled_count"] is None and by_point[(1, 0.05, 1)]["status"] == "pending"
+    table = pd.read_csv(io.StringIO(runner.invoke(app, ["query", str(store), "--all", "--format", "csv"]).stdout),
+                        dtype=str, keep_default_na=False)
+    assert list(table["recalled_count"][:4]) == ["1", "1", "1", ""]  # count 1: beta 0 (x2), beta 0.05 (done, pending)
+    assert table["n_synapses"][0] == "1000"
+
+
+def test_csv_and_json_carry_the_store_units(tmp_path: Path) -> None:
+    """A hold-duration axis (protocol.hold_s, seconds) gets 'hold [s]'; names that end in their unit keep
+    their name; dimensionless columns and labels get no unit. Units as declared in results_schema/layout.py."""
+    axes = (key_axis("hold", "protocol.hold_s", (5.0, 10.0)),)
+    path = tmp_path / "units.zarr"
+    create_store(path, GridSpec(axes, 1, 3, 3, 20, 0.5, "fp", {}), np.array([["a"], ["b"]], dtype=object),
+                 np.arange(2).reshape(2, 1))
+    runner = CliRunner()
+    header = runner.invoke(app, ["query", str(path), "--all", "--format", "csv"]).stdout.splitlines()[0].split(",")
+    assert header[:3] == ["hold [s]", "replicate", "point_id"]
+    assert "wall_time_s" in header and "rate_exc_baseline_hz" in header and "recalled_count" in header
+    units = json.loads(runner.invoke(app, ["query", str(path), "--all", "--format", "json"]).stdout)["units"]
+    assert units["hold"] == "s" and units["wall_time_s"] == "s" and units["rate_exc_baseline_hz"] == "Hz"
+    assert units["runaway_onset_s"] == "s"
+    assert not {"recalled_count", "recall_score_min", "outcome", "status", "point_id", "replicate"} & set(units)
+
+
+def test_status_lists_every_label_and_each_failed_point_with_its_error(tmp_path: Path) -> None:
+    path = _filled_store(tmp_path, {(1, 0, 0): None})
+    shown = CliRunner().invoke(app, ["status", str(path), "--failed"])
+    assert shown.exit_code == 0, shown.output
+    lines = shown.stdout.splitlines()
+    counts = next(line for line in lines if line.startswith("status:")).removeprefix("status:").split(",")
+    assert [c.split()[0] for c in counts] == list(STATUSES)
+    assert dict(c.split() for c in counts) == {**{s: "0" for s in STATUSES}, "done": "7", "failed": "1"}
+    failed = [line for line in lines if line.startswith("failed ")]
+    assert failed == ["failed n_odours=2 beta=0.0 replicate=0 (p2): RuntimeError: worker lost"]
+
+
+def test_status_of_a_store_with_nothing_done_says_so(tmp_path: Path) -> None:
+    path = tmp_path / "empty.zarr"
+    create_store(path, GridSpec(AXES, 1, 4, 3, 20, 0.5, "fp", {}), np.array([f"p{i}" for i in range(8)],
+                 dtype=object).reshape(4, 2, 1), np.arange(8).reshape(4, 2, 1))
+    shown = CliRunner().invoke(app, ["status", str(path)])
+    assert shown.exit_code == 0 and "nan" not in shown.stdout
+    assert shown.stdout.splitlines()[-1] == "no point done yet"
+
+
+@pytest.mark.parametrize("command", ["status", "query", "capacity", "plot", "export"])
+def test_a_sweep_file_instead_of_a_store_names_its_store(tmp_path: Path, command: str) -> None:
+    sweep = tmp_path / "odour.toml"
+    sweep.write_text('[sweep]\nname = "odour-pointer"\nstore = "results/odour-pointer.zarr"\n\n'
+                     '[[sweep.axis]]\nname = "n_odours"\nkey = "assemblies.count"\nvalues = [1, 2]\n')
+    shown = CliRunner().invoke(app, [command, str(sweep), *(["--csv", str(tmp_path / "x.csv")]
+                                                          if command == "export" else [])])
+    assert shown.exit_code != 0 and "Traceback" not in shown.output and shown.output.count("\n") == 1
+    assert shown.stderr.strip() == (f"capsweep: error: {sweep} is a sweep file; its store is results/odour-pointer.zarr "
+                                    f"(run `capsweep {command} results/odour-pointer.zarr`)")

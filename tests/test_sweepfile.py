@@ -49,7 +49,9 @@ def run_cli(tmp_path: Path, text: str) -> tuple[int, str]:
 @pytest.mark.parametrize(
     ("edit", "needles"),
     [
-        (("n_exc = 200", "n_excc = 200"), ["network.n_excc", "network.n_exc", "valid keys"]),
+        (("n_exc = 200", "n_excc = 200"), ["unknown key network.n_excc", "did you mean network.n_exc?"]),
+        (("n_exc = 200", "n_foo = 200"), ["unknown key network.n_foo", "valid keys here: network.n_exc,"]),
+        (("replicates = 2", "replicats = 2"), ["unknown key sweep.replicats", "did you mean sweep.replicates?"]),
         (("n_exc = 200", "n_exc = 5"), ["network.n_exc = 5", "from 20 to 50000"]),
         (("n_exc = 200", 'n_exc = "many"'), ["network.n_exc = 'many'", "an integer"]),
         (("size = 40", 'overlap = "sometimes"'), ["assemblies.overlap", "'disjoint', 'random'"]),
@@ -59,13 +61,18 @@ def run_cli(tmp_path: Path, text: str) -> tuple[int, str]:
         (("values = [1, 2]", "values = []"), ["non-empty list"]),
         (("values = [1, 2]", "values = [1, -3]"), ["assemblies.count = -3", "from 0 to 1000"]),
         (('name = "n_assemblies"', 'name = "replicate"'), ["'replicate'", "identifier"]),
-        (("[network]", "[netwerk]"), ["[netwerk]", "[network]"]),
+        (("[network]", "[netwerk]"), ["unknown table [netwerk]", "did you mean [network]?"]),
         (("values = [1, 2]", "values = [1, 2]\nunit = 3"), ["unknown key 'unit'", "name, key, values"]),
         (('store = "{store}"', "store = "), ["not valid TOML"]),
         (("values = [1, 2]", "values = [1, 6]"), ["6 x 40", "network.n_exc (200)", "n_assemblies=6"]),
         (('key = "assemblies.count"', 'key = "network.dt_ms"'), ["network.dt_ms cannot be swept"]),
         (("size = 40", "size = 40\n[plasticity.heterosynaptic]\nbeta = nan"), ["beta = nan", "from 0 to 10"]),
         (("size = 40", "size = 40\n[protocol]\nhold_s = inf"), ["hold_s = inf", "from 0 to 1e+06"]),
+        (("size = 40", "size = 40\n[protocol]\nhold_s = -inf"), ["hold_s = -inf", "from 0 to 1e+06 (s)"]),
+        (("size = 40", "size = 40\n[protocol]\nretention_delays_s = [1.0, nan]"), ["retention_delays_s = [1.0, nan]"]),
+        (("values = [1, 2]", "values = [1, nan]"), ["assemblies.count = nan", "n_assemblies"]),
+        (("values = [1, 2]", "values = [1, 2]\n[[sweep.axis]]\nname = \"rule\"\n[sweep.axis.variants]\n"
+          "slow = { \"plasticity.triplet.tau_slow_ms\" = inf }"), ["plasticity.triplet.tau_slow_ms = inf", "variant slow"]),
         (("size = 40", "size = 40\n[protocol]\nretention_delays_s = [3.0, 1.0]"),
          ["retention_delays_s = [3.0, 1.0]", "increasing list"]),
         (("size = 40", "size = 40\n[protocol]\nhold_s = 4.0\nretention_delays_s = [1.0, 1.5]"),
@@ -150,6 +157,23 @@ def test_point_id_ignores_execution_settings_and_axis_order() -> None:
 def test_every_key_default_is_allowed() -> None:
     for key in KEYS:
         assert key.check(key.default) == key.default, key.path
+
+
+def test_every_key_default_is_plausible() -> None:
+    """Defaults never draw a unit-slip warning."""
+    for key in KEYS:
+        assert key.implausible(key.default) is None, key.path
+
+
+@pytest.mark.parametrize(("edit", "unit"), [(("n_exc = 200", "n_exc = 5"), None), (("size = 40", "size = 40\noverlap = 1"), None),
+                                            (("n_exc = 200", "n_exc = 200\ndelay_ms = 0"), "(ms)"),
+                                            (("n_exc = 200", "n_exc = 200\nw_e_to_e = -1"), "(g_leak)")])
+def test_messages_show_units_only_where_values_have_one(tmp_path: Path, edit: tuple[str, str], unit: str | None) -> None:
+    """Counts, choices and switches are dimensionless (unit "1"): no "(1)" after what is allowed."""
+    code, output = run_cli(tmp_path, GOOD.replace(*edit))
+    assert code == 2
+    assert "(1)" not in output
+    assert unit is None or unit in output, output
 
 
 VARIANTS = """

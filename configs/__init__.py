@@ -1,0 +1,1 @@
+"""Example sweep files (``*.toml``), shipped as package data: ``capsweep examples`` lists and copies them."""

@@ -1,0 +1,118 @@
+"""Export a store for tools outside capsweep: a CF netCDF file of everything, a CSV of the point table.
+
+The store already carries CF metadata (``Conventions``, ``title``, ``history``, ``units``,
+``long_name``, flag attributes). What netCDF or CF does not allow is converted here, in the copy
+only: text arrays become netCDF strings, attributes holding lists of text or mappings become JSON
+text, flag_values take their variable's dtype, a sweep axis whose values are not numeric and
+strictly monotonic becomes an index coordinate with the values beside it (CF coordinate variables
+must be both), and capsweep's relative weight unit becomes "1" with a comment.
+"""
+
+from __future__ import annotations
+
+import importlib.util
+import json
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import xarray as xr
+
+from ..errors import CapsweepError
+from ..results_schema.store import cf_root_attrs
+from .query import axis_keys, column_units, point_table, table_csv
+
+# Units of the store that UDUNITS does not know: CF unit to write and the comment that says what it means.
+RELATIVE_UNITS: dict[str, tuple[str, str]] = {
+    "g_leak": ("1", "weight in units of the leak conductance g_leak"),
+}
+AXIS_VALUE_SUFFIX = "_value"
+
+
+def write_netcdf(ds: xr.Dataset, source: Path, path: Path) -> None:
+    """Write the whole store ``ds`` (opened from ``source``) as a CF netCDF-4 file at ``path`` (a new file).
+
+    Raises CapsweepError if ``path`` exists or the netCDF4 package is missing.
+    """
+    _refuse_existing(path)
+    if importlib.util.find_spec("netCDF4") is None:
+        raise CapsweepError("--netcdf needs the netCDF4 package: pip install netCDF4")
+    partial = path.with_name(path.name + ".partial")
+    try:
+        netcdf_dataset(ds, f"capsweep export: {source} -> {path}").to_netcdf(partial, engine="netcdf4",
+                                                                             format="NETCDF4")
+        partial.rename(path)
+    finally:
+        partial.unlink(missing_ok=True)
+
+
+def write_csv(ds: xr.Dataset, path: Path) -> None:
+    """Write every point of ``ds`` as CSV at ``path`` (a new file), headers with units as ``query`` writes them."""
+    frame = point_table(ds)
+    text = table_csv(frame, column_units(ds, list(frame.columns)))
+    try:
+        with path.open("x") as handle:
+            handle.write(text)
+    except FileExistsError:
+        _refuse_existing(path)
+
+
+def netcdf_dataset(ds: xr.Dataset, history_line: str) -> xr.Dataset:
+    """A loaded copy of ``ds`` that netCDF-4 can hold and CF accepts; ``history_line`` is appended to ``history``."""
+    out = ds.load().copy()
+    for name in list(out.variables):
+        out[name] = _netcdf_variable(out[name].variable, is_coordinate=name in out.coords)
+    for axis in axis_keys(ds):
+        out = _index_axis(out, axis) if not _is_cf_coordinate(out[axis].values) else out
+    defaults = cf_root_attrs(str(ds.attrs.get("sweep_name", "")), str(ds.attrs.get("created_utc", "")))
+    attrs = {**defaults, **ds.attrs}
+    attrs["history"] = f"{attrs['history']}\n{datetime.now(UTC).isoformat(timespec='seconds')} {history_line}"
+    out.attrs = {key: _netcdf_attr(value) for key, value in attrs.items()}
+    return out
+
+
+def _netcdf_variable(var: xr.Variable, is_coordinate: bool) -> xr.Variable:
+    """``var`` with text as object strings, only the dtype and fill encodings, legal attrs and flag dtypes."""
+    text = var.dtype.kind not in "biuf"
+    data = np.asarray(var.values, dtype=object) if text else var.values
+    encoding = {key: var.encoding[key] for key in ("dtype", "_FillValue") if key in var.encoding and not text}
+    if is_coordinate:
+        encoding["_FillValue"] = None  # CF: coordinate variables have no missing values
+    attrs = {key: _netcdf_attr(value) for key, value in var.attrs.items()}
+    if "flag_values" in attrs:
+        attrs["flag_values"] = np.asarray(var.attrs["flag_values"], dtype=encoding.get("dtype", var.dtype))
+    if attrs.get("units") in RELATIVE_UNITS:
+        attrs["units"], attrs["comment"] = RELATIVE_UNITS[attrs["units"]]
+    return xr.Variable(var.dims, data, attrs, encoding)
+
+
+def _is_cf_coordinate(values: np.ndarray) -> bool:
+    """Whether ``values`` may be a CF coordinate variable: numeric and strictly monotonic."""
+    if values.dtype.kind not in "iuf":
+        return False
+    steps = np.diff(values.astype(float))
+    return bool(np.all(steps > 0) or np.all(steps < 0))
+
+
+def _index_axis(ds: xr.Dataset, axis: str) -> xr.Dataset:
+    """Replace the coordinate of ``axis`` by 0..n-1 and keep its values as the auxiliary coordinate ``<axis>_value``."""
+    values = ds[axis].variable
+    index = xr.Variable(axis, np.arange(values.size), {"units": "1", "long_name": f"index along the {axis} axis"},
+                        {"_FillValue": None})
+    return ds.assign_coords({axis: index, axis + AXIS_VALUE_SUFFIX: values})
+
+
+def _netcdf_attr(value: Any) -> Any:
+    """An attribute value netCDF can hold: text and numbers as they are, numeric lists as arrays, the rest as JSON."""
+    if isinstance(value, str | int | float | np.ndarray | np.number) and not isinstance(value, bool):
+        return value
+    if isinstance(value, list | tuple) and value and all(isinstance(v, int | float) and not isinstance(v, bool)
+                                                         for v in value):
+        return np.asarray(value)
+    return json.dumps(value)
+
+
+def _refuse_existing(path: Path) -> None:
+    if path.exists():
+        raise CapsweepError(f"{path} already exists; capsweep export never overwrites a file: choose another path")

@@ -1,0 +1,270 @@
+"""Figures of a store, read back from their matplotlib objects: ticks, intervals, pending cells, legends,
+shaded cue windows, and that no option combination ends in a traceback or leaves files behind.
+
+The store is real (Zarr, created from a sweep file's text as ``capsweep run`` creates it) and filled
+with invented point results (the simulation is tested elsewhere), laid out in PATTERN.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pytest
+import xarray as xr
+from matplotlib.collections import LineCollection
+from typer.testing import CliRunner
+
+from capsweep.results_schema.dataset import open_dataset
+from capsweep.results_schema.layout import VARIABLES
+from capsweep.results_schema.store import ResultStore, create_store
+from capsweep.sweeps.capacity import capacity_table, success_table
+from capsweep.sweeps.cli import app
+from capsweep.sweeps.expand import expand, grid_spec, id_and_seed_arrays
+from capsweep.sweeps.plots import (
+    all_plots,
+    capacity_against,
+    capacity_curves,
+    map_axes,
+    point_schedules,
+    prediction_confusion,
+    rate_traces,
+    stability_map,
+    weight_drift,
+)
+from capsweep.sweeps.sweepfile import parse_sweep
+
+SETTLE_S, HOLD_S, RETENTION_S, CUE_S, GAP_S = 1.0, 3.0, 0.5, 0.2, 0.5
+SWEEP = f"""
+[sweep]
+name = "odour-plot-test"
+store = "unused.zarr"
+replicates = 2
+base_seed = 11
+
+[[sweep.axis]]
+name = "n_odours"
+key = "assemblies.count"
+values = [1, 2, 3]
+
+[[sweep.axis]]
+name = "beta"
+key = "plasticity.heterosynaptic.beta"
+values = [0.0, 0.05]
+
+[network]
+n_exc = 100
+
+[assemblies]
+size = 20
+
+[protocol]
+settle_s = {SETTLE_S}
+hold_s = {HOLD_S}
+retention_delays_s = [{RETENTION_S}]
+cue_duration_s = {CUE_S}
+cue_gap_s = {GAP_S}
+"""
+# (count index, beta index, replicate) -> (outcome, recalled, predicted); not listed: stable, all recalled,
+# predicted stable. "pending" leaves the point unwritten.
+PATTERN: dict[tuple[int, int, int], tuple[str, int, str] | str] = {
+    (1, 0, 1): ("stable", 1, "stable"),  # beta 0, count 2: one assembly lost in replicate 1
+    (2, 0, 0): ("runaway", 0, "runaway"), (2, 0, 1): ("runaway", 0, "stable"),  # beta 0, count 3 runs away
+    (1, 1, 0): "pending", (1, 1, 1): "pending",  # beta 0.05, count 2: nothing done yet
+    (2, 1, 0): ("stable", 2, "stable"),  # beta 0.05, count 3: one assembly lost in replicate 0
+}
+STOPPED_S = 3.0  # where the runaway points' runs stop (early abort)
+WRONG_CUES = (0, 1, 1)  # this point stores a final cue time its sweep file cannot give
+
+
+def invented(count: int, outcome: str, recalled: int, predicted: str, seed: int, n_bins: int,
+             cue_time_s: float = np.nan) -> dict:
+    """A runner result with every layout variable; recall scores 0.9 for recalled assemblies, 0.1 else."""
+    out: dict = {v.name: np.full(1, np.nan) if v.inner else np.nan for v in VARIABLES if v.dtype == "float64"}
+    score = np.where(np.arange(count) < recalled, 0.9, 0.1)
+    stopped = STOPPED_S if outcome == "runaway" else np.nan
+    out.update({
+        "outcome": outcome, "predicted_outcome": predicted, "engine": "cython", "seed": seed,
+        "recalled_count": recalled, "n_synapses": 1000, "retention_recalled": [recalled], "recall_score": score,
+        "simulated_time_s": stopped if outcome == "runaway" else 20.0,
+        "weight_correlation": np.array([1.0, 0.9, 0.8]), "snapshot_time_s": np.array([1.0, 2.0, 3.0]),
+        "rate_exc_hz": np.full(n_bins, 3.0), "cue_time_s": np.full(count, cue_time_s),
+    })
+    return out
+
+
+@pytest.fixture(scope="module")
+def store(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The PATTERN store, created from SWEEP's text as a run creates it (root attr ``sweep_text``)."""
+    sweep = parse_sweep(SWEEP)
+    points = expand(sweep)
+    path = tmp_path_factory.mktemp("plots") / "odour.zarr"
+    grid = grid_spec(sweep, points, {"sweep_text": SWEEP})
+    create_store(path, grid, *id_and_seed_arrays(sweep, points))
+    writer = ResultStore.open(path)
+    for p in points:
+        count = p.config["assemblies"]["count"]
+        spec = PATTERN.get(p.index, ("stable", count, "stable"))
+        if spec != "pending":
+            cue_time_s = 99.0 if p.index == WRONG_CUES else np.nan
+            writer.write_point(p.index, invented(count, *spec, p.seed, grid.n_time_bin, cue_time_s))
+    return path
+
+
+@pytest.fixture(scope="module")
+def ds(store: Path) -> xr.Dataset:
+    return open_dataset(store)
+
+
+def _labels(ticks: list) -> list[str]:
+    return [t.get_text() for t in ticks]
+
+
+def test_stability_map_ticks_pooling_wilson_and_pending_cell(ds: xr.Dataset) -> None:
+    """x n_odours, y beta, pooled over replicates: beta 0 succeeds 2/2, 1/2, 0/2; beta 0.05 2/2, pending, 1/2."""
+    fig = stability_map(ds, "n_odours", "beta")
+    ax = fig.axes[0]
+    assert _labels(ax.get_xticklabels()) == ["1", "2", "3"]  # integer axis: no "1.0"
+    assert "pooled over replicate" in ax.get_title()
+    image = ax.get_images()[0].get_array()
+    assert image.mask[1, 1] and not image.mask.sum() - 1  # only the pending cell has no fraction, not 0
+    np.testing.assert_allclose(image.data[0], [1.0, 0.5, 0.0])
+    cells = {(round(t.get_position()[0]), round(t.get_position()[1])): t.get_text() for t in ax.texts}
+    assert cells[(1, 1)] == "2 pending"
+    assert cells[(1, 0)].splitlines()[0] == "0.50 (n=2)"
+    table = success_table(ds).set_index(["n_odours", "beta"])  # one replicate pair per cell: same interval
+    low, high = table.loc[(2, 0.0), ["wilson_lo", "wilson_hi"]]
+    assert cells[(1, 0)].splitlines()[1] == f"[{low:.2f}, {high:.2f}]"
+    assert cells[(2, 0)].splitlines()[2] == "R 1.00"  # both count-3 points ran away
+
+
+def test_stability_map_without_a_second_axis_is_one_row(ds: xr.Dataset) -> None:
+    """A store with one axis (beta fixed here) maps n_odours against nothing: one row, no y ticks."""
+    one_axis = ds.isel(beta=0)
+    assert map_axes(one_axis) == ("n_odours", None)
+    ax = stability_map(one_axis, "n_odours").axes[0]
+    assert ax.get_images()[0].get_array().shape == (1, 3) and not ax.get_yticks().size
+
+
+def test_capacity_curve_bars_are_the_wilson_intervals_and_pending_counts_are_not_drawn(ds: xr.Dataset) -> None:
+    fig = capacity_curves(ds)
+    ax = fig.axes[0]
+    assert all(float(v).is_integer() for v in ax.get_xticks()) and _labels(ax.get_xticklabels()) == ["1", "2", "3"]
+    table = success_table(ds)
+    for container, (_, rows) in zip(ax.containers, table.groupby("beta", sort=False)):
+        done = rows[rows["n"] > 0]
+        x, y = container.lines[0].get_data()
+        np.testing.assert_allclose(np.round(np.asarray(x, float)), done["n_odours"])  # beta 0.05 skips count 2 (pending), no 0
+        np.testing.assert_allclose(np.asarray(y, float), done["fraction"])
+        segments = container.lines[2][0].get_segments()
+        np.testing.assert_allclose([s[0][1] for s in segments], done["wilson_lo"])
+        np.testing.assert_allclose([s[1][1] for s in segments], done["wilson_hi"])
+    assert sum(t.get_text() == "pending" for t in ax.texts) == 1
+
+
+def test_capacity_against_beta_bars_are_the_replicate_ranges(ds: xr.Dataset) -> None:
+    """beta 0: counts 1 (2/2), 2 (1/2), 3 (0/2) -> capacity 2, replicates 2 and 1; beta 0.05 pending: NA."""
+    ax = capacity_against(ds, "beta").axes[0]
+    table = capacity_table(ds).set_index("beta")
+    assert table.loc[0.0, "capacity"] == 2
+    (bars,) = [c for c in ax.collections if isinstance(c, LineCollection) and c.get_gid() == "replicate_range"]
+    ((x, lo), (_, hi)), = bars.get_segments()
+    assert (x, lo, hi) == (0.0, table.loc[0.0, "capacity_lo"], table.loc[0.0, "capacity_hi"]) == (0.0, 1, 2)
+    assert [t.get_text() for t in ax.texts] == ["NA: pending"]
+    assert _labels(ax.get_xticklabels()) == ["0", "0.05"]
+    assert all(float(v).is_integer() for v in ax.yaxis.get_major_locator().tick_values(0, 2))
+
+
+def test_legends_list_only_outcomes_present(ds: xr.Dataset) -> None:
+    """PATTERN has stable and runaway points, no silent one."""
+    legend = weight_drift(ds).axes[0].get_legend()
+    assert [t.get_text() for t in legend.get_texts()] == ["stable (n=8)", "runaway (n=2)"]
+
+
+def test_prediction_confusion_counts_done_points(ds: xr.Dataset) -> None:
+    """Predicted stable: 8 simulated stable and 1 runaway; predicted runaway: the other runaway (by hand)."""
+    ax = prediction_confusion(ds).axes[0]
+    np.testing.assert_array_equal(ax.get_images()[0].get_array(), [[8, 1, 0], [0, 1, 0], [0, 0, 0]])
+    assert "9 of 10 done points agree" in ax.get_title()
+
+
+def _spans(ax, gid: str) -> list[tuple[float, float]]:
+    return sorted((p.get_x(), p.get_x() + p.get_width()) for p in ax.patches if p.get_gid() == gid)
+
+
+def test_rate_trace_panels_name_their_point_and_shade_the_cues(ds: xr.Dataset) -> None:
+    """Prewired assemblies, so no imprint phase: the hold starts after settle; a recall test at RETENTION_S
+    into the hold and one at its end cue each assembly for CUE_S, one every CUE_S + GAP_S [derived from
+    the protocol description in runners/protocol.py]. The cue order differs per point; the spans do not."""
+    fig = rate_traces(ds, point_schedules(ds), per_outcome=1)
+    panels = [ax for ax in fig.axes if ax.get_visible()]
+    titles = [ax.get_title() for ax in panels]
+    assert titles == ["n_odours=1, beta=0, replicate 0: stable", "n_odours=3, beta=0, replicate 0: runaway"]
+    runaway = panels[1]
+    starts = [SETTLE_S + RETENTION_S, SETTLE_S + HOLD_S]
+    expected = sorted((s + k * (CUE_S + GAP_S), s + k * (CUE_S + GAP_S) + CUE_S) for s in starts for k in range(3))
+    np.testing.assert_allclose(_spans(runaway, "cue"), expected, atol=1e-9)
+    np.testing.assert_allclose(_spans(runaway, "settle"), [(0.0, SETTLE_S)])
+    assert not _spans(runaway, "imprint")
+    assert [line.get_xdata()[0] for line in runaway.lines if line.get_gid() == "stopped"] == [STOPPED_S]
+    assert not [line for line in panels[0].lines if line.get_gid() == "stopped"]
+
+
+def test_a_timeline_that_disagrees_with_the_stored_cue_times_is_not_shaded(ds: xr.Dataset) -> None:
+    schedules = point_schedules(ds)
+    assert WRONG_CUES not in schedules and len(schedules) == ds["status"].size - 1
+    assert point_schedules(ds.assign_attrs(sweep_text="")) == {}
+
+
+def test_formats_and_dpi_are_written(ds: xr.Dataset, tmp_path: Path) -> None:
+    written = all_plots(ds, tmp_path, formats=["svg,pdf", "png"], dpi=60, capacity_axis="beta")
+    by_suffix = {s: sorted(p.stem for p in written.paths if p.suffix == s) for s in (".svg", ".pdf", ".png")}
+    assert by_suffix[".svg"] == by_suffix[".pdf"] == by_suffix[".png"]
+    assert set(by_suffix[".png"]) == {"stability_map", "rate_traces", "weight_drift", "capacity_curves",
+                                      "recall_per_assembly", "capacity_against_beta", "predicted_vs_simulated"}
+    png = (tmp_path / "stability_map.png").read_bytes()
+    assert png[:8] == b"\x89PNG\r\n\x1a\n"
+    width_in = stability_map(ds, "n_odours", "beta").get_size_inches()[0]
+    assert int.from_bytes(png[16:20], "big") == round(width_in * 60)  # PNG IHDR width, big endian (common practice)
+    assert (tmp_path / "stability_map.svg").read_text().lstrip().startswith("<?xml")
+    assert (tmp_path / "stability_map.pdf").read_bytes()[:5] == b"%PDF-"
+
+
+DIMS = ("n_odours", "beta", "replicate")
+
+
+@pytest.mark.parametrize(("x", "y"), [*((d, None) for d in DIMS), *((None, d) for d in DIMS), *((d, d) for d in DIMS),
+                                      ("odours", None), (None, "odours")])
+def test_no_option_combination_ends_in_a_traceback(store: Path, tmp_path: Path, x: str | None,
+                                                   y: str | None) -> None:
+    """Each sweep dim as --x, each as --y, each as both, unknown names: exit 0 with the figures, or one
+    error line naming the option and the allowed dims, and no folder."""
+    out = tmp_path / "figs"
+    args = ["plot", str(store), "--out", str(out), "--dpi", "50"]
+    args += ["--x", x] if x else []
+    args += ["--y", y] if y else []
+    result = CliRunner().invoke(app, args)
+    assert "Traceback" not in result.output
+    assert result.exception is None or isinstance(result.exception, SystemExit)
+    chosen_x = x or ("beta" if y == "n_odours" else "n_odours")
+    if "odours" in (x, y) or chosen_x == y:
+        assert result.exit_code == 2 and not out.exists()
+        line, = result.output.strip().splitlines()
+        assert ("--x" if x == "odours" else "--y") in line and all(d in line for d in DIMS if d != x)
+    else:
+        assert result.exit_code == 0, result.output
+        assert (out / "stability_map.png").exists()
+
+
+@pytest.mark.parametrize("extra", [["--format", "gif"], ["--dpi", "0"], ["--capacity-against", "n_odours"],
+                                   ["--capacity-against", "odours"], []])
+def test_bad_output_options_and_a_file_as_out_are_one_line(store: Path, tmp_path: Path, extra: list[str]) -> None:
+    """Each is refused before anything is written; with no bad option, --out names an existing file."""
+    out = tmp_path / "figs" if extra else tmp_path / "figs.png"
+    if not extra:
+        out.write_bytes(b"keep")
+    result = CliRunner().invoke(app, ["plot", str(store), "--out", str(out), *extra])
+    assert result.exit_code == 2 and "Traceback" not in result.output
+    line, = result.output.strip().splitlines()
+    assert (extra[0] if extra else "--out") in line
+    assert out.read_bytes() == b"keep" if not extra else not out.exists()
