@@ -8,7 +8,9 @@ the leak conductance (``g_leak``), which makes them dimensionless.
 
 from __future__ import annotations
 
+import difflib
 import math
+from collections.abc import Iterable
 from dataclasses import dataclass
 from typing import Any
 
@@ -28,11 +30,41 @@ class Key:
     high: float | None = None
     choices: tuple[str, ...] = ()
     sweepable: bool = True
+    plausible: tuple[float, float] | None = None  # overrides the range PLAUSIBLE_BY_SUFFIX gives the key's unit
 
     @property
     def kind(self) -> type:
         """Python type of the value (bool, int, float, str, or tuple for a list of numbers)."""
         return type(self.default)
+
+    @property
+    def shown_unit(self) -> str:
+        """The unit as shown to users: empty for dimensionless values (unit "1")."""
+        return "" if self.unit == DIMENSIONLESS else self.unit
+
+    @property
+    def plausible_range(self) -> tuple[float, float] | None:
+        """Values outside this range are allowed but look like a unit slip (same unit as the key).
+
+        None when the key has no such range or when the allowed range already lies within it.
+        """
+        span = self.plausible or next((r for suffix, r in PLAUSIBLE_BY_SUFFIX.items() if self.path.endswith(suffix)),
+                                      None)
+        if span is None:
+            return None
+        narrower = self.low is None or span[0] > self.low or self.high is None or span[1] < self.high
+        return span if narrower else None
+
+    def implausible(self, value: Any, where: str = "") -> str | None:
+        """A one-line warning if a checked ``value`` (or an item of it) lies outside the plausible range, else None."""
+        span = self.plausible_range
+        items = value if isinstance(value, tuple) else (value,)
+        if span is None or all(span[0] <= v <= span[1] for v in items):
+            return None
+        place = f" in {where}" if where else ""
+        unit = f" {self.shown_unit}" if self.shown_unit else ""
+        return (f"{self.path} = {_shown(value)}{place} is outside the plausible range {span[0]:g} to {span[1]:g}{unit}"
+                " (a unit slip?)")
 
     def allowed(self) -> str:
         """Human-readable statement of what values this key accepts."""
@@ -51,9 +83,9 @@ class Key:
     def check(self, value: Any, where: str = "") -> Any:
         """Return ``value`` coerced to this key's type, or raise ConfigError naming the key."""
         place = f" in {where}" if where else ""
+        unit = f" ({self.shown_unit})" if self.shown_unit else ""
         bad = ConfigError(
-            f"{self.path} = {value!r}{place} is not allowed: expected {self.allowed()}"
-            f" ({self.unit}). {self.description}."
+            f"{self.path} = {value!r}{place} is not allowed: expected {self.allowed()}{unit}. {self.description}."
         )
         if self.kind is bool:
             if not isinstance(value, bool):
@@ -100,6 +132,25 @@ class Key:
 
 def _k(path: str, default: Any, unit: str, description: str, **kw: Any) -> Key:
     return Key(path, default, unit, description, **kw)
+
+
+def _shown(value: Any) -> str:
+    """A checked value as written in a sweep file (a list key's tuple as a list)."""
+    return repr(list(value)) if isinstance(value, tuple) else repr(value)
+
+
+DIMENSIONLESS = "1"
+"""The unit of counts, fractions, switches and choices (shown as no unit)."""
+PLAUSIBLE_BY_SUFFIX: dict[str, tuple[float, float]] = {
+    "_hz": (0.0, 1000.0),
+    "_ms": (0.0, 10_000.0),
+    "_s": (0.0, 3600.0),
+}
+"""Plausible range of a value by its key's unit suffix: beyond it, a value is more likely a unit slip than meant."""
+
+
+class ImplausibleValue(UserWarning):
+    """A sweep-file value is allowed but outside its key's plausible range (a warning, never an error)."""
 
 
 KEYS: tuple[Key, ...] = (
@@ -157,11 +208,18 @@ KEYS: tuple[Key, ...] = (
     _k("plasticity.heterosynaptic.enabled", True, "1", "Heterosynaptic term on E->E"),
     _k("plasticity.heterosynaptic.beta", 0.03, "1", "Heterosynaptic coefficient beta", low=0.0, high=10.0),
     _k("plasticity.heterosynaptic.w_ref_mode", "fixed", "1",
-       "Reference weight: fixed at the initial weight, or consolidating",
-       choices=("fixed", "consolidating")),
+       "Reference weight: fixed at the initial weight, consolidating (relaxes toward the weight), or bistable "
+       "(consolidates into one of two stable states, Zenke, Agnes & Gerstner 2015)",
+       choices=("fixed", "consolidating", "bistable")),
     _k("plasticity.heterosynaptic.tau_consolidation_s", 1200.0, "s",
-       "Time constant of the consolidating reference weight",
+       "Time constant of the consolidating or bistable reference weight",
        low=0.1, high=1e6),
+    _k("plasticity.heterosynaptic.bistable_strength", 80.0, "1/g_leak^2",
+       "Strength P of the bistable term of the reference weight (w_ref_mode = 'bistable'; 0 = linear relaxation); "
+       "default 80 keeps P w_P^2 = 5 as the published P = 20, w_P = 0.5", low=0.0, high=1e6),
+    _k("plasticity.heterosynaptic.bistable_upper_weight", 0.25, "g_leak",
+       "Upper stable state w_P of the bistable reference weight (lower state 0, unstable point w_P/2); default "
+       "half the default triplet w_max, i.e. the prewired within-assembly weight", low=0.001, high=100.0),
     _k("plasticity.transmitter.enabled", True, "1", "Transmitter-induced term on E->E"),
     _k("plasticity.transmitter.delta", 1e-4, "g_leak", "Weight increment per presynaptic spike", low=0.0, high=1.0),
     _k("plasticity.inhibitory.enabled", True, "1", "Inhibitory STDP on I->E"),
@@ -172,7 +230,7 @@ KEYS: tuple[Key, ...] = (
     # --- protocol (plasticity stays on in every phase)
     _k("protocol.settle_s", 1.0, "s", "Settle phase duration", low=0.0, high=1e5),
     _k("protocol.imprint_rate_hz", 600.0, "Hz", "Extra Poisson rate onto members while imprinting (learned)",
-       low=0.0, high=1e5),
+       low=0.0, high=1e5, plausible=(0.0, 1e4)),
     _k("protocol.imprint_weight", 0.1, "g_leak", "Weight of the imprinting input", low=0.0, high=10.0),
     _k("protocol.imprint_on_s", 1.0, "s", "Stimulus on-time per presentation (learned)", low=0.001, high=1e4),
     _k("protocol.imprint_off_s", 1.0, "s", "Pause after each presentation (learned)", low=0.0, high=1e4),
@@ -184,7 +242,8 @@ KEYS: tuple[Key, ...] = (
     _k("protocol.snapshots", 5, "1", "Weight snapshots spread over the hold phase", low=2, high=1000, sweepable=False),
     _k("protocol.cue_fraction", 0.5, "1", "Fraction of an assembly's members cued", low=0.01, high=1.0),
     _k("protocol.cue_duration_s", 0.2, "s", "Cue duration", low=0.01, high=100.0),
-    _k("protocol.cue_rate_hz", 2000.0, "Hz", "Extra Poisson rate onto cued cells", low=0.0, high=1e5),
+    _k("protocol.cue_rate_hz", 2000.0, "Hz", "Extra Poisson rate onto cued cells", low=0.0, high=1e5,
+       plausible=(0.0, 1e4)),
     _k("protocol.cue_weight", 0.1, "g_leak", "Weight of the cue input", low=0.0, high=10.0),
     _k("protocol.cue_gap_s", 0.5, "s", "Background-only gap after each cue", low=0.05, high=100.0),
     _k("protocol.cue_skip_s", 0.02, "s", "Start of the cue period left out of the recall window", low=0.0, high=10.0),
@@ -224,6 +283,40 @@ KEYS: tuple[Key, ...] = (
     _k("execution.prescreen", False, "1", "Store the theory prescreen's predicted outcome beside each simulated one",
        sweepable=False),
     _k("execution.abort_on_runaway", True, "1", "Stop a point's simulation soon after runaway onset", sweepable=False),
+    _k("execution.checkpoint_interval_s", 0.0, "s",
+       "Simulated time between checkpoints of a point's full state, from which a killed point resumes with the same "
+       "result (0 = off; runtime engines only: standalone points fall back to cython)", low=0.0, high=1e6,
+       sweepable=False),
+    _k("execution.cluster.kind", "local", "1",
+       "Where the Dask workers run: local processes (execution.workers), an existing scheduler (execution.scheduler), "
+       "or batch jobs through dask-jobqueue (pip install 'capsweep[cluster]')",
+       choices=("local", "scheduler", "slurm", "pbs", "sge", "lsf", "htcondor"), sweepable=False),
+    _k("execution.cluster.queue", "", "1", "Batch queue or partition of the worker jobs ('' = the system's default)",
+       sweepable=False),
+    _k("execution.cluster.account", "", "1", "Account or project the worker jobs are charged to ('' = none)",
+       sweepable=False),
+    _k("execution.cluster.cores", 1, "1", "Cores per batch job: one single-threaded worker process per core",
+       low=1, high=256, sweepable=False),
+    _k("execution.cluster.memory_gb", 2.0, "GB", "Memory per batch job, shared by its worker processes",
+       low=0.1, high=4096.0, sweepable=False),
+    _k("execution.cluster.walltime_min", 60.0, "min", "Wall time of each batch job", low=1.0, high=100000.0,
+       sweepable=False),
+    _k("execution.cluster.retire_min", 5.0, "min",
+       "Workers retire gracefully between 1.5 and 0.5 times this before their job's wall time (staggered), "
+       "and new jobs replace them while points remain; below execution.cluster.walltime_min / 1.5",
+       low=0.1, high=100000.0, sweepable=False),
+    _k("execution.cluster.max_jobs", 4, "1", "Most batch jobs at once; jobs are released as the sweep drains",
+       low=1, high=10000, sweepable=False),
+    _k("execution.cluster.directives", "", "1",
+       "Extra job-script directives, separated by ';' (e.g. '--qos=short; --constraint=avx2')", sweepable=False),
+    _k("execution.cluster.python", "", "1",
+       "Python that starts the workers on the nodes ('' = the one running capsweep)", sweepable=False),
+    _k("execution.cluster.scratch", "", "1",
+       "Node-local directory for worker files and a per-node build cache ('' = the shared build cache, "
+       "$CAPSWEEP_BUILD_DIR or ~/.cache/capsweep/builds)", sweepable=False),
+    _k("execution.cluster.max_tries", 3, "1",
+       "Workers a point may take down before it is recorded failed (a crash or memory exhaustion); "
+       "local and batch clusters only", low=1, high=100, sweepable=False),
 )
 
 BY_PATH: dict[str, Key] = {k.path: k for k in KEYS}
@@ -235,20 +328,39 @@ def defaults() -> dict[str, Any]:
     return {k.path: k.default for k in KEYS}
 
 
+def closest(name: str, options: Iterable[str]) -> str | None:
+    """The option most like a misspelt ``name``, or None when none is close (difflib ratio below 0.7)."""
+    found = difflib.get_close_matches(name, list(options), n=1, cutoff=0.7)
+    return found[0] if found else None
+
+
+def did_you_mean(name: str, valid: Iterable[str], label: str = "valid keys") -> str:
+    """'did you mean X?' for the valid name closest to a misspelt ``name``, else ``label: a, b, ...``."""
+    valid = list(valid)
+    match = closest(name, valid)
+    return f"did you mean {match}?" if match else f"{label}: {', '.join(valid)}"
+
+
 def lookup(path: str, where: str = "") -> Key:
-    """Return the Key at ``path`` or raise ConfigError listing the valid keys nearest to it."""
+    """Return the Key at ``path`` or raise ConfigError naming the closest key (or the valid keys near it)."""
     if path in BY_PATH:
         return BY_PATH[path]
     place = f" in {where}" if where else ""
     parent = next((p for p in _prefixes(path) if p in BY_PATH), None)
     if parent is not None:
         raise ConfigError(f"{parent}{place} must be a single value, not a table")
+    table, _, leaf = path.rpartition(".")
+    siblings = {p.rpartition(".")[2]: p for p in BY_PATH if p.rpartition(".")[0] == table}
+    # Within a known table compare the last names only: the shared table prefix would make any name look close.
+    match = siblings.get(closest(leaf, siblings) or "") if siblings else closest(path, BY_PATH)
+    if match is not None:
+        raise ConfigError(f"unknown key {path}{place}; did you mean {match}?")
     prefix = path
     valid: list[str] = []
     while not valid and "." in prefix:
         prefix = prefix.rsplit(".", 1)[0]
         valid = [p for p in BY_PATH if p.startswith(prefix + ".")]
-    raise ConfigError(f"unknown key {path!r}{place}; valid keys here: {', '.join(valid or BY_PATH)}")
+    raise ConfigError(f"unknown key {path}{place}; valid keys here: {', '.join(valid or BY_PATH)}")
 
 
 def nest(flat: dict[str, Any]) -> dict[str, Any]:

@@ -5,17 +5,23 @@ same :func:`build_key` rerun one binary. This module holds everything about buil
 need Brian2, so the sweep's client process can group points by build without importing it.
 
 Builds live in ``$CAPSWEEP_BUILD_DIR`` (default ``~/.cache/capsweep/builds``), one directory per
-build key beside its ``<key>.lock`` file.
+build key. The cache may sit on a filesystem shared by several hosts (each key compiled once
+across them) or on node-local scratch (each node compiles once): the compile lock is a directory
+``<key>.lock`` made with ``os.mkdir`` (atomic on local and network filesystems alike, unlike
+``fcntl`` locks over NFS), holding its holder's host, pid and a heartbeat time the holder renews.
 """
 
 from __future__ import annotations
 
 import contextlib
-import fcntl
 import hashlib
 import json
 import os
 import shutil
+import socket
+import threading
+import time
+import uuid
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -58,6 +64,8 @@ def unsupported(cfg: dict) -> str | None:
     bin_steps = cfg["detection"]["trace_bin_ms"] / cfg["network"]["dt_ms"]
     if abs(bin_steps - round(bin_steps)) > 1e-9:
         return "detection.trace_bin_ms is not a whole number of network.dt_ms steps"
+    if cfg["execution"]["checkpoint_interval_s"] > 0:
+        return "execution.checkpoint_interval_s > 0: within-point checkpoints need a runtime engine"
     return None
 
 
@@ -80,20 +88,120 @@ def build_root(root: str | os.PathLike | None = None) -> Path:
     return Path(root).expanduser()
 
 
+HEARTBEAT_S = 10.0
+"""How often (s) a lock's holder renews its heartbeat time."""
+STALE_AFTER_S = 300.0
+"""A lock whose heartbeat is older than this (s) is stale whatever its host: far above the heartbeat period and
+the clock skew of hosts kept by NTP (common practice: milliseconds)."""
+_HOLDER = "holder.json"
+_POLL_S = 0.5
+
+
 @contextlib.contextmanager
 def locked(path: Path, blocking: bool = True) -> Iterator[bool]:
-    """Hold an exclusive file lock on ``path``; yields False instead of waiting if not ``blocking`` and taken."""
+    """Hold the lock directory ``path`` (``<key>.lock``); yields False instead of waiting if not ``blocking`` and taken.
+
+    A lock is taken over when stale: its heartbeat is older than ``STALE_AFTER_S``, or its holder ran on
+    this host and its process is gone. The holder renews the heartbeat every ``HEARTBEAT_S`` from a
+    background thread while the ``with`` block runs (a compile takes minutes).
+    """
     path.parent.mkdir(parents=True, exist_ok=True)
-    with open(path, "w") as handle:
-        try:
-            fcntl.flock(handle, fcntl.LOCK_EX | (0 if blocking else fcntl.LOCK_NB))
-        except BlockingIOError:
+    while not _try_lock(path):
+        if not blocking:
             yield False
             return
+        time.sleep(_POLL_S)
+    stop = threading.Event()
+    beat = threading.Thread(target=_heartbeat, args=(path, stop), name="capsweep-build-lock", daemon=True)
+    beat.start()
+    try:
+        yield True
+    finally:
+        stop.set()
+        beat.join()
+        shutil.rmtree(path, ignore_errors=True)
+
+
+def _try_lock(path: Path) -> bool:
+    """Make the lock directory with this process's holder record, clearing a stale lock first. True if taken."""
+    for _ in range(2):  # once more after clearing a stale lock
         try:
-            yield True
-        finally:
-            fcntl.flock(handle, fcntl.LOCK_UN)
+            os.mkdir(path)
+        except FileExistsError:
+            held = _read_holder(path)
+            if held is None or not _is_stale(_parse(held)):
+                return False
+            _remove_if_unchanged(path, held)
+            continue
+        _write_holder(path)
+        return True
+    return False
+
+
+def _heartbeat(path: Path, stop: threading.Event) -> None:
+    while not stop.wait(HEARTBEAT_S):
+        _write_holder(path)
+
+
+def _write_holder(path: Path) -> None:
+    """Write host, pid and the heartbeat time (s since the epoch) into the lock, replacing the file atomically."""
+    record = json.dumps({"host": socket.gethostname(), "pid": os.getpid(), "heartbeat": time.time()})
+    partial = path / f".{uuid.uuid4().hex}"
+    partial.write_text(record)
+    os.replace(partial, path / _HOLDER)
+
+
+def _read_holder(path: Path) -> str | None:
+    """The lock's holder record; None if the lock is gone or too young to have one yet.
+
+    '' (stale) for a lock directory older than ``STALE_AFTER_S`` without a record, and for a lock *file* left by
+    earlier capsweep versions (an fcntl lock, which nobody holds in this form).
+    """
+    try:
+        return (path / _HOLDER).read_text()
+    except NotADirectoryError:
+        return ""
+    except FileNotFoundError:
+        try:
+            return "" if time.time() - path.stat().st_mtime > STALE_AFTER_S else None
+        except FileNotFoundError:
+            return None
+
+
+def _parse(held: str) -> dict:
+    """A holder record as a dict; empty if unreadable."""
+    try:
+        holder = json.loads(held)
+    except json.JSONDecodeError:
+        return {}
+    return holder if isinstance(holder, dict) else {}
+
+
+def _is_stale(holder: dict) -> bool:
+    """True if a build lock's holder record (host, pid, heartbeat) shows a dead holder; an empty record is stale."""
+    if not holder:
+        return True
+    if time.time() - float(holder.get("heartbeat", 0.0)) > STALE_AFTER_S:
+        return True
+    if holder.get("host") != socket.gethostname():
+        return False
+    try:
+        os.kill(int(holder.get("pid", 0)), 0)
+    except ProcessLookupError:
+        return True
+    except (PermissionError, ValueError, OverflowError):
+        return False
+    return False
+
+
+def _remove_if_unchanged(path: Path, held: str) -> None:
+    """Remove a stale lock if it still holds the record judged stale: renamed first, so one taker wins."""
+    if _read_holder(path) != held:
+        return
+    grave = path.with_name(f"{path.name}.stale-{uuid.uuid4().hex}")
+    with contextlib.suppress(OSError):
+        os.rename(path, grave)
+        shutil.rmtree(grave) if grave.is_dir() else grave.unlink()
 
 
 def _dir_bytes(path: Path) -> int:
@@ -109,7 +217,7 @@ def prune_builds(max_bytes: int, root: str | os.PathLike | None = None) -> int:
     base = build_root(root)
     if not base.is_dir():
         return 0
-    builds = [d for d in base.iterdir() if d.is_dir()]
+    builds = [d for d in base.iterdir() if d.is_dir() and not d.suffix]  # keys have no dot; locks end in .lock
     sizes = {d: _dir_bytes(d) for d in builds}
     total, removed = sum(sizes.values()), 0
     for build in sorted(builds, key=_last_used):
@@ -119,7 +227,6 @@ def prune_builds(max_bytes: int, root: str | os.PathLike | None = None) -> int:
             if not free:
                 continue
             shutil.rmtree(build, ignore_errors=True)
-        (base / f"{build.name}.lock").unlink(missing_ok=True)
         total -= sizes[build]
         removed += 1
     return removed

@@ -12,8 +12,8 @@ come from a 2-D TimedArray of rates over (time, channel) that drives one Poisson
 With ``standalone=True`` (C++ standalone with build reuse, see :mod:`capsweep.runners.standalone`) every
 constant becomes a ``(shared, constant)`` variable and every array value a setting that the
 caller passes per run; the background drive is a per-step Poisson count with a variable mean
-and the stimulus per-step kicks whose timing and targets a C++ function reads per run (see
-:func:`_variable_inputs`).
+(:func:`_drive_count`), and the standalone engine adds the stimulus (per-step kicks onto the
+driven cells only, whose timing and targets a C++ function reads per run).
 
 Neuron model (conductances in units of the leak conductance, dimensionless):
 ``tau_m dv/dt = (E_L - v) + g_e (E_exc - v) + g_i (E_inh - v) + g_a (E_inh - v)``; the
@@ -159,6 +159,39 @@ def _drive_constants(cfg: dict, adaptive: bool) -> dict[str, Any]:
     return {"drive_mean": n["drive_inputs"] * rate * n["dt_ms"] * 1e-3, "drive_weight": n["drive_weight"]}
 
 
+DRIVE_FUNCTION = "capsweep_drive_count"
+"""Name of the standalone drive's C++ function ``(mean, exp(-mean)) -> Poisson count`` (one draw per cell and step)."""
+
+_DRIVE_CODE = """
+// A Poisson count of mean lam, by inversion of one uniform draw; p0 = exp(-lam), hoisted out of the
+// loop over cells by Brian2 (lam is a shared constant). Brian2's poisson() recomputes exp(-lam) per call.
+int32_t DRIVE_NAME(double lam, double p0, int _vectorisation_idx) {
+    if (lam >= 10) return _poisson(lam, _vectorisation_idx);
+    const double u = _rand(_vectorisation_idx);
+    double p = p0, cdf = p0;
+    int32_t k = 0;
+    while (u > cdf && p > 0) { k++; p *= lam / k; cdf += p; }
+    return k;
+}
+"""
+
+
+def _drive_count() -> b2.Function:
+    """The C++ function :data:`DRIVE_FUNCTION`: one Poisson count per call, the same law as ``poisson(lam)``.
+
+    Counts of mean below 10 come from one uniform draw by inversion (the cumulative sum of
+    ``p0 lam^k / k!`` up to the draw); larger means go to Brian2's own ``poisson``.
+    """
+    from brian2.core.functions import DEFAULT_FUNCTIONS
+
+    fn = b2.Function(lambda lam, p0: 0, arg_units=[1, 1], return_unit=1, arg_types=["float", "float"],
+                     return_type="integer", stateless=False, auto_vectorise=True)
+    fn.implementations.add_implementation(
+        "cpp", _DRIVE_CODE.replace("DRIVE_NAME", DRIVE_FUNCTION), name=DRIVE_FUNCTION,
+        dependencies={"_rand": DEFAULT_FUNCTIONS["rand"], "_poisson": DEFAULT_FUNCTIONS["poisson"]})
+    return fn
+
+
 def _neurons(cfg: dict, n: int, adaptive: bool, rng: np.random.Generator, const: _Constants) -> b2.NeuronGroup:
     net = cfg["network"]
     values = _neuron_constants(cfg, adaptive)
@@ -175,7 +208,8 @@ def _neurons(cfg: dict, n: int, adaptive: bool, rng: np.random.Generator, const:
                            method="euler", name="exc" if adaptive else "inh")
     const.bind(group, values)
     if const.standalone:
-        group.run_regularly("g_e += drive_weight * poisson(drive_mean)", when="synapses",
+        const.namespace[DRIVE_FUNCTION] = _drive_count()
+        group.run_regularly(f"g_e += drive_weight * {DRIVE_FUNCTION}(drive_mean, exp(-drive_mean))", when="synapses",
                             name=f"{group.name}_drive")
     const.set(group, "v", (net["v_reset_mv"] + rng.random(n) * (net["v_threshold_mv"] - net["v_reset_mv"])) * b2.mV)
     return group
@@ -220,33 +254,11 @@ def _stimulus(cfg: dict, exc: b2.NeuronGroup, memberships: np.ndarray, cued: np.
     return [src, syn]
 
 
-STIMULUS_FUNCTION = "capsweep_stimulus"
-"""Name of the standalone engine's C++ function ``(cell, step, kind) -> 0 or 1``: is ``cell`` in the
-assembly that the imprint (kind 0) or cue (kind 1) input drives at ``step``? See
-:mod:`capsweep.runners.standalone`, which defines it from a per-run file of memberships."""
-
-
 def _stimulus_constants(cfg: dict) -> dict[str, Any]:
     """Rates and weights of the imprint and cue input (standalone: shared constants of the E group)."""
     pr = cfg["protocol"]
     return {"imprint_rate": pr["imprint_rate_hz"] * b2.Hz, "cue_rate": pr["cue_rate_hz"] * b2.Hz,
             "imprint_weight": pr["imprint_weight"], "cue_weight": pr["cue_weight"]}
-
-
-def _variable_inputs(exc: b2.NeuronGroup) -> None:
-    """Imprint and cue input of the standalone engine: per-step Bernoulli kicks onto each E cell.
-
-    In each integration step a cell driven by the current imprint (or cue) window receives an
-    input of ``imprint_weight`` (``cue_weight``) with probability ``rate * dt``, as from one
-    Poisson source per cell and channel in the runtime engines. Which cells are driven when
-    comes from :data:`STIMULUS_FUNCTION`, so assemblies may share cells (a cell follows every
-    assembly it belongs to) and membership changes per run without recompiling.
-    """
-    exc.run_regularly(
-        "\n".join(f"g_e += {kind}_weight * int(rand() < {kind}_rate * dt * "
-                  f"{STIMULUS_FUNCTION}(i, timestep(t, dt), {channel}))"
-                  for channel, kind in enumerate(("imprint", "cue"))),
-        when="synapses", order=1, name="exc_stimulus")
 
 
 SNAPSHOT_VARIABLE = "w_snap{}"
@@ -305,9 +317,7 @@ def build_network(cfg: dict, seed: int, wiring_seed: int | None = None, *,
                      {"w_i_to_i": net_cfg["w_i_to_i"]})
 
     objects: list[b2.BrianObject] = [exc, inh, s_ee, s_ie, s_ei, s_ii]
-    if standalone:
-        _variable_inputs(exc)
-    else:
+    if not standalone:
         if net_cfg["drive_inputs"] > 0:
             for group, rate in ((exc, net_cfg["drive_rate_exc_hz"]), (inh, net_cfg["drive_rate_inh_hz"])):
                 objects.append(b2.PoissonInput(group, "g_e", net_cfg["drive_inputs"], rate * b2.Hz,

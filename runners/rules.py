@@ -25,8 +25,9 @@ E->E (``ee_rule``), each term switched by its ``enabled`` key:
   itself that the published sum does not have (the two orders agree only to first order);
 - transmitter-induced term: on a pre spike ``w += delta``;
 
-all clipped to ``[0, w_max]``. ``w_ref`` is the synapse's initial weight (the builder sets it),
-fixed or consolidating as ``tau_consolidation dw_ref/dt = w - w_ref`` (``consolidation_step``).
+all clipped to ``[0, w_max]``. ``w_ref`` starts at the synapse's initial weight (the builder sets
+it) and is fixed, consolidating (``tau_consolidation dw_ref/dt = w - w_ref``) or bistable (the
+published consolidation with two stable states); see :func:`consolidation_step`.
 
 Every weight change (E->E and I->E) is multiplied by ``plastic = int(t < freeze_time)``: with
 ``plasticity.freeze_after_imprint`` the weights stop changing at the end of the imprint phase
@@ -117,23 +118,55 @@ def ee_rule(cfg: dict) -> Rule:
         "delta": trans["delta"],
         "tau_consolidation": het["tau_consolidation_s"] * b2.second,
         "consolidation_dt": CONSOLIDATION_DT_S * b2.second,
+        "bistable_p": het["bistable_strength"],
+        "bistable_wp": het["bistable_upper_weight"],
         "freeze_time": freeze_time_s(cfg) * b2.second,
     }
     return Rule("\n".join(model), "\n".join(on_pre), "\n".join(on_post), namespace)
 
 
 def consolidation_step(cfg: dict) -> str | None:
-    """Statement that relaxes ``w_ref`` toward ``w``, or None when w_ref is fixed.
+    """Statement that moves ``w_ref`` toward ``w`` once per CONSOLIDATION_DT_S, or None when w_ref is fixed.
 
-    It integrates ``tau_consolidation dw_ref/dt = w - w_ref`` exactly over one interval of
-    CONSOLIDATION_DT_S seconds, holding ``w`` constant; run it with
-    ``Synapses.run_regularly(statement, dt=CONSOLIDATION_DT_S * second)`` using the namespace
-    of :func:`ee_rule`.
+    Run it with ``Synapses.run_regularly(statement, dt=CONSOLIDATION_DT_S * second)`` using the
+    namespace of :func:`ee_rule`; ``w`` is held constant over each interval. Modes
+    (``plasticity.heterosynaptic.w_ref_mode``):
+
+    - ``consolidating``: ``tau_consolidation dw_ref/dt = w - w_ref``, integrated exactly over the
+      interval; ``w_ref`` follows any drift of ``w``.
+    - ``bistable``: the consolidation of Zenke, Agnes & Gerstner 2015 (Nat Commun 6:6922, Methods,
+      reference-weight dynamics; form and values [memory])::
+
+          tau_consolidation dw_ref/dt = f(w_ref) = w - w_ref - P w_ref (w_P/2 - w_ref) (w_P - w_ref)
+
+      with ``P = bistable_strength`` (1/g_leak**2) and ``w_P = bistable_upper_weight`` (g_leak).
+      The cubic alone has stable states 0 and w_P and an unstable point w_P/2 [derived: its slope
+      there is -P w_P**2/2, -P w_P**2/2 and +P w_P**2/4]; with ``w`` held, w_ref settles at the
+      stable root of f on its side of the unstable root. Published values P = 20, w_P = 0.5 and
+      tau_cons = 20 min [memory]; the registry keeps P w_P**2 = 5 at capsweep's weight scale.
+      One step per interval, h = CONSOLIDATION_DT_S / tau_consolidation (at most 1)::
+
+          w_ref += h f / (1 + h |f'|)
+
+      the linearly implicit Euler step where f' < 0 (A-stable: at h = 1 it neither oscillates nor
+      diverges), shrunk where f' > 0 near the unstable root. Its fixed points are exactly the roots
+      of f, and a step never crosses the unstable root (steps point away from it; beyond the
+      outer roots f is convex below / concave above, so a step shorter than Newton's stops short of
+      the root) [derived; checked against scipy solve_ivp over w, w_ref in [0, 2 w_P],
+      P w_P**2 from 5 to 1000 and h from 0.01 to 1]. To first order in h it is the explicit
+      Euler step of the published equation.
     """
-    het = cfg["plasticity"]["heterosynaptic"]
-    if het["w_ref_mode"] != "consolidating":
-        return None
-    return "w_ref += (w - w_ref) * (1 - exp(-consolidation_dt / tau_consolidation))"
+    mode = cfg["plasticity"]["heterosynaptic"]["w_ref_mode"]
+    if mode == "consolidating":
+        return "w_ref += (w - w_ref) * (1 - exp(-consolidation_dt / tau_consolidation))"
+    if mode == "bistable":
+        return "\n".join([
+            "cons_h = consolidation_dt / tau_consolidation",
+            "cons_f = w - w_ref - bistable_p * w_ref * (bistable_wp / 2 - w_ref) * (bistable_wp - w_ref)",
+            "cons_slope = -1 - bistable_p * (3 * w_ref**2 - 3 * bistable_wp * w_ref + bistable_wp**2 / 2)",
+            "w_ref += cons_h * cons_f / (1 + cons_h * abs(cons_slope))",
+        ])
+    return None
 
 
 def ie_rule(cfg: dict) -> Rule:

@@ -2,14 +2,32 @@
 
 A :class:`RunawayWatch` network operation stops a point once its runaway onset is established,
 with exactly the offline definition (:func:`capsweep.runners.scoring.onset_in_schedule`).
+
+Within-point checkpoints (``execution.checkpoint_interval_s`` > 0): every interval of simulated
+time the run writes the full state to one file per point (:class:`Checkpoint`): Brian2's
+``Network.store`` (every state variable and the spikes recorded so far, undelivered spikes in
+the delay queues, clocks, and the random state: numpy's generator and the cython engine's
+random-number buffers), the watch's bin counts and the protocol position (the step reached,
+weight copies taken). A point started again with the same config and seeds restores the last
+checkpoint and continues; splitting a run at checkpoints changes no value, so a resumed point
+gives bitwise the result of an uninterrupted run. The file is deleted once the run completes.
 """
 
 from __future__ import annotations
 
+import ctypes
+import hashlib
+import json
+import os
+import pickle
+import time
+from collections.abc import Iterator
+from pathlib import Path
 from typing import Any
 
 import brian2 as b2
 import numpy as np
+from brian2.codegen.generators.cython_generator import _BUFFER_SIZE as RANDOM_BUFFER_SIZE
 
 from .model import Handles, build_network
 from .scoring import Recording, baseline_rate, onset_in_schedule
@@ -54,17 +72,149 @@ class RunawayWatch:
             self.network.stop()
 
 
-def _simulate(cfg: dict, network: b2.Network, ns: dict[str, Any], h: Handles,
-              watch: RunawayWatch | None) -> tuple[dict[str, np.ndarray], list[np.ndarray]]:
-    """Run the phases; return weights at named moments and the hold snapshots taken."""
+CHECKPOINT_DIR_ENV = "CAPSWEEP_CHECKPOINT_DIR"
+"""Environment variable naming the checkpoint directory (default ``~/.cache/capsweep/checkpoints``)."""
+
+
+def checkpoint_root() -> Path:
+    """Directory of the checkpoint files: ``$CAPSWEEP_CHECKPOINT_DIR``, else ``~/.cache/capsweep/checkpoints``."""
+    return Path(os.environ.get(CHECKPOINT_DIR_ENV) or Path.home() / ".cache" / "capsweep" / "checkpoints").expanduser()
+
+
+def _objects(objects: Any) -> Iterator[Any]:
+    """Every Brian2 object of ``objects`` and, recursively, the objects they contain."""
+    for obj in objects:
+        yield obj
+        yield from _objects(obj.contained_objects)
+
+
+def _clock_names(network: b2.Network) -> dict[str, str]:
+    """Name of each clock of ``network`` -> a name that does not depend on the process (its first object's name).
+
+    Brian2 numbers the names of auto-named clocks by the instances created before, so a resumed
+    point's clocks may be named differently from the ones that wrote the checkpoint.
+    """
+    users: dict[str, list[str]] = {}
+    for obj in _objects(network.objects):
+        users.setdefault(obj.clock.name, []).append(obj.name)
+    return {clock: "clock of " + min(names) for clock, names in users.items()}
+
+
+_LIBC = ctypes.CDLL(None)
+_LIBC.malloc.restype = ctypes.c_void_p
+
+
+def _random_buffers() -> dict[str, np.ndarray | None]:
+    """Values of the cython engine's rand/randn buffers (None where not yet filled).
+
+    Brian2's random state holds only the buffers' addresses, which mean nothing in another process.
+    """
+    device, out = b2.get_device(), {}
+    for kind in ("rand", "randn"):
+        address = int(getattr(device, f"{kind}_buffer")[0])
+        out[kind] = np.ctypeslib.as_array((ctypes.c_double * RANDOM_BUFFER_SIZE).from_address(address)).copy() \
+            if address else None
+    return out
+
+
+def _set_random_buffers(values: dict[str, np.ndarray | None]) -> None:
+    """Refill the cython engine's rand/randn buffers with ``values``, in memory it frees itself when they run out.
+
+    Buffers filled before (by an earlier point in this process) are left allocated: 160 kB each, once per resume.
+    """
+    device = b2.get_device()
+    for kind, buffer in values.items():
+        address = None
+        if buffer is not None:
+            address = _LIBC.malloc(buffer.nbytes)
+            ctypes.memmove(address, buffer.ctypes.data, buffer.nbytes)
+        getattr(device, f"{kind}_buffer")[0] = address or 0
+
+
+class Checkpoint:
+    """The checkpoint file of one point (units: steps of ``network.dt_ms``; path keyed by what fixes the run)."""
+
+    def __init__(self, cfg: dict, seed: int, wiring_seed: int | None) -> None:
+        ex = cfg["execution"]
+        run = {"config": {k: v for k, v in cfg.items() if k != "execution"}, "seed": seed,
+               "wiring_seed": wiring_seed, "engine": ex["engine"], "abort_on_runaway": ex["abort_on_runaway"]}
+        key = hashlib.sha256(json.dumps(run, sort_keys=True).encode()).hexdigest()[:24]
+        self.path = checkpoint_root() / f"{key}.pkl"
+        self.every = int(round(ex["checkpoint_interval_s"] / cfg["network"]["dt_ms"] * 1e3))
+
+    def steps(self, end: int) -> list[int]:
+        """Steps before ``end`` at which the run writes a checkpoint (none when checkpoints are off)."""
+        return list(range(self.every, end, self.every)) if self.every > 0 else []
+
+    def save(self, network: b2.Network, progress: dict[str, Any]) -> None:
+        """Write the network's state and ``progress`` (replacing the previous checkpoint in one rename)."""
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+        partial = self.path.with_suffix(f".{os.getpid()}.partial")
+        partial.unlink(missing_ok=True)
+        network.store("network", filename=str(partial))
+        with open(partial, "rb") as handle:
+            state = pickle.load(handle)["network"]
+        rename = _clock_names(network)
+        state = {rename.get(name, name): value for name, value in state.items()}
+        with open(partial, "wb") as handle:
+            pickle.dump({"network": state, "buffers": _random_buffers(), "progress": progress}, handle,
+                        protocol=pickle.HIGHEST_PROTOCOL)
+        os.replace(partial, self.path)
+
+    def restore(self, network: b2.Network) -> dict[str, Any] | None:
+        """Put the network in its checkpointed state (random state included); its progress, or None if none."""
+        if self.every <= 0 or not self.path.exists():
+            return None
+        with open(self.path, "rb") as handle:
+            saved = pickle.load(handle)
+        back = {canonical: name for name, canonical in _clock_names(network).items()}
+        partial = self.path.with_suffix(f".{os.getpid()}.partial")
+        with open(partial, "wb") as handle:
+            pickle.dump({"network": {back.get(name, name): value for name, value in saved["network"].items()}},
+                        handle, protocol=pickle.HIGHEST_PROTOCOL)
+        network.restore("network", filename=str(partial), restore_random_state=True)
+        partial.unlink()
+        _set_random_buffers(saved["buffers"])
+        progress: dict[str, Any] = saved["progress"]
+        return progress
+
+    def remove(self) -> None:
+        """Delete the point's checkpoint (its run is complete)."""
+        self.path.unlink(missing_ok=True)
+
+
+class FirstStep:
+    """Brian2 run report callback: the ``time.perf_counter()`` at which simulating first began.
+
+    ``Network.run`` calls its report once its code is generated and compiled, before the first
+    step; later calls (every report period, and later runs) are ignored.
+    """
+
+    def __init__(self) -> None:
+        self.at: float | None = None
+
+    def __call__(self, elapsed: Any, completed: float, start: Any, duration: Any) -> None:
+        if self.at is None:
+            self.at = time.perf_counter()
+
+
+def _simulate(cfg: dict, network: b2.Network, ns: dict[str, Any], h: Handles, watch: RunawayWatch | None,
+              checkpoint: Checkpoint, first: FirstStep) -> tuple[dict[str, np.ndarray], list[np.ndarray]]:
+    """Run the phases (from the last checkpoint, if any); return weights at named moments and the hold snapshots."""
     sched, dt = h.schedule, h.schedule.dt_s
     marks = [("settle", sched.settle_end), ("imprint", sched.imprint_end)]
     marks += [(f"snap{i}", s) for i, s in enumerate(sched.snapshots)] + [("end", sched.end)]
-    weights, snaps = {}, []
-    step = 0
+    marks = sorted(marks + [("checkpoint", s) for s in checkpoint.steps(sched.end)], key=lambda m: m[1])
+    progress = checkpoint.restore(network) or {"step": 0, "weights": {}, "snaps": [], "watch": None}
+    resumed, weights, snaps = progress["step"], progress["weights"], progress["snaps"]
+    if watch is not None and progress["watch"] is not None:
+        watch.counts, watch.last, watch.baseline = progress["watch"]
+    step = resumed
     for name, target in marks:
+        if 0 < resumed and target <= resumed and name != "end":
+            continue  # done before the checkpoint (marks at its step come before it in this order)
         if target > step:
-            network.run((target - step) * dt * b2.second, namespace=ns)
+            network.run((target - step) * dt * b2.second, namespace=ns, report=first, report_period=3600 * b2.second)
             step = target
         if watch is not None and np.isfinite(watch.onset):
             break
@@ -72,6 +222,10 @@ def _simulate(cfg: dict, network: b2.Network, ns: dict[str, Any], h: Handles,
             weights[name] = np.array(h.s_ee.w[:])
             if name.startswith("snap"):
                 snaps.append(weights[name])
+        if name == "checkpoint":
+            state = None if watch is None else (watch.counts, watch.last, watch.baseline)
+            checkpoint.save(network, {"step": step, "weights": weights, "snaps": snaps, "watch": state})
+    checkpoint.remove()
     return weights, snaps
 
 
@@ -79,13 +233,12 @@ def simulate(cfg: dict, seed: int, wiring_seed: int | None) -> tuple[Handles, Re
     b2.set_device("runtime")
     b2.prefs.codegen.target = cfg["execution"]["engine"]
     b2.seed(seed % 2**32)
+    start, first = time.perf_counter(), FirstStep()
     network, ns, h = build_network(cfg, seed, wiring_seed)
     watch = RunawayWatch(cfg, h, network) if cfg["execution"]["abort_on_runaway"] else None
     if watch is not None:
         network.add(watch.operation)
-    weights, snaps = _simulate(cfg, network, ns, h, watch)
+    weights, snaps = _simulate(cfg, network, ns, h, watch, Checkpoint(cfg, seed, wiring_seed), first)
     sim_time = float(network.t / b2.second)  # network.t_ is not a float after network.stop()
     return h, Recording(np.asarray(h.mon_exc.t_[:]), np.asarray(h.mon_exc.i[:]), np.asarray(h.mon_inh.t_[:]),
-                        sim_time, weights, snaps)
-
-
+                        sim_time, weights, snaps, (first.at or time.perf_counter()) - start)

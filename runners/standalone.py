@@ -5,8 +5,9 @@ reruns the same binary with its own values, given as ``run_args``:
 
 - neuron, synapse, rule, drive and stimulus constants: ``(shared, constant)`` variables
   (``capsweep.runners.model`` declares them when built with ``standalone=True``);
-- initial weights (with prewired gains), initial voltages, stimulus membership and weights:
-  per-neuron / per-synapse arrays;
+- initial weights (with prewired gains) and initial voltages: per-neuron / per-synapse arrays;
+- the stimulus schedule and which cells each imprint and cue input drives: a per-run file
+  (:data:`STIMULUS_FILE`) read by the C++ stimulus function, which kicks only the driven cells;
 - protocol timing (steps), detection settings and the per-point RNG seed: shared variables of
   the one-cell ``watch`` group, read by a C++ function called at the start of every step.
 
@@ -33,6 +34,7 @@ decided by :func:`capsweep.runners.builds.unsupported`.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import gc
 import shutil
 import tempfile
@@ -47,7 +49,7 @@ import numpy as np
 
 from . import protocol
 from .builds import build_key, build_root, compiled_form, locked
-from .model import SNAPSHOT_VARIABLE, STIMULUS_FUNCTION, Handles, build_network
+from .model import SNAPSHOT_VARIABLE, Handles, build_network
 from .scoring import Recording
 
 MAX_DURATION_S = 1e7
@@ -57,6 +59,7 @@ _MARGIN = 1.0 + 1e-9
 
 _WATCH_EQUATIONS = """
 flag : integer (shared)
+kicks : integer (shared)
 stop_step : integer (shared)
 end_step : integer (shared, constant)
 settle_end : integer (shared, constant)
@@ -116,7 +119,7 @@ int capsweep_watch(int64_t step) {
         runaway = _capsweep_bin_done(step / W(bin_steps) - 1, total);
         _capsweep_cue_in_bin = false;
     }
-    if (STIM_NAME(0, step, 2) > 0) _capsweep_cue_in_bin = true;
+    if (_capsweep_cue_on(step)) _capsweep_cue_in_bin = true;
     if (step >= W(end_step) || (runaway && W(abort))) {
         W(stop_step) = step;
         Network::_globally_stopped = true;
@@ -135,9 +138,7 @@ static bool _capsweep_stim_loaded = false;
 static int64_t _capsweep_stim_head[STIM_HEADER];
 static std::vector<int64_t> _capsweep_stim_tests;
 static std::vector<int64_t> _capsweep_stim_order;
-static std::vector<char> _capsweep_stim_members[2];
-static int64_t _capsweep_stim_step[2] = {-1, -1};
-static int64_t _capsweep_stim_active[2] = {-1, -1};
+static std::vector<std::vector<int32_t>> _capsweep_stim_cells[2];  // per kind and assembly: driven cells
 
 static void _capsweep_stim_load() {
     std::ifstream file("STIM_FILE", std::ios::binary);
@@ -147,15 +148,21 @@ static void _capsweep_stim_load() {
     file.read((char*)_capsweep_stim_tests.data(), _capsweep_stim_tests.size() * sizeof(int64_t));
     _capsweep_stim_order.resize(count);
     file.read((char*)_capsweep_stim_order.data(), count * sizeof(int64_t));
+    std::vector<char> row(n);
     for (int kind = 0; kind < 2; kind++) {
-        _capsweep_stim_members[kind].resize(count * n);
-        file.read(_capsweep_stim_members[kind].data(), count * n);
+        _capsweep_stim_cells[kind].assign(count, std::vector<int32_t>());
+        for (int64_t k = 0; k < count; k++) {
+            file.read(row.data(), n);
+            for (int32_t cell = 0; cell < n; cell++)
+                if (row[cell]) _capsweep_stim_cells[kind][k].push_back(cell);
+        }
     }
     _capsweep_stim_loaded = true;
 }
 
 // Assembly driven at this step by the imprint (kind 0) or cue (kind 1) input, or -1.
 static int64_t _capsweep_stim_assembly(int64_t step, int kind) {
+    if (!_capsweep_stim_loaded) _capsweep_stim_load();
     const int64_t* h = _capsweep_stim_head;
     const int64_t count = h[1];
     if (count == 0) return -1;
@@ -173,35 +180,57 @@ static int64_t _capsweep_stim_assembly(int64_t step, int kind) {
     return -1;
 }
 
-// kind 0: is cell driven by the imprint input now; 1: by the cue input; 2: is any cue on (cell ignored).
-double STIM_NAME(int32_t cell, int64_t step, int32_t kind) {
-    if (!_capsweep_stim_loaded) _capsweep_stim_load();
-    const int input = kind == 2 ? 1 : kind;
-    if (_capsweep_stim_step[input] != step) {
-        _capsweep_stim_step[input] = step;
-        _capsweep_stim_active[input] = _capsweep_stim_assembly(step, input);
+static bool _capsweep_cue_on(int64_t step) { return _capsweep_stim_assembly(step, 1) >= 0; }
+
+// Kicks of this step: each cell of the assembly that the imprint (cue) input drives now receives
+// imprint_weight (cue_weight) with probability imprint_rate * dt (cue_rate * dt). Returns the kicks given.
+int32_t STIM_NAME(int64_t step) {
+    using namespace brian;
+    const double dt = DT;
+    const double p[2] = {IMPRINT_RATE * dt, CUE_RATE * dt}, w[2] = {IMPRINT_WEIGHT, CUE_WEIGHT};
+    int32_t kicks = 0;
+    for (int kind = 0; kind < 2; kind++) {
+        const int64_t k = _capsweep_stim_assembly(step, kind);
+        if (k < 0) continue;
+        for (const int32_t cell : _capsweep_stim_cells[kind][k])
+            if (_random_generators[0].rand() < p[kind]) { G_E[cell] += w[kind]; kicks++; }
     }
-    const int64_t k = _capsweep_stim_active[input];
-    if (kind == 2 || k < 0) return k < 0 ? 0.0 : 1.0;
-    return (double)_capsweep_stim_members[input][k * _capsweep_stim_head[0] + cell];
+    return kicks;
 }
 """
 STIMULUS_FILE = "capsweep_stimulus.bin"
 """Per-run file of the stimulus function, in the run directory (the binary's working directory)."""
 
 
-def _stimulus_function() -> b2.Function:
-    """The C++ stimulus function named by :data:`capsweep.runners.model.STIMULUS_FUNCTION`.
+STIMULUS_FUNCTION = "capsweep_stimulus"
+"""Name of the C++ function ``(step) -> kicks`` that applies the imprint and cue input of a step."""
 
-    It reads :data:`STIMULUS_FILE` on its first call (see :func:`_stimulus_file` for the layout)
-    and answers, per cell and step, whether the imprint or cue window open at that step drives
-    the cell. The open window is computed once per step from the schedule in closed form.
+
+def _stimulus_function(exc: b2.NeuronGroup) -> b2.Function:
+    """The C++ stimulus function :data:`STIMULUS_FUNCTION`, called once per step (``synapses`` slot).
+
+    It reads :data:`STIMULUS_FILE` on its first call (see :func:`_stimulus_file` for the layout),
+    finds the imprint and cue windows open at the step from the schedule in closed form, and
+    gives each cell they drive an input of ``imprint_weight`` (``cue_weight``) with probability
+    ``imprint_rate * dt`` (``cue_rate * dt``), as one Poisson source per cell and channel does in the
+    runtime engines. Only driven cells are visited (a loop over all E cells per step cost a
+    quarter of a point's time at N_E = 4000). Assemblies may share cells: a cell follows every
+    assembly it belongs to, and membership changes per run without recompiling.
     """
+    device = b2.get_device()
+
+    def array(group: Any, name: str) -> str:
+        return f"{device.get_array_name(group.variables[name])}[0]"
+
     code = (_STIMULUS_CODE.replace("STIM_HEADER", str(len(_STIMULUS_HEADER))).replace("STIM_FILE", STIMULUS_FILE)
-            .replace("STIM_NAME", STIMULUS_FUNCTION))
-    fn = b2.Function(lambda cell, step, kind: 0.0, arg_units=[1, 1, 1], return_unit=1,
-                     arg_types=["integer", "integer", "integer"], return_type="float")
-    fn.implementations.add_implementation("cpp", code, name=STIMULUS_FUNCTION)
+            .replace("STIM_NAME", STIMULUS_FUNCTION).replace("DT", array(b2.defaultclock, "dt"))
+            .replace("G_E", device.get_array_name(exc.variables["g_e"])))
+    for name in ("imprint_rate", "cue_rate", "imprint_weight", "cue_weight"):
+        code = code.replace(name.upper(), array(exc, name))
+    fn = b2.Function(lambda step: 0, arg_units=[1], return_unit=1, arg_types=["integer"], return_type="integer",
+                     stateless=False)
+    fn.implementations.add_implementation("cpp", code, name=STIMULUS_FUNCTION,
+                                          compiler_kwds={"headers": ['"objects.h"']})
     return fn
 
 
@@ -241,7 +270,7 @@ class _Build:
     handles: Handles
     watch: b2.NeuronGroup
     wiring_files: dict[str, tuple[str, str]]  # synapses name -> static-array files of (i, j)
-    compile_s: float
+    compile_s: float  # wall s to generate the build's code and compile it (make skips files that did not change)
 
 
 _CURRENT: dict[str, _Build] = {}
@@ -251,7 +280,7 @@ def _watch_function(handles: Handles, watch: b2.NeuronGroup, snapshots: b2.Neuro
                     stimulus: b2.Function) -> b2.Function:
     """The C++ ``capsweep_watch(step)`` function, with the array names of this build filled in.
 
-    It asks the ``stimulus`` function (kind 2) whether a cue is on, to leave cue periods out of
+    It asks the ``stimulus`` function's code whether a cue is on, to leave cue periods out of
     the runaway test as :func:`capsweep.runners.protocol.cue_bins` does offline.
     """
     device = b2.get_device()
@@ -266,8 +295,7 @@ def _watch_function(handles: Handles, watch: b2.NeuronGroup, snapshots: b2.Neuro
         for s in range(len(snapshots)))
     code = (_WATCH_CODE.replace("SNAPSHOTS", copies)
             .replace("SPIKES", array(handles.mon_exc, "t", dynamic=True))
-            .replace("N_EXC", f"{len(handles.exc)}.0").replace("MARGIN", repr(_MARGIN))
-            .replace("STIM_NAME", STIMULUS_FUNCTION))
+            .replace("N_EXC", f"{len(handles.exc)}.0").replace("MARGIN", repr(_MARGIN)))
     for name in watch.equations.names:
         code = code.replace(f"W({name})", f"{array(watch, name)}[0]")
     fn = b2.Function(lambda step: 0, arg_units=[1], return_unit=1, arg_types=["integer"], return_type="integer")
@@ -307,20 +335,22 @@ def _use_standalone(directory: Path, fresh: bool) -> Any:
 
 def _compile(cfg: dict, seed: int, wiring_seed: int | None, key: str) -> _Build:
     """Generate (and, if the code changed, compile) the build of ``key``; keep its objects live."""
+    start = time.perf_counter()
     directory = build_root() / key
     device = _use_standalone(directory, fresh=True)
     network, ns, handles = build_network(cfg, seed, wiring_seed, standalone=True)
     watch = b2.NeuronGroup(1, _WATCH_EQUATIONS, name="watch")
     snapshots = b2.NeuronGroup(len(handles.schedule.snapshots) + 1, "step : integer (constant)", name="snapshots")
-    stimulus = _stimulus_function()
+    stimulus = _stimulus_function(handles.exc)
     ns = {**ns, "capsweep_watch": _watch_function(handles, watch, snapshots, stimulus), STIMULUS_FUNCTION: stimulus}
     watch.run_regularly("flag = capsweep_watch(timestep(t, dt))", when="start", name="watch_tick")
+    watch.run_regularly(f"kicks = {STIMULUS_FUNCTION}(timestep(t, dt))", when="synapses", order=1,
+                        name="stimulus_tick")
     network.add(watch, snapshots)
     device.apply_run_args()
     device.insert_code("main", "brian::_random_generators[0].seed((unsigned long) "
                                f"{device.get_array_name(watch.variables['rng_seed'])}[0]);")
     network.run(MAX_DURATION_S * b2.second, namespace=ns)
-    start = time.perf_counter()
     with locked(build_root() / f"{key}.lock"):
         device.build(directory=str(directory), compile=True, run=False, with_output=False)
     wiring = {}
@@ -372,6 +402,7 @@ def simulate(cfg: dict, seed: int, wiring_seed: int | None = None) -> tuple[Hand
     Returns the point's handles (membership, schedule, sizes; its Brian2 objects are inert) and
     what the run recorded. Check :func:`capsweep.runners.builds.unsupported` first.
     """
+    start = time.perf_counter()
     cfg = compiled_form(cfg)
     key = build_key(cfg)
     values = _point_values(cfg, seed, wiring_seed)
@@ -385,8 +416,9 @@ def simulate(cfg: dict, seed: int, wiring_seed: int | None = None) -> tuple[Hand
     with _run_directory(build, values, cfg["assemblies"]["imprint"] == "learned") as run_dir:
         device.project_dir = str(run_dir)
         try:
+            setup_s = time.perf_counter() - start
             device.run(directory=str(run_dir), results_directory="results", with_output=False, run_args=run_args)
-            recording = _read(build, sched)
+            recording = dataclasses.replace(_read(build, sched), setup_s=setup_s)
         finally:
             device.project_dir = project_dir
     (build.directory / "last_used").touch()
