@@ -1,0 +1,315 @@
+"""Clusters: the build cache's compile lock, the [execution.cluster] table, worker faults, and a real one-node SLURM.
+
+The lock tests run real processes on a real directory. The fault tests run real Dask workers and kill
+them. The ``cluster`` test brings up a one-node SLURM with ``tests/slurm.py`` (or skips, saying why),
+runs ``configs/cluster-slurm.toml`` through two worker jobs, cancels one mid-sweep, and compares the
+store bitwise with a local run of the same file.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import socket
+import subprocess
+import sys
+import textwrap
+import threading
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+import xarray as xr
+from cli_runs import tiny_network
+
+from capsweep.errors import ConfigError
+from capsweep.results_schema.layout import TIMINGS
+from capsweep.runners import builds
+from capsweep.runners.dask_backend import TaskFailure, batch_job_settings, cluster_table, dask_client, run_tasks
+from capsweep.sweeps.expand import expand, fingerprint
+from capsweep.sweeps.launch import RunOptions, run_sweep
+from capsweep.sweeps.sweepfile import parse_sweep
+
+ROOT = Path(__file__).resolve().parents[1]
+SLURM_SWEEP = ROOT / "configs" / "cluster-slurm.toml"
+"""Wall-clock measurements: the only stored values that may differ between two runs of one sweep."""
+
+KILL_SWEEP = """
+[sweep]
+name = "odour-worker-kill"
+store = "{store}"
+[[sweep.axis]]
+name = "n_odours"
+key = "assemblies.count"
+values = [1, 2]
+[execution]
+workers = 2
+""" + tiny_network()
+
+
+# --- the compile lock -------------------------------------------------------------------------------------------
+
+_COMPILER = textwrap.dedent("""
+    import sys, time
+    from pathlib import Path
+    from capsweep.runners.builds import locked
+    root = Path(sys.argv[1])
+    with locked(root / "k.lock"):
+        entered = time.time()
+        if not (root / "k" / "main").exists():
+            with open(root / "compiles.log", "a") as log:
+                log.write("compiled\\n")
+            time.sleep(1.0)
+            (root / "k").mkdir()
+            (root / "k" / "main").write_text("binary")
+        print(entered, time.time())
+""")
+
+
+def test_two_processes_compiling_one_key_compile_once_and_never_together(tmp_path: Path) -> None:
+    runs = [subprocess.Popen([sys.executable, "-c", _COMPILER, str(tmp_path)], stdout=subprocess.PIPE, text=True)
+            for _ in range(2)]
+    spans = sorted(tuple(map(float, run.communicate(timeout=60)[0].split())) for run in runs)
+    assert [run.returncode for run in runs] == [0, 0]
+    assert (tmp_path / "compiles.log").read_text() == "compiled\n"
+    assert spans[0][1] <= spans[1][0], f"both processes held the lock at once: {spans}"
+    assert not (tmp_path / "k.lock").exists()  # released
+
+
+def _holder(path: Path, **record: Any) -> None:
+    path.mkdir()
+    (path / "holder.json").write_text(json.dumps(record))
+
+
+def _dead_pid() -> int:
+    child = subprocess.Popen([sys.executable, "-c", "pass"])
+    child.wait()
+    return child.pid
+
+
+def test_a_lock_whose_holder_died_on_this_host_is_taken_over(tmp_path: Path) -> None:
+    _holder(tmp_path / "dead.lock", host=socket.gethostname(), pid=_dead_pid(), heartbeat=time.time())
+    _holder(tmp_path / "live.lock", host=socket.gethostname(), pid=os.getppid(), heartbeat=time.time())
+    with builds.locked(tmp_path / "dead.lock", blocking=False) as taken:
+        assert taken
+        assert json.loads((tmp_path / "dead.lock" / "holder.json").read_text())["pid"] == os.getpid()
+    with builds.locked(tmp_path / "live.lock", blocking=False) as taken:
+        assert not taken
+
+
+def test_a_lock_from_another_host_is_taken_over_only_once_its_heartbeat_is_old(tmp_path: Path) -> None:
+    old = time.time() - builds.STALE_AFTER_S - 5
+    _holder(tmp_path / "old.lock", host="odour-node-7", pid=1, heartbeat=old)
+    _holder(tmp_path / "fresh.lock", host="odour-node-7", pid=1, heartbeat=time.time() - 5)
+    with builds.locked(tmp_path / "old.lock", blocking=False) as taken:
+        assert taken
+    with builds.locked(tmp_path / "fresh.lock", blocking=False) as taken:
+        assert not taken  # pid 1 means nothing on another host; only the heartbeat judges it
+
+
+def test_the_holder_renews_its_heartbeat(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setattr(builds, "HEARTBEAT_S", 0.1)
+    with builds.locked(tmp_path / "k.lock"):
+        first = json.loads((tmp_path / "k.lock" / "holder.json").read_text())["heartbeat"]
+        time.sleep(0.5)
+        later = json.loads((tmp_path / "k.lock" / "holder.json").read_text())["heartbeat"]
+    assert later - first >= 0.2
+
+
+def test_a_lock_file_of_the_fcntl_era_is_replaced(tmp_path: Path) -> None:
+    (tmp_path / "k.lock").write_text("")
+    with builds.locked(tmp_path / "k.lock", blocking=False) as taken:
+        assert taken and (tmp_path / "k.lock").is_dir()
+
+
+# --- the [execution.cluster] table ------------------------------------------------------------------------------
+
+def test_cluster_settings_stay_out_of_point_ids_and_the_grid_fingerprint() -> None:
+    head = '[sweep]\nname = "odour"\nstore = "s.zarr"\n[[sweep.axis]]\nname = "n"\nkey = "assemblies.count"\nvalues = [1, 2]\n'
+    local = parse_sweep(head)
+    batch = parse_sweep(head + '[execution.cluster]\nkind = "slurm"\nmax_jobs = 9\nscratch = "/tmp/x"\n')
+    assert batch.base["execution.cluster.max_jobs"] == 9
+    assert [p.point_id for p in expand(local)] == [p.point_id for p in expand(batch)]
+    assert fingerprint(local) == fingerprint(batch)
+
+
+@pytest.mark.parametrize(("table", "named"), [
+    ('kind = "cloud"', "execution.cluster.kind"),
+    ("max_jobs = 0", "execution.cluster.max_jobs"),
+    ('cores = "two"', "execution.cluster.cores"),
+    ("walltime = 30", "execution.cluster.walltime_min"),  # did you mean
+])
+def test_a_bad_cluster_table_is_one_config_error_naming_the_key(table: str, named: str) -> None:
+    with pytest.raises(ConfigError, match=named.replace(".", r"\.")) as caught:
+        parse_sweep(f'[sweep]\nname = "odour"\nstore = "s.zarr"\n[execution.cluster]\n{table}\n')
+    assert "\n" not in str(caught.value)
+
+
+def test_the_command_line_cluster_options_are_checked_against_the_registry(tmp_path: Path) -> None:
+    sweep = tmp_path / "sweep.toml"
+    sweep.write_text(KILL_SWEEP.format(store=tmp_path / "s.zarr"))
+    shown = subprocess.run([sys.executable, "-m", "capsweep.sweeps.cli", "run", str(sweep), "--cluster", "slurm",
+                            "--cluster-set", "max_tries=0"], capture_output=True, text=True, timeout=120)
+    assert shown.returncode != 0
+    assert "execution.cluster.max_tries" in shown.stderr and "Traceback" not in shown.stderr, shown.stderr
+    assert not (tmp_path / "s.zarr").exists()  # refused before anything was laid out
+
+
+def test_batch_jobs_retire_before_their_wall_time_and_get_the_build_cache() -> None:
+    table = cluster_table({"kind": "slurm", "walltime_min": 90.0, "retire_min": 6.0, "cores": 2, "memory_gb": 3.5,
+                           "queue": "olfactory", "account": "lab", "directives": "--qos=short; --constraint=avx2",
+                           "scratch": "/local/odour scratch"})
+    settings = batch_job_settings("slurm", table)
+    assert settings["walltime"] == "01:30:00"
+    args = settings["worker_extra_args"]
+    # retire between 90 - 1.5 * 6 = 81 and 90 - 0.5 * 6 = 87 minutes: lifetime 84 min, stagger 3 min
+    assert args[args.index("--lifetime") + 1] == "5040s" and args[args.index("--lifetime-stagger") + 1] == "180s"
+    assert settings["job_extra_directives"] == ["--qos=short", "--constraint=avx2"]
+    assert "export CAPSWEEP_BUILD_DIR='/local/odour scratch/builds'" in settings["job_script_prologue"]
+    assert (settings["cores"], settings["processes"], settings["memory"]) == (2, 2, "3.5GB")
+    assert (settings["queue"], settings["account"]) == ("olfactory", "lab")
+    assert batch_job_settings("lsf", table)["walltime"] == "01:30"
+    assert batch_job_settings("sge", table)["project"] == "lab"
+
+
+@pytest.mark.parametrize(("changes", "named"), [
+    ({"kind": "slurm", "walltime_min": 10.0, "retire_min": 7.0}, "execution.cluster.retire_min"),
+    ({"kind": "htcondor", "queue": "short"}, "execution.cluster.queue"),
+])
+def test_batch_settings_a_system_cannot_honour_are_config_errors(changes: dict[str, Any], named: str) -> None:
+    with pytest.raises(ConfigError, match=named.replace(".", r"\.")):
+        batch_job_settings(changes["kind"], cluster_table(changes))
+
+
+def test_a_scheduler_kind_needs_an_address_and_a_batch_kind_refuses_one() -> None:
+    with pytest.raises(ConfigError, match="needs the scheduler's address"), dask_client(1, "", cluster={
+            "kind": "scheduler"}):
+        pass
+    with pytest.raises(ConfigError, match="starts its own scheduler"), dask_client(1, "tcp://odour:8786", cluster={
+            "kind": "slurm"}):
+        pass
+
+
+# --- worker faults ----------------------------------------------------------------------------------------------
+
+def crash_on_seed_13(config: dict[str, Any], seed: int, wiring_seed: int) -> dict[str, Any]:
+    """Stands in for simulate_task: kills its worker process for seed 13 (after noting the try in a file)."""
+    if seed == 13:
+        with open(config["tries_file"], "a") as tries:
+            tries.write(f"{os.getpid()}\n")
+        os._exit(1)
+    return {"seed": seed}
+
+
+def test_a_point_that_kills_its_worker_every_time_fails_after_max_tries_while_others_finish(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    from capsweep.runners import dask_backend
+
+    monkeypatch.setattr(dask_backend, "simulate_task", crash_on_seed_13)
+    tries = tmp_path / "tries"
+    jobs = [("bad", {"tries_file": str(tries)}, 13, 0), ("good", {}, 1, 0)]
+    with dask_client(1, cluster={"max_tries": 2}) as client:
+        results = dict(run_tasks(client, jobs))
+    assert results["good"] == {"seed": 1}
+    assert isinstance(results["bad"], TaskFailure) and "on each of its 2 tries" in results["bad"].error
+    assert len(tries.read_text().split()) == 2  # two workers died, then the scheduler gave the point up
+
+
+def test_a_worker_killed_mid_point_has_its_point_rerun_and_stored_once(tmp_path: Path, build_root: Path) -> None:
+    from distributed import default_client
+
+    sweep = tmp_path / "sweep.toml"
+    sweep.write_text(KILL_SWEEP.format(store=tmp_path / "odour.zarr"))
+    killed: list[tuple[int, int]] = []  # (pid, points finished when it was killed)
+    progress_seen: list[Any] = []
+
+    def kill_a_busy_worker() -> None:
+        client = default_client()
+        deadline = time.monotonic() + 300
+        while time.monotonic() < deadline and not killed:
+            busy = [address for address, keys in client.processing().items() if keys]
+            if busy:
+                time.sleep(1.0)  # into the simulation (a point runs for many seconds here)
+                pid = client.run(os.getpid, workers=busy[:1])[busy[0]]
+                killed.append((pid, progress_seen[-1].finished))
+                os.kill(pid, signal.SIGKILL)
+            time.sleep(0.2)
+
+    def on_event(progress: Any) -> None:  # first called once the client has started
+        progress_seen.append(progress)
+        if len(progress_seen) == 1:
+            threading.Thread(target=kill_a_busy_worker, daemon=True).start()
+
+    final = run_sweep(sweep, RunOptions(), on_event=on_event)
+    assert killed and killed[0][1] == 0, "no worker was killed while its point ran"
+    assert (final.finished, final.failed, final.to_run) == (2, 0, 2)  # each point stored once, none lost
+    assert _done_points(tmp_path / "odour.zarr") == 2
+
+
+def _done_code() -> int:
+    from capsweep.flags import STATUSES
+
+    return STATUSES.index("done")
+
+
+# --- a real batch system ----------------------------------------------------------------------------------------
+
+@pytest.fixture(scope="module")
+def slurm() -> None:
+    sys.path.insert(0, str(Path(__file__).parent))
+    from slurm import start_slurm
+
+    reason = start_slurm()
+    if reason:
+        pytest.skip(f"no one-node SLURM: {reason}")
+
+
+def _capsweep(*args: str) -> subprocess.Popen[str]:
+    return subprocess.Popen([sys.executable, "-m", "capsweep.sweeps.cli", "run", str(SLURM_SWEEP), *args],
+                            stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
+
+
+def _running_jobs() -> list[str]:
+    shown = subprocess.run(["squeue", "-h", "-t", "R", "-o", "%i"], capture_output=True, text=True, timeout=30)
+    return shown.stdout.split()
+
+
+def _done_points(store: Path) -> int:
+    if not (store / "zarr.json").exists():
+        return 0
+    with xr.open_zarr(store) as opened:
+        return int((opened["status"].values == _done_code()).sum())
+
+
+@pytest.mark.cluster
+def test_slurm_sweep_survives_a_cancelled_worker_job_and_matches_a_local_run(
+        slurm: None, tmp_path: Path, build_root: Path) -> None:
+    local_store, batch_store = tmp_path / "local.zarr", tmp_path / "slurm.zarr"
+    local = _capsweep("--store", str(local_store), "--cluster", "local", "--workers", "2")
+    assert local.wait(timeout=900) == 0, local.communicate()[0]
+
+    batch = _capsweep("--store", str(batch_store))
+    cancelled, jobs_seen = "", set()
+    deadline = time.monotonic() + 900
+    while batch.poll() is None and time.monotonic() < deadline:
+        running = _running_jobs()
+        jobs_seen.update(running)
+        if not cancelled and len(running) == 2 and 1 <= _done_points(batch_store) < 3:
+            cancelled = running[0]  # both workers are busy: 3 points remain for 2 one-point workers
+            subprocess.run(["scancel", cancelled], check=True, timeout=30)
+        time.sleep(1.0)
+    output = batch.communicate(timeout=60)[0]
+    assert batch.returncode == 0, output
+    assert cancelled, f"the sweep ended before a worker job could be cancelled mid-sweep: {output}"
+    assert _running_jobs() == [], "worker jobs outlived the sweep"
+
+    with xr.open_zarr(local_store) as a, xr.open_zarr(batch_store) as b:
+        assert (b["status"].values == _done_code()).all()
+        assert sorted(a.data_vars) == sorted(b.data_vars)
+        for name in sorted(set(a.data_vars) - set(TIMINGS)):
+            left, right = a[name].values, b[name].values
+            same = np.array_equal(left, right, equal_nan=left.dtype.kind == "f")
+            assert same, f"{name} differs between the local and the SLURM run"
