@@ -141,3 +141,12 @@ def cue_bins(sched: Schedule, bin_s: float, n_bins: int) -> np.ndarray:
         last = int(np.ceil(sched.seconds(b) / bin_s - 1e-9))
         mask[first:min(last, n_bins)] = True
     return mask
+
+
+def freeze_time_s(cfg: dict, sched: Schedule | None = None) -> float:
+    """Simulated time (s) from which weights stop changing: the end of imprinting with
+    ``plasticity.freeze_after_imprint``, else never (inf). ``sched`` saves recomputing the point's schedule."""
+    if not cfg["plasticity"]["freeze_after_imprint"]:
+        return math.inf
+    sched = sched or schedule(cfg)
+    return sched.seconds(sched.imprint_end)

@@ -68,11 +68,8 @@ _GATE = "plastic = int(t < freeze_time)"
 
 
 def freeze_time_s(cfg: dict) -> float:
-    """Simulated time (s) from which weights stop changing: the end of imprinting if frozen, else never."""
-    if not cfg["plasticity"]["freeze_after_imprint"]:
-        return NEVER_FROZEN_S
-    sched = protocol.schedule(cfg)
-    return sched.seconds(sched.imprint_end)
+    """:func:`capsweep.runners.protocol.freeze_time_s`, with "never" as a finite time beyond any run."""
+    return min(protocol.freeze_time_s(cfg), NEVER_FROZEN_S)
 
 
 def _clip(expr: str, bound: str) -> str:

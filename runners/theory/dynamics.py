@@ -129,7 +129,7 @@ def segments(cfg: dict, sched: protocol.Schedule) -> list[Segment]:
         t, focal = b, k
     if sched.end > t:
         out.append(Segment(sched.seconds(t), sched.seconds(sched.end), focal, None))
-    freeze = freeze_s(cfg, sched)
+    freeze = protocol.freeze_time_s(cfg, sched)
     split = []
     for s in out:
         if s.t0 < freeze < s.t1:
@@ -138,14 +138,6 @@ def segments(cfg: dict, sched: protocol.Schedule) -> list[Segment]:
             split.append(s)
     return split
 
-
-def freeze_s(cfg: dict, sched: protocol.Schedule) -> float:
-    """Time (s) from which weights stop changing: end of imprinting with ``freeze_after_imprint``, else never.
-
-    The value of :func:`capsweep.runners.rules.freeze_time_s`, read here from the schedule because that
-    module imports Brian2, which the theory does not.
-    """
-    return sched.seconds(sched.imprint_end) if cfg["plasticity"]["freeze_after_imprint"] else math.inf
 
 
 @dataclass(frozen=True)
@@ -356,7 +348,7 @@ def integrate(cfg: dict) -> Run:
     sched = protocol.schedule(cfg)
     run = Run(sched)
     p = initial_plastic(cfg)
-    freeze = freeze_s(cfg, sched)
+    freeze = protocol.freeze_time_s(cfg, sched)
     first = segments(cfg, sched)[0]
     rates = solve(cfg, _scenario(cfg, p, first), {g: 1.0 for g in (*E_GROUPS, "I")})
     lag = Lag(cfg, rates)
