@@ -1,6 +1,6 @@
-"""Agreement of the theory prescreen with simulation on the region sweeps of configs/regions.
+"""Agreement of the theory prescreen with simulation on the region sweeps configs/region-*.toml.
 
-Run each region first (``capsweep run configs/regions/X.toml --store STORES/X.zarr``), then::
+Run each region first (``capsweep run configs/region-X.toml --store STORES/region-X.zarr``), then::
 
     python benchmarks/prescreen_agreement.py [--stores /tmp/regions] [--workers 2]
 
@@ -17,7 +17,7 @@ from pathlib import Path
 
 from capsweep.sweeps.prescreen import check_against, compare, prescreen_sweep
 
-REGIONS = Path(__file__).resolve().parent.parent / "configs" / "regions"
+CONFIGS = Path(__file__).resolve().parent.parent / "configs"
 
 
 def main() -> None:
@@ -25,7 +25,7 @@ def main() -> None:
     parser.add_argument("--stores", type=Path, default=Path("/tmp/regions"), help="folder holding REGION.zarr")
     parser.add_argument("--workers", type=int, default=2)
     args = parser.parse_args()
-    for sweep in sorted(REGIONS.glob("*.toml")):
+    for sweep in sorted(CONFIGS.glob("region-*.toml")):
         store = args.stores / f"{sweep.stem}.zarr"
         if not store.exists():
             print(f"{sweep.stem}: no store at {store}; run it first")

@@ -85,19 +85,9 @@ def with_key_section(readme: str) -> str:
 
 
 def examples() -> dict[str, Traversable]:
-    """The example sweep files by name (path below configs/ without ``.toml``, e.g. ``regions/beta``), sorted."""
-    return dict(sorted(_toml_files(files(EXAMPLES_PACKAGE), "")))
-
-
-def _toml_files(folder: Traversable, prefix: str) -> list[tuple[str, Traversable]]:
-    """(name, file) of every ``.toml`` file in ``folder`` and its subfolders; names are ``prefix``-relative."""
-    found = []
-    for entry in folder.iterdir():
-        if entry.is_dir():
-            found += _toml_files(entry, f"{prefix}{entry.name}/")
-        elif entry.name.endswith(".toml"):
-            found.append((prefix + entry.name.removesuffix(".toml"), entry))
-    return found
+    """The example sweep files by name (file name without ``.toml``, e.g. ``region-beta``), sorted."""
+    return dict(sorted((entry.name.removesuffix(".toml"), entry) for entry in files(EXAMPLES_PACKAGE).iterdir()
+                       if entry.name.endswith(".toml")))
 
 
 def example_summary(example: Traversable) -> str:

@@ -105,7 +105,7 @@ def test_verdict_follows_the_inhibitory_learning_rate_as_simulation_does(point_c
     """One prewired odour assembly under triplet STDP with inhibitory STDP (the demo network): with a slow
     inhibitory rule (eta 5e-5) potentiation sets off a runaway, with the default rate (5e-3) inhibition keeps
     up and the point stays stable (simulated with capsweep on this machine, December 2026, 2 of 2 replicates
-    each in configs/regions/eta.toml). The former prescreen said "stable" for both."""
+    each in configs/region-eta.toml). The former prescreen said "stable" for both."""
     verdicts = {}
     for eta in (5e-5, 5e-3):
         cfg = point_config(demo_network, TRIPLET_WITH_ISTDP,
