@@ -226,7 +226,7 @@ def _execute(
         on_event(progress)
 
 
-def _jobs(points: list[Point], options: RunOptions) -> list[tuple[Point, dict[str, Any], int, int]]:
+def _jobs(points: list[Point], options: RunOptions) -> list[Job]:
     """Dask jobs of ``points``: (point, config with the command line's execution overrides, seed, wiring seed)."""
     return [(p, with_execution(p.config, engine=options.engine, prescreen=options.prescreen), p.seed, p.wiring_seed)
             for p in points]
@@ -255,15 +255,18 @@ def _execute_search(dask: EarlyClient, sweep: Sweep, points: list[Point], store:
     search = plan_search(points, count_axis, starts, sweep.search.method, store.status(),
                          store.scalar_values("outcome"), store.scalar_values("recalled_count"), options.retry_failed)
 
-    def follow_up(point: Point, result: Any) -> list[tuple[Point, dict[str, Any], int, int]]:
-        search.record(point, None if isinstance(result, TaskFailure) else
-                      bool(succeeds(result["outcome"], result["recalled_count"], point.config["assemblies"]["count"])))
-        wanted = _jobs(search.wanted(), options)
-        _mark_unneeded(store, search.unneeded(), progress)
-        return wanted
+    def advance(keys: list[tuple[int, ...]] | None = None) -> list[Job]:
+        """The jobs the search wants next (in the cells ``keys``, default all); points it decided without marked."""
+        wanted, unneeded = search.advance(keys)
+        _mark_unneeded(store, unneeded, progress)
+        return _jobs(wanted, options)
 
-    first = _jobs(search.wanted(), options)
-    _mark_unneeded(store, search.unneeded(), progress)
+    def follow_up(point: Point, result: Any) -> list[Job]:
+        verdict = None if isinstance(result, TaskFailure) else \
+            bool(succeeds(result["outcome"], result["recalled_count"], point.config["assemblies"]["count"]))
+        return advance([search.record(point, verdict)])
+
+    first = advance()
     on_event(progress)
     for point, result in run_tasks(client, first, follow_up):
         _store_result(store, point, result, progress)
@@ -282,13 +285,14 @@ def search_starts(sweep: Sweep, points: list[Point], count_axis: int, client: Cl
 
     assert sweep.search is not None
     counts = list(sweep.axes[count_axis].values)
+    if sweep.search.start is not None:
+        return {cell_key(p.index, count_axis): counts.index(sweep.search.start) for p in points}
+    from .prescreen import predicted_capacity
+
     cells: dict[tuple[int, ...], dict[int, dict[str, Any]]] = {}
     for p in points:
         if p.labels["replicate"] == 0:
             cells.setdefault(cell_key(p.index, count_axis), {})[p.labels[sweep.search.axis]] = p.config
-    if sweep.search.start is not None:
-        return {key: counts.index(sweep.search.start) for key in cells}
-    from .prescreen import predicted_capacity
 
     keys = list(cells)
     predicted = client.gather(client.map(predicted_capacity, [cells[k] for k in keys], pure=False))
@@ -315,14 +319,14 @@ def submission_sequence(jobs: list[Job]) -> list[Job]:
     the remaining points follow grouped by build (:func:`submission_order`). Jobs of engines without
     builds keep :func:`submission_order` alone.
     """
-    ordered = sorted(jobs, key=lambda job: submission_order(job[1]))
-    leaders: dict[str, Job] = {}
-    for job in ordered:
-        group = submission_order(job[1])[0]
-        if group and group not in leaders:
-            leaders[group] = job
-    first = sorted(leaders.values(), key=lambda job: -total_duration_s(job[1]))
-    return first + [job for job in ordered if all(job is not leader for leader in first)]
+    keyed = sorted(((submission_order(job[1]), i) for i, job in enumerate(jobs)))  # each build key hashed once
+    leaders: dict[str, int] = {}
+    for (group, _), i in keyed:
+        if group:
+            leaders.setdefault(group, i)
+    first = sorted(leaders.values(), key=lambda i: -total_duration_s(jobs[i][1]))
+    chosen = set(first)
+    return [jobs[i] for i in first] + [jobs[i] for _, i in keyed if i not in chosen]
 
 
 def _store_result(store: ResultStore, point: Point, result: Any, progress: Progress) -> None:

@@ -26,6 +26,7 @@ after ``--retry-failed``) stop a bisect at once; the capacity table flags the ce
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -91,21 +92,37 @@ class SearchRun:
     verdicts: dict[tuple[int, ...], Verdict]  # point index -> verdict, for finished points
     submitted: set[tuple[int, ...]] = field(default_factory=set)
     marked: set[tuple[int, ...]] = field(default_factory=set)  # points already given status unneeded
+    closed: set[tuple[int, ...]] = field(default_factory=set)  # cells whose capacity is decided
 
-    def record(self, point: Point, verdict: Verdict) -> None:
-        """A point finished with ``verdict``."""
+    def record(self, point: Point, verdict: Verdict) -> tuple[int, ...]:
+        """A point finished with ``verdict``; returns its cell."""
         self.verdicts[point.index] = verdict
+        return cell_key(point.index, self.count_axis)
 
-    def wanted(self) -> list[Point]:
-        """Points to submit now: the unfinished, unsubmitted replicates of every open cell's next probe."""
-        out = []
-        for key, cell in self.cells.items():
-            for probe in self._advance(key, cell):
-                for point in self.points[key, probe]:
-                    if point.index not in self.verdicts and point.index not in self.submitted:
-                        self.submitted.add(point.index)
-                        out.append(point)
-        return out
+    def advance(self, keys: Iterable[tuple[int, ...]] | None = None) -> tuple[list[Point], list[Point]]:
+        """For the cells ``keys`` (default: all), the points to submit now and the points newly unneeded.
+
+        An open cell wants the unfinished, unsubmitted replicates of its next probes; a cell that has
+        just closed gives up every point it never ran (they are counted as marked unneeded).
+        """
+        wanted: list[Point] = []
+        unneeded: list[Point] = []
+        for key in self.cells if keys is None else keys:
+            cell = self.cells[key]
+            probes = self._advance(key, cell)
+            if probes:
+                wanted += [p for k in probes for p in self.points[key, k] if self._untouched(p)]
+                self.submitted.update(p.index for p in wanted)
+            elif key not in self.closed:
+                self.closed.add(key)
+                unneeded += [p for k in range(cell.n_counts) for p in self.points[key, k] if self._untouched(p)]
+        self.marked.update(p.index for p in unneeded)
+        return wanted, unneeded
+
+    def _untouched(self, point: Point) -> bool:
+        """Neither finished, submitted nor marked unneeded."""
+        index = point.index
+        return index not in self.verdicts and index not in self.submitted and index not in self.marked
 
     def _advance(self, key: tuple[int, ...], cell: CellSearch) -> list[int]:
         """Record the verdicts of finished probes; the cell's probes still open (empty: decided)."""
@@ -121,13 +138,6 @@ class SearchRun:
             if len(still_open) == len(probes):
                 return still_open
         return []
-
-    def unneeded(self) -> list[Point]:
-        """Points of decided cells that never ran nor were submitted, not yet marked unneeded (then marked)."""
-        new = [p for (key, _), group in self.points.items() if not self.cells[key].next_probes()
-               for p in group if p.index not in self.verdicts.keys() | self.submitted | self.marked]
-        self.marked.update(p.index for p in new)
-        return new
 
 
 def plan_search(points: list[Point], count_axis: int, starts: dict[tuple[int, ...], int], method: str,
