@@ -270,7 +270,6 @@ class _Build:
     handles: Handles
     watch: b2.NeuronGroup
     wiring_files: dict[str, tuple[str, str]]  # synapses name -> static-array files of (i, j)
-    compile_s: float  # wall s to generate the build's code and compile it (make skips files that did not change)
 
 
 _CURRENT: dict[str, _Build] = {}
@@ -335,7 +334,6 @@ def _use_standalone(directory: Path, fresh: bool) -> Any:
 
 def _compile(cfg: dict, seed: int, wiring_seed: int | None, key: str) -> _Build:
     """Generate (and, if the code changed, compile) the build of ``key``; keep its objects live."""
-    start = time.perf_counter()
     directory = build_root() / key
     device = _use_standalone(directory, fresh=True)
     network, ns, handles = build_network(cfg, seed, wiring_seed, standalone=True)
@@ -357,7 +355,7 @@ def _compile(cfg: dict, seed: int, wiring_seed: int | None, key: str) -> _Build:
     for name in handles.wiring:
         wiring[name] = tuple(next(n for n in device.static_arrays if n.startswith(f"_static_array__array_{name}_{end}"))
                              for end in ("sources", "targets"))
-    build = _Build(key, directory, network, handles, watch, wiring, time.perf_counter() - start)
+    build = _Build(key, directory, network, handles, watch, wiring)
     _CURRENT[key] = build
     return build
 

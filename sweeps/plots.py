@@ -31,6 +31,7 @@ from matplotlib.ticker import MaxNLocator, NullFormatter
 from matplotlib.transforms import blended_transform_factory
 from matplotlib.typing import ColorType
 
+from ..axes import COUNT_KEY
 from ..errors import CapsweepError, ConfigError
 from ..flags import OUTCOMES
 from ..runners.protocol import Schedule, cue_order, recall_end, schedule
@@ -45,7 +46,7 @@ from .capacity import (
     wilson_interval,
 )
 from .expand import expand, grid_shape
-from .query import COUNT_KEY, QueryError, axis_keys, labelled, sweep_dims
+from .query import QueryError, axis_keys, labelled, sweep_dims
 from .sweepfile import parse_sweep
 
 OUTCOME_COLOURS = dict(zip(OUTCOMES, ("tab:green", "tab:red", "tab:grey")))

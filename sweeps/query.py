@@ -16,7 +16,6 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from ..axes import COUNT_KEY  # noqa: F401  (re-exported for plots)
 from ..errors import CapsweepError
 from ..flags import OUTCOMES, STATUSES
 from ..results_schema import layout

@@ -108,7 +108,7 @@ def copy_example(name: str, folder: Path) -> Path:
         raise ConfigError(f"no example named {name!r}; {did_you_mean(name, available, 'examples')}")
     if not folder.is_dir():
         raise ConfigError(f"--to {folder}: no such folder")
-    target = folder / f"{Path(name).name}.toml"
+    target = folder / f"{name}.toml"
     if target.exists():
         raise ConfigError(f"{target} exists already; remove it or copy into another folder with --to DIR")
     target.write_text(available[name].read_text())
