@@ -5,8 +5,10 @@ Run each region first (``capsweep run configs/region-X.toml --store STORES/regio
     python benchmarks/prescreen_agreement.py [--stores /tmp/regions] [--workers 2]
 
 Prints, per region: outcome agreement over the done points (the ``capsweep prescreen --against``
-numbers), the confusion table, how many cells have the predicted capacity equal to the simulated
-one (cells whose simulated capacity is decided), and the wall time per predicted grid point.
+numbers) beside the most any one verdict per grid point could reach (the replicates' majority), the
+confusion table, how many cells have the predicted capacity equal to the simulated one or within one
+(cells whose simulated capacity is decided), and the wall time per predicted grid point; then the
+totals over all regions.
 """
 
 from __future__ import annotations
@@ -15,6 +17,7 @@ import argparse
 import time
 from pathlib import Path
 
+from capsweep.errors import CapsweepError
 from capsweep.sweeps.prescreen import check_against, compare, prescreen_sweep
 
 CONFIGS = Path(__file__).resolve().parent.parent / "configs"
@@ -25,24 +28,35 @@ def main() -> None:
     parser.add_argument("--stores", type=Path, default=Path("/tmp/regions"), help="folder holding REGION.zarr")
     parser.add_argument("--workers", type=int, default=2)
     args = parser.parse_args()
+    agree = points = majority = equal = near = cells = 0
     for sweep in sorted(CONFIGS.glob("region-*.toml")):
         store = args.stores / f"{sweep.stem}.zarr"
         if not store.exists():
             print(f"{sweep.stem}: no store at {store}; run it first")
             continue
-        check_against(sweep, store)
+        try:
+            check_against(sweep, store)
+        except CapsweepError as exc:
+            print(f"{sweep.stem}: {exc}")
+            continue
         start = time.perf_counter()
         table = prescreen_sweep(sweep, workers=args.workers)
         wall = time.perf_counter() - start
         result = compare(sweep, store, table)
         cap = result.capacity.dropna(subset=["simulated_capacity"]) if not result.capacity.empty else result.capacity
-        same = int((cap["predicted_capacity"] == cap["simulated_capacity"]).sum()) if len(cap) else 0
-        print(f"{sweep.stem}: outcome agreement {result.agreement:.0%} of {len(result.points)} done points; "
-              f"capacity equal in {same} of {len(cap)} cells; {wall / len(table):.2f} s wall per grid point "
-              f"({args.workers} workers)")
+        gap = (cap["predicted_capacity"] - cap["simulated_capacity"]).abs() if len(cap) else cap
+        n = len(result.points)
+        agree, points, majority = agree + result.agreement * n, points + n, majority + result.ceiling * n
+        equal, near, cells = equal + int((gap == 0).sum()), near + int((gap <= 1).sum()), cells + len(cap)
+        print(f"{sweep.stem}: outcome agreement {result.agreement:.0%} of {n} done points (replicate-majority "
+              f"ceiling {result.ceiling:.0%}); capacity equal in {int((gap == 0).sum())} of {len(cap)} cells, within "
+              f"one in {int((gap <= 1).sum())}; {wall / len(table):.2f} s wall per grid point ({args.workers} workers)")
         print(result.confusion.to_string())
         if len(cap):
             print(cap.to_string(index=False))
+    if points:
+        print(f"all regions: outcome agreement {agree / points:.1%} of {points} points (ceiling "
+              f"{majority / points:.1%}); capacity equal in {equal} of {cells} cells, within one in {near}")
 
 
 if __name__ == "__main__":

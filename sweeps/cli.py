@@ -414,7 +414,8 @@ def prescreen_command(
     if not result.capacity.empty:
         _say("capacity per cell (simulated: capsweep capacity; at_least = top of the grid):")
         _emit(result.capacity, fmt)
-    _say(f"outcome agreement: {result.agreement:.0%} of {len(result.points)} done points")
+    _say(f"outcome agreement: {result.agreement:.0%} of {len(result.points)} done points (replicates differ among "
+         f"themselves: the most one verdict per grid point can reach here is {result.ceiling:.0%})")
     _say("confusion (rows: predicted, columns: simulated):\n" + result.confusion.to_string())
     path = plot_agreement(result.confusion, result.capacity, result.agreement, agreement_plot_path(against, plots))
     _say(str(path))

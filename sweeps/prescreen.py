@@ -32,6 +32,7 @@ def predict_row(config: dict[str, Any]) -> dict[str, Any]:
     return {
         "predicted_outcome": p.outcome,
         "predicted_success": p.success,
+        "runaway_chance": p.runaway_chance,
         "recalled_count": p.recalled_count,
         "recall_state_exists": p.recall_state_exists,
         "recall_state_stable": p.recall_state_stable,
@@ -59,9 +60,9 @@ def predicted_capacity(configs_by_count: dict[int, dict]) -> int:
     """Predicted capacity of one cell: largest count k such that every count <= k is predicted to succeed.
 
     ``configs_by_count`` maps an assembly count to the cell's nested config at that count. A count
-    succeeds when it is predicted stable with every assembly recalled and a stable recall state at the
-    end weights (:attr:`capsweep.runners.theory.prediction.Prediction.success`). 0 if the smallest count
-    fails. Counts are predicted in ascending order and the search stops at the first failure.
+    succeeds when it is predicted stable (:attr:`capsweep.runners.theory.prediction.Prediction.success`
+    says why recall does not enter). 0 if the smallest count fails. Counts are predicted in ascending order
+    and the search stops at the first failure.
     """
     from ..runners.theory.prediction import predict
 
@@ -141,6 +142,7 @@ class Comparison:
 
     points: pd.DataFrame  # per done point: axis labels, replicate, predicted and simulated outcome
     agreement: float  # fraction of done points whose predicted outcome equals the simulated one
+    ceiling: float  # the most agreement one verdict per grid point can reach: the replicates' majority outcome
     confusion: pd.DataFrame  # rows: predicted outcome, columns: simulated outcome, values: point counts
     capacity: pd.DataFrame  # per cell: predicted and simulated capacity (empty without a count axis)
 
@@ -179,6 +181,8 @@ def compare(sweep_file: str | Path, store: Path, predictions: pd.DataFrame) -> C
     confusion = pd.crosstab(points["predicted_outcome"], points["outcome"]).rename_axis(
         index="predicted", columns="simulated")
     agreement = float((points["predicted_outcome"] == points["outcome"]).mean()) if len(points) else float("nan")
+    majority = points.groupby(axes, sort=False)["outcome"].agg(lambda o: o.value_counts().iloc[0]).sum()
+    ceiling = float(majority / len(points)) if len(points) else float("nan")
     count = count_axis(sweep)
     capacity = pd.DataFrame()
     if count is not None and "predicted_capacity" in predictions:
@@ -188,7 +192,7 @@ def compare(sweep_file: str | Path, store: Path, predictions: pd.DataFrame) -> C
         sim = capacity_table(ds)[[*others, "capacity", "at_least"]].rename(columns={"capacity": "simulated_capacity"})
         capacity = predicted.merge(sim, on=others, how="left") if others else pd.concat(
             [predicted.reset_index(drop=True), sim.reset_index(drop=True)], axis=1)
-    return Comparison(points, agreement, confusion, capacity)
+    return Comparison(points, agreement, ceiling, confusion, capacity)
 
 
 def outcome_table(points: pd.DataFrame) -> pd.DataFrame:

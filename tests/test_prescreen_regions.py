@@ -1,15 +1,17 @@
 """The time-resolved prescreen: rate forms against closed forms and the simulated rules, and a verdict that
-follows a parameter the former prescreen ignored, as simulation does.
+follows parameters the former prescreens ignored, as simulation does.
 
-The former prescreen called every point with inhibitory STDP on "stable", whatever its learning rate
-(it assumed inhibition onto members reaches its cap). Now the I->E weights move at the rate the rule
-gives over the protocol's durations, so a slow inhibitory rule loses the race against triplet
-potentiation, as it does in simulation.
+The first prescreen called every point with inhibitory STDP on "stable", whatever its learning rate (it assumed
+inhibition onto members reaches its cap); the second called every point of the beta region "stable" (its mean
+field has no self-sustained assembly state there). Now the I->E weights move at the rate the rule gives, and the
+runaway chance of the link (capsweep.runners.theory.link) grows with the count and falls with beta, as the
+simulated outcome does.
 """
 
 from __future__ import annotations
 
 import math
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -18,7 +20,11 @@ from scipy import integrate, stats
 from capsweep.runners.point import run_point
 from capsweep.runners.theory import drift
 from capsweep.runners.theory.prediction import predict
+from capsweep.sweeps.expand import expand
 from capsweep.sweeps.prescreen import capacity_from
+from capsweep.sweeps.sweepfile import load_sweep
+
+CONFIGS = Path(__file__).resolve().parent.parent / "configs"
 
 TRIPLET_WITH_ISTDP = {"plasticity.heterosynaptic.enabled": False, "plasticity.transmitter.enabled": False}
 
@@ -126,3 +132,17 @@ def test_gamma_moment_match_of_the_trace() -> None:
     shape, scale = 2 * rate * tau, 0.5
     third = integrate.quad(lambda v: v**3 * stats.gamma.pdf(v, shape, scale=scale), 0, 60)[0]
     assert np.mean(z**3) == pytest.approx(third, rel=0.1)
+
+
+def test_verdict_follows_beta_and_count_as_simulation_does() -> None:
+    """Region (a), configs/region-beta.toml (full E->E rule, no inhibitory STDP, weak prewiring): at three odours
+    a weak heterosynaptic term (beta 0.03) runs away and a strong one (beta 1) holds; at beta 1 one odour holds
+    too. Both replicates of each cell are simulated here and must agree with the prediction; the prescreen before
+    the link said "stable" for all three."""
+    points = expand(load_sweep(CONFIGS / "region-beta.toml"))
+    want = {(0.03, 3): "runaway", (1.0, 3): "stable", (1.0, 1): "stable"}
+    for (beta, count), outcome in want.items():
+        cell = [p for p in points if p.labels["beta"] == beta and p.labels["n_odours"] == count]
+        assert predict(cell[0].config).outcome == outcome, (beta, count)
+        simulated = [run_point(p.config, p.seed, p.wiring_seed)["outcome"] for p in cell]
+        assert simulated == [outcome] * len(cell), (beta, count, simulated)

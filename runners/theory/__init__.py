@@ -24,6 +24,6 @@ fixed in-degree, so a cell receives
 
 Modules: :mod:`.drift` (rate form of the plasticity rules), :mod:`.transfer` (LIF transfer
 functions of one conductance-based cell), :mod:`.meanfield` (populations, fixed points, transfer
-curves), :mod:`.dynamics` (weights and rates integrated over a point's protocol), :mod:`.prediction`
-(the prescreen's verdict).
+curves), :mod:`.dynamics` (weights and rates integrated over a point's protocol), :mod:`.link` (runaway
+chance from theory quantities, the one part fitted to simulations), :mod:`.prediction` (the prescreen's verdict).
 """
