@@ -140,7 +140,7 @@ def write_cell_plots(points: list[Point], plots_dir: Path) -> list[Path]:
 class Comparison:
     """Predictions set against a store of the same sweep."""
 
-    points: pd.DataFrame  # per done point: axis labels, replicate, predicted and simulated outcome
+    points: pd.DataFrame  # per done point: axis labels, replicate, runaway chance, predicted and simulated outcome
     agreement: float  # fraction of done points whose predicted outcome equals the simulated one
     ceiling: float  # the most agreement one verdict per grid point can reach: the replicates' majority outcome
     confusion: pd.DataFrame  # rows: predicted outcome, columns: simulated outcome, values: point counts
@@ -177,7 +177,7 @@ def compare(sweep_file: str | Path, store: Path, predictions: pd.DataFrame) -> C
     simulated = xr.Dataset({name: labelled(ds, name) for name in ("status", "outcome")}).reset_coords(
         drop=True).to_dataframe().reset_index()
     simulated = simulated[simulated["status"] == "done"][[*axes, "replicate", "outcome"]]
-    points = simulated.merge(predictions[[*axes, "predicted_outcome"]], on=axes, how="left")
+    points = simulated.merge(predictions[[*axes, "predicted_outcome", "runaway_chance"]], on=axes, how="left")
     confusion = pd.crosstab(points["predicted_outcome"], points["outcome"]).rename_axis(
         index="predicted", columns="simulated")
     agreement = float((points["predicted_outcome"] == points["outcome"]).mean()) if len(points) else float("nan")
@@ -196,13 +196,15 @@ def compare(sweep_file: str | Path, store: Path, predictions: pd.DataFrame) -> C
 
 
 def outcome_table(points: pd.DataFrame) -> pd.DataFrame:
-    """Per grid point of a :class:`Comparison`: predicted outcome, the replicates' simulated outcomes, agreement."""
-    axes = [c for c in points.columns if c not in ("replicate", "outcome", "predicted_outcome")]
+    """Per grid point of a :class:`Comparison`: runaway chance and predicted outcome, the replicates' simulated
+    outcomes, agreement."""
+    axes = [c for c in points.columns if c not in ("replicate", "outcome", "predicted_outcome", "runaway_chance")]
     rows = []
     for labels, group in points.groupby(axes, sort=False):
         labels = labels if isinstance(labels, tuple) else (labels,)
         agree = int((group["outcome"] == group["predicted_outcome"]).sum())
-        rows.append({**dict(zip(axes, labels)), "predicted": group["predicted_outcome"].iloc[0],
+        rows.append({**dict(zip(axes, labels)), "runaway_chance": f"{group['runaway_chance'].iloc[0]:.0%}",
+                     "predicted": group["predicted_outcome"].iloc[0],
                      "simulated": " ".join(group["outcome"]), "agree": f"{agree}/{len(group)}"})
     return pd.DataFrame(rows)
 

@@ -15,7 +15,9 @@ import pandas as pd
 from ..flags import OUTCOMES
 from ..runners.metrics import active_threshold
 from ..runners.theory.drift import bcm_threshold_hz, drift_zero_crossings, rule_drift
+from ..runners.theory.link import RUNAWAY_AT
 from ..runners.theory.meanfield import TransferCurve, initial_weights, population_rates
+from .prescreen import Comparison
 
 
 def _mark_fixed_points(ax, curve: TransferCurve, color: str) -> None:
@@ -111,11 +113,19 @@ def _save(fig, path: str | Path) -> Path:
     return out
 
 
-def plot_agreement(confusion: pd.DataFrame, capacity: pd.DataFrame, agreement: float, path: str | Path) -> Path:
-    """Left: confusion heatmap (rows predicted, columns simulated outcome; point counts). Right: predicted against
-    simulated capacity per cell (open markers: the simulated capacity is only a lower bound, the top of the grid)."""
-    fig, axes = plt.subplots(1, 2, figsize=(10, 4.2))
-    ax = axes[0]
+def plot_agreement(result: Comparison, path: str | Path) -> Path:
+    """Three panels: the confusion table of outcomes, the runaway chance against the simulated runaway fraction per
+    grid point, and predicted against simulated capacity per cell."""
+    fig, axes = plt.subplots(1, 3, figsize=(15, 4.4))
+    _confusion_panel(axes[0], result.confusion, result.agreement, result.ceiling)
+    _chance_panel(axes[1], result.points)
+    _capacity_panel(axes[2], result.capacity)
+    fig.tight_layout()
+    return _save(fig, path)
+
+
+def _confusion_panel(ax: plt.Axes, confusion: pd.DataFrame, agreement: float, ceiling: float) -> None:
+    """Heatmap of point counts: rows predicted, columns simulated outcome."""
     labels = list(OUTCOMES[:3])
     table = confusion.reindex(index=labels, columns=labels, fill_value=0).fillna(0).to_numpy(dtype=int)
     ax.imshow(table, cmap="Blues")
@@ -125,8 +135,29 @@ def plot_agreement(confusion: pd.DataFrame, capacity: pd.DataFrame, agreement: f
     ax.set_yticks(range(3), labels)
     ax.set_xlabel("simulated outcome")
     ax.set_ylabel("predicted outcome")
-    ax.set_title(f"Outcome per point: agreement {agreement:.0%}")
-    ax = axes[1]
+    ax.set_title(f"Outcome per point: agreement {agreement:.0%} (ceiling {ceiling:.0%})")
+
+
+def _chance_panel(ax: plt.Axes, points: pd.DataFrame) -> None:
+    """Per grid point: predicted runaway chance against the fraction of its replicates that ran away (marker area:
+    replicates done). A calibrated link puts the points around the identity."""
+    axes = [c for c in points.columns if c not in ("replicate", "outcome", "predicted_outcome", "runaway_chance")]
+    grouped = points.assign(ran=points["outcome"] == "runaway").groupby(axes, sort=False)
+    cells = grouped.agg(chance=("runaway_chance", "first"), fraction=("ran", "mean"), n=("ran", "size"))
+    ax.scatter(cells["chance"], cells["fraction"], s=25 * cells["n"], alpha=0.5, color="C3", label="grid point")
+    ax.plot([0, 1], [0, 1], "k--", lw=1, label="identity")
+    ax.axvline(RUNAWAY_AT, color="grey", lw=0.8, ls=":", label=f"predicted runaway from {RUNAWAY_AT:.0%}")
+    ax.set_xlim(-0.03, 1.03)
+    ax.set_ylim(-0.05, 1.05)
+    ax.set_xlabel("predicted runaway chance")
+    ax.set_ylabel("simulated runaway fraction (replicates)")
+    ax.set_title("Runaway chance per grid point")
+    ax.legend(fontsize=8, loc="lower right")
+
+
+def _capacity_panel(ax: plt.Axes, capacity: pd.DataFrame) -> None:
+    """Predicted against simulated capacity per cell (open markers: the simulated capacity is only a lower bound,
+    the top of the grid)."""
     if capacity.empty or capacity["simulated_capacity"].isna().all():
         ax.text(0.5, 0.5, "no capacity (no count axis or undecided cells)", ha="center", transform=ax.transAxes)
     else:
@@ -145,5 +176,3 @@ def plot_agreement(confusion: pd.DataFrame, capacity: pd.DataFrame, agreement: f
     ax.set_xlabel("simulated capacity (assemblies)")
     ax.set_ylabel("predicted capacity (assemblies)")
     ax.set_title("Capacity per cell")
-    fig.tight_layout()
-    return _save(fig, path)

@@ -125,6 +125,19 @@ def test_prescreen_prediction_is_stored_beside_each_point(rules_store) -> None:
     assert int(one["predicted_outcome"].values.ravel()[0]) == int(one["outcome"].values.ravel()[0]) == outcome["stable"]
 
 
+def test_prescreen_against_its_store_counts_what_the_store_holds(rules_store, tmp_path: Path) -> None:
+    """`prescreen SWEEP --against STORE`: the agreement it prints is the share of points whose stored simulated
+    outcome equals the stored `run --prescreen` verdict (read here with plain xarray), and it writes its PNG."""
+    sweep, store, _ = rules_store
+    ds = xr.open_zarr(store)
+    share = float((ds["outcome"].values == ds["predicted_outcome"].values).mean())
+    shown = capsweep("prescreen", str(sweep), "--against", str(store), "--plots", str(tmp_path), "--workers", "1")
+    assert shown.returncode == 0, shown.stderr
+    assert f"outcome agreement: {share:.0%} of {ds['outcome'].size} done points" in shown.stdout
+    assert "can reach here is 100%" in shown.stdout  # one replicate per grid point: any verdict can match it
+    assert (tmp_path / "odour_prescreen_agreement.png").stat().st_size > 10_000
+
+
 def test_query_status_and_rerun(rules_store) -> None:
     sweep, store, _ = rules_store
     query = capsweep("query", str(store), "--format", "json")

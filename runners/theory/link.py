@@ -11,8 +11,8 @@ Its coefficients (:data:`INTERCEPT`, :data:`WEIGHTS`) are the only constants of 
 simulations: by maximum likelihood, with each weight's sign fixed by physics (:data:`SIGNS`), on a scrambled
 Sobol design over a box around the demo network (``benchmarks/calibrate_prescreen.py`` holds the box, seed
 and size), never on the region sweeps the prescreen is validated on. Outside that box (200-400 E cells,
-assemblies of 12-25 % of them, 1-6 assemblies, prewiring gain 2-6, the rule coefficients of the box) the
-link extrapolates.
+prewired assemblies of 12-25 % of them, 1-6 assemblies, prewiring gain 2-6, the rule coefficients of the box;
+learned assemblies were not in it) the link extrapolates.
 
 Features (rates from the mean field at the point's initial weights; T = ``detection.runaway_hold_s +
 detection.smoothing_s``, the time the runaway detector needs; weight changes are relative to the initial
