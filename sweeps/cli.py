@@ -417,7 +417,8 @@ def prescreen_command(
     _say(f"outcome agreement: {result.agreement:.0%} of {len(result.points)} done points (replicates differ among "
          f"themselves: the most one verdict per grid point can reach here is {result.ceiling:.0%})")
     _say("confusion (rows: predicted, columns: simulated):\n" + result.confusion.to_string())
-    path = plot_agreement(result, agreement_plot_path(against, plots))
+    path = plot_agreement(result.points, result.confusion, result.capacity, (result.agreement, result.ceiling),
+                          agreement_plot_path(against, plots))
     _say(str(path))
 
 

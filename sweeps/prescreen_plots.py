@@ -17,7 +17,6 @@ from ..runners.metrics import active_threshold
 from ..runners.theory.drift import bcm_threshold_hz, drift_zero_crossings, rule_drift
 from ..runners.theory.link import RUNAWAY_AT
 from ..runners.theory.meanfield import TransferCurve, initial_weights, population_rates
-from .prescreen import Comparison
 
 
 def _mark_fixed_points(ax, curve: TransferCurve, color: str) -> None:
@@ -113,13 +112,15 @@ def _save(fig, path: str | Path) -> Path:
     return out
 
 
-def plot_agreement(result: Comparison, path: str | Path) -> Path:
-    """Three panels: the confusion table of outcomes, the runaway chance against the simulated runaway fraction per
-    grid point, and predicted against simulated capacity per cell."""
+def plot_agreement(points: pd.DataFrame, confusion: pd.DataFrame, capacity: pd.DataFrame,
+                   agreement: tuple[float, float], path: str | Path) -> Path:
+    """Three panels from a :class:`capsweep.sweeps.prescreen.Comparison`: the confusion table of outcomes (title:
+    ``agreement`` = (agreement, its ceiling)), the runaway chance against the simulated runaway fraction per grid
+    point, and predicted against simulated capacity per cell."""
     fig, axes = plt.subplots(1, 3, figsize=(15, 4.4))
-    _confusion_panel(axes[0], result.confusion, result.agreement, result.ceiling)
-    _chance_panel(axes[1], result.points)
-    _capacity_panel(axes[2], result.capacity)
+    _confusion_panel(axes[0], confusion, *agreement)
+    _chance_panel(axes[1], points)
+    _capacity_panel(axes[2], capacity)
     fig.tight_layout()
     return _save(fig, path)
 
