@@ -401,8 +401,15 @@ def prescreen_command(
     with Progress(TextColumn("[bold]cells"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
                   console=err) as bar:
         task = bar.add_task("prescreen", total=None)
-        table = prescreen_sweep(sweep_file, workers, scheduler, plots,
+        table = prescreen_sweep(sweep_file, workers, scheduler,
                                 on_done=lambda done, total: bar.update(task, completed=done, total=total))
+    if plots is not None:
+        from .expand import expand
+        from .prescreen import cells
+        from .prescreen_plots import write_cell_plots
+        from .sweepfile import load_sweep
+
+        write_cell_plots(cells(expand(load_sweep(sweep_file))), plots)
     if against is None:
         _emit(table.drop(columns=["reasons"]) if fmt is TableFormat.table else table, fmt)
         return
@@ -417,8 +424,7 @@ def prescreen_command(
     _say(f"outcome agreement: {result.agreement:.0%} of {len(result.points)} done points (replicates differ among "
          f"themselves: the most one verdict per grid point can reach here is {result.ceiling:.0%})")
     _say("confusion (rows: predicted, columns: simulated):\n" + result.confusion.to_string())
-    path = plot_agreement(result.points, result.confusion, result.capacity, (result.agreement, result.ceiling),
-                          agreement_plot_path(against, plots))
+    path = plot_agreement(result, agreement_plot_path(against, plots))
     _say(str(path))
 
 

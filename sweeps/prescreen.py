@@ -101,13 +101,9 @@ def prescreen_sweep(
     sweep_file: str | Path,
     workers: int | None = None,
     scheduler: str | None = None,
-    plots_dir: Path | None = None,
     on_done: Callable[[int, int], None] = lambda done, total: None,
 ) -> pd.DataFrame:
-    """Prediction per grid point of ``sweep_file`` (replicates share it), with the predicted capacity per cell.
-
-    With ``plots_dir``, also writes the transfer-curve and drift-curve PNGs of every point.
-    """
+    """Prediction per grid point of ``sweep_file`` (replicates share it), with the predicted capacity per cell."""
     sweep = load_sweep(sweep_file)
     todo = cells(expand(sweep))
     execution = todo[0].config["execution"]
@@ -118,22 +114,16 @@ def prescreen_sweep(
             labels = {k: v for k, v in point.labels.items() if k != "replicate"}
             rows.append({**labels, **future.result()})
             on_done(i + 1, len(todo))
-    if plots_dir is not None:
-        write_cell_plots(todo, plots_dir)
     return with_capacity(pd.DataFrame(rows), count_axis(sweep))
 
 
-def write_cell_plots(points: list[Point], plots_dir: Path) -> list[Path]:
-    """Transfer and drift PNGs per grid point, named after the point's axis values."""
-    from .prescreen_plots import plot_drift, plot_transfer
+POINT_COLUMNS = ("replicate", "outcome", "predicted_outcome", "runaway_chance")
+"""Columns of :attr:`Comparison.points` that are not sweep axes."""
 
-    plots_dir.mkdir(parents=True, exist_ok=True)
-    paths = []
-    for point in points:
-        stem = "_".join(f"{k}-{v}" for k, v in point.labels.items() if k != "replicate") or "base"
-        paths.append(plot_transfer(point.config, plots_dir / f"transfer_{stem}.png"))
-        paths.append(plot_drift(point.config, plots_dir / f"drift_{stem}.png"))
-    return paths
+
+def grid_axes(points: pd.DataFrame) -> list[str]:
+    """The sweep axes among the columns of a :attr:`Comparison.points` table (what a grid point is grouped by)."""
+    return [c for c in points.columns if c not in POINT_COLUMNS]
 
 
 @dataclass(frozen=True)
@@ -198,7 +188,7 @@ def compare(sweep_file: str | Path, store: Path, predictions: pd.DataFrame) -> C
 def outcome_table(points: pd.DataFrame) -> pd.DataFrame:
     """Per grid point of a :class:`Comparison`: runaway chance and predicted outcome, the replicates' simulated
     outcomes, agreement."""
-    axes = [c for c in points.columns if c not in ("replicate", "outcome", "predicted_outcome", "runaway_chance")]
+    axes = grid_axes(points)
     rows = []
     for labels, group in points.groupby(axes, sort=False):
         labels = labels if isinstance(labels, tuple) else (labels,)

@@ -17,6 +17,8 @@ from ..runners.metrics import active_threshold
 from ..runners.theory.drift import bcm_threshold_hz, drift_zero_crossings, rule_drift
 from ..runners.theory.link import RUNAWAY_AT
 from ..runners.theory.meanfield import TransferCurve, initial_weights, population_rates
+from .expand import Point
+from .prescreen import Comparison, grid_axes
 
 
 def _mark_fixed_points(ax, curve: TransferCurve, color: str) -> None:
@@ -112,15 +114,13 @@ def _save(fig, path: str | Path) -> Path:
     return out
 
 
-def plot_agreement(points: pd.DataFrame, confusion: pd.DataFrame, capacity: pd.DataFrame,
-                   agreement: tuple[float, float], path: str | Path) -> Path:
-    """Three panels from a :class:`capsweep.sweeps.prescreen.Comparison`: the confusion table of outcomes (title:
-    ``agreement`` = (agreement, its ceiling)), the runaway chance against the simulated runaway fraction per grid
-    point, and predicted against simulated capacity per cell."""
+def plot_agreement(result: Comparison, path: str | Path) -> Path:
+    """Three panels: the confusion table of outcomes, the runaway chance against the simulated runaway fraction per
+    grid point, and predicted against simulated capacity per cell."""
     fig, axes = plt.subplots(1, 3, figsize=(15, 4.4))
-    _confusion_panel(axes[0], confusion, *agreement)
-    _chance_panel(axes[1], points)
-    _capacity_panel(axes[2], capacity)
+    _confusion_panel(axes[0], result.confusion, result.agreement, result.ceiling)
+    _chance_panel(axes[1], result.points)
+    _capacity_panel(axes[2], result.capacity)
     fig.tight_layout()
     return _save(fig, path)
 
@@ -142,8 +142,7 @@ def _confusion_panel(ax: plt.Axes, confusion: pd.DataFrame, agreement: float, ce
 def _chance_panel(ax: plt.Axes, points: pd.DataFrame) -> None:
     """Per grid point: predicted runaway chance against the fraction of its replicates that ran away (marker area:
     replicates done). A calibrated link puts the points around the identity."""
-    axes = [c for c in points.columns if c not in ("replicate", "outcome", "predicted_outcome", "runaway_chance")]
-    grouped = points.assign(ran=points["outcome"] == "runaway").groupby(axes, sort=False)
+    grouped = points.assign(ran=points["outcome"] == "runaway").groupby(grid_axes(points), sort=False)
     cells = grouped.agg(chance=("runaway_chance", "first"), fraction=("ran", "mean"), n=("ran", "size"))
     ax.scatter(cells["chance"], cells["fraction"], s=25 * cells["n"], alpha=0.5, color="C3", label="grid point")
     ax.plot([0, 1], [0, 1], "k--", lw=1, label="identity")
@@ -177,3 +176,14 @@ def _capacity_panel(ax: plt.Axes, capacity: pd.DataFrame) -> None:
     ax.set_xlabel("simulated capacity (assemblies)")
     ax.set_ylabel("predicted capacity (assemblies)")
     ax.set_title("Capacity per cell")
+
+
+def write_cell_plots(points: list[Point], plots_dir: Path) -> list[Path]:
+    """Transfer and drift PNGs per grid point, named after the point's axis values."""
+    plots_dir.mkdir(parents=True, exist_ok=True)
+    paths = []
+    for point in points:
+        stem = "_".join(f"{k}-{v}" for k, v in point.labels.items() if k != "replicate") or "base"
+        paths.append(plot_transfer(point.config, plots_dir / f"transfer_{stem}.png"))
+        paths.append(plot_drift(point.config, plots_dir / f"drift_{stem}.png"))
+    return paths

@@ -84,11 +84,14 @@ def _inhibition_rise(cfg: dict, pre_hz: float, post_hz: float, duration_s: float
     return math.asinh((moved - start) / w)
 
 
+def runaway_chance(cfg: dict) -> float:
+    """Probability that the point described by ``cfg`` runs away in simulation; 0 without assemblies."""
+    return float(runaway_probability(features(cfg))) if cfg["assemblies"]["count"] else 0.0
+
+
 def features(cfg: dict) -> np.ndarray:
-    """The link's inputs for one point (see the module and :data:`FEATURES`)."""
+    """The link's inputs for one point with at least one assembly (see the module and :data:`FEATURES`)."""
     det, count = cfg["detection"], cfg["assemblies"]["count"]
-    if count == 0:
-        return np.zeros(len(FEATURES))
     pr = population_rates(cfg)
     cue, rest = pr.cue or pr.background, pr.background
     on = active_threshold(det, pr.background_exc_hz)

@@ -45,7 +45,7 @@ from dataclasses import dataclass
 from ...flags import OUTCOMES
 from .. import metrics, protocol
 from .dynamics import Run, baseline_hz, final_cue_rates, integrate, onset_s, recall_at_end, recall_score
-from .link import RUNAWAY_AT, features, runaway_probability
+from .link import RUNAWAY_AT, runaway_chance
 from .meanfield import group_fractions
 
 STABLE, RUNAWAY, SILENT = OUTCOMES[:3]
@@ -114,7 +114,7 @@ def predict(cfg: dict) -> Prediction:
     hold_rate = run.mean_exc(max(hold_end - smooth, 0.0), hold_end)
     tail_rate = run.mean_exc(sched.seconds(protocol.recall_end(sched)), sched.seconds(sched.end))
     rates_outcome = metrics.outcome(onset, hold_rate, tail_rate, det["silence_hz"])
-    chance = float(runaway_probability(features(cfg))) if cfg["assemblies"]["count"] else 0.0
+    chance = runaway_chance(cfg)
     outcome = SILENT if rates_outcome == SILENT else RUNAWAY if chance >= RUNAWAY_AT else STABLE
     recalled = _recalled(cfg, run, baseline) if outcome != RUNAWAY else 0
     exists, stable, end_rates = recall_at_end(cfg, run)
