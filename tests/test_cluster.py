@@ -2,8 +2,8 @@
 
 The lock tests run real processes on a real directory. The fault tests run real Dask workers and kill
 them. The ``cluster`` test brings up a one-node SLURM with ``tests/slurm.py`` (or skips, saying why),
-runs ``configs/cluster-slurm.toml`` through two worker jobs, cancels one mid-sweep, and compares the
-store bitwise with a local run of the same file.
+runs ``configs/cluster-slurm.toml`` (with more replicates) through two worker jobs, cancels one mid-sweep,
+and compares the store bitwise with a local run of the same file.
 """
 
 from __future__ import annotations
@@ -267,9 +267,18 @@ def slurm() -> None:
         pytest.skip(f"no one-node SLURM: {reason}")
 
 
-def _capsweep(*args: str) -> subprocess.Popen[str]:
-    return subprocess.Popen([sys.executable, "-m", "capsweep.sweeps.cli", "run", str(SLURM_SWEEP), *args],
+def _capsweep(sweep: Path, *args: str) -> subprocess.Popen[str]:
+    return subprocess.Popen([sys.executable, "-m", "capsweep.sweeps.cli", "run", str(sweep), *args],
                             stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
+
+
+def _longer_slurm_sweep(tmp_path: Path, replicates: int) -> tuple[Path, int]:
+    """The shipped SLURM file with more replicates, so a busy worker can be cancelled on a fast machine too."""
+    text = SLURM_SWEEP.read_text()
+    assert "replicates = 2\n" in text
+    sweep = tmp_path / "cluster-slurm.toml"
+    sweep.write_text(text.replace("replicates = 2\n", f"replicates = {replicates}\n"))
+    return sweep, 2 * replicates  # two assembly counts
 
 
 def _running_jobs() -> list[str]:
@@ -288,19 +297,19 @@ def _done_points(store: Path) -> int:
 def test_slurm_sweep_survives_a_cancelled_worker_job_and_matches_a_local_run(
         slurm: None, tmp_path: Path, build_root: Path) -> None:
     local_store, batch_store = tmp_path / "local.zarr", tmp_path / "slurm.zarr"
-    local = _capsweep("--store", str(local_store), "--cluster", "local", "--workers", "2")
+    sweep, points = _longer_slurm_sweep(tmp_path, replicates=6)
+    local = _capsweep(sweep, "--store", str(local_store), "--cluster", "local", "--workers", "2")
     assert local.wait(timeout=900) == 0, local.communicate()[0]
 
-    batch = _capsweep("--store", str(batch_store))
-    cancelled, jobs_seen = "", set()
+    batch = _capsweep(sweep, "--store", str(batch_store))
+    cancelled = ""
     deadline = time.monotonic() + 900
     while batch.poll() is None and time.monotonic() < deadline:
         running = _running_jobs()
-        jobs_seen.update(running)
-        if not cancelled and len(running) == 2 and 1 <= _done_points(batch_store) < 3:
-            cancelled = running[0]  # both workers are busy: 3 points remain for 2 one-point workers
+        if not cancelled and len(running) == 2 and 1 <= _done_points(batch_store) <= points - 3:
+            cancelled = running[0]  # both workers have work: at least 3 points remain for 2 workers
             subprocess.run(["scancel", cancelled], check=True, timeout=30)
-        time.sleep(1.0)
+        time.sleep(0.25)
     output = batch.communicate(timeout=60)[0]
     assert batch.returncode == 0, output
     assert cancelled, f"the sweep ended before a worker job could be cancelled mid-sweep: {output}"
