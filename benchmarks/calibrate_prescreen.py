@@ -26,6 +26,7 @@ from typing import Any
 import numpy as np
 from scipy.stats import qmc
 
+from capsweep.flags import RUNAWAY
 from capsweep.registry import defaults, nest, resolve_derived
 
 BOX: dict[str, tuple[float, float]] = {
@@ -108,7 +109,7 @@ def fit(path: Path, workers: int, folds: int = 8) -> None:
     rows = json.loads(path.read_text())["rows"]
     with ProcessPoolExecutor(workers) as pool:
         x = np.array(list(pool.map(features, [config_of(r["overrides"]) for r in rows], chunksize=8)))
-    y = np.array([r["outcome"] == "runaway" for r in rows], dtype=float)
+    y = np.array([r["outcome"] == RUNAWAY for r in rows], dtype=float)
     signs = np.array([SIGNS[name] for name in FEATURES])
     coef = fit_logistic(x, y, signs)
     p = runaway_probability(x, coef)

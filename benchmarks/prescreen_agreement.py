@@ -47,10 +47,11 @@ def main() -> None:
         gap = (cap["predicted_capacity"] - cap["simulated_capacity"]).abs() if len(cap) else cap
         n = len(result.points)
         agree, points, majority = agree + result.agreement * n, points + n, majority + result.ceiling * n
-        equal, near, cells = equal + int((gap == 0).sum()), near + int((gap <= 1).sum()), cells + len(cap)
+        same, within = int((gap == 0).sum()), int((gap <= 1).sum())
+        equal, near, cells = equal + same, near + within, cells + len(cap)
         print(f"{sweep.stem}: outcome agreement {result.agreement:.0%} of {n} done points (replicate-majority "
-              f"ceiling {result.ceiling:.0%}); capacity equal in {int((gap == 0).sum())} of {len(cap)} cells, within "
-              f"one in {int((gap <= 1).sum())}; {wall / len(table):.2f} s wall per grid point ({args.workers} workers)")
+              f"ceiling {result.ceiling:.0%}); capacity equal in {same} of {len(cap)} cells, within one in {within}; "
+              f"{wall / len(table):.2f} s wall per grid point ({args.workers} workers)")
         print(result.confusion.to_string())
         if len(cap):
             print(cap.to_string(index=False))

@@ -11,3 +11,6 @@ capacity search (its count lies beyond the bracket the search closed; see ``caps
 
 OUTCOMES: tuple[str, ...] = ("stable", "runaway", "silent")
 """What the network did over a point's run (see the ``outcome`` metric definition)."""
+
+STABLE, RUNAWAY, SILENT = OUTCOMES
+"""The outcome labels by name: code compares against these, never against spelled-out strings."""

@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..flags import RUNAWAY, SILENT, STABLE
+
 
 def window_counts(times: np.ndarray, cells: np.ndarray, n_cells: int, t0: float, t1: float) -> np.ndarray:
     """Spike count of each of ``n_cells`` cells in ``[t0, t1)`` (s)."""
@@ -195,9 +197,9 @@ def outcome(onset_s: float, rate_before_recall_hz: float, rate_after_recall_hz: 
     A NaN rate (a phase the run did not reach) does not count as silent.
     """
     if np.isfinite(onset_s):
-        return "runaway"
+        return RUNAWAY
     rates = (rate_before_recall_hz, rate_after_recall_hz)
-    return "silent" if any(np.isfinite(r) and r < silence_hz for r in rates) else "stable"
+    return SILENT if any(np.isfinite(r) and r < silence_hz for r in rates) else STABLE
 
 
 def pathway_means(w: np.ndarray, pre: np.ndarray, post: np.ndarray, members: np.ndarray) -> tuple[float, float, float]:

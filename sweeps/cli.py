@@ -404,12 +404,11 @@ def prescreen_command(
         table = prescreen_sweep(sweep_file, workers, scheduler,
                                 on_done=lambda done, total: bar.update(task, completed=done, total=total))
     if plots is not None:
-        from .expand import expand
-        from .prescreen import cells
+        from .prescreen import grid_points
         from .prescreen_plots import write_cell_plots
         from .sweepfile import load_sweep
 
-        write_cell_plots(cells(expand(load_sweep(sweep_file))), plots)
+        write_cell_plots(grid_points(load_sweep(sweep_file)), plots)
     if against is None:
         _emit(table.drop(columns=["reasons"]) if fmt is TableFormat.table else table, fmt)
         return

@@ -33,7 +33,7 @@ from matplotlib.typing import ColorType
 
 from ..axes import COUNT_KEY
 from ..errors import CapsweepError, ConfigError
-from ..flags import OUTCOMES
+from ..flags import OUTCOMES, RUNAWAY
 from ..runners.protocol import Schedule, cue_order, recall_end, schedule
 from .capacity import (
     MIN_FRACTION,
@@ -144,7 +144,7 @@ def stability_map(ds: xr.Dataset, x: str, y: str | None = None) -> Figure:
         return summed.transpose(y, x).values if y else summed.values[None, :]
 
     done, wins = grid(success.notnull()).astype(int), grid(success.fillna(0)).astype(int)
-    runaway, pending = grid(labelled(ds, "outcome") == "runaway"), grid(status == "pending")
+    runaway, pending = grid(labelled(ds, "outcome") == RUNAWAY), grid(status == "pending")
     frac = np.ma.masked_where(done == 0, wins / np.maximum(done, 1))
     fig, ax = plt.subplots(figsize=(max(5.0, 1.6 + 1.3 * frac.shape[1]), max(2.6, 1.4 + 0.9 * frac.shape[0])))
     image = ax.imshow(frac, origin="lower", cmap=plt.get_cmap("viridis").with_extremes(bad=PENDING),

@@ -74,9 +74,9 @@ def predicted_capacity(configs_by_count: dict[int, dict]) -> int:
     return capacity_from(success)
 
 
-def cells(points: list[Point]) -> list[Point]:
-    """One point per grid point (replicate 0): replicates share the prediction."""
-    return [p for p in points if p.labels["replicate"] == 0]
+def grid_points(sweep: Sweep) -> list[Point]:
+    """One point of ``sweep`` per grid point (replicate 0): replicates share the prediction."""
+    return [p for p in expand(sweep) if p.labels["replicate"] == 0]
 
 
 def count_axis(sweep: Sweep) -> str | None:
@@ -105,7 +105,7 @@ def prescreen_sweep(
 ) -> pd.DataFrame:
     """Prediction per grid point of ``sweep_file`` (replicates share it), with the predicted capacity per cell."""
     sweep = load_sweep(sweep_file)
-    todo = cells(expand(sweep))
+    todo = grid_points(sweep)
     execution = todo[0].config["execution"]
     rows: list[dict[str, Any]] = []
     with dask_client(workers or execution["workers"], scheduler or execution["scheduler"]) as client:

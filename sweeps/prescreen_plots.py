@@ -12,7 +12,7 @@ import matplotlib.pyplot as plt
 import numpy as np
 import pandas as pd
 
-from ..flags import OUTCOMES
+from ..flags import OUTCOMES, RUNAWAY
 from ..runners.metrics import active_threshold
 from ..runners.theory.drift import bcm_threshold_hz, drift_zero_crossings, rule_drift
 from ..runners.theory.link import RUNAWAY_AT
@@ -127,7 +127,7 @@ def plot_agreement(result: Comparison, path: str | Path) -> Path:
 
 def _confusion_panel(ax: plt.Axes, confusion: pd.DataFrame, agreement: float, ceiling: float) -> None:
     """Heatmap of point counts: rows predicted, columns simulated outcome."""
-    labels = list(OUTCOMES[:3])
+    labels = list(OUTCOMES)
     table = confusion.reindex(index=labels, columns=labels, fill_value=0).fillna(0).to_numpy(dtype=int)
     ax.imshow(table, cmap="Blues")
     for (i, j), n in np.ndenumerate(table):
@@ -142,7 +142,7 @@ def _confusion_panel(ax: plt.Axes, confusion: pd.DataFrame, agreement: float, ce
 def _chance_panel(ax: plt.Axes, points: pd.DataFrame) -> None:
     """Per grid point: predicted runaway chance against the fraction of its replicates that ran away (marker area:
     replicates done). A calibrated link puts the points around the identity."""
-    grouped = points.assign(ran=points["outcome"] == "runaway").groupby(grid_axes(points), sort=False)
+    grouped = points.assign(ran=points["outcome"] == RUNAWAY).groupby(grid_axes(points), sort=False)
     cells = grouped.agg(chance=("runaway_chance", "first"), fraction=("ran", "mean"), n=("ran", "size"))
     ax.scatter(cells["chance"], cells["fraction"], s=25 * cells["n"], alpha=0.5, color="C3", label="grid point")
     ax.plot([0, 1], [0, 1], "k--", lw=1, label="identity")

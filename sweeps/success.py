@@ -7,13 +7,15 @@ from __future__ import annotations
 
 from typing import Any
 
+from ..flags import STABLE
+
 MIN_FRACTION = 0.5
 """Default fraction of replicates in which a count must succeed to count towards capacity."""
 
 
 def succeeds(outcome: Any, recalled_count: Any, count: Any) -> Any:
     """Whether a done point succeeds: outcome stable and every assembly recalled (scalars or arrays alike)."""
-    return (outcome == "stable") & (recalled_count == count)
+    return (outcome == STABLE) & (recalled_count == count)
 
 
 def count_passes(successes: int, done: int, min_fraction: float = MIN_FRACTION) -> bool | None:

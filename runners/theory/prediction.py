@@ -42,14 +42,11 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
-from ...flags import OUTCOMES
+from ...flags import RUNAWAY, SILENT, STABLE
 from .. import metrics, protocol
 from .dynamics import Run, baseline_hz, final_cue_rates, integrate, onset_s, recall_at_end, recall_score
 from .link import RUNAWAY_AT, runaway_chance
 from .meanfield import group_fractions
-
-STABLE, RUNAWAY, SILENT = OUTCOMES[:3]
-"""Outcome labels of :data:`capsweep.flags.OUTCOMES` (their positions are stored integers, so fixed)."""
 
 
 @dataclass(frozen=True)
