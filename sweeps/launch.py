@@ -17,9 +17,9 @@ from ..axes import Axis
 from ..engines import engine
 from ..errors import ConfigError, StoreError
 from ..flags import STATUSES
+from ..locks import store_lock
 from ..registry import ImplausibleValue, lookup, overlay, with_execution
 from ..results_schema.definitions import DEFINITIONS
-from ..results_schema.lock import store_lock
 from ..runners.builds import build_key
 from ..runners.dask_backend import EarlyClient, Job, TaskFailure, run_tasks
 from ..runners.protocol import total_duration_s

@@ -25,6 +25,7 @@ import pytest
 import xarray as xr
 from cli_runs import tiny_network
 
+from capsweep import locks
 from capsweep.errors import ConfigError
 from capsweep.results_schema.layout import TIMINGS
 from capsweep.runners import builds
@@ -101,7 +102,7 @@ def test_a_lock_whose_holder_died_on_this_host_is_taken_over(tmp_path: Path) -> 
 
 
 def test_a_lock_from_another_host_is_taken_over_only_once_its_heartbeat_is_old(tmp_path: Path) -> None:
-    old = time.time() - builds.STALE_AFTER_S - 5
+    old = time.time() - locks.COMPILE.stale_after_s - 5
     _holder(tmp_path / "old.lock", host="odour-node-7", pid=1, heartbeat=old)
     _holder(tmp_path / "fresh.lock", host="odour-node-7", pid=1, heartbeat=time.time() - 5)
     with builds.locked(tmp_path / "old.lock", blocking=False) as taken:
@@ -110,9 +111,8 @@ def test_a_lock_from_another_host_is_taken_over_only_once_its_heartbeat_is_old(t
         assert not taken  # pid 1 means nothing on another host; only the heartbeat judges it
 
 
-def test_the_holder_renews_its_heartbeat(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    monkeypatch.setattr(builds, "HEARTBEAT_S", 0.1)
-    with builds.locked(tmp_path / "k.lock"):
+def test_the_holder_renews_its_heartbeat(tmp_path: Path) -> None:
+    with locks.held(tmp_path / "k.lock", locks.Policy(renew_s=0.1, stale_after_s=300.0)):
         first = json.loads((tmp_path / "k.lock" / "holder.json").read_text())["heartbeat"]
         time.sleep(0.5)
         later = json.loads((tmp_path / "k.lock" / "holder.json").read_text())["heartbeat"]
