@@ -282,8 +282,8 @@ KEYS: tuple[Key, ...] = (
        sweepable=False),
     _k("execution.dashboard", False, "1",
        "Serve the Dask dashboard of the local cluster (its web server adds about 0.5 s to start-up)", sweepable=False),
-    _k("execution.prescreen", False, "1", "Store the theory prescreen's predicted outcome beside each simulated one",
-       sweepable=False),
+    _k("execution.prescreen", False, "1",
+       "Store the prescreen's predicted outcome (a fitted surrogate) beside each simulated one", sweepable=False),
     _k("execution.abort_on_runaway", True, "1", "Stop a point's simulation soon after runaway onset", sweepable=False),
     _k("execution.checkpoint_interval_s", 0.0, "s",
        "Simulated time between checkpoints of a point's full state, from which a killed point resumes with the same "

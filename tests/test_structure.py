@@ -111,8 +111,8 @@ def test_the_graph_sees_relative_nested_and_function_level_imports() -> None:
     assert "capsweep.registry" in graph["capsweep.runners.builds"]  # from ..registry import flatten
     assert {"capsweep.runners.protocol", "capsweep.runners.rules"} <= graph["capsweep.runners.model"]  # from . import
     assert "capsweep.runners.builds" in graph["capsweep.sweeps.cli"]  # inside a function
-    assert "capsweep.engines" in graph["capsweep.sweeps.plan"]  # from .. import engines
-    assert "capsweep" not in graph["capsweep.sweeps.plan"]
+    assert "capsweep.engines" in graph["capsweep.sweeps.workload"]  # from .. import engines
+    assert "capsweep" not in graph["capsweep.sweeps.workload"]
 
 
 def test_runners_and_store_never_import_the_front_end() -> None:
