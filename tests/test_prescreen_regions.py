@@ -11,14 +11,16 @@ simulated outcome does.
 from __future__ import annotations
 
 import math
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
 import pytest
 from scipy import integrate, stats
 
+from capsweep.registry import BY_PATH, KEYS, Key
 from capsweep.runners.point import run_point
-from capsweep.runners.theory import drift
+from capsweep.runners.theory import drift, dynamics
 from capsweep.runners.theory.prediction import predict
 from capsweep.sweeps.expand import expand
 from capsweep.sweeps.success import capacity_of
@@ -148,3 +150,24 @@ def test_verdict_follows_beta_and_count_as_simulation_does() -> None:
         simulated = [run_point(p.config, p.seed, p.wiring_seed)["outcome"] for p in replicates]
         assert simulated == [outcome] * len(replicates), (beta, count, simulated)
 
+
+def unhandled_choices(keys: tuple[Key, ...], handled: dict[str, dict[str, object]]) -> list[str]:
+    """``key = value`` for every choice of a ``plasticity.*`` key among ``keys`` that ``handled`` has no handler for."""
+    return [f"{key.path} = {choice!r}" for key in keys if key.path.startswith("plasticity.")
+            for choice in key.choices if choice not in handled.get(key.path, {})]
+
+
+def test_theory_handles_every_choice_of_every_plasticity_key(point_config) -> None:
+    """Every value the registry offers for a plasticity key has a handler in the prescreen's rate dynamics, and the
+    integration over a protocol runs with it; a choice added to the registry alone fails here (checked with one)."""
+    assert any(key.path.startswith("plasticity.") and key.choices for key in KEYS)
+    assert unhandled_choices(KEYS, dynamics.HANDLED_CHOICES) == []
+    planted = replace(BY_PATH["plasticity.heterosynaptic.w_ref_mode"], choices=("fixed", "decaying"))
+    assert unhandled_choices((planted,), dynamics.HANDLED_CHOICES) == ["plasticity.heterosynaptic.w_ref_mode = 'decaying'"]
+    for path, handlers in dynamics.HANDLED_CHOICES.items():
+        for choice in handlers:
+            cfg = point_config(**{path: choice, "protocol.hold_s": 1.0,
+                                  "plasticity.heterosynaptic.tau_consolidation_s": 1.0})
+            run = dynamics.integrate(cfg)
+            moved = not np.allclose(run.plastic[-1].within_ref, run.plastic[0].within_ref)
+            assert moved == (choice != "fixed"), f"{path} = {choice!r}: the reference weights did not follow the mode"
