@@ -33,10 +33,11 @@ from dask.distributed import Client, KilledWorker, LocalCluster, as_completed
 from ..clusters import SCHEDULER, cluster_kind
 from ..engines import engine
 from ..errors import CapsweepError, ConfigError
-from ..registry import BY_PATH, lookup, overlay
+from ..registry import BY_PATH, lookup, overlay, with_execution
 from ..runners.builds import BUILD_DIR_ENV, build_key, build_root
 from ..runners.protocol import total_duration_s
 from ..runners.task import WORKER_PRELOAD, PrepareWorker, TaskFailure
+from .identity import Point
 
 Job = tuple[Any, tuple[Any, ...]]
 """A task to run: (tag the caller gets back, the task function's arguments)."""
@@ -330,6 +331,12 @@ def run_tasks(
     finally:
         for future in futures:
             future.cancel()
+
+
+def point_jobs(points: Iterable[Point], engine: str | None = None, prescreen: bool | None = None) -> list[Job]:
+    """The ``simulate_task`` jobs of ``points``: (point, (config, seed, wiring seed)), each config with the
+    command line's ``engine`` and ``prescreen`` over its ``[execution]`` entries when given."""
+    return [(p, (with_execution(p.config, engine=engine, prescreen=prescreen), p.seed, p.wiring_seed)) for p in points]
 
 
 def submission_order(config: dict[str, Any]) -> tuple[str, float]:

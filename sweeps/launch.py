@@ -14,9 +14,8 @@ from typing import TYPE_CHECKING, Any
 
 from ..flags import DONE, FAILED, STATUSES, UNNEEDED
 from ..locks import store_lock
-from ..registry import with_execution
 from ..runners.task import TaskFailure, simulate_task
-from .dispatch import EarlyClient, Job, early_client, run_tasks, submission_sequence
+from .dispatch import EarlyClient, Job, early_client, point_jobs, run_tasks, submission_sequence
 from .expand import expand
 from .identity import Point, open_or_create
 from .search import condition_key, plan_search
@@ -110,17 +109,11 @@ def _execute(
     progress: Progress,
     on_event: Callable[[Progress], None],
 ) -> None:
-    jobs = submission_sequence(_jobs(todo, options))
+    jobs = submission_sequence(point_jobs(todo, options.engine, options.prescreen))
     client = _started(dask, todo, options, progress, on_event)
     for point, result in run_tasks(client, simulate_task, jobs):
         _store_result(store, point, result, progress)
         on_event(progress)
-
-
-def _jobs(points: list[Point], options: RunOptions) -> list[Job]:
-    """Point tasks of ``points``: (point, (config with the command line's execution overrides, seed, wiring seed))."""
-    return [(p, (with_execution(p.config, engine=options.engine, prescreen=options.prescreen), p.seed,
-                 p.wiring_seed)) for p in points]
 
 
 def _started(dask: EarlyClient, todo: list[Point], options: RunOptions, progress: Progress,
@@ -148,7 +141,7 @@ def _execute_search(dask: EarlyClient, sweep: Sweep, points: list[Point], store:
         """The jobs the search wants next (in the conditions ``keys``, default all); points decided without marked."""
         wanted, unneeded = search.advance(keys)
         _mark_unneeded(store, unneeded, progress)
-        return _jobs(wanted, options)
+        return point_jobs(wanted, options.engine, options.prescreen)
 
     def follow_up(point: Point, result: Any) -> list[Job]:
         return advance([search.record_result(point, None if isinstance(result, TaskFailure) else result)])
