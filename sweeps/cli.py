@@ -403,10 +403,10 @@ def prescreen_command(
                                  help="store this sweep ran into: print agreement with it and write a PNG "
                                       "(into --plots, else next to the store)"),
 ) -> None:
-    """Predict each grid point's outcome without simulating: a surrogate fitted to simulations, built on
+    r"""Predict each grid point's outcome without simulating: a surrogate fitted to simulations, built on
     mean-field quantities. Also each condition's stability bound (the largest count up to which every count is
     predicted stable; recall does not enter). Points outside the surrogate's calibration box are named in a
-    warning. Runs on the sweep's [execution.cluster] like `capsweep run`."""
+    warning. Runs on the sweep's \[execution.cluster] like `capsweep run`."""
     from .prescreen import (
         OUTSIDE_CALIBRATION,
         agreement_plot_path,
