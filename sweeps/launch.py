@@ -1,7 +1,9 @@
-"""Run a sweep: open or create its store, lock it, run every point not yet done, write as they arrive.
+"""Run a sweep: the orchestration behind ``capsweep run``.
 
-This is the library function behind ``capsweep run``. It never prints: it reports through an
-``on_event`` callback that receives :class:`Progress` snapshots.
+It expands the sweep, gets its Dask client (:mod:`capsweep.sweeps.dispatch`) and its store
+(:mod:`capsweep.sweeps.identity`), holds the store's lock, runs every point not yet done (or a count
+search, :mod:`capsweep.sweeps.search`) and writes each result as it arrives. It never prints: it reports
+through an ``on_event`` callback that receives :class:`Progress` snapshots.
 """
 
 from __future__ import annotations
