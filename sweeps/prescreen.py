@@ -6,7 +6,8 @@ to simulations of a calibration design (:mod:`capsweep.runners.theory.link`, whi
 box; a point outside it is flagged in ``outside_calibration``). It is deterministic, so one prediction
 serves every replicate of a grid point. Its *stability bound* per condition (a combination of the axes
 other than the count) is the capacity rule (:func:`capsweep.sweeps.success.capacity_of`) applied to
-"predicted stable": recall does not enter it, so it bounds the capacity from above rather than predicting it.
+"predicted stable": recall does not enter it, so where the stable verdicts are right it bounds the capacity from
+above rather than predicting it.
 Predictions run as Dask tasks (:func:`capsweep.runners.task.predict_task`) on the client
 :func:`capsweep.sweeps.dispatch.early_client` gives, the one ``capsweep run`` uses. :func:`compare` sets the
 predictions against a store of the same sweep: outcome agreement over the done points, a confusion table, and
