@@ -83,8 +83,7 @@ class Prediction:
         members along (on the 258 stable points of the calibration design it predicted full recall for 29 %,
         simulation found it for 77 %; capsweep, 4 December 2026), so a bound over stable counts is, as far as
         the stable verdicts are right, an upper bound of the capacity rather than a prediction of it.
-        ``recalled_count`` and the recall-state fields are
-        reported, not used.
+        ``recalled_count`` and the recall-state fields are reported, not used.
         """
         return self.outcome == STABLE
 
