@@ -8,7 +8,7 @@ makes it for the runtime engines (same neurons, synapses, plasticity, prewired w
 once with Brian2's cpp_standalone device and no capsweep machinery (no watch, no stimulus, no
 run arguments, no snapshots, no reading of results). Its binary then reruns ``--repeats`` times.
 
-capsweep's point runs through ``capsweep.sweeps.plan.probe`` with its build cached: the slope of
+capsweep's point runs through ``capsweep.sweeps.workload.probe`` with its build cached: the slope of
 time against simulated time over two runs of different lengths (what a sweep pays per simulated
 second, reading and scoring included), in wall time and in CPU time of the worker and its binary.
 The minimal script's cost is its binary's time over its simulated time (its start-up included,
@@ -120,13 +120,13 @@ COLUMNS = ("cpu_per_sim_s", "per_sim_s", "loop_cpu_per_sim_s")
 
 def summary(rows: list[dict[str, Any]]) -> str:
     """One Markdown line per size: each cost of capsweep, of the minimal script and their ratio; peak memory."""
-    cells = [str(rows[0]["n_exc"])]
+    fields = [str(rows[0]["n_exc"])]
     for column in COLUMNS:
         ours, bare = [r["capsweep"][column] for r in rows], [r["minimal"][column] for r in rows]
-        cells += [spread(ours, ".2f"), spread(bare, ".2f"), spread([a / b for a, b in zip(ours, bare)], ".2f")]
-    cells += [spread([r["capsweep"]["python_mib"] + r["capsweep"]["binary_mib"] for r in rows], ".0f"),
+        fields += [spread(ours, ".2f"), spread(bare, ".2f"), spread([a / b for a, b in zip(ours, bare)], ".2f")]
+    fields += [spread([r["capsweep"]["python_mib"] + r["capsweep"]["binary_mib"] for r in rows], ".0f"),
               spread([r["minimal"]["binary_mib"] for r in rows], ".0f")]
-    return "| " + " | ".join(cells) + " |"
+    return "| " + " | ".join(fields) + " |"
 
 
 def main() -> None:

@@ -1,9 +1,9 @@
 """Scaling table: wall time per simulated second, peak memory and compile time per network size and engine.
 
-Each (engine, N_E, connectivity) cell runs in fresh processes against an empty build cache: one
+Each (engine, N_E, connectivity) combination runs in fresh processes against an empty build cache: one
 process compiles the size's build (the compile time, standalone only), a second one measures with
 the build cached, as every later point of a sweep sees it. The two-length probe of
-``capsweep.sweeps.plan`` splits the per-point overhead from the cost per simulated second, once in
+``capsweep.sweeps.workload`` splits the per-point overhead from the cost per simulated second, once in
 wall time and once in CPU time of the process and its children (the binary), which the load of
 other users of the machine does not inflate. Peak memory is that of the whole point: the worker's
 Python process plus the standalone binary it runs (GNU ``time``'s maximum resident set of the
@@ -74,7 +74,7 @@ def cpu_clock() -> float:
 def child_compile(n_exc: int, engine: str, connectivity: str) -> dict[str, Any]:
     """Compile (standalone) or warm up (runtime engines) the size's code with one short point; its wall time."""
     from capsweep.runners.point import run_point
-    from capsweep.sweeps.plan import PROBE_HOLD_S, _probe_config
+    from capsweep.sweeps.workload import PROBE_HOLD_S, _probe_config
 
     start = time.perf_counter()
     run_point(_probe_config(size_config(n_exc, connectivity, engine), engine, PROBE_HOLD_S[0]), 1)
@@ -82,10 +82,10 @@ def child_compile(n_exc: int, engine: str, connectivity: str) -> dict[str, Any]:
 
 
 def child_probe(n_exc: int, engine: str, connectivity: str) -> dict[str, Any]:
-    """The cost model of ``capsweep.sweeps.plan.probe`` in wall and CPU time, and peak memory, with the build cached."""
+    """The cost model of ``capsweep.sweeps.workload.probe`` in wall and CPU time, and peak memory, build cached."""
     import brian2
 
-    from capsweep.sweeps.plan import probe
+    from capsweep.sweeps.workload import probe
 
     peak_file = Path(tempfile.mkdtemp()) / "peak_kib"
     brian2.prefs.devices.cpp_standalone.run_cmd_unix = timed_command(["./main"], peak_file)
@@ -98,7 +98,7 @@ def child_probe(n_exc: int, engine: str, connectivity: str) -> dict[str, Any]:
     if engine == "standalone":
 
         from capsweep.runners.protocol import total_duration_s
-        from capsweep.sweeps.plan import PROBE_HOLD_S, _probe_config
+        from capsweep.sweeps.workload import PROBE_HOLD_S, _probe_config
 
         long_run = _probe_config(size_config(n_exc, connectivity, engine), engine, PROBE_HOLD_S[1])
         out["loop_cpu_per_sim_s"] = brian2.get_device()._last_run_time / total_duration_s(long_run)
@@ -156,10 +156,10 @@ def main() -> None:
 
 def estimate_errors(measured: dict[tuple[str, int, str], float]) -> str:
     """Markdown table: each size's CPU cost per simulated second scaled by cell count from the nearest other
-    measured size of the same engine (as ``capsweep.sweeps.plan.point_cost`` scales), against the measured one."""
+    measured size of the same engine (as ``capsweep.sweeps.workload.point_cost`` scales), against the measured one."""
     from capsweep.runners.protocol import total_duration_s
-    from capsweep.sweeps.expand import Point
-    from capsweep.sweeps.plan import Cost, point_cost
+    from capsweep.sweeps.identity import Point
+    from capsweep.sweeps.workload import Cost, point_cost
 
     lines = ["| N_E | connectivity | engine | scaled from N_E | estimated s / s simulated | measured | error |",
              "|---" * 7 + "|"]

@@ -1,6 +1,6 @@
 """Adaptive count search against the full grid: points simulated, wall time, and the capacities both give.
 
-One sweep (counts 1..32, 4 cells of the other axes, 2 replicates) runs three times into fresh stores
+One sweep (counts 1..32, 4 conditions of the other axes, 2 replicates) runs three times into fresh stores
 on the same local Dask cluster size: as a full grid, as a scan search and as a bisect search. Not
 collected by pytest. Run:
 

@@ -57,8 +57,9 @@ from engine_only import run_one
 
 from capsweep.registry import with_execution
 from capsweep.runners.builds import BUILD_DIR_ENV
-from capsweep.sweeps.expand import Point, expand
-from capsweep.sweeps.launch import submission_order
+from capsweep.sweeps.dispatch import submission_order
+from capsweep.sweeps.expand import expand
+from capsweep.sweeps.identity import Point
 from capsweep.sweeps.sweepfile import load_sweep
 
 SWEEP_FILE = Path(__file__).with_name("sweep16.toml")

@@ -3,7 +3,8 @@
 The prescreen's theory quantities (:func:`capsweep.runners.theory.link.features`) are mapped to a runaway
 probability by a logistic link whose coefficients are the one thing fitted to simulations. They are fitted
 here, on a scrambled Sobol design (scipy.stats.qmc; Owen 1998, J. Complexity 14:466) over the box
-:data:`BOX` around the demo network, never on the region sweeps used to validate the prescreen::
+:data:`BOX` around the demo network (the link's ``CALIBRATION_BOX`` and two switches of rule terms), never on
+the region sweeps used to validate the prescreen::
 
     python benchmarks/calibrate_prescreen.py simulate --points 512 --out /tmp/calibration.json
     python benchmarks/calibrate_prescreen.py fit /tmp/calibration.json
@@ -28,21 +29,10 @@ from scipy.stats import qmc
 
 from capsweep.flags import RUNAWAY
 from capsweep.registry import defaults, nest, resolve_derived
+from capsweep.runners.theory.link import CALIBRATION_BOX, LTD_PER_LTP
 
-BOX: dict[str, tuple[float, float]] = {
-    "n_exc": (200.0, 400.0),
-    "size_fraction": (0.12, 0.25),
-    "count": (1.0, 6.999),
-    "prewire_gain": (2.0, 6.0),
-    "log10_beta": (-2.0, 0.5),
-    "log10_a_ltp": (-2.3, -1.3),
-    "log10_eta": (-4.5, -2.0),
-    "inhibitory_cap_ratio": (0.8, 3.0),
-    "hold_s": (3.0, 10.0),
-    "full_rule": (0.0, 1.0),
-    "inhibitory_on": (0.0, 1.0),
-}
-"""Design box: the range of each design variable (uniform in the stated units)."""
+BOX: dict[str, tuple[float, float]] = {**CALIBRATION_BOX, "full_rule": (0.0, 1.0), "inhibitory_on": (0.0, 1.0)}
+"""Design box: the range of each design variable (uniform in the stated units); the last two pick the rule terms."""
 SIZES = (200, 300, 400)
 """Network sizes of the design (each one compiled binary)."""
 SEED = 20261204
@@ -61,7 +51,7 @@ def design_point(u: np.ndarray) -> dict[str, Any]:
         "assemblies.prewire_gain": round(x["prewire_gain"], 3),
         "plasticity.heterosynaptic.enabled": full, "plasticity.transmitter.enabled": full,
         "plasticity.heterosynaptic.beta": round(10 ** x["log10_beta"], 5),
-        "plasticity.triplet.a_ltp": round(a_ltp, 6), "plasticity.triplet.b_ltd": round(a_ltp / 5, 6),
+        "plasticity.triplet.a_ltp": round(a_ltp, 6), "plasticity.triplet.b_ltd": round(a_ltp * LTD_PER_LTP, 6),
         "plasticity.inhibitory.enabled": inhibitory,
         "plasticity.inhibitory.eta": float(f"{10 ** x['log10_eta']:.3g}"),
         "plasticity.inhibitory.w_max": round(x["inhibitory_cap_ratio"] * defaults()["network.w_i_to_e"], 4),
@@ -86,7 +76,7 @@ def simulate_one(overrides: dict[str, Any], seed: int) -> dict[str, Any]:
 def simulate(points: int, out: Path, workers: int) -> None:
     from dask.distributed import as_completed
 
-    from capsweep.runners.dask_backend import dask_client
+    from capsweep.sweeps.dispatch import dask_client
 
     unit = qmc.Sobol(len(BOX), scramble=True, seed=SEED).random(points)
     design = [design_point(u) for u in unit]

@@ -1,6 +1,8 @@
 """Sweep axes: a dim name, the config key it sets (or named variants), its values, units and long name.
 
-An axis carries its own description, so the store that writes its coordinate needs no registry.
+An axis carries its own description, so the store that writes its coordinate needs no registry. A
+combination of values of the axes other than the assembly count is a *condition*: capacity is a
+property of a condition, measured along its counts.
 """
 
 from __future__ import annotations
@@ -12,6 +14,8 @@ from .registry import BY_PATH
 
 COUNT_KEY = "assemblies.count"
 """The config key of an assembly-count axis (the axis capacity is measured along)."""
+REPLICATE = "replicate"
+"""The sweep dim after the axes: independent seeds of one grid point."""
 VARIANT_KEY = "variants"
 """The ``key`` of an axis over named variants (each a table of config overrides)."""
 

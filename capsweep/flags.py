@@ -9,6 +9,9 @@ STATUSES: tuple[str, ...] = ("pending", "done", "failed", "unneeded")
 """Run status of a point, owned by the runner: not yet run, stored, crashed, or never needed by an adaptive
 capacity search (its count lies beyond the bracket the search closed; see ``capsweep.sweeps.search``)."""
 
+PENDING, DONE, FAILED, UNNEEDED = STATUSES
+"""The status labels by name: code compares against these, never against spelled-out strings."""
+
 OUTCOMES: tuple[str, ...] = ("stable", "runaway", "silent")
 """What the network did over a point's run (see the ``outcome`` metric definition)."""
 

@@ -14,6 +14,8 @@ from collections.abc import Iterable
 from dataclasses import dataclass
 from typing import Any
 
+from .clusters import LOCAL
+from .clusters import NAMES as CLUSTER_KINDS
 from .engines import ENGINES, NAMES
 from .errors import ConfigError
 
@@ -280,17 +282,17 @@ KEYS: tuple[Key, ...] = (
        sweepable=False),
     _k("execution.dashboard", False, "1",
        "Serve the Dask dashboard of the local cluster (its web server adds about 0.5 s to start-up)", sweepable=False),
-    _k("execution.prescreen", False, "1", "Store the theory prescreen's predicted outcome beside each simulated one",
-       sweepable=False),
+    _k("execution.prescreen", False, "1",
+       "Store the prescreen's predicted outcome (a fitted surrogate) beside each simulated one", sweepable=False),
     _k("execution.abort_on_runaway", True, "1", "Stop a point's simulation soon after runaway onset", sweepable=False),
     _k("execution.checkpoint_interval_s", 0.0, "s",
        "Simulated time between checkpoints of a point's full state, from which a killed point resumes with the same "
        "result (0 = off; runtime engines only: standalone points fall back to cython)", low=0.0, high=1e6,
        sweepable=False),
-    _k("execution.cluster.kind", "local", "1",
+    _k("execution.cluster.kind", LOCAL, "1",
        "Where the Dask workers run: local processes (execution.workers), an existing scheduler (execution.scheduler), "
        "or batch jobs through dask-jobqueue (pip install 'capsweep[cluster]')",
-       choices=("local", "scheduler", "slurm", "pbs", "sge", "lsf", "htcondor"), sweepable=False),
+       choices=CLUSTER_KINDS, sweepable=False),
     _k("execution.cluster.queue", "", "1", "Batch queue or partition of the worker jobs ('' = the system's default)",
        sweepable=False),
     _k("execution.cluster.account", "", "1", "Account or project the worker jobs are charged to ('' = none)",

@@ -38,11 +38,11 @@ outcome: runaway if a runaway onset exists; else silent if the E rate over the l
 recall, or over the background-only tail after it, is below detection.silence_hz; else stable.
 success of a point: status done, outcome stable and recalled_count equal to its assemblies.count (every assembly \
 recalled). A failed (crashed) point is neither success nor failure: it is left out and counted; a pending one \
-leaves its cell undecided.
-capacity (derived at query time): for each cell of the other axes, the largest assemblies.count k such that \
+leaves its condition undecided.
+capacity (derived at query time): for each condition of the other axes, the largest assemblies.count k such that \
 every count <= k in the grid succeeds in at least a stated fraction (default 0.5) of its done replicates; 0 if \
 the smallest count fails; 'at least' (only a lower bound) when k is the top of the grid; NA while a point of the \
-cell is pending or a count up to the deciding one has no done replicate; flagged non-monotone when a count \
+condition is pending or a count up to the deciding one has no done replicate; flagged non-monotone when a count \
 reaches that fraction after a smaller one did not. Per count: the success fraction over done replicates with a \
 95 % Wilson score interval. \
 Interval on k: the range (min, max) of the per-replicate capacities (replicate r: the largest k with every count \

@@ -59,8 +59,8 @@ class Variable:
 
 VARIABLES: tuple[Variable, ...] = (
     Variable("outcome", "1", "network outcome over the whole run", dtype="int8", flags=OUTCOMES),
-    Variable("predicted_outcome", "1", "outcome predicted by the theory prescreen", dtype="int8",
-             flags=OUTCOMES),
+    Variable("predicted_outcome", "1", "outcome predicted by the prescreen (a surrogate fitted to simulations, "
+             "built on mean-field quantities)", dtype="int8", flags=OUTCOMES),
     Variable("engine", "1", "Brian2 code generation target used", dtype="int8", flags=ENGINE_NAMES),
     Variable("seed", "1", "random seed of the point (from base_seed and point id)", dtype="int64"),
     Variable("runaway_onset_s", "s", "first time the smoothed E rate stayed above the runaway threshold"),

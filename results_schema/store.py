@@ -17,7 +17,6 @@ See SPEC.md beside this module for the full layout.
 from __future__ import annotations
 
 import base64
-import importlib.metadata
 import json
 import math
 import shutil
@@ -36,26 +35,11 @@ import numpy as np
 import zarr
 from zarr.errors import ZarrUserWarning
 
-from ..axes import Axis
+from ..axes import REPLICATE, Axis
 from ..errors import StoreError
-from ..flags import STATUSES
-from . import layout
+from ..flags import DONE, FAILED, PENDING, STATUSES, UNNEEDED
+from . import attrs, layout
 from .layout import GridSpec
-
-REPLICATE = "replicate"
-ATTR_SCHEMA = "capsweep_schema_version"
-ATTR_FINGERPRINT = "capsweep_fingerprint"
-ATTR_AXES = "sweep_axes"
-ATTR_CREATED = "created_utc"
-ATTR_TIME_BIN = "time_bin_s"
-AXIS_KEY_ATTR = "config_key"
-CF_CONVENTIONS = "CF-1.11"  # the newest CF version the IOOS compliance checker (6.1) has a suite for
-CF_ATTRS: tuple[str, ...] = ("Conventions", "title", "history")
-VERSIONED_PACKAGES: tuple[str, ...] = ("capsweep", "brian2", "numpy", "xarray", "zarr", "dask")
-RESERVED_ATTRS: frozenset[str] = frozenset(
-    {ATTR_SCHEMA, ATTR_FINGERPRINT, ATTR_AXES, ATTR_CREATED, ATTR_TIME_BIN, *CF_ATTRS}
-    | {f"version_{name}" for name in VERSIONED_PACKAGES}
-)
 
 # Variables whose every entry holds a value from creation on: no _FillValue, so they decode to
 # their integer dtype (an unwritten status chunk holds the Zarr fill value 0 = pending).
@@ -161,7 +145,7 @@ class ResultStore:
     @property
     def sweep_dims(self) -> tuple[str, ...]:
         """Dims that index a point: the axis names, then ``replicate``."""
-        return (*_names(self._group.attrs[ATTR_AXES]), REPLICATE)
+        return (*_names(self._group.attrs[attrs.AXES]), REPLICATE)
 
     @property
     def shape(self) -> tuple[int, ...]:
@@ -182,7 +166,7 @@ class ResultStore:
 
     def mark_unneeded(self, index: tuple[int, ...]) -> None:
         """Set a pending point's status to unneeded: an adaptive search decided without it (nothing else written)."""
-        self._queue(self._check_index(index), {}, "unneeded")
+        self._queue(self._check_index(index), {}, UNNEEDED)
 
     def write_point(self, index: tuple[int, ...], result: Mapping[str, Any]) -> None:
         """Write a finished point: every result variable and an empty error, then status done.
@@ -195,14 +179,14 @@ class ResultStore:
         index = self._check_index(index)
         values = self._encode_result(index, result)
         values[layout.ERROR] = ""
-        self._queue(index, values, "done")
+        self._queue(index, values, DONE)
 
     def write_failure(self, index: tuple[int, ...], error_text: str) -> None:
         """Record a failed point: error text, fill in every result, then status failed."""
         index = self._check_index(index)
         values = {name: self._fills[name] for name in REQUIRED_RESULTS}
         values[layout.ERROR] = str(error_text)
-        self._queue(index, values, "failed")
+        self._queue(index, values, FAILED)
 
     def flush(self) -> None:
         """Write every buffered point now (data first, status last); returns when all are on disk."""
@@ -309,9 +293,9 @@ def stored_attrs(path: str | Path, growing: str | None = None) -> dict[str, Any]
     ``growing``: a fingerprint; the store may be half grown to that grid.
     """
     path = Path(path)
-    attrs = dict(_open_group(path, mode="r", consolidated=False).attrs)
-    _check_identity(path, attrs, None, growing)
-    return attrs
+    stored = dict(_open_group(path, mode="r", consolidated=False).attrs)
+    _check_identity(path, stored, None, growing)
+    return stored
 
 
 def growing_to(path: str | Path) -> str | None:
@@ -345,8 +329,9 @@ def grow_store(path: str | Path, grid: GridSpec, point_ids: np.ndarray, seeds: n
         _array(group, name).resize(values.shape)
         _array(group, name)[...] = values
     _fill_ids_and_seeds(group, point_ids, seeds)
-    history = f"{group.attrs.get('history', '')}\n{_now()} capsweep {_package_version('capsweep')}: grown to {shape}"
-    group.attrs.update({**grid.attrs, ATTR_FINGERPRINT: grid.fingerprint, "history": history.strip()})
+    history = f"{group.attrs.get(attrs.HISTORY, '')}\n{_now()} capsweep {attrs.package_version('capsweep')}: " \
+              f"grown to {shape}"
+    group.attrs.update({**grid.attrs, attrs.FINGERPRINT: grid.fingerprint, attrs.HISTORY: history.strip()})
     _consolidate(path)
     (path / GROWING_NAME).unlink()
 
@@ -354,11 +339,11 @@ def grow_store(path: str | Path, grid: GridSpec, point_ids: np.ndarray, seeds: n
 def _check_extension(path: Path, group: zarr.Group, grid: GridSpec, shape: tuple[int, ...],
                      point_ids: np.ndarray) -> None:
     """Raise StoreError unless ``grid`` keeps every stored coordinate and point id where it is."""
-    stored_axes = _names(group.attrs[ATTR_AXES])
+    stored_axes = _names(group.attrs[attrs.AXES])
     if stored_axes != [axis.name for axis in grid.axes]:
         raise StoreError(f"{path} has axes {stored_axes}; a grown grid must keep them, in order")
-    if group.attrs[ATTR_TIME_BIN] != float(grid.time_bin_s):
-        raise StoreError(f"{path} has rate bins of {group.attrs[ATTR_TIME_BIN]} s; a grown grid must keep them")
+    if group.attrs[attrs.TIME_BIN] != float(grid.time_bin_s):
+        raise StoreError(f"{path} has rate bins of {group.attrs[attrs.TIME_BIN]} s; a grown grid must keep them")
     stored_ids = np.asarray(_array(group, layout.POINT_ID)[...])
     if any(n < m for n, m in zip(shape, stored_ids.shape)):
         raise StoreError(f"{path} has sweep shape {stored_ids.shape}; a grown grid cannot be smaller: {shape}")
@@ -418,7 +403,7 @@ def _check_grid(grid: GridSpec, point_ids: np.ndarray, seeds: np.ndarray) -> tup
             raise ValueError(f"axis {axis.name} needs distinct values, got {axis.values}")
     if grid.replicates < 1:
         raise ValueError(f"replicates must be at least 1, got {grid.replicates}")
-    reserved = sorted(RESERVED_ATTRS & set(grid.attrs))
+    reserved = sorted(attrs.RESERVED & set(grid.attrs))
     if reserved:
         raise ValueError(f"grid attrs may not set the store's own attributes {reserved}")
     shape = (*(len(axis.values) for axis in grid.axes), grid.replicates)
@@ -431,13 +416,13 @@ def _check_grid(grid: GridSpec, point_ids: np.ndarray, seeds: np.ndarray) -> tup
 def _write_template(path: Path, grid: GridSpec, sweep_shape: tuple[int, ...],
                     point_ids: np.ndarray, seeds: np.ndarray) -> None:
     """Create the group, coordinates and empty variables; mark it a capsweep store last."""
-    group = zarr.create_group(path, zarr_format=3, attributes=_root_attrs(grid))
+    group = zarr.create_group(path, zarr_format=3, attributes=attrs.root_attrs(grid, _now()))
     sweep_dims = (*(axis.name for axis in grid.axes), REPLICATE)
     sizes = _inner_sizes(grid)
-    for name, (values, attrs) in _coordinates(grid).items():
+    for name, (values, described) in _coordinates(grid).items():
         dtype = str if values.dtype == object else values.dtype
         group.create_array(name, shape=values.shape, chunks=(max(values.size, 1),), dtype=dtype,
-                           dimension_names=(name,), fill_value=None, attributes=attrs)
+                           dimension_names=(name,), fill_value=None, attributes=described)
         _array(group, name)[...] = values
     for var in layout.VARIABLES + (layout.STATUS,):
         inner = () if var.inner is None else (var.inner,)
@@ -447,7 +432,7 @@ def _write_template(path: Path, grid: GridSpec, sweep_shape: tuple[int, ...],
         _create_point_variable(group, name, sweep_dims, sweep_shape, (), (), str, "",
                                {"units": "1", "long_name": long_name})
     _fill_ids_and_seeds(group, point_ids, seeds)
-    group.attrs[ATTR_SCHEMA] = layout.SCHEMA_VERSION
+    group.attrs[attrs.SCHEMA] = layout.SCHEMA_VERSION
     _consolidate(path)
 
 
@@ -472,9 +457,9 @@ def _inner_sizes(grid: GridSpec) -> dict[str, int]:
 def _coordinates(grid: GridSpec) -> dict[str, tuple[np.ndarray, dict[str, Any]]]:
     """Every coordinate of ``grid``: name -> (values, attrs); axes first, then the counters and time_bin."""
     coords = {axis.name: (_axis_array(axis), {"units": axis.units, "long_name": axis.long_name,
-                                              AXIS_KEY_ATTR: axis.key}) for axis in grid.axes}
+                                              attrs.AXIS_KEY: axis.key}) for axis in grid.axes}
     counters = (
-        (REPLICATE, grid.replicates, "replicate (independent seed) of a grid cell"),
+        (REPLICATE, grid.replicates, "replicate (independent seed) of a grid point"),
         ("assembly", grid.n_assembly, "assembly index"),
         ("snapshot", grid.n_snapshot, "weight snapshot index during the hold phase"),
         ("retention", grid.n_retention, "recall test index (tests during the hold, then the final test)"),
@@ -498,7 +483,7 @@ def _axis_array(axis: Axis) -> np.ndarray:
 
 def _create_point_variable(group: zarr.Group, name: str, sweep_dims: tuple[str, ...], sweep_shape: tuple[int, ...],
                            inner_dims: tuple[str, ...], inner_shape: tuple[int, ...], dtype: Any, fill: Any,
-                           attrs: dict[str, Any]) -> None:
+                           described: dict[str, Any]) -> None:
     """Create one per-point array whose chunks (one file each) hold ``point_block`` points, whole along inner dims.
 
     Variables with an inner dim are compressed (zstd); per-point scalars are not (a few bytes a
@@ -508,7 +493,7 @@ def _create_point_variable(group: zarr.Group, name: str, sweep_dims: tuple[str, 
     inner = tuple(max(n, 1) for n in inner_shape)
     block = point_block(sweep_shape, max(1, min(MAX_POINTS_PER_FILE, FILE_BYTES // (itemsize * math.prod(inner)))))
     group.create_array(name, shape=(*sweep_shape, *inner_shape), chunks=(*block, *inner), dtype=dtype,
-                       dimension_names=(*sweep_dims, *inner_dims), fill_value=fill, attributes=attrs,
+                       dimension_names=(*sweep_dims, *inner_dims), fill_value=fill, attributes=described,
                        compressors="auto" if inner else None)
 
 
@@ -527,17 +512,17 @@ def point_block(sweep_shape: tuple[int, ...], points: int) -> tuple[int, ...]:
 
 def _zarr_fill(var: layout.Variable) -> float | int:
     """What an unwritten chunk holds: pending for status, the layout's fill value otherwise."""
-    return STATUSES.index("pending") if var is layout.STATUS else var.fill
+    return STATUSES.index(PENDING) if var is layout.STATUS else var.fill
 
 
 def _variable_attrs(var: layout.Variable) -> dict[str, Any]:
-    attrs: dict[str, Any] = {"units": var.units, "long_name": var.long_name}
+    described: dict[str, Any] = {"units": var.units, "long_name": var.long_name}
     if var.flags:
-        attrs["flag_values"] = list(range(len(var.flags)))
-        attrs["flag_meanings"] = " ".join(var.flags)
+        described["flag_values"] = list(range(len(var.flags)))
+        described["flag_meanings"] = " ".join(var.flags)
     if var.name not in ALWAYS_SET:
-        attrs["_FillValue"] = _fill_attr(var.fill)
-    return attrs
+        described["_FillValue"] = _fill_attr(var.fill)
+    return described
 
 
 def _fill_attr(fill: float | int) -> float | int | str:
@@ -549,35 +534,6 @@ def _fill_attr(fill: float | int) -> float | int | str:
 
 def _now() -> str:
     return datetime.now(UTC).isoformat(timespec="seconds")
-
-
-def _root_attrs(grid: GridSpec) -> dict[str, Any]:
-    created = _now()
-    return {
-        **cf_root_attrs(str(grid.attrs.get("sweep_name", "")), created),
-        ATTR_FINGERPRINT: grid.fingerprint,
-        ATTR_AXES: [axis.name for axis in grid.axes],
-        ATTR_TIME_BIN: float(grid.time_bin_s),
-        ATTR_CREATED: created,
-        **{f"version_{name}": _package_version(name) for name in VERSIONED_PACKAGES},
-        **grid.attrs,
-    }
-
-
-def cf_root_attrs(sweep_name: str, created_utc: str) -> dict[str, str]:
-    """The CF global attributes of a store of sweep ``sweep_name`` created at ``created_utc`` (ISO 8601, UTC)."""
-    return {
-        "Conventions": CF_CONVENTIONS,
-        "title": f"capsweep results of sweep {sweep_name or '(unnamed)'}: memory capacity of a plastic spiking network",
-        "history": f"{created_utc} capsweep {_package_version('capsweep')}: store created",
-    }
-
-
-def _package_version(name: str) -> str:
-    try:
-        return importlib.metadata.version(name)
-    except importlib.metadata.PackageNotFoundError:
-        return "unknown"
 
 
 def _array(group: zarr.Group, name: str) -> zarr.Array:
@@ -603,16 +559,17 @@ def _open_group(path: Path, mode: Literal["r", "r+"] = "r+", consolidated: bool 
         raise StoreError(f"{path} is not a capsweep result store (no Zarr v3 group there: {exc})") from None
 
 
-def _check_identity(path: Path, attrs: dict[str, Any], fingerprint: str | None, growing: str | None = None) -> None:
-    """Raise StoreError unless ``attrs`` are those of a capsweep store of this schema (and grid), not half grown.
+def _check_identity(path: Path, stored: dict[str, Any], fingerprint: str | None, growing: str | None = None) -> None:
+    """Raise StoreError unless the root attrs ``stored`` are those of a capsweep store of this schema (and grid), not
+    half grown.
 
     ``growing``: the fingerprint of the grid the caller grows the store to (a half-grown store is then accepted).
     """
-    if ATTR_SCHEMA not in attrs:
-        raise StoreError(f"{path} is not a capsweep result store (its root attributes lack {ATTR_SCHEMA})")
-    if attrs[ATTR_SCHEMA] != layout.SCHEMA_VERSION:
+    if attrs.SCHEMA not in stored:
+        raise StoreError(f"{path} is not a capsweep result store (its root attributes lack {attrs.SCHEMA})")
+    if stored[attrs.SCHEMA] != layout.SCHEMA_VERSION:
         raise StoreError(
-            f"{path} has store schema version {attrs[ATTR_SCHEMA]}, this capsweep writes version "
+            f"{path} has store schema version {stored[attrs.SCHEMA]}, this capsweep writes version "
             f"{layout.SCHEMA_VERSION}; use the capsweep version that made it or start a new store"
         )
     target = growing_to(path)
@@ -621,8 +578,8 @@ def _check_identity(path: Path, attrs: dict[str, Any], fingerprint: str | None, 
             f"{path} was being grown to a larger sweep grid (fingerprint {target}) when it stopped; run the sweep "
             "file that grows it again to finish"
         )
-    if fingerprint is not None and attrs.get(ATTR_FINGERPRINT) != fingerprint:
+    if fingerprint is not None and stored.get(attrs.FINGERPRINT) != fingerprint:
         raise StoreError(
             f"{path} was built from a different sweep grid or base config (store fingerprint "
-            f"{attrs.get(ATTR_FINGERPRINT)}, this sweep {fingerprint}); use another store path or delete it"
+            f"{stored.get(attrs.FINGERPRINT)}, this sweep {fingerprint}); use another store path or delete it"
         )

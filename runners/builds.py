@@ -6,9 +6,8 @@ need Brian2, so the sweep's client process can group points by build without imp
 
 Builds live in ``$CAPSWEEP_BUILD_DIR`` (default ``~/.cache/capsweep/builds``), one directory per
 build key. The cache may sit on a filesystem shared by several hosts (each key compiled once
-across them) or on node-local scratch (each node compiles once): the compile lock is a directory
-``<key>.lock`` made with ``os.mkdir`` (atomic on local and network filesystems alike, unlike
-``fcntl`` locks over NFS), holding its holder's host, pid and a heartbeat time the holder renews.
+across them) or on node-local scratch (each node compiles once): the compile lock is a lock directory
+``<key>.lock`` of :mod:`capsweep.locks` whose holder renews its heartbeat (policy ``COMPILE``).
 """
 
 from __future__ import annotations
@@ -18,13 +17,10 @@ import hashlib
 import json
 import os
 import shutil
-import socket
-import threading
-import time
-import uuid
 from collections.abc import Iterator
 from pathlib import Path
 
+from ..locks import COMPILE, held
 from ..registry import flatten
 
 BUILD_DIR_ENV = "CAPSWEEP_BUILD_DIR"
@@ -88,120 +84,13 @@ def build_root(root: str | os.PathLike | None = None) -> Path:
     return Path(root).expanduser()
 
 
-HEARTBEAT_S = 10.0
-"""How often (s) a lock's holder renews its heartbeat time."""
-STALE_AFTER_S = 300.0
-"""A lock whose heartbeat is older than this (s) is stale whatever its host: far above the heartbeat period and
-the clock skew of hosts kept by NTP (common practice: milliseconds)."""
-_HOLDER = "holder.json"
-_POLL_S = 0.5
-
-
 @contextlib.contextmanager
 def locked(path: Path, blocking: bool = True) -> Iterator[bool]:
-    """Hold the lock directory ``path`` (``<key>.lock``); yields False instead of waiting if not ``blocking`` and taken.
-
-    A lock is taken over when stale: its heartbeat is older than ``STALE_AFTER_S``, or its holder ran on
-    this host and its process is gone. The holder renews the heartbeat every ``HEARTBEAT_S`` from a
-    background thread while the ``with`` block runs (a compile takes minutes).
-    """
+    """Hold the compile lock ``path`` (``<key>.lock``, policy :data:`capsweep.locks.COMPILE`); yields False instead
+    of waiting if not ``blocking`` and taken. Makes the cache root first if needed."""
     path.parent.mkdir(parents=True, exist_ok=True)
-    while not _try_lock(path):
-        if not blocking:
-            yield False
-            return
-        time.sleep(_POLL_S)
-    stop = threading.Event()
-    beat = threading.Thread(target=_heartbeat, args=(path, stop), name="capsweep-build-lock", daemon=True)
-    beat.start()
-    try:
-        yield True
-    finally:
-        stop.set()
-        beat.join()
-        shutil.rmtree(path, ignore_errors=True)
-
-
-def _try_lock(path: Path) -> bool:
-    """Make the lock directory with this process's holder record, clearing a stale lock first. True if taken."""
-    for _ in range(2):  # once more after clearing a stale lock
-        try:
-            os.mkdir(path)
-        except FileExistsError:
-            held = _read_holder(path)
-            if held is None or not _is_stale(_parse(held)):
-                return False
-            _remove_if_unchanged(path, held)
-            continue
-        _write_holder(path)
-        return True
-    return False
-
-
-def _heartbeat(path: Path, stop: threading.Event) -> None:
-    while not stop.wait(HEARTBEAT_S):
-        _write_holder(path)
-
-
-def _write_holder(path: Path) -> None:
-    """Write host, pid and the heartbeat time (s since the epoch) into the lock, replacing the file atomically."""
-    record = json.dumps({"host": socket.gethostname(), "pid": os.getpid(), "heartbeat": time.time()})
-    partial = path / f".{uuid.uuid4().hex}"
-    partial.write_text(record)
-    os.replace(partial, path / _HOLDER)
-
-
-def _read_holder(path: Path) -> str | None:
-    """The lock's holder record; None if the lock is gone or too young to have one yet.
-
-    '' (stale) for a lock directory older than ``STALE_AFTER_S`` without a record, and for a lock *file* left by
-    earlier capsweep versions (an fcntl lock, which nobody holds in this form).
-    """
-    try:
-        return (path / _HOLDER).read_text()
-    except NotADirectoryError:
-        return ""
-    except FileNotFoundError:
-        try:
-            return "" if time.time() - path.stat().st_mtime > STALE_AFTER_S else None
-        except FileNotFoundError:
-            return None
-
-
-def _parse(held: str) -> dict:
-    """A holder record as a dict; empty if unreadable."""
-    try:
-        holder = json.loads(held)
-    except json.JSONDecodeError:
-        return {}
-    return holder if isinstance(holder, dict) else {}
-
-
-def _is_stale(holder: dict) -> bool:
-    """True if a build lock's holder record (host, pid, heartbeat) shows a dead holder; an empty record is stale."""
-    if not holder:
-        return True
-    if time.time() - float(holder.get("heartbeat", 0.0)) > STALE_AFTER_S:
-        return True
-    if holder.get("host") != socket.gethostname():
-        return False
-    try:
-        os.kill(int(holder.get("pid", 0)), 0)
-    except ProcessLookupError:
-        return True
-    except (PermissionError, ValueError, OverflowError):
-        return False
-    return False
-
-
-def _remove_if_unchanged(path: Path, held: str) -> None:
-    """Remove a stale lock if it still holds the record judged stale: renamed first, so one taker wins."""
-    if _read_holder(path) != held:
-        return
-    grave = path.with_name(f"{path.name}.stale-{uuid.uuid4().hex}")
-    with contextlib.suppress(OSError):
-        os.rename(path, grave)
-        shutil.rmtree(grave) if grave.is_dir() else grave.unlink()
+    with held(path, COMPILE, blocking) as taken:
+        yield taken
 
 
 def _dir_bytes(path: Path) -> int:

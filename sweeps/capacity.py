@@ -1,4 +1,4 @@
-"""Capacity from a store: success of each point, success fractions with intervals, capacity per cell.
+"""Capacity from a store: success of each point, success fractions with intervals, capacity per condition.
 
 Definitions (the same words are stored in every store's attrs, see
 ``capsweep.results_schema.definitions``):
@@ -6,18 +6,19 @@ Definitions (the same words are stored in every store's attrs, see
 - A point *succeeds* when it is done, its outcome is stable and every one of its assemblies was
   recalled (``recalled_count == assemblies.count``; recall is decided by the coding-level
   normalised recall score). A failed (crashed) point is neither success nor failure: it is left
-  out and counted. A pending point leaves its cell undecided.
-- Per grid cell (one combination of the axes other than the count axis) and count: the success
+  out and counted. A pending point leaves its condition undecided.
+- Per condition (one combination of the axes other than the count axis) and count: the success
   fraction over the done replicates, with a 95 % Wilson score interval (Wilson 1927, J Am Stat
   Assoc 22:209).
-- The *capacity* of a cell is the largest count k such that every count <= k in the grid succeeds
-  in at least ``min_fraction`` of its done replicates; 0 when the smallest count already fails. It
-  is only a lower bound (``at_least``) when k is the top of the grid, NA while a point of the cell
+- A count *passes* when it succeeds in at least ``min_fraction`` of its done replicates. The *capacity*
+  of a condition is the largest count k such that every count <= k in the grid passes
+  (:func:`capsweep.sweeps.success.leading_passes`); 0 when the smallest count already fails. It
+  is only a lower bound (``at_least``) when k is the top of the grid, NA while a point of the condition
   is pending or a count up to the deciding one (the first that falls short) has no done
   replicate, and flagged ``non_monotone`` when a count reaches ``min_fraction`` after a smaller
   one fell short (rises of the fraction that do not cross it are left to the per-count table).
 - In a store filled by an adaptive count search (``capsweep.sweeps.search``), counts the search never
-  ran (status unneeded) take the verdict monotonicity implies: passing when a larger count passed,
+  ran (status unneeded) pass or fail as monotonicity implies: passing when a larger count passed,
   falling short when a smaller one fell short; the search ran every count this rule needs.
 - Its interval is the range of the per-replicate capacities (replicate r: the largest k with every
   count <= k successful in r), a distribution-free summary; a replicate whose run of successes
@@ -35,9 +36,10 @@ import pandas as pd
 import xarray as xr
 from scipy.stats import binomtest
 
-from ..axes import COUNT_KEY
+from ..axes import COUNT_KEY, REPLICATE
+from ..flags import DONE, FAILED, PENDING, UNNEEDED
 from .query import QueryError, axis_keys, labelled
-from .success import MIN_FRACTION, count_passes, succeeds
+from .success import MIN_FRACTION, count_passes, leading_passes, succeeds
 
 CONFIDENCE = 0.95
 """Confidence level of the Wilson intervals."""
@@ -47,7 +49,7 @@ def point_success(ds: xr.Dataset) -> xr.DataArray:
     """Per point: 1.0 success, 0.0 failure, NaN undecided (pending, crashed or unneeded); see the module docstring."""
     status, outcome = labelled(ds, "status"), labelled(ds, "outcome")
     ok = succeeds(outcome, ds["recalled_count"], _count_values(ds))
-    return xr.where(status == "done", ok.astype(float), np.nan)
+    return xr.where(status == DONE, ok.astype(float), np.nan)
 
 
 def count_dim(ds: xr.Dataset) -> str:
@@ -67,8 +69,8 @@ def _count_values(ds: xr.Dataset) -> xr.DataArray | int:
 
 
 @dataclass(frozen=True)
-class _Cell:
-    """One grid cell: its labels (other axes) and per-point arrays over (count, replicate)."""
+class _Condition:
+    """One condition: its labels (the other axes) and per-point arrays over (count, replicate)."""
 
     labels: dict[str, object]
     counts: np.ndarray  # ascending
@@ -76,17 +78,17 @@ class _Cell:
     status: np.ndarray  # labels, shape (count, replicate)
 
 
-def _cells(ds: xr.Dataset) -> Iterator[_Cell]:
+def _conditions(ds: xr.Dataset) -> Iterator[_Condition]:
     count = count_dim(ds)
     success, status = point_success(ds), labelled(ds, "status")
     order = np.argsort(ds[count].values)
-    others = [str(d) for d in success.dims if d not in (count, "replicate")]
+    others = [str(d) for d in success.dims if d not in (count, REPLICATE)]
     for combo in itertools.product(*(range(ds.sizes[d]) for d in others)):
         where = dict(zip(others, combo))
         labels = {d: ds[d].values.tolist()[i] for d, i in where.items()}
-        yield _Cell(labels, ds[count].values[order],
-                    success.isel(where).transpose(count, "replicate").values[order],
-                    status.isel(where).transpose(count, "replicate").values[order])
+        yield _Condition(labels, ds[count].values[order],
+                         success.isel(where).transpose(count, REPLICATE).values[order],
+                         status.isel(where).transpose(count, REPLICATE).values[order])
 
 
 def wilson_interval(successes: int, trials: int) -> tuple[float, float]:
@@ -98,82 +100,77 @@ def wilson_interval(successes: int, trials: int) -> tuple[float, float]:
 
 
 def success_table(ds: xr.Dataset) -> pd.DataFrame:
-    """Per cell and count: done replicates, successes, fraction with its Wilson interval, failed, pending."""
+    """Per condition and count: done replicates, successes, fraction with its Wilson interval, failed, pending."""
     count = count_dim(ds)
     rows = []
-    for cell in _cells(ds):
-        for k, row, status in zip(cell.counts, cell.success, cell.status):
+    for condition in _conditions(ds):
+        for k, row, status in zip(condition.counts, condition.success, condition.status):
             done = int(np.sum(np.isfinite(row)))
             wins = int(np.nansum(row))
             low, high = wilson_interval(wins, done)
-            rows.append({**cell.labels, count: int(k), "n": done, "successes": wins,
+            rows.append({**condition.labels, count: int(k), "n": done, "successes": wins,
                          "fraction": wins / done if done else np.nan, "wilson_lo": low, "wilson_hi": high,
-                         "failed": int(np.sum(status == "failed")), "pending": int(np.sum(status == "pending")),
-                         "unneeded": int(np.sum(status == "unneeded"))})
+                         **_status_counts(status)})
     return pd.DataFrame(rows)
 
 
-def _leading_successes(fractions: np.ndarray, min_fraction: float) -> int:
-    """Number of counts, from the smallest, that all reach ``min_fraction``."""
-    passed = fractions >= min_fraction
-    return int(np.argmin(passed)) if not passed.all() else len(passed)
+def _status_counts(status: np.ndarray) -> dict[str, int]:
+    """Points failed, pending and unneeded among the status labels ``status``, by those labels."""
+    return {label: int(np.sum(status == label)) for label in (FAILED, PENDING, UNNEEDED)}
 
 
-def _count_verdicts(cell: _Cell, min_fraction: float) -> np.ndarray:
+def _passes(condition: _Condition, min_fraction: float) -> np.ndarray:
     """Per count: 1.0 passes, 0.0 falls short of ``min_fraction``, NaN undecided (no done replicate).
 
-    Counts an adaptive search never ran (every replicate unneeded) take the verdict monotonicity
+    Counts an adaptive search never ran (every replicate unneeded) pass or fail as monotonicity
     implies: pass when a larger count passed, fall short when a smaller one did, NaN if both or neither.
     """
-    done = np.isfinite(cell.success).sum(axis=1)
-    wins = np.nansum(cell.success, axis=1).astype(int)
-    verdicts = np.array([np.nan if (v := count_passes(w, d, min_fraction)) is None else float(v)
-                         for w, d in zip(wins, done)])
-    inferred = verdicts.copy()
-    for k in np.flatnonzero(np.all(cell.status == "unneeded", axis=1)):
-        above, below = bool(np.any(verdicts[k:] == 1.0)), bool(np.any(verdicts[:k] == 0.0))
+    done = np.isfinite(condition.success).sum(axis=1)
+    wins = np.nansum(condition.success, axis=1).astype(int)
+    passes = np.array([np.nan if (v := count_passes(w, d, min_fraction)) is None else float(v)
+                       for w, d in zip(wins, done)])
+    inferred = passes.copy()
+    for k in np.flatnonzero(np.all(condition.status == UNNEEDED, axis=1)):
+        above, below = bool(np.any(passes[k:] == 1.0)), bool(np.any(passes[:k] == 0.0))
         inferred[k] = 1.0 if above and not below else 0.0 if below and not above else np.nan
     return inferred
 
 
-def _replicate_capacities(cell: _Cell, verdicts: np.ndarray) -> list[int]:
+def _replicate_capacities(condition: _Condition, passes: np.ndarray) -> list[int]:
     """Capacity of each replicate whose run of successes ends at a decided point (not a crash).
 
-    Unneeded points (never run by a search) count as the verdict inferred for their count.
+    Unneeded points (never run by a search) count as whether their count passes.
     """
     capacities = []
-    for r in range(cell.success.shape[1]):
-        column = np.where(cell.status[:, r] == "unneeded", verdicts, cell.success[:, r])
-        lead = _leading_successes(np.nan_to_num(column, nan=-1.0), 1.0)
+    for r in range(condition.success.shape[1]):
+        column = np.where(condition.status[:, r] == UNNEEDED, passes, condition.success[:, r])
+        lead = leading_passes(column == 1.0)
         if lead < len(column) and np.isnan(column[lead]):
             continue  # the run ends at a crashed or pending point: capacity unknown
-        capacities.append(int(cell.counts[lead - 1]) if lead else 0)
+        capacities.append(int(condition.counts[lead - 1]) if lead else 0)
     return capacities
 
 
 def capacity_table(ds: xr.Dataset, min_fraction: float = MIN_FRACTION) -> pd.DataFrame:
-    """Capacity per cell with its replicate range and flags (see the module docstring)."""
+    """Capacity per condition with its replicate range and flags (see the module docstring)."""
     if not 0.0 < min_fraction <= 1.0:
         raise QueryError(f"--min-fraction {min_fraction} is not allowed: expected a number in (0, 1]")
     rows = []
-    for cell in _cells(ds):
-        verdicts = _count_verdicts(cell, min_fraction)
-        lead = _leading_successes(np.nan_to_num(verdicts, nan=-1.0), 1.0)
-        pending = int(np.sum(cell.status == "pending"))
-        undecided = pending > 0 or bool(np.any(np.isnan(verdicts[:lead + 1])))  # counts above the deciding one
-        passed = verdicts == 1.0                                                  # do not matter
-        replicates = _replicate_capacities(cell, verdicts) if not pending else []
+    for condition in _conditions(ds):
+        passes = _passes(condition, min_fraction)
+        lead = leading_passes(passes == 1.0)
+        counts = _status_counts(condition.status)
+        undecided = counts[PENDING] > 0 or bool(np.any(np.isnan(passes[:lead + 1])))  # counts above the deciding
+        replicates = _replicate_capacities(condition, passes) if not counts[PENDING] else []  # one do not matter
         rows.append({
-            **cell.labels,
-            "capacity": pd.NA if undecided else int(cell.counts[lead - 1]) if lead else 0,
+            **condition.labels,
+            "capacity": pd.NA if undecided else int(condition.counts[lead - 1]) if lead else 0,
             "capacity_lo": min(replicates) if replicates else pd.NA,
             "capacity_hi": max(replicates) if replicates else pd.NA,
-            "at_least": not undecided and lead == len(cell.counts),
-            "non_monotone": bool(np.any(passed[lead:])) if lead < len(passed) else False,
+            "at_least": not undecided and lead == len(condition.counts),
+            "non_monotone": bool(np.any(passes[lead:] == 1.0)),
             "replicates_used": len(replicates),
-            "pending": pending,
-            "failed": int(np.sum(cell.status == "failed")),
-            "unneeded": int(np.sum(cell.status == "unneeded")),
+            **{label: counts[label] for label in (PENDING, FAILED, UNNEEDED)},
         })
     table = pd.DataFrame(rows)
     for column in ("capacity", "capacity_lo", "capacity_hi"):
@@ -218,12 +215,12 @@ def scaling_fit(ds: xr.Dataset, seed: int = 0) -> ScalingFit | None:
         return None
     per_size: dict[int, np.ndarray] = {}
     top: list[int] = []
-    for cell in _cells(ds):
-        n = int(cell.labels[size])  # type: ignore[call-overload]
-        capacities = np.array(_replicate_capacities(cell, _count_verdicts(cell, MIN_FRACTION)), dtype=float)
+    for condition in _conditions(ds):
+        n = int(condition.labels[size])  # type: ignore[call-overload]
+        capacities = np.array(_replicate_capacities(condition, _passes(condition, MIN_FRACTION)), dtype=float)
         if len(capacities) and capacities.mean() > 0:
             per_size[n] = capacities
-            top += [n] if capacities.max() >= cell.counts[-1] else []
+            top += [n] if capacities.max() >= condition.counts[-1] else []
     if len(per_size) < 2:
         return None
     sizes = sorted(per_size)

@@ -31,9 +31,13 @@ from rich.progress import (
 from rich.text import Text
 
 from .. import __version__
+from ..clusters import NAMES as CLUSTER_KINDS
 from ..engines import ENGINES, NAMES
 from ..errors import CapsweepError
-from ..registry import BY_PATH, ImplausibleValue
+from ..flags import DONE, FAILED, PENDING, UNNEEDED
+from ..registry import ImplausibleValue
+from ..results_schema import attrs
+from .success import MIN_FRACTION
 
 app = typer.Typer(
     add_completion=False, no_args_is_help=True, pretty_exceptions_enable=False,
@@ -92,6 +96,10 @@ def user_errors(command: Callable[..., Any]) -> Callable[..., Any]:
     return wrapper
 
 
+_CLUSTER_HELP = f"override execution.cluster.kind: {', '.join(CLUSTER_KINDS)}"
+_CLUSTER_SET_HELP = "override execution.cluster.NAME (repeatable), e.g. max_jobs=8"
+
+
 @app.command()
 @user_errors
 def run(
@@ -104,11 +112,10 @@ def run(
     engine: str = typer.Option(None, "--engine", help=f"override execution.engine: {', '.join(NAMES)}"),
     retry_failed: bool = typer.Option(False, "--retry-failed", help="run failed points again"),
     prescreen: bool = typer.Option(None, "--prescreen/--no-prescreen",
-                                   help="store the theory prediction beside each point (default: execution.prescreen)"),
-    cluster: str = typer.Option(None, "--cluster", help="override execution.cluster.kind: "
-                                + ", ".join(BY_PATH["execution.cluster.kind"].choices)),
-    cluster_set: list[str] = typer.Option(None, "--cluster-set", metavar="NAME=VALUE",
-                                          help="override execution.cluster.NAME (repeatable), e.g. max_jobs=8"),
+                                   help="store the prescreen's predicted outcome beside each point "
+                                        "(default: execution.prescreen)"),
+    cluster: str = typer.Option(None, "--cluster", help=_CLUSTER_HELP),
+    cluster_set: list[str] = typer.Option(None, "--cluster-set", metavar="NAME=VALUE", help=_CLUSTER_SET_HELP),
 ) -> None:
     """Run every point of SWEEP_FILE not yet done, writing each result into the store as it arrives."""
     from .launch import RunOptions, run_sweep
@@ -205,7 +212,7 @@ def status(
 
     ds = open_store(store, "status")
     counts = status_counts(ds)
-    out.print(f"store {store}: sweep {ds.attrs.get('sweep_name', '?')!r}, {int(ds['status'].size)} points",
+    out.print(f"store {store}: sweep {ds.attrs.get(attrs.SWEEP_NAME, '?')!r}, {int(ds['status'].size)} points",
               markup=False, highlight=False)
     out.print("status:  " + ", ".join(f"{k} {v}" for k, v in counts["status"].items()), highlight=False)
     out.print("outcome: " + ", ".join(f"{k} {v}" for k, v in counts["outcome"].items()) + "  (done points)",
@@ -215,7 +222,7 @@ def status(
             labels = " ".join(f"{dim}={value}" for dim, value in point.labels.items())
             out.print(f"failed {labels} ({point.point_id}): {point.error}", markup=False, highlight=False,
                       soft_wrap=True)
-    if counts["status"]["done"] == 0:
+    if counts["status"][DONE] == 0:
         out.print("no point done yet")
         return
     check = plausibility(ds)
@@ -268,16 +275,17 @@ def query(
 @user_errors
 def capacity(
     store: Path = typer.Argument(..., help="Zarr store directory"),
-    min_fraction: float = typer.Option(0.5, "--min-fraction",
+    min_fraction: float = typer.Option(MIN_FRACTION, "--min-fraction",
                                        help="fraction of replicates in which each count up to capacity must succeed"),
     per_count: bool = typer.Option(False, "--per-count", help="csv/json: the per-count success table instead"),
     fmt: TableFormat = typer.Option(TableFormat.table, "--format", help="table, csv or json"),
 ) -> None:
-    """Capacity per cell of the other axes: largest assembly count whose every smaller count succeeds.
+    """Capacity per condition (combination of the other axes): largest assembly count whose every smaller count
+    succeeds.
 
     A point succeeds when it is done, stable and recalls every assembly. The table shows each
     count's success fraction with its 95 % Wilson interval, then the capacity with the range of
-    the per-replicate capacities; 'at least' marks the top of the grid, NA a cell with pending points.
+    the per-replicate capacities; 'at least' marks the top of the grid, NA a condition with pending points.
     """
     from .capacity import capacity_table, count_dim, scaling_fit, success_table
     from .query import open_store
@@ -312,11 +320,11 @@ def _say(line: str) -> None:
 
 
 _CAPACITY_COLUMNS = ("capacity", "capacity_lo", "capacity_hi", "at_least", "non_monotone", "replicates_used",
-                     "pending", "failed", "unneeded")
+                     PENDING, FAILED, UNNEEDED)
 
 
 def _capacity_display(table: Any) -> Any:
-    """The capacity table as shown on screen: 'at least k' at the top of the grid, NA for undecided cells."""
+    """The capacity table as shown on screen: 'at least k' at the top of the grid, NA for undecided conditions."""
     import pandas as pd
 
     shown = table.drop(columns=["capacity_lo", "capacity_hi", "at_least"])
@@ -385,32 +393,45 @@ def export(
 @user_errors
 def prescreen_command(
     sweep_file: Path = typer.Argument(..., help="TOML sweep file"),
-    plots: Path = typer.Option(None, "--plots", help="folder for transfer-curve and drift-curve PNGs per cell"),
+    plots: Path = typer.Option(None, "--plots", help="folder for transfer-curve and drift-curve PNGs per grid point"),
     workers: int = typer.Option(None, "--workers", min=1, help="local Dask worker processes"),
     scheduler: str = typer.Option(None, "--scheduler", help="address of a running Dask scheduler"),
+    cluster: str = typer.Option(None, "--cluster", help=_CLUSTER_HELP),
+    cluster_set: list[str] = typer.Option(None, "--cluster-set", metavar="NAME=VALUE", help=_CLUSTER_SET_HELP),
     fmt: TableFormat = typer.Option(TableFormat.table, "--format", help="table, csv or json"),
     against: Path = typer.Option(None, "--against",
                                  help="store this sweep ran into: print agreement with it and write a PNG "
                                       "(into --plots, else next to the store)"),
 ) -> None:
-    """Predict each grid point's outcome and each cell's capacity from rate-form theory, without simulating."""
-    from .prescreen import agreement_plot_path, check_against, compare, outcome_table, prescreen_sweep
+    r"""Predict each grid point's outcome without simulating: a surrogate fitted to simulations, built on
+    mean-field quantities. Also each condition's stability bound (the largest count up to which every count is
+    predicted stable; recall does not enter). Points outside the surrogate's calibration box are named in a
+    warning. Runs on the sweep's \[execution.cluster] like `capsweep run`."""
+    from .prescreen import (
+        OUTSIDE_CALIBRATION,
+        agreement_plot_path,
+        check_against,
+        compare,
+        outcome_table,
+        prescreen_sweep,
+    )
 
     if against is not None:
         check_against(sweep_file, against)
-    with Progress(TextColumn("[bold]cells"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
+    with Progress(TextColumn("[bold]grid points"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
                   console=err) as bar:
         task = bar.add_task("prescreen", total=None)
-        table = prescreen_sweep(sweep_file, workers, scheduler,
+        table = prescreen_sweep(sweep_file, workers, scheduler, _cluster_entries(cluster, cluster_set or []),
                                 on_done=lambda done, total: bar.update(task, completed=done, total=total))
+    _warn_outside_calibration(table, OUTSIDE_CALIBRATION)
     if plots is not None:
         from .prescreen import grid_points
-        from .prescreen_plots import write_cell_plots
+        from .prescreen_plots import write_point_plots
         from .sweepfile import load_sweep
 
-        write_cell_plots(grid_points(load_sweep(sweep_file)), plots)
+        write_point_plots(grid_points(load_sweep(sweep_file)), plots)
     if against is None:
-        _emit(table.drop(columns=["reasons"]) if fmt is TableFormat.table else table, fmt)
+        _emit(table.drop(columns=["reasons", OUTSIDE_CALIBRATION]) if fmt is TableFormat.table else table, fmt)
         return
     from .prescreen_plots import plot_agreement
 
@@ -418,13 +439,22 @@ def prescreen_command(
     _say("predicted vs simulated outcome per grid point (simulated: one per done replicate):")
     _emit(outcome_table(result.points), fmt)
     if not result.capacity.empty:
-        _say("capacity per cell (simulated: capsweep capacity; at_least = top of the grid):")
+        _say("stability bound and simulated capacity per condition (capacity: capsweep capacity; at_least = top "
+             "of the grid):")
         _emit(result.capacity, fmt)
     _say(f"outcome agreement: {result.agreement:.0%} of {len(result.points)} done points (replicates differ among "
          f"themselves: the most one verdict per grid point can reach here is {result.ceiling:.0%})")
     _say("confusion (rows: predicted, columns: simulated):\n" + result.confusion.to_string())
     path = plot_agreement(result, agreement_plot_path(against, plots))
     _say(str(path))
+
+
+def _warn_outside_calibration(table: Any, column: str) -> None:
+    """One warning line on stderr per grid point outside the surrogate's calibration box, naming where it leaves."""
+    for _, row in table[table[column] != ""].iterrows():
+        labels = ", ".join(f"{c}={row[c]}" for c in table.columns[:table.columns.get_loc("predicted_outcome")])
+        typer.echo(f"capsweep: warning: {labels or 'the grid point'} lies outside the prescreen's calibration box "
+                   f"({row[column]}); its runaway chance is extrapolated", err=True)
 
 
 @app.command()
@@ -436,22 +466,22 @@ def check(sweep_file: Path = typer.Argument(..., help="TOML sweep file")) -> Non
     To silence it, list the key in the sweep file: \[sweep] quiet_warnings = ["protocol.hold_s"].
     `capsweep keys` shows every key's allowed and plausible range.
     """
-    from .plan import grid_summary
     from .sweepfile import load_sweep
+    from .workload import workload
 
     sweep = load_sweep(sweep_file)
-    grid = grid_summary(sweep)
+    work = workload(sweep)
     _say(f"{sweep_file}: valid; sweep {sweep.name!r}, store {sweep.store}")
-    _print_grid(grid)
+    _print_workload(work)
 
 
-def _print_grid(grid: Any) -> None:
-    """A plan.Grid: points by axis and replicates, each axis's values, builds and simulated time."""
-    axes = " x ".join(f"{name} {len(values)}" for name, values in grid.axes.items()) or "no axes"
-    _say(f"{len(grid.points)} points: {axes} x {grid.replicates} replicates")
-    for name, values in grid.axes.items():
+def _print_workload(work: Any) -> None:
+    """A workload.Workload: points by axis and replicates, each axis's values, builds and simulated time."""
+    axes = " x ".join(f"{name} {len(values)}" for name, values in work.axes.items()) or "no axes"
+    _say(f"{len(work.points)} points: {axes} x {work.replicates} replicates")
+    for name, values in work.axes.items():
         _say(f"  {name}: {', '.join(map(str, values))}")
-    _say(f"distinct network builds: {grid.builds}; simulated time in all: {grid.simulated_s:.0f} s")
+    _say(f"distinct network builds: {work.builds}; simulated time in all: {work.simulated_s:.0f} s")
 
 
 @app.command()
@@ -495,12 +525,12 @@ def estimate(
     engine: str = typer.Option(None, "--engine", help=f"engine to estimate for: {', '.join(NAMES)}"),
 ) -> None:
     """Show the expanded grid, distinct builds and an estimated wall time (calibrated by probe runs)."""
-    from .plan import plan_sweep
+    from .workload import estimate_sweep
 
     _check_engine(engine)
-    result = plan_sweep(sweep_file, workers, engine,
-                        on_probe=lambda n: err.print(f"probing a network of {n} E cells ..."))
-    _print_grid(result.grid)
+    result = estimate_sweep(sweep_file, workers, engine,
+                            on_probe=lambda n: err.print(f"probing a network of {n} E cells ..."))
+    _print_workload(result.workload)
     for size, cost in sorted(result.costs.items()):
         out.print(f"  N_E {size}: {cost.per_sim_s:.2f} s wall per simulated s + {cost.overhead_s:.1f} s per point "
                   f"({result.engine})", highlight=False)

@@ -1,76 +1,34 @@
-"""Expand a :class:`~capsweep.sweeps.sweepfile.Sweep` into points: grid index, config, stable id, seed.
+"""Expand a :class:`~capsweep.sweeps.sweepfile.Sweep` into points: grid index, resolved config, id, seeds.
 
-A point is the base config with its axis values applied. Its id is a hash of the fully
-resolved config (execution settings excluded) and its replicate number, and its seed derives
-from ``base_seed`` and that id, so results never depend on execution order or worker count.
+A point is the base config with its axis values applied, checked against the rules between keys;
+its id and seeds come from :mod:`capsweep.sweeps.identity`.
 """
 
 from __future__ import annotations
 
-import dataclasses
-import hashlib
 import itertools
-import json
-import math
 from collections.abc import Callable
-from dataclasses import dataclass
 from typing import Any
 
-import numpy as np
-
+from ..axes import REPLICATE
 from ..errors import ConfigError
 from ..registry import inhibitory_count, nest, resolve_derived
-from ..results_schema.layout import GridSpec
-from ..runners.protocol import total_duration_s
+from .identity import Point, grid_shape, point_id, point_seed
 from .sweepfile import Sweep
-
-
-@dataclass(frozen=True)
-class Point:
-    """One simulation of the sweep."""
-
-    index: tuple[int, ...]  # position along each axis, then the replicate number
-    labels: dict[str, Any]  # axis name -> value, plus "replicate"
-    config: dict[str, Any]  # nested, fully resolved config
-    point_id: str
-    seed: int  # noise, initial voltages, cued members
-    wiring_seed: int  # connectivity and membership: shared by every point of one replicate (paired design)
-
-
-def identity_config(flat: dict[str, Any]) -> dict[str, Any]:
-    """The part of a flat config that defines a point's science (execution settings left out)."""
-    return {k: v for k, v in sorted(flat.items()) if not k.startswith("execution.")}
-
-
-def point_id(flat: dict[str, Any], replicate: int) -> str:
-    """16-hex-digit id: SHA-256 of the resolved science config and the replicate number."""
-    blob = json.dumps({"config": identity_config(flat), "replicate": replicate}, sort_keys=True)
-    return hashlib.sha256(blob.encode()).hexdigest()[:16]
-
-
-def point_seed(base_seed: int, pid: str) -> int:
-    """Seed in [0, 2**31) derived from ``base_seed`` and the point id."""
-    digest = hashlib.sha256(f"{base_seed}/{pid}".encode()).digest()
-    return int.from_bytes(digest[:4], "little") & 0x7FFFFFFF
-
-
-def grid_shape(sweep: Sweep) -> tuple[int, ...]:
-    """Number of entries along each axis, then replicates."""
-    return tuple(len(a.values) for a in sweep.axes) + (sweep.replicates,)
 
 
 def expand(sweep: Sweep) -> list[Point]:
     """All points of ``sweep`` in grid order; raises ConfigError if any point is inconsistent."""
     points = []
     for index in itertools.product(*(range(n) for n in grid_shape(sweep))):
-        *cell, replicate = index
+        *position, replicate = index
         flat = dict(sweep.base)
         labels: dict[str, Any] = {}
-        for axis, i in zip(sweep.axes, cell):
+        for axis, i in zip(sweep.axes, position):
             value = axis.values[i]
             flat.update(sweep.variants[axis.name][value] if axis.name in sweep.variants else {axis.key: value})
             labels[axis.name] = value
-        labels["replicate"] = replicate
+        labels[REPLICATE] = replicate
         flat = resolve_derived(flat)
         check_consistency(flat, f"{sweep.source}: point {_describe(labels)}")
         pid = point_id(flat, replicate)
@@ -127,45 +85,3 @@ def check_consistency(flat: dict[str, Any], where: str) -> None:
             for key, value in flat.items():
                 message = message.replace("{" + key + "}", str(value))
             raise ConfigError(f"{where}: {message}")
-
-
-def fingerprint(sweep: Sweep) -> str:
-    """Hash of everything that fixes the grid: axes, replicates, base seed, base science config, count search."""
-    identity: dict[str, Any] = {
-        "axes": [[a.name, a.key, list(a.values)] for a in sweep.axes],
-        "variants": sweep.variants,
-        "replicates": sweep.replicates,
-        "base_seed": sweep.base_seed,
-        "base": identity_config(sweep.base),
-    }
-    if sweep.search is not None:  # only then, so that stores of grids without a search keep their fingerprint
-        identity["search"] = dataclasses.asdict(sweep.search)
-    blob = json.dumps(identity, sort_keys=True)
-    return hashlib.sha256(blob.encode()).hexdigest()[:16]
-
-
-def grid_spec(sweep: Sweep, points: list[Point], attrs: dict[str, Any]) -> GridSpec:
-    """Store layout of ``sweep``: axes, replicates and inner-dim sizes over all ``points``."""
-    bin_s = sweep.base["detection.trace_bin_ms"] / 1000.0
-    longest = max(total_duration_s(p.config) for p in points)
-    return GridSpec(
-        axes=sweep.axes,
-        replicates=sweep.replicates,
-        n_assembly=max(1, max(p.config["assemblies"]["count"] for p in points)),
-        n_snapshot=sweep.base["protocol.snapshots"],
-        n_retention=len(sweep.base["protocol.retention_delays_s"]) + 1,
-        n_time_bin=int(math.ceil(longest / bin_s - 1e-9)),
-        time_bin_s=bin_s,
-        fingerprint=fingerprint(sweep),
-        attrs=attrs,
-    )
-
-
-def id_and_seed_arrays(sweep: Sweep, points: list[Point]) -> tuple[np.ndarray, np.ndarray]:
-    """Point ids (str) and seeds (int64) laid out over the grid shape."""
-    ids = np.empty(grid_shape(sweep), dtype=object)
-    seeds = np.zeros(grid_shape(sweep), dtype=np.int64)
-    for p in points:
-        ids[p.index] = p.point_id
-        seeds[p.index] = p.seed
-    return ids.astype(str), seeds

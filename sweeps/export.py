@@ -20,7 +20,7 @@ import numpy as np
 import xarray as xr
 
 from ..errors import CapsweepError
-from ..results_schema.store import cf_root_attrs
+from ..results_schema import attrs
 from .query import axis_keys, column_units, point_table, table_csv
 
 # Units of the store that UDUNITS does not know: CF unit to write and the comment that says what it means.
@@ -65,10 +65,10 @@ def netcdf_dataset(ds: xr.Dataset, history_line: str) -> xr.Dataset:
         out[name] = _netcdf_variable(out[name].variable, is_coordinate=name in out.coords)
     for axis in axis_keys(ds):
         out = _index_axis(out, axis) if not _is_cf_coordinate(out[axis].values) else out
-    defaults = cf_root_attrs(str(ds.attrs.get("sweep_name", "")), str(ds.attrs.get("created_utc", "")))
-    attrs = {**defaults, **ds.attrs}
-    attrs["history"] = f"{attrs['history']}\n{datetime.now(UTC).isoformat(timespec='seconds')} {history_line}"
-    out.attrs = {key: _netcdf_attr(value) for key, value in attrs.items()}
+    defaults = attrs.cf_root_attrs(str(ds.attrs.get(attrs.SWEEP_NAME, "")), str(ds.attrs.get(attrs.CREATED, "")))
+    merged = {**defaults, **ds.attrs}
+    merged[attrs.HISTORY] = f"{merged[attrs.HISTORY]}\n{datetime.now(UTC).isoformat(timespec='seconds')} {history_line}"
+    out.attrs = {key: _netcdf_attr(value) for key, value in merged.items()}
     return out
 
 

@@ -31,9 +31,10 @@ from matplotlib.ticker import MaxNLocator, NullFormatter
 from matplotlib.transforms import blended_transform_factory
 from matplotlib.typing import ColorType
 
-from ..axes import COUNT_KEY
+from ..axes import COUNT_KEY, REPLICATE
 from ..errors import CapsweepError, ConfigError
-from ..flags import OUTCOMES, RUNAWAY
+from ..flags import DONE, OUTCOMES, PENDING, RUNAWAY, UNNEEDED
+from ..results_schema import attrs
 from ..runners.protocol import Schedule, cue_order, recall_end, schedule
 from .capacity import (
     MIN_FRACTION,
@@ -45,7 +46,8 @@ from .capacity import (
     success_table,
     wilson_interval,
 )
-from .expand import expand, grid_shape
+from .expand import expand
+from .identity import grid_shape
 from .query import QueryError, axis_keys, labelled, sweep_dims
 from .sweepfile import parse_sweep
 
@@ -55,8 +57,8 @@ FORMATS = ("png", "svg", "pdf")
 DEFAULT_DPI = 200
 """Resolution of raster output (dots per inch)."""
 DPI_RANGE = (50, 1200)
-PENDING = "0.85"
-"""Colour of cells and marks that hold no done point."""
+NO_DATA_COLOUR = "0.85"
+"""Colour of map tiles and marks that hold no done point."""
 PHASE_COLOURS = {"settle": "0.85", "imprint": "tab:purple", "final recall": "tab:blue", "tail": "0.92"}
 CUE_COLOUR = "tab:orange"
 
@@ -79,8 +81,8 @@ def map_axes(ds: xr.Dataset, x: str | None = None, y: str | None = None) -> tupl
     for option, name in (("--x", x), ("--y", y)):
         if name is not None and name not in dims:
             raise QueryError(f"{option} {name!r} is not a sweep dim of this store; allowed: {', '.join(dims)}")
-    axes = [d for d in dims if d != "replicate"]
-    x = x or next((d for d in axes if d != y), "replicate")
+    axes = [d for d in dims if d != REPLICATE]
+    x = x or next((d for d in axes if d != y), REPLICATE)
     if x == y:
         raise QueryError(f"--y {y!r} is the same dim as --x; choose another of: {', '.join(d for d in dims if d != x)}")
     return x, y or next((d for d in axes if d != x), None)
@@ -130,10 +132,10 @@ def capacity_axes(ds: xr.Dataset, axis: str | None = None) -> list[str]:
 
 
 def stability_map(ds: xr.Dataset, x: str, y: str | None = None) -> Figure:
-    """Fraction of done points stable with full recall per (y, x) cell, pooled over the other sweep dims.
+    """Fraction of done points stable with full recall per (y, x) tile, pooled over the other sweep dims.
 
-    Each cell states the fraction, its 95 % Wilson interval, n (done points), the runaway fraction and
-    how many points are pending; a cell without a done point is grey, hatched and labelled.
+    Each tile states the fraction, its 95 % Wilson interval, n (done points), the runaway fraction and
+    how many points are pending; a tile without a done point is grey, hatched and labelled.
     """
     success, status = point_success(ds), labelled(ds, "status")
     kept = [x] + ([y] if y else [])
@@ -144,13 +146,13 @@ def stability_map(ds: xr.Dataset, x: str, y: str | None = None) -> Figure:
         return summed.transpose(y, x).values if y else summed.values[None, :]
 
     done, wins = grid(success.notnull()).astype(int), grid(success.fillna(0)).astype(int)
-    runaway, pending = grid(labelled(ds, "outcome") == RUNAWAY), grid(status == "pending")
+    runaway, pending = grid(labelled(ds, "outcome") == RUNAWAY), grid(status == PENDING)
     frac = np.ma.masked_where(done == 0, wins / np.maximum(done, 1))
     fig, ax = plt.subplots(figsize=(max(5.0, 1.6 + 1.3 * frac.shape[1]), max(2.6, 1.4 + 0.9 * frac.shape[0])))
-    image = ax.imshow(frac, origin="lower", cmap=plt.get_cmap("viridis").with_extremes(bad=PENDING),
+    image = ax.imshow(frac, origin="lower", cmap=plt.get_cmap("viridis").with_extremes(bad=NO_DATA_COLOUR),
                       vmin=0, vmax=1, aspect="auto")
     for (i, j), n in np.ndenumerate(done):
-        ax.text(j, i, _cell_text(int(wins[i, j]), int(n), int(runaway[i, j]), int(pending[i, j])), ha="center",
+        ax.text(j, i, _tile_text(int(wins[i, j]), int(n), int(runaway[i, j]), int(pending[i, j])), ha="center",
                 va="center", fontsize=6.5, color="white" if n and frac[i, j] < 0.6 else "black")
         if not n:
             ax.add_patch(plt.Rectangle((j - 0.5, i - 0.5), 1, 1, fill=False, hatch="///", lw=0, ec="0.6"))
@@ -167,8 +169,8 @@ def stability_map(ds: xr.Dataset, x: str, y: str | None = None) -> Figure:
     return _finish(fig)
 
 
-def _cell_text(wins: int, n: int, runaway: int, pending: int) -> str:
-    """A stability-map cell: fraction, Wilson interval, n, runaway fraction; or why it holds no fraction."""
+def _tile_text(wins: int, n: int, runaway: int, pending: int) -> str:
+    """A stability-map tile: fraction, Wilson interval, n, runaway fraction; or why it holds no fraction."""
     waiting = f"{pending} pending" if pending else ""
     if not n:
         return waiting or "no done point"
@@ -178,9 +180,9 @@ def _cell_text(wins: int, n: int, runaway: int, pending: int) -> str:
 
 
 def _pooled_text(pooled: list[str]) -> str:
-    """'pooled over rule, beta and replicate' (the dims a map cell sums over)."""
+    """'pooled over rule, beta and replicate' (the dims a map tile sums over)."""
     if not pooled:
-        return "one point per cell"
+        return "one point per tile"
     return "pooled over " + (f"{', '.join(pooled[:-1])} and {pooled[-1]}" if len(pooled) > 1 else pooled[0])
 
 
@@ -188,10 +190,11 @@ def _pooled_text(pooled: list[str]) -> str:
 
 
 def capacity_curves(ds: xr.Dataset, min_fraction: float = MIN_FRACTION) -> Figure:
-    """Success fraction against assembly count with 95 % Wilson intervals, one line per cell of the other axes.
+    """Success fraction against assembly count with 95 % Wilson intervals, one line per condition (combination of
+    the other axes).
 
     Counts without a done replicate are not drawn but labelled "pending" (or "crashed"); the legend
-    gives each cell's capacity and its n of done replicates per count, a point with fewer or with
+    gives each condition's capacity and its n of done replicates per count, a point with fewer or with
     pending replicates is marked with its own n, and the dashed line is the fraction capacity requires.
     """
     count = count_dim(ds)
@@ -200,7 +203,7 @@ def capacity_curves(ds: xr.Dataset, min_fraction: float = MIN_FRACTION) -> Figur
     others = _other_axes(ds, count)
     shown = ["NA" if pd.isna(c.capacity) else f"{'>=' if c.at_least else ''}{c.capacity}"
              for c in capacities.itertuples()]
-    missing = np.select([table["pending"] > 0, table["unneeded"] > 0], ["pending", "not needed by the search"],
+    missing = np.select([table[PENDING] > 0, table[UNNEEDED] > 0], [PENDING, "not needed by the search"],
                         "crashed")
     fig, ax = plt.subplots(figsize=(6.0, 4.0))
     _count_lines(ax, table.assign(missing=missing), count, others, ("fraction", "wilson_lo", "wilson_hi"),
@@ -217,9 +220,9 @@ def capacity_curves(ds: xr.Dataset, min_fraction: float = MIN_FRACTION) -> Figur
 
 def _count_lines(ax: plt.Axes, table: pd.DataFrame, count: str, others: list[str], columns: tuple[str, str, str],
                  legend_extra: list[str] | None = None) -> None:
-    """One line per cell of ``others`` (table order): the ``columns`` (value, low, high) against ``count`` with
-    bars from low to high, integer ticks at the counts; ``legend_extra`` follows each cell's legend label.
-    Rows need ``n`` (values behind a point) and ``pending``; a row with n = 0 is not drawn but labelled
+    """One line per condition of the ``others`` axes (table order): the ``columns`` (value, low, high) against
+    ``count`` with bars from low to high, integer ticks at the counts; ``legend_extra`` follows each condition's
+    legend label. Rows need ``n`` (values behind a point) and ``pending``; a row with n = 0 is not drawn but labelled
     with its ``missing`` text."""
     value, low, high = columns
     groups = _groups(table, others)
@@ -229,9 +232,9 @@ def _count_lines(ax: plt.Axes, table: pd.DataFrame, count: str, others: list[str
         n_most = int(drawn["n"].max()) if len(drawn) else 0
         yerr = np.vstack([drawn[value] - drawn[low], drawn[high] - drawn[value]])
         line = ax.errorbar(drawn[count] + dodge, drawn[value], yerr=yerr, marker="o", capsize=3,
-                           label=f"{_cell_label(others, key)}{extra} (n={n_most} per count)")
+                           label=f"{_condition_label(others, key)}{extra} (n={n_most} per count)")
         colour = line.lines[0].get_color()
-        _mark_fewer(ax, drawn[count] + dodge, drawn[value], drawn["n"], drawn["pending"], n_most, colour)
+        _mark_fewer(ax, drawn[count] + dodge, drawn[value], drawn["n"], drawn[PENDING], n_most, colour)
         for row in rows[rows["n"] == 0].itertuples():
             _mark_missing(ax, getattr(row, count) + dodge, str(row.missing), colour)
     _integer_ticks(ax.set_xticks, sorted(table[count].unique()))
@@ -250,11 +253,11 @@ def _mark_missing(ax: plt.Axes, x: float, text: str, colour: ColorType) -> None:
     """Label data position ``x`` as holding no value (e.g. pending), upright in the middle of the axes."""
     at = blended_transform_factory(ax.transData, ax.transAxes)
     ax.text(x, 0.5, text, transform=at, rotation=90, ha="center", va="center", fontsize=7, color=colour,
-            style="italic", bbox={"fc": "white", "ec": PENDING, "lw": 0.5})
+            style="italic", bbox={"fc": "white", "ec": NO_DATA_COLOUR, "lw": 0.5})
 
 
 def capacity_against(ds: xr.Dataset, axis: str, min_fraction: float = MIN_FRACTION) -> Figure:
-    """Capacity of each cell against ``axis`` (one line per value of the remaining axes); the vertical bar is
+    """Capacity of each condition against ``axis`` (one line per value of the remaining axes); the vertical bar is
     the range of the per-replicate capacities, a triangle a lower bound (top of the count grid), and an
     undecided capacity (NA) is labelled with its reason instead of drawn."""
     count = count_dim(ds)
@@ -270,7 +273,7 @@ def capacity_against(ds: xr.Dataset, axis: str, min_fraction: float = MIN_FRACTI
         x = np.array([(v if numeric else values.index(v)) for v in rows[axis]], dtype=float) + dodge
         known = rows["capacity"].notna().to_numpy()
         line, = ax.plot(x[known], rows["capacity"][known].astype(float), marker="o",
-                        label=_cell_label(others, key))
+                        label=_condition_label(others, key))
         colour = line.get_color()
         ranged = rows["capacity_lo"].notna().to_numpy()
         ax.vlines(x[ranged], rows["capacity_lo"][ranged].astype(float), rows["capacity_hi"][ranged].astype(float),
@@ -305,10 +308,10 @@ def capacity_scaling(ds: xr.Dataset) -> Figure | None:
     size, count = size_dim(ds), count_dim(ds)
     fig, ax = plt.subplots(figsize=(5.5, 4.0))
     capacities = capacity_table(ds)
-    for cell in capacities.itertuples():
-        n = getattr(cell, str(size))
-        if not pd.isna(cell.capacity_lo):
-            ax.plot([n, n], [cell.capacity_lo, cell.capacity_hi], color="grey", lw=2, alpha=0.6)
+    for row in capacities.itertuples():
+        n = getattr(row, str(size))
+        if not pd.isna(row.capacity_lo):
+            ax.plot([n, n], [row.capacity_lo, row.capacity_hi], color="grey", lw=2, alpha=0.6)
     ax.plot(fit.sizes, fit.mean_capacity, "o", color="C0", label="mean over replicates (bar: range)")
     grid = np.geomspace(min(fit.sizes), max(fit.sizes), 50)
     ax.plot(grid, fit.prefactor * grid**fit.exponent, color="C1",
@@ -335,18 +338,17 @@ def capacity_scaling(ds: xr.Dataset) -> Figure | None:
 
 def recall_per_assembly(ds: xr.Dataset) -> Figure:
     """Recall score per assembly (mean over a done point's assemblies) against assembly count: mean over
-    replicates with their range as bars, one line per cell of the other axes; counts without a scored
+    replicates with their range as bars, one line per condition of the other axes; counts without a scored
     replicate are labelled with the reason (pending, crashed, or done without a recall score, as after
     an early abort), fewer replicates than the most are marked with their n."""
     count, status = count_dim(ds), labelled(ds, "status")
-    per_point = ds["recall_score"].where(status == "done").mean("assembly", skipna=True)
-    stats = xr.Dataset({"mean": per_point.mean("replicate"), "lo": per_point.min("replicate"),
-                        "hi": per_point.max("replicate"), "n": per_point.notnull().sum("replicate"),
-                        "done": (status == "done").sum("replicate"), "pending": (status == "pending").sum("replicate"),
-                        "unneeded": (status == "unneeded").sum("replicate")})
+    per_point = ds["recall_score"].where(status == DONE).mean("assembly", skipna=True)
+    stats = xr.Dataset({"mean": per_point.mean(REPLICATE), "lo": per_point.min(REPLICATE),
+                        "hi": per_point.max(REPLICATE), "n": per_point.notnull().sum(REPLICATE),
+                        **{label: (status == label).sum(REPLICATE) for label in (DONE, PENDING, UNNEEDED)}})
     table = stats.to_dataframe().reset_index().sort_values(count)
-    missing = np.select([table["pending"] > 0, table["unneeded"] > 0, table["done"] > 0],
-                        ["pending", "not needed by the search", "no recall score"], "crashed")
+    missing = np.select([table[PENDING] > 0, table[UNNEEDED] > 0, table[DONE] > 0],
+                        [PENDING, "not needed by the search", "no recall score"], "crashed")
     others = _other_axes(ds, count)
     fig, ax = plt.subplots(figsize=(6.0, 4.0))
     _count_lines(ax, table.assign(missing=missing), count, others, ("mean", "lo", "hi"))
@@ -362,7 +364,7 @@ def prediction_confusion(ds: xr.Dataset) -> Figure | None:
     None when no done point holds a prediction."""
     predicted = labelled(ds, "predicted_outcome").values.ravel()
     simulated = labelled(ds, "outcome").values.ravel()
-    both = (labelled(ds, "status").values.ravel() == "done") & (predicted != "") & (simulated != "")
+    both = (labelled(ds, "status").values.ravel() == DONE) & (predicted != "") & (simulated != "")
     if not both.any():
         return None
     matrix = np.array([[np.sum(both & (predicted == p) & (simulated == s)) for s in OUTCOMES] for p in OUTCOMES])
@@ -393,7 +395,7 @@ def point_schedules(ds: xr.Dataset) -> dict[tuple[int, ...], Schedule]:
     """
     ids = ds["point_id"].values
     try:
-        sweep = parse_sweep(str(ds.attrs.get("sweep_text", "")))
+        sweep = parse_sweep(str(ds.attrs.get(attrs.SWEEP_TEXT, "")))
         points = expand(sweep) if grid_shape(sweep) == ids.shape else []
     except ConfigError:
         return {}
@@ -416,14 +418,14 @@ def rate_traces(ds: xr.Dataset, schedules: dict[tuple[int, ...], Schedule], per_
     points per outcome spread over the grid, one panel per point titled with its labels; protocol phases
     and cue windows of ``schedules`` shaded, a dotted line where a run stopped before its planned end."""
     outcome, status = labelled(ds, "outcome").values, labelled(ds, "status").values
-    present = [o for o in OUTCOMES if np.any((status == "done") & (outcome == o))]
-    width = max(1, int(round(smooth_s / float(ds.attrs["time_bin_s"]))))
+    present = [o for o in OUTCOMES if np.any((status == DONE) & (outcome == o))]
+    width = max(1, int(round(smooth_s / float(ds.attrs[attrs.TIME_BIN]))))
     t = ds["time_bin"].values
     fig, axs = plt.subplots(len(present), per_outcome, figsize=(3.6 * per_outcome, 2.3 * len(present)),
                             sharex=True, squeeze=False)
     shaded: set[str] = set()
     for ax_row, name in zip(axs, present):
-        chosen = np.argwhere((status == "done") & (outcome == name))
+        chosen = np.argwhere((status == DONE) & (outcome == name))
         picks = np.unique(np.linspace(0, len(chosen) - 1, per_outcome).round().astype(int))
         for ax, index in itertools.zip_longest(ax_row, (tuple(int(i) for i in chosen[k]) for k in picks)):
             if index is None:
@@ -474,7 +476,7 @@ def _shade_schedule(ax: plt.Axes, sched: Schedule | None) -> set[str]:
 
 def weight_drift(ds: xr.Dataset) -> Figure:
     """Weight correlation with hold start against snapshot time (s) of every done point, coloured by outcome."""
-    done = labelled(ds, "status").values.ravel() == "done"
+    done = labelled(ds, "status").values.ravel() == DONE
     outcome = labelled(ds, "outcome").values.ravel()[done]
     corr = ds["weight_correlation"].values.reshape(done.size, -1)[done]
     times = ds["snapshot_time_s"].values.reshape(done.size, -1)[done]
@@ -516,7 +518,7 @@ def _figures(ds: xr.Dataset, x: str, y: str | None, against: list[str]) -> tuple
     """Every figure that fits ``ds``, by file stem, and a note for each one left out."""
     figures: dict[str, Figure] = {"stability_map": stability_map(ds, x, y)}
     notes = []
-    if np.any(labelled(ds, "status").values == "done"):
+    if np.any(labelled(ds, "status").values == DONE):
         schedules = point_schedules(ds)
         figures["rate_traces"] = rate_traces(ds, schedules)
         figures["weight_drift"] = weight_drift(ds)
@@ -550,18 +552,18 @@ def _other_axes(ds: xr.Dataset, count: str) -> list[str]:
 
 
 def _groups(table: pd.DataFrame, others: list[str]) -> list[tuple[Any, pd.DataFrame]]:
-    """Rows of ``table`` per cell of the ``others`` axes, in table order (one group of all rows if none)."""
+    """Rows of ``table`` per condition of the ``others`` axes, in table order (one group of all rows if none)."""
     return list(table.groupby(others, sort=False)) if others else [((), table)]
 
 
-def _cell_label(others: list[str], key: Any) -> str:
+def _condition_label(others: list[str], key: Any) -> str:
     return ", ".join(f"{d}={_tick_text(v)}" for d, v in zip(others, np.atleast_1d(key))) or "all"
 
 
 def _point_label(ds: xr.Dataset, index: tuple[int, ...]) -> str:
     """'n_odours=3, beta=0.05, replicate 1: runaway' for the point at positional ``index``."""
     dims = sweep_dims(ds)
-    labels = [f"{d}={_tick_text(ds[d].values[i])}" for d, i in zip(dims, index) if d != "replicate"]
+    labels = [f"{d}={_tick_text(ds[d].values[i])}" for d, i in zip(dims, index) if d != REPLICATE]
     return ", ".join(labels + [f"replicate {index[-1]}: {labelled(ds, 'outcome').values[index]}"])
 
 
@@ -591,7 +593,7 @@ def _value_ticks(set_ticks: Any, values: Any) -> None:
 
 
 def _axis_label(ds: xr.Dataset, dim: str) -> str:
-    key = ds[dim].attrs.get("config_key", "")
+    key = ds[dim].attrs.get(attrs.AXIS_KEY, "")
     return f"{dim} ({key})" if key else dim
 
 

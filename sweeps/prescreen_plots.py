@@ -1,4 +1,4 @@
-"""Figures of the theory prescreen: rate transfer curves, plasticity drift, agreement with a store (PNG, Agg)."""
+"""Figures of the prescreen: rate transfer curves, plasticity drift, agreement with a store (PNG, Agg)."""
 
 from __future__ import annotations
 
@@ -12,12 +12,13 @@ import matplotlib.pyplot as plt
 import numpy as np
 import pandas as pd
 
+from ..axes import REPLICATE
 from ..flags import OUTCOMES, RUNAWAY
 from ..runners.metrics import active_threshold
 from ..runners.theory.drift import bcm_threshold_hz, drift_zero_crossings, rule_drift
 from ..runners.theory.link import RUNAWAY_AT
 from ..runners.theory.meanfield import TransferCurve, initial_weights, population_rates
-from .expand import Point
+from .identity import Point
 from .prescreen import Comparison, grid_axes
 
 
@@ -116,7 +117,7 @@ def _save(fig, path: str | Path) -> Path:
 
 def plot_agreement(result: Comparison, path: str | Path) -> Path:
     """Three panels: the confusion table of outcomes, the runaway chance against the simulated runaway fraction per
-    grid point, and predicted against simulated capacity per cell."""
+    grid point, and the stability bound against the simulated capacity per condition."""
     fig, axes = plt.subplots(1, 3, figsize=(15, 4.4))
     _confusion_panel(axes[0], result.confusion, result.agreement, result.ceiling)
     _chance_panel(axes[1], result.points)
@@ -143,8 +144,9 @@ def _chance_panel(ax: plt.Axes, points: pd.DataFrame) -> None:
     """Per grid point: predicted runaway chance against the fraction of its replicates that ran away (marker area:
     replicates done). A calibrated link puts the points around the identity."""
     grouped = points.assign(ran=points["outcome"] == RUNAWAY).groupby(grid_axes(points), sort=False)
-    cells = grouped.agg(chance=("runaway_chance", "first"), fraction=("ran", "mean"), n=("ran", "size"))
-    ax.scatter(cells["chance"], cells["fraction"], s=25 * cells["n"], alpha=0.5, color="C3", label="grid point")
+    per_point = grouped.agg(chance=("runaway_chance", "first"), fraction=("ran", "mean"), n=("ran", "size"))
+    ax.scatter(per_point["chance"], per_point["fraction"], s=25 * per_point["n"], alpha=0.5, color="C3",
+               label="grid point")
     ax.plot([0, 1], [0, 1], "k--", lw=1, label="identity")
     ax.axvline(RUNAWAY_AT, color="grey", lw=0.8, ls=":", label=f"predicted runaway from {RUNAWAY_AT:.0%}")
     ax.set_xlim(-0.03, 1.03)
@@ -156,14 +158,14 @@ def _chance_panel(ax: plt.Axes, points: pd.DataFrame) -> None:
 
 
 def _capacity_panel(ax: plt.Axes, capacity: pd.DataFrame) -> None:
-    """Predicted against simulated capacity per cell (open markers: the simulated capacity is only a lower bound,
-    the top of the grid)."""
-    if capacity.empty or capacity["simulated_capacity"].isna().all():
-        ax.text(0.5, 0.5, "no capacity (no count axis or undecided cells)", ha="center", transform=ax.transAxes)
+    """Stability bound against simulated capacity per condition (open markers: the simulated capacity is only a
+    lower bound, the top of the grid). The bound ignores recall, so points above the identity are expected."""
+    if capacity.empty or capacity["capacity"].isna().all():
+        ax.text(0.5, 0.5, "no capacity (no count axis or undecided conditions)", ha="center", transform=ax.transAxes)
     else:
-        decided = capacity.dropna(subset=["simulated_capacity"])
-        sim = decided["simulated_capacity"].astype(float).to_numpy()
-        pred = decided["predicted_capacity"].astype(float).to_numpy()
+        decided = capacity.dropna(subset=["capacity"])
+        sim = decided["capacity"].astype(float).to_numpy()
+        pred = decided["stability_bound"].astype(float).to_numpy()
         jitter = np.linspace(-0.12, 0.12, len(sim)) if len(sim) > 1 else np.zeros(1)
         bound = decided["at_least"].astype(bool).to_numpy()
         ax.plot(sim[~bound] + jitter[~bound], pred[~bound], "o", color="C0", label="simulated capacity")
@@ -174,16 +176,16 @@ def _capacity_panel(ax: plt.Axes, capacity: pd.DataFrame) -> None:
         ax.set_ylim(-0.5, top)
         ax.legend(fontsize=8, loc="upper left")
     ax.set_xlabel("simulated capacity (assemblies)")
-    ax.set_ylabel("predicted capacity (assemblies)")
-    ax.set_title("Capacity per cell")
+    ax.set_ylabel("prescreen stability bound (assemblies)")
+    ax.set_title("Capacity per condition")
 
 
-def write_cell_plots(points: list[Point], plots_dir: Path) -> list[Path]:
+def write_point_plots(points: list[Point], plots_dir: Path) -> list[Path]:
     """Transfer and drift PNGs per grid point, named after the point's axis values."""
     plots_dir.mkdir(parents=True, exist_ok=True)
     paths = []
     for point in points:
-        stem = "_".join(f"{k}-{v}" for k, v in point.labels.items() if k != "replicate") or "base"
+        stem = "_".join(f"{k}-{v}" for k, v in point.labels.items() if k != REPLICATE) or "base"
         paths.append(plot_transfer(point.config, plots_dir / f"transfer_{stem}.png"))
         paths.append(plot_drift(point.config, plots_dir / f"drift_{stem}.png"))
     return paths

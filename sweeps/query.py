@@ -16,14 +16,15 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
+from ..axes import REPLICATE
 from ..errors import CapsweepError
-from ..flags import OUTCOMES, STATUSES
-from ..results_schema import layout
+from ..flags import DONE, FAILED, OUTCOMES, STABLE, STATUSES
+from ..registry import DIMENSIONLESS
+from ..results_schema import attrs, layout
 from ..results_schema.dataset import flag_labels, open_dataset
 from ..results_schema.layout import STATUS
 
-DEFAULT_WHERE = 'status == "done" and outcome == "stable"'
-DIMENSIONLESS = "1"
+DEFAULT_WHERE = f'status == "{DONE}" and outcome == "{STABLE}"'
 
 # Per-point summaries of inner-dim variables: column -> (source variable, reduction).
 SUMMARIES: dict[str, tuple[str, Callable[[xr.DataArray], xr.DataArray]]] = {
@@ -47,7 +48,7 @@ def sweep_dims(ds: xr.Dataset) -> list[str]:
 
 def axis_keys(ds: xr.Dataset) -> dict[str, str]:
     """Axis dim name -> the config key it sets."""
-    return {d: ds[d].attrs.get("config_key", "") for d in sweep_dims(ds) if d != "replicate"}
+    return {d: ds[d].attrs.get(attrs.AXIS_KEY, "") for d in sweep_dims(ds) if d != REPLICATE}
 
 
 def labelled(ds: xr.Dataset, name: str) -> xr.DataArray:
@@ -141,7 +142,7 @@ def select(frame: pd.DataFrame, where: str = DEFAULT_WHERE) -> pd.DataFrame:
 def status_counts(ds: xr.Dataset) -> dict[str, dict[str, int]]:
     """Counts of points by every status of ``capsweep.flags.STATUSES`` and, among done points, by outcome."""
     status = labelled(ds, STATUS.name).values.ravel()
-    outcome = labelled(ds, "outcome").values.ravel()[status == "done"]
+    outcome = labelled(ds, "outcome").values.ravel()[status == DONE]
     return {
         "status": {label: int(np.sum(status == label)) for label in STATUSES},
         "outcome": {label: int(np.sum(outcome == label)) for label in OUTCOMES},
@@ -161,7 +162,7 @@ def failed_points(ds: xr.Dataset) -> list[FailedPoint]:
     """Every failed point in sweep order, with the first line of its error text."""
     frame = xr.Dataset({"status": labelled(ds, STATUS.name), "point_id": ds[layout.POINT_ID],
                         "error": ds[layout.ERROR]}).to_dataframe(dim_order=sweep_dims(ds)).reset_index()
-    failed = frame[frame["status"] == "failed"]
+    failed = frame[frame["status"] == FAILED]
     return [FailedPoint({d: row[d] for d in sweep_dims(ds)}, str(row["point_id"]),
                         (str(row["error"]).strip().splitlines() or [""])[0])
             for _, row in failed.iterrows()]
@@ -183,7 +184,7 @@ def plausibility(ds: xr.Dataset) -> Plausibility:
     Bands (common practice for cortical asynchronous irregular activity): excitatory rates of
     0.5-20 Hz and ISI CV of 0.5-1.5.
     """
-    done = labelled(ds, "status") == "done"
+    done = labelled(ds, "status") == DONE
 
     def span(name: str) -> tuple[float, float]:
         values = ds[name].where(done).values

@@ -69,8 +69,9 @@ def keys_markdown(keys: tuple[Key, ...] = KEYS) -> str:
     """A markdown table of ``keys``: key, default, unit, allowed values, description."""
     lines = ["| key | default | unit | allowed | description |", "|---|---|---|---|---|"]
     for key in keys:
-        cells = [f"`{key.path}`", f"`{toml_literal(key.default)}`", key.shown_unit, allowed_text(key), key.description]
-        lines.append("| " + " | ".join(cell.replace("|", "\\|") for cell in cells) + " |")
+        fields = [f"`{key.path}`", f"`{toml_literal(key.default)}`", key.shown_unit, allowed_text(key),
+                  key.description]
+        lines.append("| " + " | ".join(text.replace("|", "\\|") for text in fields) + " |")
     return "\n".join(lines) + "\n"
 
 

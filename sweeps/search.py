@@ -1,14 +1,15 @@
-"""Adaptive capacity search: per cell of the other axes, run only the counts that decide the capacity.
+"""Adaptive capacity search: per condition (combination of the other axes), run only the counts that decide the
+capacity.
 
 A sweep whose count axis says ``search = {low, high, start, method}`` lays out every count from
-low to high in the store, but runs only the counts that decide each cell's capacity. A count
+low to high in the store, but runs only the counts that decide each condition's capacity. A count
 *passes* when its replicates succeed in at least ``MIN_FRACTION`` of the done ones (the rule of
 the capacity table, :func:`capsweep.sweeps.success.count_passes`). Two methods:
 
 - ``scan`` (default, exact): the capacity is the largest k whose every count <= k passes, so the
   counts 1..capacity + 1 are exactly what certifies it, and nothing above the first failing count
   is needed. The scan runs every count from the bottom up to ``start`` at once (a seed, e.g. the
-  prescreen's predicted capacity, buys parallel wall time), then one count at a time, and stops
+  prescreen's stability bound, buys parallel wall time), then one count at a time, and stops
   at the first failing count. It gives the full grid's capacity on any grid.
 - ``bisect`` (fewer points for large capacities, assumes success falls monotonically with the
   count): keep the largest passing index ``lo`` (-1: none yet) and the smallest failing index
@@ -18,44 +19,47 @@ the capacity table, :func:`capsweep.sweeps.success.count_passes`). Two methods:
   failing count below a passing one) it can report more than the full grid would.
 
 Every step is a function of the verdicts stored so far, so a killed search resumes exactly where
-it stopped and gives the same capacities. When a cell closes, its points never run get status
-``unneeded``; the capacity table infers their verdicts by monotonicity (pass below a passing
-count, fail above a failing one). Verdicts that contradict monotonicity (a pass above a failure, e.g.
-after ``--retry-failed``) stop a bisect at once; the capacity table flags the cell non-monotone.
+it stopped and gives the same capacities. When a condition closes, its points never run get status
+``unneeded``; the capacity table infers whether their counts pass by monotonicity (pass below a passing
+count, fail above a failing one). Passes that contradict monotonicity (a pass above a failure, e.g.
+after ``--retry-failed``) stop a bisect at once; the capacity table flags the condition non-monotone.
+
+Words: a point's *verdict* is whether it succeeded; a count *passes* or fails from its replicates' verdicts.
 """
 
 from __future__ import annotations
 
-from collections.abc import Iterable
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
-from ..flags import OUTCOMES, STATUSES
-from .expand import Point
-from .success import count_passes, succeeds
+from ..flags import DONE, FAILED, OUTCOMES, STATUSES, UNNEEDED
+from .identity import Point
+from .success import count_passes, leading_passes, succeeds
 
 Verdict = bool | None
 """Success of one point: True, False, or None when it crashed (left out of the count's fraction)."""
 
 
 @dataclass
-class CellSearch:
-    """The search of one cell: which count indices passed or failed, and what to probe next."""
+class ConditionSearch:
+    """The search of one condition: which count indices passed or failed, and what to probe next."""
 
     n_counts: int
     start: int  # index of the count probed first (bisect) or scanned up to at once (scan)
     method: str = "scan"  # one of SEARCH_METHODS
-    verdicts: dict[int, bool] = field(default_factory=dict)  # count index -> passes
+    passes: dict[int, bool] = field(default_factory=dict)  # count index -> whether the count passes
 
     def bounds(self) -> tuple[int, int]:
         """(largest passing index or -1, smallest failing index or n_counts)."""
-        lo = max((k for k, ok in self.verdicts.items() if ok), default=-1)
-        hi = min((k for k, ok in self.verdicts.items() if not ok), default=self.n_counts)
+        lo = max((k for k, ok in self.passes.items() if ok), default=-1)
+        hi = min((k for k, ok in self.passes.items() if not ok), default=self.n_counts)
         return lo, hi
 
     def next_probes(self) -> list[int]:
-        """Count indices to run now (empty when the cell's capacity is decided)."""
+        """Count indices to run now (empty when the condition's capacity is decided)."""
         if self.method == "scan":
             return self._scan()
         probe = self._bisect()
@@ -63,17 +67,17 @@ class CellSearch:
 
     def _scan(self) -> list[int]:
         """Every undecided index from the bottom up to max(start, first index not yet known to pass)."""
-        lead = next((k for k in range(self.n_counts) if not self.verdicts.get(k, False)), self.n_counts)
-        if lead == self.n_counts or self.verdicts.get(lead) is False:
+        lead = leading_passes(self.passes.get(k) for k in range(self.n_counts))
+        if lead == self.n_counts or self.passes.get(lead) is False:
             return []
-        return [k for k in range(min(max(self.start, lead), self.n_counts - 1) + 1) if k not in self.verdicts]
+        return [k for k in range(min(max(self.start, lead), self.n_counts - 1) + 1) if k not in self.passes]
 
     def _bisect(self) -> int | None:
         """Next index of the bracket-and-bisect search, or None when decided."""
         lo, hi = self.bounds()
         if hi - lo <= 1:
             return None
-        if not self.verdicts:
+        if not self.passes:
             return self.start
         if hi == self.n_counts:
             return min(self.start + 2 * (lo - self.start) + 1, self.n_counts - 1)
@@ -84,38 +88,44 @@ class CellSearch:
 
 @dataclass
 class SearchRun:
-    """Every cell's search over one sweep's points, fed with point verdicts as they are stored."""
+    """Every condition's search over one sweep's points, fed with point verdicts as they are stored."""
 
-    count_axis: int  # position of the count axis in a point's index
-    cells: dict[tuple[int, ...], CellSearch]
-    points: dict[tuple[tuple[int, ...], int], list[Point]]  # (cell, count index) -> its replicates
+    count_pos: int  # position of the count axis in a point's index
+    conditions: dict[tuple[int, ...], ConditionSearch]
+    points: dict[tuple[tuple[int, ...], int], list[Point]]  # (condition, count index) -> its replicates
     verdicts: dict[tuple[int, ...], Verdict]  # point index -> verdict, for finished points
     submitted: set[tuple[int, ...]] = field(default_factory=set)
     marked: set[tuple[int, ...]] = field(default_factory=set)  # points already given status unneeded
-    closed: set[tuple[int, ...]] = field(default_factory=set)  # cells whose capacity is decided
+    closed: set[tuple[int, ...]] = field(default_factory=set)  # conditions whose capacity is decided
 
     def record(self, point: Point, verdict: Verdict) -> tuple[int, ...]:
-        """A point finished with ``verdict``; returns its cell."""
+        """A point finished with ``verdict``; returns its condition."""
         self.verdicts[point.index] = verdict
-        return cell_key(point.index, self.count_axis)
+        return condition_key(point.index, self.count_pos)
+
+    def record_result(self, point: Point, result: Mapping[str, Any] | None) -> tuple[int, ...]:
+        """A point finished with ``result`` (its store values; None when it failed); returns its condition."""
+        count = point.config["assemblies"]["count"]
+        return self.record(point, None if result is None else
+                           bool(succeeds(result["outcome"], result["recalled_count"], count)))
 
     def advance(self, keys: Iterable[tuple[int, ...]] | None = None) -> tuple[list[Point], list[Point]]:
-        """For the cells ``keys`` (default: all), the points to submit now and the points newly unneeded.
+        """For the conditions ``keys`` (default: all), the points to submit now and the points newly unneeded.
 
-        An open cell wants the unfinished, unsubmitted replicates of its next probes; a cell that has
-        just closed gives up every point it never ran (they are counted as marked unneeded).
+        An open condition wants the unfinished, unsubmitted replicates of its next probes; a condition that
+        has just closed gives up every point it never ran (they are counted as marked unneeded).
         """
         wanted: list[Point] = []
         unneeded: list[Point] = []
-        for key in self.cells if keys is None else keys:
-            cell = self.cells[key]
-            probes = self._advance(key, cell)
+        for key in self.conditions if keys is None else keys:
+            search = self.conditions[key]
+            probes = self._advance(key, search)
             if probes:
                 wanted += [p for k in probes for p in self.points[key, k] if self._untouched(p)]
                 self.submitted.update(p.index for p in wanted)
             elif key not in self.closed:
                 self.closed.add(key)
-                unneeded += [p for k in range(cell.n_counts) for p in self.points[key, k] if self._untouched(p)]
+                unneeded += [p for k in range(search.n_counts) for p in self.points[key, k] if self._untouched(p)]
         self.marked.update(p.index for p in unneeded)
         return wanted, unneeded
 
@@ -124,9 +134,9 @@ class SearchRun:
         index = point.index
         return index not in self.verdicts and index not in self.submitted and index not in self.marked
 
-    def _advance(self, key: tuple[int, ...], cell: CellSearch) -> list[int]:
-        """Record the verdicts of finished probes; the cell's probes still open (empty: decided)."""
-        while probes := cell.next_probes():
+    def _advance(self, key: tuple[int, ...], search: ConditionSearch) -> list[int]:
+        """Record whether the finished probes pass; the condition's probes still open (empty: decided)."""
+        while probes := search.next_probes():
             still_open = []
             for probe in probes:
                 replicates = [p.index for p in self.points[key, probe]]
@@ -134,36 +144,36 @@ class SearchRun:
                     still_open.append(probe)
                     continue
                 done = [v for index in replicates if (v := self.verdicts[index]) is not None]
-                cell.verdicts[probe] = bool(count_passes(sum(done), len(done)))  # all crashed: a failing count
+                search.passes[probe] = bool(count_passes(sum(done), len(done)))  # all crashed: a failing count
             if len(still_open) == len(probes):
                 return still_open
         return []
 
 
-def plan_search(points: list[Point], count_axis: int, starts: dict[tuple[int, ...], int], method: str,
+def plan_search(points: list[Point], count_pos: int, starts: dict[tuple[int, ...], int], method: str,
                 status: np.ndarray, outcome: np.ndarray, recalled: np.ndarray, retry_failed: bool) -> SearchRun:
     """A SearchRun over ``points`` with the verdicts already stored (status/outcome/recalled_count codes).
 
-    ``starts`` maps each cell key to its start index; ``method`` is "scan" or "bisect". Failed points count as
-    crashed verdicts unless ``retry_failed``; unneeded points as not yet run.
+    ``starts`` maps each condition key to its start index; ``method`` is "scan" or "bisect". Failed points count
+    as crashed verdicts unless ``retry_failed``; unneeded points as not yet run.
     """
-    run = SearchRun(count_axis, {}, {}, {})
-    n_counts = max(p.index[count_axis] for p in points) + 1
+    run = SearchRun(count_pos, {}, {}, {})
+    n_counts = max(p.index[count_pos] for p in points) + 1
     for point in points:
-        key, k = cell_key(point.index, count_axis), point.index[count_axis]
-        run.cells.setdefault(key, CellSearch(n_counts, starts[key], method))
+        key, k = condition_key(point.index, count_pos), point.index[count_pos]
+        run.conditions.setdefault(key, ConditionSearch(n_counts, starts[key], method))
         run.points.setdefault((key, k), []).append(point)
         label = STATUSES[int(status[point.index])]
-        if label == "done":
+        if label == DONE:
             count = point.config["assemblies"]["count"]
             run.record(point, bool(succeeds(OUTCOMES[int(outcome[point.index])], int(recalled[point.index]), count)))
-        elif label == "failed" and not retry_failed:
+        elif label == FAILED and not retry_failed:
             run.record(point, None)
-        elif label == "unneeded":
+        elif label == UNNEEDED:
             run.marked.add(point.index)
     return run
 
 
-def cell_key(index: tuple[int, ...], count_axis: int) -> tuple[int, ...]:
-    """A point's cell: its grid index without the count position and the replicate."""
-    return index[:count_axis] + index[count_axis + 1:-1]
+def condition_key(index: tuple[int, ...], count_pos: int) -> tuple[int, ...]:
+    """A point's condition: its grid index without the count position and the replicate."""
+    return index[:count_pos] + index[count_pos + 1:-1]

@@ -17,7 +17,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from ..axes import COUNT_KEY, VARIANT_KEY, Axis, key_axis, variant_axis
+from ..axes import COUNT_KEY, REPLICATE, VARIANT_KEY, Axis, key_axis, variant_axis
 from ..errors import ConfigError
 from ..registry import BY_PATH, SECTIONS, ImplausibleValue, Key, defaults, did_you_mean, flatten, lookup
 from ..results_schema.layout import INNER_DIMS
@@ -25,7 +25,7 @@ from ..results_schema.layout import INNER_DIMS
 SWEEP_KEYS = {
     "name": "sweep name (a non-empty string)",
     "store": "path of the Zarr store directory, relative to the working directory",
-    "replicates": "seeds per grid cell (integer >= 1)",
+    "replicates": "seeds per grid point (integer >= 1)",
     "base_seed": "seed all point seeds derive from (integer >= 0)",
     "axis": "array of tables [[sweep.axis]] with name, key, values",
     "quiet_warnings": "list of config keys whose plausibility warnings are not shown, e.g. [\"protocol.hold_s\"]",
@@ -37,15 +37,15 @@ AXIS_KEYS = {
     "variants": "table of named variants, each a table of config overrides (instead of key and values)",
     "search": "adaptive capacity search over assemblies.count instead of values: "
               "{low = 1, high = 32, start = 1, method = \"scan\"} (start: a count, or \"prescreen\" for the "
-              "theory's predicted capacity; method: \"scan\" (exact) or \"bisect\" (assumes monotone success))",
+              "prescreen's stability bound; method: \"scan\" (exact) or \"bisect\" (assumes monotone success))",
 }
 SEARCH_KEYS = ("low", "high", "start", "method")
 SEARCH_METHODS = ("scan", "bisect")
 """How a count search moves: see ``capsweep.sweeps.search``."""
 PRESCREEN_START = "prescreen"
-"""``start`` value that seeds a count search with the prescreen's predicted capacity."""
+"""``start`` value that seeds a count search with the prescreen's stability bound."""
 _DIM_NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
-_RESERVED_DIMS = set(INNER_DIMS) | {"replicate"}
+_RESERVED_DIMS = set(INNER_DIMS) | {REPLICATE}
 
 
 @dataclass(frozen=True)
@@ -53,7 +53,7 @@ class CountSearch:
     """An adaptive capacity search over the count axis ``axis`` (its values: every count from low to high)."""
 
     axis: str
-    start: int | None  # count probed first (bisect) or scanned up to at once (scan); None: the prescreen's capacity
+    start: int | None  # count probed first (bisect) or scanned up to at once (scan); None: the prescreen's bound
     method: str = "scan"  # one of SEARCH_METHODS
 
 
@@ -76,6 +76,11 @@ class Sweep:
     def text_sha256(self) -> str:
         """SHA-256 of the sweep file text."""
         return hashlib.sha256(self.text.encode()).hexdigest()
+
+    @property
+    def count_dim(self) -> str | None:
+        """Name of the axis over ``assemblies.count`` (capacity is measured along it), if any."""
+        return next((a.name for a in self.axes if a.key == COUNT_KEY), None)
 
 
 def load_sweep(path: str | Path, store: str | Path | None = None) -> Sweep:

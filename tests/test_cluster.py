@@ -25,11 +25,14 @@ import pytest
 import xarray as xr
 from cli_runs import tiny_network
 
+from capsweep import locks
 from capsweep.errors import ConfigError
 from capsweep.results_schema.layout import TIMINGS
 from capsweep.runners import builds
-from capsweep.runners.dask_backend import TaskFailure, batch_job_settings, cluster_table, dask_client, run_tasks
-from capsweep.sweeps.expand import expand, fingerprint
+from capsweep.runners.task import TaskFailure
+from capsweep.sweeps.dispatch import batch_job_settings, cluster_table, dask_client, run_tasks
+from capsweep.sweeps.expand import expand
+from capsweep.sweeps.identity import fingerprint
 from capsweep.sweeps.launch import RunOptions, run_sweep
 from capsweep.sweeps.sweepfile import parse_sweep
 
@@ -101,7 +104,7 @@ def test_a_lock_whose_holder_died_on_this_host_is_taken_over(tmp_path: Path) -> 
 
 
 def test_a_lock_from_another_host_is_taken_over_only_once_its_heartbeat_is_old(tmp_path: Path) -> None:
-    old = time.time() - builds.STALE_AFTER_S - 5
+    old = time.time() - locks.COMPILE.stale_after_s - 5
     _holder(tmp_path / "old.lock", host="odour-node-7", pid=1, heartbeat=old)
     _holder(tmp_path / "fresh.lock", host="odour-node-7", pid=1, heartbeat=time.time() - 5)
     with builds.locked(tmp_path / "old.lock", blocking=False) as taken:
@@ -110,9 +113,8 @@ def test_a_lock_from_another_host_is_taken_over_only_once_its_heartbeat_is_old(t
         assert not taken  # pid 1 means nothing on another host; only the heartbeat judges it
 
 
-def test_the_holder_renews_its_heartbeat(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    monkeypatch.setattr(builds, "HEARTBEAT_S", 0.1)
-    with builds.locked(tmp_path / "k.lock"):
+def test_the_holder_renews_its_heartbeat(tmp_path: Path) -> None:
+    with locks.held(tmp_path / "k.lock", locks.Policy(renew_s=0.1, stale_after_s=300.0)):
         first = json.loads((tmp_path / "k.lock" / "holder.json").read_text())["heartbeat"]
         time.sleep(0.5)
         later = json.loads((tmp_path / "k.lock" / "holder.json").read_text())["heartbeat"]
@@ -196,7 +198,7 @@ def test_a_scheduler_kind_needs_an_address_and_a_batch_kind_refuses_one() -> Non
 # --- worker faults ----------------------------------------------------------------------------------------------
 
 def crash_on_seed_13(config: dict[str, Any], seed: int, wiring_seed: int) -> dict[str, Any]:
-    """Stands in for simulate_task: kills its worker process for seed 13 (after noting the try in a file)."""
+    """A task that kills its worker process for seed 13 (after noting the try in a file)."""
     if seed == 13:
         with open(config["tries_file"], "a") as tries:
             tries.write(f"{os.getpid()}\n")
@@ -204,15 +206,13 @@ def crash_on_seed_13(config: dict[str, Any], seed: int, wiring_seed: int) -> dic
     return {"seed": seed}
 
 
-def test_a_point_that_kills_its_worker_every_time_fails_after_max_tries_while_others_finish(
-        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    from capsweep.runners import dask_backend
-
-    monkeypatch.setattr(dask_backend, "simulate_task", crash_on_seed_13)
+def test_a_point_that_kills_its_worker_every_time_fails_after_max_tries_while_others_finish(tmp_path: Path) -> None:
     tries = tmp_path / "tries"
-    jobs = [("bad", {"tries_file": str(tries)}, 13, 0), ("good", {}, 1, 0)]
-    with dask_client(1, cluster={"max_tries": 2}) as client:
-        results = dict(run_tasks(client, jobs))
+    jobs = [("bad", ({"tries_file": str(tries)}, 13, 0)), ("good", ({}, 1, 0))]
+    # two workers: a task queued behind the bad one on a single worker dies with it (the scheduler counts every task
+    # a lost worker held), which is the bad point's doing, not the good one's
+    with dask_client(2, cluster={"max_tries": 2}) as client:
+        results = dict(run_tasks(client, crash_on_seed_13, jobs))
     assert results["good"] == {"seed": 1}
     assert isinstance(results["bad"], TaskFailure) and "on each of its 2 tries" in results["bad"].error
     assert len(tries.read_text().split()) == 2  # two workers died, then the scheduler gave the point up
@@ -322,3 +322,33 @@ def test_slurm_sweep_survives_a_cancelled_worker_job_and_matches_a_local_run(
             left, right = a[name].values, b[name].values
             same = np.array_equal(left, right, equal_nan=left.dtype.kind == "f")
             assert same, f"{name} differs between the local and the SLURM run"
+
+
+def _slurm_jobs(submitted_from: Path) -> set[str]:
+    """Ids of the SLURM jobs there are now, pending or running, that were submitted from ``submitted_from``."""
+    shown = subprocess.run(["squeue", "-h", "-o", "%i %Z"], capture_output=True, text=True, timeout=30)
+    return {job for job, _, where in (line.partition(" ") for line in shown.stdout.splitlines())
+            if Path(where) == submitted_from}
+
+
+@pytest.mark.cluster
+def test_prescreen_of_a_slurm_sweep_runs_in_slurm_jobs_and_predicts_as_locally(slurm: None, tmp_path: Path) -> None:
+    """`capsweep prescreen` takes the sweep's [execution.cluster] as `capsweep run` does: kind slurm submits worker
+    jobs (seen in squeue while it runs, gone after), and the predictions equal a local prescreen's (they are
+    deterministic, so any difference is a difference of the code that ran)."""
+    command = [sys.executable, "-m", "capsweep.sweeps.cli", "prescreen", str(SLURM_SWEEP), "--format", "csv"]
+    local = subprocess.run([*command, "--cluster", "local", "--workers", "1"], capture_output=True, text=True,
+                           timeout=600, cwd=tmp_path)
+    assert local.returncode == 0, local.stderr
+    batch = subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=tmp_path)
+    seen: set[str] = set()
+    deadline = time.monotonic() + 600
+    while batch.poll() is None and time.monotonic() < deadline:
+        seen |= _slurm_jobs(tmp_path)
+        time.sleep(0.25)
+    output, errors = batch.communicate(timeout=60)
+    assert batch.returncode == 0, errors
+    assert seen, "the prescreen of a kind = 'slurm' sweep submitted no SLURM job"
+    assert not _slurm_jobs(tmp_path), "worker jobs outlived the prescreen"
+    assert output == local.stdout
+    assert len(output.strip().splitlines()) == 1 + 2  # a header and the sweep's two grid points

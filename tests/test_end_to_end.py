@@ -105,7 +105,7 @@ def test_triplet_alone_runs_away_and_full_rule_recalls(rules_store) -> None:
 
 @pytest.mark.reference
 def test_prescreen_prediction_is_stored_beside_each_point(rules_store) -> None:
-    """`run --prescreen` stores the theory's verdict beside every simulated outcome.
+    """`run --prescreen` stores the prescreen's verdict beside every simulated outcome.
 
     Where theory and simulation agree by construction of the rule: triplet STDP alone (no
     heterosynaptic term, no inhibitory plasticity) has no bound on potentiation above its BCM-like

@@ -16,8 +16,9 @@ from compliance_checker.runner import CheckSuite, ComplianceChecker
 from typer.testing import CliRunner
 
 from capsweep.axes import key_axis
+from capsweep.results_schema.attrs import CF_CONVENTIONS
 from capsweep.results_schema.layout import VARIABLES, GridSpec
-from capsweep.results_schema.store import CF_CONVENTIONS, ResultStore, create_store
+from capsweep.results_schema.store import ResultStore, create_store
 from capsweep.sweeps.cli import app
 
 # A text axis, a count axis given out of order and a bool axis: none may be a CF coordinate variable as is.

@@ -3,8 +3,8 @@
 from __future__ import annotations
 
 from capsweep.sweeps.expand import expand
-from capsweep.sweeps.plan import Cost, makespan, point_cost, structure_key
 from capsweep.sweeps.sweepfile import parse_sweep
+from capsweep.sweeps.workload import Cost, makespan, point_cost, structure_key
 
 SWEEP = """
 [sweep]

@@ -1,4 +1,4 @@
-"""Figures of a store, read back from their matplotlib objects: ticks, intervals, pending cells, legends,
+"""Figures of a store, read back from their matplotlib objects: ticks, intervals, pending tiles, legends,
 shaded cue windows, and that no option combination ends in a traceback or leaves files behind.
 
 The store is real (Zarr, created from a sweep file's text as ``capsweep run`` creates it) and filled
@@ -20,7 +20,8 @@ from capsweep.results_schema.layout import VARIABLES
 from capsweep.results_schema.store import ResultStore, create_store
 from capsweep.sweeps.capacity import capacity_table, success_table
 from capsweep.sweeps.cli import app
-from capsweep.sweeps.expand import expand, grid_spec, id_and_seed_arrays
+from capsweep.sweeps.expand import expand
+from capsweep.sweeps.identity import grid_spec, id_and_seed_arrays
 from capsweep.sweeps.plots import (
     all_plots,
     capacity_against,
@@ -99,7 +100,7 @@ def store(tmp_path_factory: pytest.TempPathFactory) -> Path:
     sweep = parse_sweep(SWEEP)
     points = expand(sweep)
     path = tmp_path_factory.mktemp("plots") / "odour.zarr"
-    grid = grid_spec(sweep, points, {"sweep_text": SWEEP})
+    grid = grid_spec(sweep, points)
     create_store(path, grid, *id_and_seed_arrays(sweep, points))
     writer = ResultStore.open(path)
     for p in points:
@@ -127,15 +128,15 @@ def test_stability_map_ticks_pooling_wilson_and_pending_cell(ds: xr.Dataset) -> 
     assert _labels(ax.get_xticklabels()) == ["1", "2", "3"]  # integer axis: no "1.0"
     assert "pooled over replicate" in ax.get_title()
     image = ax.get_images()[0].get_array()
-    assert image.mask[1, 1] and not image.mask.sum() - 1  # only the pending cell has no fraction, not 0
+    assert image.mask[1, 1] and not image.mask.sum() - 1  # only the pending tile has no fraction, not 0
     np.testing.assert_allclose(image.data[0], [1.0, 0.5, 0.0])
-    cells = {(round(t.get_position()[0]), round(t.get_position()[1])): t.get_text() for t in ax.texts}
-    assert cells[(1, 1)] == "2 pending"
-    assert cells[(1, 0)].splitlines()[0] == "0.50 (n=2)"
-    table = success_table(ds).set_index(["n_odours", "beta"])  # one replicate pair per cell: same interval
+    tiles = {(round(t.get_position()[0]), round(t.get_position()[1])): t.get_text() for t in ax.texts}
+    assert tiles[(1, 1)] == "2 pending"
+    assert tiles[(1, 0)].splitlines()[0] == "0.50 (n=2)"
+    table = success_table(ds).set_index(["n_odours", "beta"])  # one replicate pair per tile: same interval
     low, high = table.loc[(2, 0.0), ["wilson_lo", "wilson_hi"]]
-    assert cells[(1, 0)].splitlines()[1] == f"[{low:.2f}, {high:.2f}]"
-    assert cells[(2, 0)].splitlines()[2] == "R 1.00"  # both count-3 points ran away
+    assert tiles[(1, 0)].splitlines()[1] == f"[{low:.2f}, {high:.2f}]"
+    assert tiles[(2, 0)].splitlines()[2] == "R 1.00"  # both count-3 points ran away
 
 
 def test_stability_map_without_a_second_axis_is_one_row(ds: xr.Dataset) -> None:

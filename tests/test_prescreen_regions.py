@@ -11,17 +11,19 @@ simulated outcome does.
 from __future__ import annotations
 
 import math
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
 import pytest
 from scipy import integrate, stats
 
+from capsweep.registry import BY_PATH, KEYS, Key
 from capsweep.runners.point import run_point
-from capsweep.runners.theory import drift
+from capsweep.runners.theory import drift, dynamics
 from capsweep.runners.theory.prediction import predict
 from capsweep.sweeps.expand import expand
-from capsweep.sweeps.prescreen import capacity_from
+from capsweep.sweeps.success import capacity_of
 from capsweep.sweeps.sweepfile import load_sweep
 
 CONFIGS = Path(__file__).resolve().parent.parent / "configs"
@@ -102,9 +104,10 @@ def test_integrated_weight_reaches_the_drift_zero(point_config) -> None:
 
 def test_capacity_is_the_run_of_successes_from_the_smallest_count() -> None:
     # the capacity definition of capsweep.sweeps.capacity, applied to predictions [common practice]
-    assert capacity_from({1: True, 2: True, 3: False, 4: True}) == 2
-    assert capacity_from({2: True, 1: False}) == 0
-    assert capacity_from({1: True, 2: True}) == 2
+    assert capacity_of([1, 2, 3, 4], [True, True, False, True]) == 2
+    assert capacity_of([1, 2], [False, True]) == 0
+    assert capacity_of([1, 2], [True, True]) == 2
+    assert capacity_of([1, 2, 3], [True, None, True]) == 1  # an undecided count ends the run too
 
 
 def test_verdict_follows_the_inhibitory_learning_rate_as_simulation_does(point_config, demo_network) -> None:
@@ -137,12 +140,34 @@ def test_gamma_moment_match_of_the_trace() -> None:
 def test_verdict_follows_beta_and_count_as_simulation_does() -> None:
     """Region (a), configs/region-beta.toml (full E->E rule, no inhibitory STDP, weak prewiring): at three odours
     a weak heterosynaptic term (beta 0.03) runs away and a strong one (beta 1) holds; at beta 1 one odour holds
-    too. Both replicates of each cell are simulated here and must agree with the prediction; the prescreen before
+    too. Both replicates of each grid point are simulated here and must agree with the prediction; the prescreen before
     the link said "stable" for all three."""
     points = expand(load_sweep(CONFIGS / "region-beta.toml"))
     want = {(0.03, 3): "runaway", (1.0, 3): "stable", (1.0, 1): "stable"}
     for (beta, count), outcome in want.items():
-        cell = [p for p in points if p.labels["beta"] == beta and p.labels["n_odours"] == count]
-        assert predict(cell[0].config).outcome == outcome, (beta, count)
-        simulated = [run_point(p.config, p.seed, p.wiring_seed)["outcome"] for p in cell]
-        assert simulated == [outcome] * len(cell), (beta, count, simulated)
+        replicates = [p for p in points if p.labels["beta"] == beta and p.labels["n_odours"] == count]
+        assert predict(replicates[0].config).outcome == outcome, (beta, count)
+        simulated = [run_point(p.config, p.seed, p.wiring_seed)["outcome"] for p in replicates]
+        assert simulated == [outcome] * len(replicates), (beta, count, simulated)
+
+
+def unhandled_choices(keys: tuple[Key, ...], handled: dict[str, dict[str, object]]) -> list[str]:
+    """``key = value`` for every choice of a ``plasticity.*`` key among ``keys`` that ``handled`` has no handler for."""
+    return [f"{key.path} = {choice!r}" for key in keys if key.path.startswith("plasticity.")
+            for choice in key.choices if choice not in handled.get(key.path, {})]
+
+
+def test_theory_handles_every_choice_of_every_plasticity_key(point_config) -> None:
+    """Every value the registry offers for a plasticity key has a handler in the prescreen's rate dynamics, and the
+    integration over a protocol runs with it; a choice added to the registry alone fails here (checked with one)."""
+    assert any(key.path.startswith("plasticity.") and key.choices for key in KEYS)
+    assert unhandled_choices(KEYS, dynamics.HANDLED_CHOICES) == []
+    planted = replace(BY_PATH["plasticity.heterosynaptic.w_ref_mode"], choices=("fixed", "decaying"))
+    assert unhandled_choices((planted,), dynamics.HANDLED_CHOICES) == ["plasticity.heterosynaptic.w_ref_mode = 'decaying'"]
+    for path, handlers in dynamics.HANDLED_CHOICES.items():
+        for choice in handlers:
+            cfg = point_config(**{path: choice, "protocol.hold_s": 1.0,
+                                  "plasticity.heterosynaptic.tau_consolidation_s": 1.0})
+            run = dynamics.integrate(cfg)
+            moved = not np.allclose(run.plastic[-1].within_ref, run.plastic[0].within_ref)
+            assert moved == (choice != "fixed"), f"{path} = {choice!r}: the reference weights did not follow the mode"

@@ -157,7 +157,7 @@ def test_capacity_and_replicate_range_on_a_hand_worked_pattern(tmp_path: Path) -
     Capacity at fraction 0.5: counts 1 (0.8) and 2 (0.5) pass, 3 (0.4) fails -> 2; at 0.4 -> 3; at 0.9
     count 1 already fails -> 0, not NA. Per-replicate capacities 0, 1, 3, 4 (replicate 4's run of
     successes ends at its crash: left out) -> range 0-4 over 4 replicates; the top count 4 is
-    reached by replicate 3 only, so the cell's capacity is no lower bound."""
+    reached by replicate 3 only, so the condition's capacity is no lower bound."""
     ds = open_dataset(_filled_store(tmp_path, RANGE_PATTERN, replicates=5))
     row = capacity_table(ds).iloc[0]
     assert (row["capacity"], row["capacity_lo"], row["capacity_hi"]) == (2, 0, 4)

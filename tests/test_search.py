@@ -23,21 +23,21 @@ from hypothesis import strategies as st
 from capsweep.errors import ConfigError
 from capsweep.flags import STATUSES
 from capsweep.sweeps.capacity import capacity_table
-from capsweep.sweeps.search import CellSearch
+from capsweep.sweeps.search import ConditionSearch
 from capsweep.sweeps.sweepfile import parse_sweep
 
 
 def _search(passes: list[bool], start: int, method: str) -> tuple[int, list[int]]:
-    """Run one cell's search against known verdicts; (found capacity as a number of counts, probed indices)."""
-    cell = CellSearch(len(passes), start, method)
+    """Run one condition's search against known passes; (found capacity as a number of counts, probed indices)."""
+    search = ConditionSearch(len(passes), start, method)
     probed: list[int] = []
-    while probes := cell.next_probes():
+    while probes := search.next_probes():
         assert not set(probes) & set(probed), "a count is never probed twice"
         probed += probes
-        cell.verdicts.update({k: passes[k] for k in probes})
+        search.passes.update({k: passes[k] for k in probes})
     if method == "scan":
-        return next((k for k in range(len(passes)) if not cell.verdicts.get(k, False)), len(passes)), probed
-    return cell.bounds()[0] + 1, probed
+        return next((k for k in range(len(passes)) if not search.passes.get(k, False)), len(passes)), probed
+    return search.bounds()[0] + 1, probed
 
 
 def _grid_capacity(passes: list[bool]) -> int:

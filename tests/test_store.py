@@ -20,11 +20,12 @@ import zarr
 from capsweep.axes import key_axis
 from capsweep.errors import StoreError
 from capsweep.flags import OUTCOMES, STATUSES
+from capsweep.locks import STORE_LOCK_NAME as LOCK_NAME
+from capsweep.locks import holder, store_lock
 from capsweep.results_schema import layout
 from capsweep.results_schema import store as store_module
 from capsweep.results_schema.dataset import flag_labels, open_dataset
 from capsweep.results_schema.layout import GridSpec
-from capsweep.results_schema.lock import LOCK_NAME, store_lock
 from capsweep.results_schema.store import (
     GROWING_NAME,
     Batching,
@@ -289,9 +290,15 @@ def dead_pid() -> int:
     return child.pid
 
 
-def write_lock(path: Path, host: str, pid: int) -> Path:
+def write_lock(path: Path, host: str, pid: int, as_file: bool = False) -> Path:
+    """A store lock held by ``pid`` on ``host``; ``as_file``: the lock file earlier capsweep versions wrote."""
     lock = path / LOCK_NAME
-    lock.write_text(f'{{"host": "{host}", "pid": {pid}, "since": "2026-12-01T10:00:00+00:00"}}')
+    record = f'{{"host": "{host}", "pid": {pid}, "since": "2026-12-01T10:00:00+00:00"}}'
+    if as_file:
+        lock.write_text(record)
+    else:
+        lock.mkdir()
+        (lock / "holder.json").write_text(record)
     return lock
 
 
@@ -321,11 +328,12 @@ def test_lock_held_by_a_live_process_is_respected(tmp_path):
         sleeper.wait()
 
 
-def test_stale_lock_of_a_dead_process_is_taken_over(tmp_path):
+@pytest.mark.parametrize("as_file", [False, True])
+def test_stale_lock_of_a_dead_process_is_taken_over(tmp_path, as_file):
     path = make_store(tmp_path)
-    lock = write_lock(path, socket.gethostname(), dead_pid())
+    lock = write_lock(path, socket.gethostname(), dead_pid(), as_file)
     with store_lock(path):
-        assert f'"pid": {os.getpid()}' in lock.read_text()
+        assert holder(lock)["pid"] == os.getpid()
     assert not lock.exists()
 
 

@@ -1,10 +1,11 @@
-"""The house: layers import downward only, no import cycles, no bare top-level package names.
+"""The house: layers import downward only, no import cycles, no bare top-level package names, labels in one table.
 
 Every module of the four folders is parsed with ``ast`` (nothing is imported); relative imports
 are resolved to ``capsweep.*`` names with the folder map of pyproject.toml. Imports inside
 functions and ``if TYPE_CHECKING:`` blocks count too. The engine table's ``module:function``
 strings are not imports. ``from package import name`` is an edge to ``package.name`` when that
-is a module, else to ``package``.
+is a module, else to ``package``. Status labels and cluster kinds are spelled as string constants only in
+``capsweep/flags.py`` and ``capsweep/clusters.py``.
 """
 
 from __future__ import annotations
@@ -13,13 +14,17 @@ import ast
 from functools import cache
 from pathlib import Path
 
+from capsweep.clusters import NAMES as CLUSTER_KINDS
+from capsweep.flags import STATUSES
+
 ROOT = Path(__file__).resolve().parents[1]
 PACKAGES = {"capsweep": "capsweep", "sweeps": "capsweep.sweeps", "runners": "capsweep.runners",
             "results_schema": "capsweep.results_schema"}
 """Folder -> import path (pyproject's [tool.setuptools.package-dir])."""
 BARE = {"sweeps", "runners", "results_schema"}
 """Folder names that are not importable on their own: only as subpackages of capsweep."""
-FOUNDATIONS = ("capsweep.errors", "capsweep.registry", "capsweep.engines", "capsweep.flags", "capsweep.axes")
+FOUNDATIONS = ("capsweep.errors", "capsweep.registry", "capsweep.engines", "capsweep.clusters", "capsweep.flags",
+               "capsweep.axes", "capsweep.locks")
 LAYERS = ("capsweep.sweeps", "capsweep.runners", "capsweep.results_schema")
 
 Graph = dict[str, set[str]]
@@ -111,8 +116,8 @@ def test_the_graph_sees_relative_nested_and_function_level_imports() -> None:
     assert "capsweep.registry" in graph["capsweep.runners.builds"]  # from ..registry import flatten
     assert {"capsweep.runners.protocol", "capsweep.runners.rules"} <= graph["capsweep.runners.model"]  # from . import
     assert "capsweep.runners.builds" in graph["capsweep.sweeps.cli"]  # inside a function
-    assert "capsweep.engines" in graph["capsweep.sweeps.plan"]  # from .. import engines
-    assert "capsweep" not in graph["capsweep.sweeps.plan"]
+    assert "capsweep.engines" in graph["capsweep.sweeps.workload"]  # from .. import engines
+    assert "capsweep" not in graph["capsweep.sweeps.workload"]
 
 
 def test_runners_and_store_never_import_the_front_end() -> None:
@@ -134,3 +139,39 @@ def test_no_bare_top_level_package_names() -> None:
     bare = {m: sorted(d for d in deps if d.split(".")[0] in BARE) for m, deps in _graph().items()}
     bare = {m: deps for m, deps in bare.items() if deps}
     assert not bare, f"import these as capsweep.sweeps/.runners/.results_schema, not bare: {bare}"
+
+
+# --- labels spelled in one table --------------------------------------------------------------------------------
+
+LABEL_TABLES = {"capsweep.flags": STATUSES, "capsweep.clusters": CLUSTER_KINDS}
+"""Each table of labels: the module that spells them; every other module uses its names (flags.DONE, clusters.LOCAL,
+clusters.KINDS, ...)."""
+
+
+def spelled_labels(source: str, labels: frozenset[str]) -> list[tuple[int, str]]:
+    """(line, label) of every string constant in ``source`` that is exactly one of ``labels``.
+
+    Words of a sentence (docstrings, messages) are not constants of their own. A key looked up in a mapping
+    (``execution["scheduler"]``: the config key of that name, not the cluster kind) is not a label either.
+    """
+    tree = ast.parse(source)
+    keys = {id(node.slice) for node in ast.walk(tree) if isinstance(node, ast.Subscript)}
+    return [(node.lineno, node.value) for node in ast.walk(tree) if isinstance(node, ast.Constant)
+            and isinstance(node.value, str) and node.value in labels and id(node) not in keys]
+
+
+def test_the_label_scan_catches_a_planted_literal() -> None:
+    planted = 'def waiting(status):\n    """Points not yet run."""\n    return status == "pending" or kind == "slurm"\n'
+    assert spelled_labels(planted, frozenset({*STATUSES, *CLUSTER_KINDS})) == [(3, "pending"), (3, "slurm")]
+    assert spelled_labels('columns = ("capacity", "failed")\n', frozenset(STATUSES)) == [(1, "failed")]
+    assert spelled_labels('message = f"{n} points pending"\n', frozenset(STATUSES)) == []  # words in text are fine
+    assert spelled_labels('address = execution["scheduler"]\n', frozenset(CLUSTER_KINDS)) == []  # a config key
+
+
+def test_status_labels_and_cluster_kinds_are_spelled_only_in_their_tables() -> None:
+    labels = frozenset(label for table in LABEL_TABLES.values() for label in table)
+    found = {}
+    for path in (p for folder in PACKAGES for p in (ROOT / folder).rglob("*.py")):
+        if _module_name(path) not in LABEL_TABLES and (spelled := spelled_labels(path.read_text(), labels)):
+            found[str(path.relative_to(ROOT))] = spelled
+    assert not found, f"use the names of capsweep.flags / capsweep.clusters instead of these literals: {found}"

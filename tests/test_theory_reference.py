@@ -1,4 +1,4 @@
-"""Reference checks of the theory prescreen (capsweep.runners.theory) against published formulas and values.
+"""Reference checks of the theory under the prescreen (capsweep.runners.theory) against published formulas and values.
 
 Closed forms are written out here with numpy/scipy, independently of capsweep's code.
 """

@@ -1,4 +1,5 @@
-"""Theory prescreen: rate-form plasticity drift, LIF transfer functions, mean-field fixed points, predictions.
+"""The theory under the prescreen: rate-form plasticity drift, LIF transfer functions, mean-field fixed points,
+protocol-long weight dynamics, and the prescreen's verdict (a surrogate fitted to simulations on these quantities).
 
 Pure numpy/scipy (no Brian2). Everything reads a point's nested config (``capsweep.registry``).
 

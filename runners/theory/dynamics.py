@@ -21,7 +21,10 @@ non-member -> member (``into``), member -> non-member (``out``), member -> membe
 another assembly (``across``) and non-member -> non-member (``between``) E->E weights; the I->E weight
 onto non-members. Each weight stands for the mean of its pathway, drifting with the mean of the
 drifts over the groups it connects (group fractions as weights; the drift is linear in w, so the
-mean obeys the same linear equation). Reference weights follow ``w_ref_mode``.
+mean obeys the same linear equation). Reference weights follow ``w_ref_mode`` (:data:`REFERENCE_STEPS`):
+fixed, consolidating (``tau_cons dw_ref/dt = w - w_ref``) or bistable (Zenke, Agnes & Gerstner 2015, Nat
+Commun 6:6922, Methods: ``tau_cons dw_ref/dt = w - w_ref - P w_ref (w_P/2 - w_ref)(w_P - w_ref)``), each
+with the weight held at its value after the step, as the simulation holds it between consolidation updates.
 
 Rates in Hz, times in s, weights in g_leak.
 """
@@ -52,6 +55,9 @@ LAG_STEP = 0.5
 """Longest step as a fraction of the slowest trace time constant still catching up with its rate."""
 SOLVE_ITERATIONS = 150
 """Iterations of the warm-started rate solve per step."""
+BISTABLE_H = 0.01
+"""Longest substep of the bistable reference weight, as a fraction of tau_consolidation (numerical choice: the
+scheme's error is first order in it)."""
 
 
 def _sub_fractions(cued: float) -> np.ndarray:
@@ -269,13 +275,48 @@ def _advance(cfg: dict, p: Plastic, d: _Drift, dt: float) -> Plastic:
     w_max, i_max = pl["triplet"]["w_max"], pl["inhibitory"]["w_max"]
     within = relax(p.within, d.within_c, d.within_k, p.within_ref, dt, w_max)
     paths = relax(p.paths, d.paths_c, d.paths_k, p.paths_ref, dt, w_max)
-    within_ref, paths_ref = p.within_ref, p.paths_ref
     het = pl["heterosynaptic"]
-    if het["w_ref_mode"] == "consolidating":
-        mix = 1.0 - math.exp(-dt / het["tau_consolidation_s"])
-        within_ref, paths_ref = within_ref + mix * (within - within_ref), paths_ref + mix * (paths - paths_ref)
+    step = REFERENCE_STEPS[het["w_ref_mode"]]
+    within_ref, paths_ref = step(het, within, p.within_ref, dt), step(het, paths, p.paths_ref, dt)
     return Plastic(within, within_ref, paths, paths_ref, np.clip(p.i_members + d.i_members * dt, 0.0, i_max),
                    float(np.clip(p.i_others + d.i_others * dt, 0.0, i_max)))
+
+
+def fixed_reference(het: dict, w: np.ndarray, w_ref: np.ndarray, dt: float) -> np.ndarray:
+    """``w_ref_mode = "fixed"``: the reference weight stays where it is."""
+    return w_ref
+
+
+def consolidating_reference(het: dict, w: np.ndarray, w_ref: np.ndarray, dt: float) -> np.ndarray:
+    """``w_ref_mode = "consolidating"``: ``tau_cons dw_ref/dt = w - w_ref`` over ``dt`` s with ``w`` held (exact)."""
+    return w_ref + (1.0 - math.exp(-dt / het["tau_consolidation_s"])) * (w - w_ref)
+
+
+def bistable_reference(het: dict, w: np.ndarray, w_ref: np.ndarray, dt: float) -> np.ndarray:
+    """``w_ref_mode = "bistable"``: ``tau_cons dw_ref/dt = f = w - w_ref - P w_ref (w_P/2 - w_ref)(w_P - w_ref)``
+    (Zenke, Agnes & Gerstner 2015, Nat Commun 6:6922, Methods) over ``dt`` s with ``w`` held, g_leak.
+
+    Substeps of at most :data:`BISTABLE_H` tau_cons, each ``w_ref += h f / (1 + h |f'|)``: the step of the
+    simulation (:func:`capsweep.runners.rules.consolidation_step` gives its derivation), whose fixed points are
+    exactly the roots of f and which never crosses the unstable one.
+    """
+    p, w_p = het["bistable_strength"], het["bistable_upper_weight"]
+    h_total = dt / het["tau_consolidation_s"]
+    n = max(1, math.ceil(h_total / BISTABLE_H))
+    h = h_total / n
+    ref = np.array(w_ref, dtype=float)
+    for _ in range(n):
+        f = w - ref - p * ref * (w_p / 2 - ref) * (w_p - ref)
+        slope = -1.0 - p * (3 * ref**2 - 3 * w_p * ref + w_p**2 / 2)
+        ref = ref + h * f / (1.0 + h * np.abs(slope))
+    return ref
+
+
+REFERENCE_STEPS = {"fixed": fixed_reference, "consolidating": consolidating_reference, "bistable": bistable_reference}
+"""How the reference weights move over a step, per ``plasticity.heterosynaptic.w_ref_mode``."""
+HANDLED_CHOICES = {"plasticity.heterosynaptic.w_ref_mode": REFERENCE_STEPS}
+"""Every plasticity key with a choice of values, and the theory's handler of each value (a test holds this
+against the registry: a choice the simulation offers and the theory ignores fails it)."""
 
 
 def _scenario(cfg: dict, p: Plastic, seg: Segment) -> Scenario:

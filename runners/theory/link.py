@@ -9,10 +9,9 @@ that edge, but not say where the edge lies. So the theory supplies quantities th
 (:data:`FEATURES`), and one logistic function maps them to the probability that the simulation runs away.
 Its coefficients (:data:`INTERCEPT`, :data:`WEIGHTS`) are the only constants of the prescreen fitted to
 simulations: by maximum likelihood, with each weight's sign fixed by physics (:data:`SIGNS`), on a scrambled
-Sobol design over a box around the demo network (``benchmarks/calibrate_prescreen.py`` holds the box, seed
-and size), never on the region sweeps the prescreen is validated on. Outside that box (200-400 E cells,
-prewired assemblies of 12-25 % of them, 1-6 assemblies, prewiring gain 2-6, the rule coefficients of the box;
-learned assemblies were not in it) the link extrapolates.
+Sobol design over a box around the demo network (:data:`CALIBRATION_BOX` and :data:`CALIBRATION_HELD`;
+``benchmarks/calibrate_prescreen.py`` draws the design from them), never on the region sweeps the prescreen is
+validated on. Outside that box the link extrapolates: :func:`outside_calibration` says where a point leaves it.
 
 Features (rates from the mean field at the point's initial weights; T = ``detection.runaway_hold_s +
 detection.smoothing_s``, the time the runaway detector needs; weight changes are relative to the initial
@@ -41,9 +40,37 @@ from dataclasses import replace
 import numpy as np
 from scipy import optimize
 
+from ...registry import flatten
 from ..metrics import active_threshold
 from .drift import inhibitory_drift, linear_drift, relax
 from .meanfield import TransferCurve, initial_weights, population_rates
+
+CALIBRATION_BOX: dict[str, tuple[float, float]] = {
+    "n_exc": (200.0, 400.0),
+    "size_fraction": (0.12, 0.25),
+    "count": (1.0, 6.999),
+    "prewire_gain": (2.0, 6.0),
+    "log10_beta": (-2.0, 0.5),
+    "log10_a_ltp": (-2.3, -1.3),
+    "log10_eta": (-4.5, -2.0),
+    "inhibitory_cap_ratio": (0.8, 3.0),
+    "hold_s": (3.0, 10.0),
+}
+"""Range of each design variable of the link's calibration design (uniform in the stated units; the counts are
+whole, 1-6). Variables of a point (:func:`design_values`): network.n_exc; assemblies.size / network.n_exc;
+assemblies.count; assemblies.prewire_gain; log10 of plasticity.heterosynaptic.beta (heterosynaptic term on),
+plasticity.triplet.a_ltp, plasticity.inhibitory.eta (inhibitory STDP on); plasticity.inhibitory.w_max /
+network.w_i_to_e (inhibitory STDP on); protocol.hold_s."""
+CALIBRATION_HELD: dict[str, object] = {
+    "assemblies.imprint": "prewired",
+    "assemblies.overlap": "disjoint",
+    "plasticity.heterosynaptic.w_ref_mode": "fixed",
+    "plasticity.triplet.enabled": True,
+}
+"""Settings every design point had. Besides: plasticity.triplet.b_ltd = a_ltp / 5, and the heterosynaptic and
+transmitter-induced terms on or off together; every other key at its registry default."""
+LTD_PER_LTP = 0.2
+"""plasticity.triplet.b_ltd / a_ltp of every design point."""
 
 FEATURES = ("completion", "excitability_after", "potentiation_active", "relaxation_active", "inhibition_active",
             "log_count", "log_hold")
@@ -82,6 +109,44 @@ def _inhibition_rise(cfg: dict, pre_hz: float, post_hz: float, duration_s: float
     start = min(w, inh["w_max"])
     moved = float(np.clip(start + inhibitory_drift(cfg, pre_hz, post_hz) * duration_s, 0.0, inh["w_max"]))
     return math.asinh((moved - start) / w)
+
+
+def design_values(cfg: dict) -> dict[str, float]:
+    """The point's value of each :data:`CALIBRATION_BOX` variable that applies to it (a switched-off term has none)."""
+    net, pl = cfg["network"], cfg["plasticity"]
+    inh = pl["inhibitory"]
+    values = {"n_exc": net["n_exc"], "size_fraction": cfg["assemblies"]["size"] / net["n_exc"],
+              "count": cfg["assemblies"]["count"], "prewire_gain": cfg["assemblies"]["prewire_gain"],
+              "log10_a_ltp": _log10(pl["triplet"]["a_ltp"]), "hold_s": cfg["protocol"]["hold_s"]}
+    if pl["heterosynaptic"]["enabled"]:
+        values["log10_beta"] = _log10(pl["heterosynaptic"]["beta"])
+    if inh["enabled"]:
+        values["log10_eta"] = _log10(inh["eta"])
+        values["inhibitory_cap_ratio"] = inh["w_max"] / net["w_i_to_e"] if net["w_i_to_e"] > 0 else math.inf
+    return values
+
+
+def _log10(x: float) -> float:
+    return math.log10(x) if x > 0 else -math.inf
+
+
+def outside_calibration(cfg: dict) -> str:
+    """Where the point ``cfg`` leaves the link's calibration design, in words ('' inside; see the module).
+
+    A point without assemblies is inside: its runaway chance is 0 without the link.
+    """
+    if not cfg["assemblies"]["count"]:
+        return ""
+    reasons = [f"{name} {value:.3g} not in {lo:g}-{hi:g}" for name, value in design_values(cfg).items()
+               for lo, hi in [CALIBRATION_BOX[name]] if not lo <= value <= hi]
+    flat = flatten(cfg)
+    reasons += [f"{key} = {flat[key]!r}, not {held!r}" for key, held in CALIBRATION_HELD.items() if flat[key] != held]
+    a_ltp, b_ltd = flat["plasticity.triplet.a_ltp"], flat["plasticity.triplet.b_ltd"]
+    if not math.isclose(b_ltd, LTD_PER_LTP * a_ltp, rel_tol=1e-3):
+        reasons.append(f"plasticity.triplet.b_ltd = {b_ltd:g}, not a_ltp x {LTD_PER_LTP:g}")
+    if flat["plasticity.heterosynaptic.enabled"] != flat["plasticity.transmitter.enabled"]:
+        reasons.append("heterosynaptic and transmitter-induced terms not switched on or off together")
+    return "; ".join(reasons)
 
 
 def runaway_chance(cfg: dict) -> float:

@@ -1,5 +1,8 @@
 """The prescreen's verdict for one point: outcome, recall during the final test and at the end weights.
 
+The prescreen is a fitted surrogate built on mean-field quantities: theory supplies the quantities, and
+the runaway verdict comes from a link fitted to simulations.
+
 Two parts:
 
 - The rate form of the plasticity rules is integrated over the point's own protocol
@@ -45,16 +48,17 @@ from dataclasses import dataclass
 from ...flags import RUNAWAY, SILENT, STABLE
 from .. import metrics, protocol
 from .dynamics import Run, baseline_hz, final_cue_rates, integrate, onset_s, recall_at_end, recall_score
-from .link import RUNAWAY_AT, runaway_chance
+from .link import RUNAWAY_AT, outside_calibration, runaway_chance
 from .meanfield import group_fractions
 
 
 @dataclass(frozen=True)
 class Prediction:
-    """Theory prescreen verdict for one point."""
+    """The prescreen's verdict for one point."""
 
     outcome: str  # one of capsweep.flags.OUTCOMES
     runaway_chance: float  # probability of a simulated runaway from the link (:mod:`.link`)
+    outside_calibration: str  # where the point leaves the link's calibration box ('' inside; :mod:`.link`)
     recalled_count: int  # assemblies whose final-test cue reaches the recall criterion
     recall_state_exists: bool  # a cue at the end weights completes the assembly (members active, score reached)
     recall_state_stable: bool  # ... and that state returns after a nudge
@@ -71,13 +75,14 @@ class Prediction:
     reasons: str
 
     @property
-    def success(self) -> bool:
-        """Predicted success: a stable outcome.
+    def stable(self) -> bool:
+        """Predicted stable: the verdict the prescreen's stability bound counts (not success).
 
         The simulation's success (:mod:`capsweep.sweeps.success`) also asks that every assembly is recalled in
         the final test. The theory's recall does not enter: it underestimates how far a cue drags the uncued
         members along (on the 258 stable points of the calibration design it predicted full recall for 29 %,
-        simulation found it for 77 %, so "always recalled" is the better guess; capsweep, 4 December 2026).
+        simulation found it for 77 %; capsweep, 4 December 2026), so a bound over stable counts is, as far as
+        the stable verdicts are right, an upper bound of the capacity rather than a prediction of it.
         ``recalled_count`` and the recall-state fields are reported, not used.
         """
         return self.outcome == STABLE
@@ -130,7 +135,8 @@ def predict(cfg: dict) -> Prediction:
                f"recalled {recalled} of {count} in the final test",
                f"recall state at end weights: {'stable' if stable else 'exists, unstable' if exists else 'none'}"]
     return Prediction(
-        outcome=outcome, runaway_chance=chance, recalled_count=recalled, recall_state_exists=exists,
+        outcome=outcome, runaway_chance=chance, outside_calibration=outside_calibration(cfg),
+        recalled_count=recalled, recall_state_exists=exists,
         recall_state_stable=stable, background_rate_hz=baseline,
         runaway_threshold_hz=threshold, runaway_onset_s=onset, peak_exc_hz=peak,
         end_within_weight=within, end_i_to_members=i_members,

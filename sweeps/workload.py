@@ -1,6 +1,7 @@
-"""Look at a sweep before running it: grid size, distinct builds, and an estimated wall time.
+"""The workload of a sweep, known before running it: points, distinct builds, simulated time, and an estimated
+wall time.
 
-:func:`grid_summary` needs no simulation (``capsweep check``); :func:`plan_sweep` adds the
+:func:`workload` needs no simulation (``capsweep check``); :func:`estimate_sweep` adds the
 wall-time estimate (``capsweep estimate``).
 
 The estimate is calibrated by probe simulations of each distinct network size: after one
@@ -22,7 +23,8 @@ from typing import Any
 from .. import engines
 from ..registry import with_execution
 from ..runners.protocol import total_duration_s
-from .expand import Point, expand
+from .expand import expand
+from .identity import Point
 from .sweepfile import Sweep, load_sweep
 
 PROBE_HOLD_S = (1.0, 5.0)  # hold lengths of the two probe runs, s
@@ -39,7 +41,7 @@ class Cost:
 
 
 @dataclass(frozen=True)
-class Grid:
+class Workload:
     """What a run of the sweep will do, known without simulating."""
 
     points: list[Point]
@@ -50,10 +52,10 @@ class Grid:
 
 
 @dataclass(frozen=True)
-class Plan:
+class Estimate:
     """What a run of the sweep will do and roughly how long it takes."""
 
-    grid: Grid
+    workload: Workload
     workers: int
     engine: str
     costs: dict[int, Cost]  # n_exc -> measured cost model
@@ -122,10 +124,10 @@ def makespan(durations: list[float], workers: int) -> float:
     return max(loads)
 
 
-def grid_summary(sweep: Sweep) -> Grid:
+def workload(sweep: Sweep) -> Workload:
     """Expand ``sweep`` (raising ConfigError on an inconsistent point) and count its points, builds and time."""
     points = expand(sweep)
-    return Grid(
+    return Workload(
         points=points,
         axes={a.name: a.values for a in sweep.axes},
         replicates=sweep.replicates,
@@ -134,15 +136,15 @@ def grid_summary(sweep: Sweep) -> Grid:
     )
 
 
-def plan_sweep(
+def estimate_sweep(
     sweep_file: str | Path,
     workers: int | None = None,
     engine: str | None = None,
     on_probe: Callable[[int], None] = lambda n_exc: None,
-) -> Plan:
+) -> Estimate:
     """Expand ``sweep_file``, probe its network sizes, and estimate the run's wall time."""
-    grid = grid_summary(load_sweep(sweep_file))
-    points = grid.points
+    work = workload(load_sweep(sweep_file))
+    points = work.points
     execution = points[0].config["execution"]
     workers = workers or execution["workers"]
     engine = engine or execution["engine"]
@@ -152,8 +154,8 @@ def plan_sweep(
         example = next(p for p in points if size_key(p) == size)
         costs[size] = probe(example.config, engine)
     durations = [point_cost(p, costs) for p in points]
-    return Plan(
-        grid=grid,
+    return Estimate(
+        workload=work,
         workers=workers,
         engine=engine,
         costs=costs,

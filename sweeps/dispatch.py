@@ -1,95 +1,46 @@
-"""Run points on Dask distributed: a local cluster, an existing scheduler, or batch jobs (dask-jobqueue).
+"""The client side of Dask: start the cluster a sweep asks for, submit its tasks, and follow them as they finish.
 
-Each point is one Dask task that returns its results to the client process (the single
-writer). A task never raises for a simulation error: it returns a :class:`TaskFailure` so the
-writer can record the error text. A worker that dies mid-point (its batch job cancelled, the
-process killed, memory exhausted) has its point rerun on another worker by the scheduler; a point
-whose workers died ``execution.cluster.max_tries`` times surfaces as ``KilledWorker`` from
-``Future.result`` and is recorded failed the same way, while the sweep goes on.
+Where the workers run is the ``[execution.cluster]`` table (:mod:`capsweep.clusters` lists the kinds):
+worker processes here, a running scheduler, or batch jobs through dask-jobqueue. ``capsweep run``,
+``capsweep prescreen`` and a count search's predictions all get their client from :func:`early_client`,
+with the sweep file's settings under the command line's, and run their tasks through :func:`run_tasks`; point
+tasks go in the order of :func:`submission_sequence` (grouped by compiled build, longest first).
+What a worker runs is :mod:`capsweep.runners.task`.
+
+Each task returns its result to this process (the single writer). A worker that dies mid-task (its
+batch job cancelled, the process killed, memory exhausted) has its task rerun on another worker by the
+scheduler; a task whose workers died ``execution.cluster.max_tries`` times comes back as a
+:class:`~capsweep.runners.task.TaskFailure`, while the sweep goes on.
 """
 
 from __future__ import annotations
 
-import atexit
 import contextlib
 import importlib
-import math
-import os
 import shlex
 import signal
 import sys
 import threading
-import traceback
 from collections.abc import Callable, Iterable, Iterator, Mapping
 from concurrent.futures import Future, ThreadPoolExecutor
-from dataclasses import dataclass
 from pathlib import Path
 from types import ModuleType
 from typing import Any
 
 import dask
-from dask.distributed import Client, KilledWorker, LocalCluster, Status, WorkerPlugin, as_completed
+from dask.distributed import Client, KilledWorker, LocalCluster, as_completed
 
+from ..clusters import SCHEDULER, cluster_kind
+from ..engines import engine
 from ..errors import CapsweepError, ConfigError
-from ..registry import BY_PATH
-from .builds import BUILD_DIR_ENV, build_root
+from ..registry import BY_PATH, lookup, overlay, with_execution
+from ..runners.builds import BUILD_DIR_ENV, build_key, build_root
+from ..runners.protocol import total_duration_s
+from ..runners.task import WORKER_PRELOAD, PrepareWorker, TaskFailure
+from .identity import Point
 
-Job = tuple[Any, dict[str, Any], int, int]
-"""A point to simulate: (tag the caller gets back, config, seed, wiring seed)."""
-
-
-@dataclass(frozen=True)
-class TaskFailure:
-    """What a task returns instead of results when its point failed."""
-
-    error: str
-
-
-def simulate_task(config: dict[str, Any], seed: int, wiring_seed: int) -> dict[str, Any] | TaskFailure:
-    """Worker-side entry: run one point (and its prescreen if asked), exceptions become a TaskFailure."""
-    from brian2 import BrianLogger
-
-    from .point import run_point
-
-    BrianLogger.log_level_error()
-    try:
-        result = run_point(config, seed, wiring_seed=wiring_seed)
-    except Exception as exc:  # every failure is recorded, none may kill the sweep
-        summary = f"{type(exc).__name__}: {exc}"
-        return TaskFailure(summary + "\n" + traceback.format_exc(limit=6))
-    if config["execution"]["prescreen"]:
-        from .theory.prediction import predict
-
-        result["predicted_outcome"] = predict(config).outcome
-    return result
-
-
-class PrepareWorker(WorkerPlugin):
-    """Ready a worker for simulations at start-up, and let it leave quickly once closed.
-
-    - Brian2 and the point runner are imported in the worker's main thread: Brian2 installs a
-      SIGINT handler when first imported, which Python allows only in the main thread (tasks run
-      in an executor thread). Workers of the local cluster have them already: they import
-      ``capsweep.runners.model`` (the Brian2 network, imported by every engine) as a Dask
-      preload, before they register, which spares the round trip of a plugin that still has
-      work to do.
-    - With ``leave_fast`` (workers of capsweep's own local cluster), a worker process closed
-      cleanly exits without interpreter teardown, which takes about 0.5 s with Brian2 loaded and
-      has nothing left to save. Workers of a cluster someone else runs keep their normal exit.
-    """
-
-    name = "capsweep-prepare-worker"
-
-    def __init__(self, leave_fast: bool = False) -> None:
-        self.leave_fast = leave_fast
-
-    def setup(self, worker: Any) -> None:
-        from . import model  # noqa: F401  (imports Brian2)
-
-    def teardown(self, worker: Any) -> None:
-        if self.leave_fast and worker.status == Status.closing:
-            atexit.register(os._exit, 0)
-
+Job = tuple[Any, tuple[Any, ...]]
+"""A task to run: (tag the caller gets back, the task function's arguments)."""
 
 CLUSTER_SETTINGS = {
     "distributed.worker.profile.enabled": False,
@@ -118,33 +69,27 @@ CLUSTER_SETTINGS = {
 """
 
 
-@dataclass(frozen=True)
-class BatchSystem:
-    """How one batch system's dask-jobqueue cluster takes the ``[execution.cluster]`` settings."""
-
-    cluster: str  # class name in dask_jobqueue
-    queue: str | None  # its keyword for execution.cluster.queue; None: the system has no queues
-    account: str | None  # its keyword for execution.cluster.account; None: no accounts
-    clock: str  # wall-time format: "hms" (HH:MM:SS), "hm" (HH:MM), "" (takes none)
-
-
-BATCH_SYSTEMS: dict[str, BatchSystem] = {
-    "slurm": BatchSystem("SLURMCluster", "queue", "account", "hms"),
-    "pbs": BatchSystem("PBSCluster", "queue", "account", "hms"),
-    "sge": BatchSystem("SGECluster", "queue", "project", "hms"),
-    "lsf": BatchSystem("LSFCluster", "queue", "project", "hm"),
-    "htcondor": BatchSystem("HTCondorCluster", None, None, ""),
-}
-"""The batch kinds of ``execution.cluster.kind`` (common practice: dask-jobqueue's keywords per system)."""
-WORKER_PRELOAD = "capsweep.runners.model"
-"""Imported by every worker before it registers: Brian2, in the worker's main thread (see PrepareWorker)."""
-
-
 def cluster_table(cluster: Mapping[str, Any] | None = None) -> dict[str, Any]:
     """The ``[execution.cluster]`` table: registry defaults overlaid with ``cluster`` (leaf names, checked values)."""
     prefix = "execution.cluster."
     table = {path.removeprefix(prefix): key.default for path, key in BY_PATH.items() if path.startswith(prefix)}
     return {**table, **(cluster or {})}
+
+
+def early_client(execution: Mapping[str, Any], workers: int | None = None, scheduler: str | None = None,
+                 dashboard: bool | None = None, cluster: Mapping[str, Any] | None = None) -> EarlyClient:
+    """The client of a sweep whose ``[execution]`` table is ``execution``, with command-line overrides.
+
+    ``workers``, ``scheduler`` and ``dashboard`` replace the sweep file's when given; each ``cluster``
+    entry (leaf name of ``[execution.cluster]``, e.g. ``kind``) is checked against the registry and
+    replaces the sweep file's.
+    """
+    where = "the command line (--cluster/--cluster-set)"
+    checked = {name: lookup(f"execution.cluster.{name}", where=where).check(value, where=where)
+               for name, value in (cluster or {}).items()}
+    chosen = overlay(dict(execution), dict(workers=workers, scheduler=scheduler, dashboard=dashboard))
+    return EarlyClient(chosen["workers"], chosen["scheduler"], chosen["dashboard"],
+                       overlay(execution["cluster"], checked))
 
 
 @contextlib.contextmanager
@@ -155,24 +100,25 @@ def dask_client(workers: int, scheduler: str = "", dashboard: bool = False,
     Kind ``local`` runs ``workers`` processes here with one thread each (Brian2 simulations are
     single-threaded and hold the GIL, so processes, not threads, give parallelism); a ``scheduler``
     address (kind ``local`` or ``scheduler``) attaches to a running scheduler instead; a batch kind
-    (:data:`BATCH_SYSTEMS`) submits worker jobs, scaled adaptively to the points left. The client is
-    closed, not exited as a context manager: ``EarlyClient`` opens it in another thread, and
-    ``Client.__exit__`` resets a context variable that only the opening thread may reset.
+    submits worker jobs, scaled adaptively to the tasks left. The client is closed, not exited as a
+    context manager: ``EarlyClient`` opens it in another thread, and ``Client.__exit__`` resets a
+    context variable that only the opening thread may reset.
     """
     table = cluster_table(cluster)
-    kind = table["kind"]
-    if kind in BATCH_SYSTEMS and scheduler:
-        raise ConfigError(f"execution.cluster.kind = {kind!r} starts its own scheduler; leave execution.scheduler "
-                          f"(--scheduler) empty, or use kind 'scheduler' to attach to {scheduler!r}")
-    if kind in BATCH_SYSTEMS:
-        with _batch_client(kind, table, dashboard) as client:
+    kind = cluster_kind(table["kind"])
+    if kind.batch and scheduler:
+        raise ConfigError(f"execution.cluster.kind = {kind.name!r} starts its own scheduler; leave "
+                          f"execution.scheduler (--scheduler) empty, or use kind {SCHEDULER!r} to attach to "
+                          f"{scheduler!r}")
+    if kind.batch:
+        with _batch_client(kind.name, table, dashboard) as client:
             yield client
     elif scheduler:
         with _attached_client(scheduler) as client:
             yield client
-    elif kind == "scheduler":
-        raise ConfigError("execution.cluster.kind = 'scheduler' needs the scheduler's address in execution.scheduler "
-                          "or --scheduler (e.g. tcp://host:8786)")
+    elif kind.name == SCHEDULER:
+        raise ConfigError(f"execution.cluster.kind = {SCHEDULER!r} needs the scheduler's address in "
+                          "execution.scheduler or --scheduler (e.g. tcp://host:8786)")
     else:
         with dask.config.set({**CLUSTER_SETTINGS, **_fault_settings(table)}), LocalCluster(
             n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=":0" if dashboard else None,
@@ -183,13 +129,13 @@ def dask_client(workers: int, scheduler: str = "", dashboard: bool = False,
 
 
 def _fault_settings(table: Mapping[str, Any]) -> dict[str, Any]:
-    """Scheduler settings from the cluster table: a point is tried on at most ``max_tries`` workers that die."""
+    """Scheduler settings from the cluster table: a task is tried on at most ``max_tries`` workers that die."""
     return {"distributed.scheduler.allowed-failures": table["max_tries"] - 1}
 
 
 @contextlib.contextmanager
 def _attached_client(scheduler: str) -> Iterator[Client]:
-    """A client of the running scheduler at ``scheduler`` (its own settings decide retries of lost points)."""
+    """A client of the running scheduler at ``scheduler`` (its own settings decide retries of lost tasks)."""
     try:
         client = Client(scheduler, timeout="10s")
     except (OSError, TimeoutError) as exc:
@@ -212,7 +158,7 @@ def _batch_client(kind: str, table: Mapping[str, Any], dashboard: bool) -> Itera
     jobqueue = jobqueue_module(kind)
     settings = batch_job_settings(kind, table)
     with dask.config.set({**CLUSTER_SETTINGS, **_fault_settings(table)}):
-        batch = getattr(jobqueue, BATCH_SYSTEMS[kind].cluster)(
+        batch = getattr(jobqueue, cluster_kind(kind).jobqueue)(
             **settings, scheduler_options={"dashboard": dashboard, "dashboard_address": ":0"})  # any free port
         with contextlib.closing(batch):
             batch.adapt(minimum_jobs=0, maximum_jobs=table["max_jobs"])
@@ -248,7 +194,7 @@ def batch_job_settings(kind: str, table: Mapping[str, Any]) -> dict[str, Any]:
     scratch directory's ``builds`` (a build cache per node) or, without scratch, this process's cache
     root, which must then be on a filesystem every node shares.
     """
-    system = BATCH_SYSTEMS[kind]
+    system = cluster_kind(kind)
     walltime, retire = table["walltime_min"], table["retire_min"]
     if 1.5 * retire >= walltime:
         raise ConfigError(f"execution.cluster.retire_min = {retire:g} is not allowed: it must stay below "
@@ -275,20 +221,11 @@ def batch_job_settings(kind: str, table: Mapping[str, Any]) -> dict[str, Any]:
             raise ConfigError(f"execution.cluster.{name} = {table[name]!r} is not used by kind {kind!r}; "
                               "leave it empty (use execution.cluster.directives for the job's requirements)")
         settings[keyword] = table[name]
-    if system.clock:
-        settings["walltime"] = _clock(walltime, seconds=system.clock == "hms")
-    if kind == "htcondor":
-        settings["disk"] = settings["memory"]
+    clock = system.walltime(walltime)
+    if clock is not None:
+        settings["walltime"] = clock
+    settings.update({setting: settings[source] for setting, source in system.copies})
     return settings
-
-
-def _clock(minutes: float, seconds: bool) -> str:
-    """``minutes`` as HH:MM:SS, or as HH:MM rounded up to whole minutes."""
-    if not seconds:
-        hours, mins = divmod(math.ceil(minutes), 60)
-        return f"{hours:02d}:{mins:02d}"
-    hours, rest = divmod(round(minutes * 60), 3600)
-    return f"{hours:02d}:{rest // 60:02d}:{rest % 60:02d}"
 
 
 def _worker_environment() -> list[str]:
@@ -314,10 +251,10 @@ class EarlyClient:
     def __init__(self, workers: int, scheduler: str = "", dashboard: bool = False,
                  cluster: Mapping[str, Any] | None = None) -> None:
         self._context = dask_client(workers, scheduler, dashboard, cluster)
-        kind = cluster_table(cluster)["kind"]
-        if kind in BATCH_SYSTEMS:
-            jobqueue_module(kind)
-        self.has_dashboard = dashboard or (bool(scheduler) and kind not in BATCH_SYSTEMS)  # a running one serves one
+        kind = cluster_kind(cluster_table(cluster)["kind"])
+        if kind.batch:
+            jobqueue_module(kind.name)
+        self.has_dashboard = dashboard or (bool(scheduler) and not kind.batch)  # a running one serves one
         self._stack = contextlib.ExitStack()
         self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="capsweep-dask-start")
         self._started: Future[Client] | None = None
@@ -355,24 +292,26 @@ class EarlyClient:
 
 def run_tasks(
     client: Client,
+    task: Callable[..., Any],
     jobs: Iterable[Job],
-    follow_up: Callable[[Any, dict[str, Any] | TaskFailure], Iterable[Job]] = lambda tag, result: (),
-) -> Iterator[tuple[Any, dict[str, Any] | TaskFailure]]:
-    """Submit ``(tag, config, seed, wiring_seed)`` jobs and yield ``(tag, result)`` as each finishes.
+    follow_up: Callable[[Any, Any], Iterable[Job]] = lambda tag, result: (),
+) -> Iterator[tuple[Any, Any]]:
+    """Submit ``task(*args)`` for each ``(tag, args)`` job and yield ``(tag, result)`` as each finishes.
 
     After the caller has taken a result, ``follow_up(tag, result)`` may return more jobs, which
     are submitted at once (an adaptive search decides its next points this way); the iteration
     ends when nothing is left in flight. Tasks carry ``pure=False`` so that repeated submissions
-    are never merged. A point whose worker died is rerun elsewhere by the scheduler (at most
+    are never merged. A task whose worker died is rerun elsewhere by the scheduler (at most
     ``execution.cluster.max_tries`` tries, its ``allowed-failures``); it is yielded once, after the
-    try that finished it. Results come back in completion order.
+    try that finished it, or as a TaskFailure when every try lost its worker. Results come back in
+    completion order.
     """
     futures: dict[Any, Any] = {}  # dask future -> tag
     finished = as_completed()
 
     def submit(batch: Iterable[Job]) -> None:
-        for tag, config, seed, wiring_seed in batch:
-            future = client.submit(simulate_task, config, seed, wiring_seed, pure=False)
+        for tag, args in batch:
+            future = client.submit(task, *args, pure=False)
             futures[future] = tag
             finished.add(future)
 
@@ -392,3 +331,41 @@ def run_tasks(
     finally:
         for future in futures:
             future.cancel()
+
+
+def point_jobs(points: Iterable[Point], engine: str | None = None, prescreen: bool | None = None) -> list[Job]:
+    """The ``simulate_task`` jobs of ``points``: (point, (config, seed, wiring seed)), each config with the
+    command line's ``engine`` and ``prescreen`` over its ``[execution]`` entries when given."""
+    return [(p, (with_execution(p.config, engine=engine, prescreen=prescreen), p.seed, p.wiring_seed)) for p in points]
+
+
+def submission_order(config: dict[str, Any]) -> tuple[str, float]:
+    """Sort key of a point task with config ``config``: its compiled-build key ('' unless standalone), then longest
+    planned run first.
+
+    Grouping by build lets each worker rerun one compiled binary many times before it has to
+    switch; longest-first within a group (Dask hands out tasks in submission order) leaves the
+    short points for the end, so the workers finish close together.
+    """
+    group = build_key(config) if engine(config["execution"]["engine"]).reuses_builds else ""
+    return group, -total_duration_s(config)
+
+
+def submission_sequence(jobs: list[Job]) -> list[Job]:
+    """Point tasks ``(tag, (config, ...))`` in the order to submit them: one point of every compiled build first,
+    then the rest by build.
+
+    Dask hands out tasks in submission order, so with several builds (network sizes) the first
+    tasks go to different workers and each compiles a different build at the same time (the compile
+    lock is per build key) instead of waiting for the one compile of a build its neighbour holds;
+    the remaining points follow grouped by build (:func:`submission_order`). Jobs of engines without
+    builds keep :func:`submission_order` alone.
+    """
+    keyed = sorted(((submission_order(job[1][0]), i) for i, job in enumerate(jobs)))  # each build key hashed once
+    leaders: dict[str, int] = {}
+    for (group, _), i in keyed:
+        if group:
+            leaders.setdefault(group, i)
+    first = sorted(leaders.values(), key=lambda i: -total_duration_s(jobs[i][1][0]))
+    chosen = set(first)
+    return [jobs[i] for i in first] + [jobs[i] for _, i in keyed if i not in chosen]
