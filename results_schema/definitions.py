@@ -14,7 +14,8 @@ Every assembly is tested, so the final test lasts assemblies.count x (cue + gap)
 its cue (count - 1) cue periods, and as many other assemblies' cues with plasticity on, after the first. This \
 exposure is stored (test_position, cue_time_s), not equalised; the order is random per point, so recall against \
 test position measures its effect.
-recall_score[k] (kept for comparison; recall is decided by the recall test below): the overlap of Amit, Gutfreund & Sompolinsky (1985, Phys Rev Lett 55:1530) on rates, \
+recall_score[k] (kept for comparison; recall is decided by the recall test below): the overlap of Amit, \
+Gutfreund & Sompolinsky (1985, Phys Rev Lett 55:1530) on rates, \
 m = sum_i (xi_i - a) r_i / (N a (1 - a) mean rate of members), over the N excitatory cells not cued (U_k and O), \
 with xi membership of A_k, a the fraction of members among them and r_i spike counts in the recall window (the \
 cue period minus its first protocol.cue_skip_s); equal to 1 - mean rate of O / mean rate of U_k. 1 = perfect \
@@ -73,7 +74,8 @@ periods are excluded. NaN if never.
 outcome: runaway if a runaway onset exists; else silent if the E rate over the last smoothing window before \
 recall, or over the background-only tail after it, is below detection.silence_hz; else stable.
 success of a point: status done, outcome stable, recalled_count equal to its assemblies.count (every assembly \
-recalled by the recall test, none already active) and stuck_count 0 (no assembly stuck on). A failed (crashed) point is neither success nor failure: it is left out and counted; a pending one \
+recalled by the recall test, none already active) and stuck_count 0 (no assembly stuck on). A failed (crashed) \
+point is neither success nor failure: it is left out and counted; a pending one \
 leaves its condition undecided.
 capacity (derived at query time): for each condition of the other axes, the largest assemblies.count k such that \
 every count <= k in the grid succeeds in at least a stated fraction (default 0.5) of its done replicates; 0 if \

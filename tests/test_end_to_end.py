@@ -20,6 +20,9 @@ import xarray as xr
 import zarr
 from cli_runs import capsweep, tiny_network
 
+from capsweep.results_schema.dataset import flag_labels
+from capsweep.sweeps.capacity import point_success
+
 pytestmark = pytest.mark.e2e
 
 RULES_SWEEP = """
@@ -53,10 +56,28 @@ workers = 1
 """
 
 
-def write_sweep(tmp_path: Path, template: str, hold_s: float) -> tuple[Path, Path]:
+SHAM_SWEEP = """
+[sweep]
+name = "odour-sham"
+store = "{store}"
+replicates = 1
+base_seed = 3
+[[sweep.axis]]
+name = "cue"
+[sweep.axis.variants]
+cued = {{}}
+sham = {{ "protocol.cue_rate_hz" = 0.0 }}
+[[sweep.axis]]
+name = "n_odours"
+key = "assemblies.count"
+values = [1]
+"""
+
+
+def write_sweep(tmp_path: Path, template: str, hold_s: float, adapt_jump: float = 0.0) -> tuple[Path, Path]:
     store = tmp_path / "odour.zarr"
     sweep = tmp_path / "sweep.toml"
-    sweep.write_text(template.format(store=store) + tiny_network(hold_s))
+    sweep.write_text(template.format(store=store) + tiny_network(hold_s, adapt_jump=adapt_jump))
     return sweep, store
 
 
@@ -210,3 +231,20 @@ def test_unreachable_scheduler_is_named_and_the_new_store_kept(tmp_path: Path) -
     assert proc.returncode == 2, proc.stderr
     assert "tcp://127.0.0.1:9" in proc.stderr and "Traceback" not in proc.stderr
     assert (xr.open_zarr(store)["status"].values == 0).all(), "the laid-out store holds every point as pending"
+
+
+def test_a_sham_cue_is_not_a_success_while_the_same_point_with_its_cue_is(tmp_path: Path) -> None:
+    """The control of the recall test on a real simulation: the demo's network (the tiny network with adaptation)
+    with one prewired odour, once with its cue and once with the cue input off (protocol.cue_rate_hz = 0), everything else equal. Only the cued point
+    recalls its odour and succeeds; without a cue nothing is evoked (the recall test's null of times sees the
+    members' spontaneous activity), so the sham point is not a success, whatever the overlap score says."""
+    sweep, store = write_sweep(tmp_path, SHAM_SWEEP, hold_s=3.0, adapt_jump=0.1)
+    proc = capsweep("run", str(sweep), "--workers", "1")
+    assert proc.returncode == 0, proc.stderr
+    ds = xr.open_zarr(store)
+    success = point_success(ds).sel(n_odours=1).isel(replicate=0)
+    assert success.sel(cue="cued").item() == 1.0 and success.sel(cue="sham").item() == 0.0
+    state = flag_labels(ds["recall_state"]).sel(n_odours=1, assembly=0).isel(replicate=0)
+    assert state.sel(cue="cued").item() == "recalled" and state.sel(cue="sham").item() != "recalled"
+    evoked = ds["evoked_completion_hz"].sel(n_odours=1, assembly=0).isel(replicate=0)
+    assert float(evoked.sel(cue="cued")) > 5.0 > float(evoked.sel(cue="sham"))
