@@ -38,8 +38,10 @@ detection.recall_null_draws draws each, scored with the same statistic in the sa
 the observed set is one the null can draw: an exact permutation test); (times) U_k itself with W and P moved \
 together to uniformly drawn background-only times from hold start to the end of the run (windows overlapping no \
 cue), which holds the members' own spontaneous co-activation and asks that they rise against their own background, \
-not only fall less than other cells. Each p-value is randomised over ties: p = (#{null > e} + u (#{null = e} + 1)) \
-/ (n + 1), with u uniform from a generator seeded by the point's seed and the cue's start; under exchangeability \
+not only fall less than other cells (approximate: it assumes a stationary background and needs about 1 / alpha \
+independent window pairs of it to resolve alpha). Each p-value is randomised over ties: \
+p = (#{null > e} + u (#{null = e} + 1)) / (n + 1), with u uniform from a generator seeded by the point's seed \
+and the cue's start; under exchangeability \
 it is uniform on (0, 1), so p <= alpha has probability alpha even where most counts are zero (randomised \
 permutation p-value [common practice]; the (b + 1) / (m + 1) form: Phipson & Smyth 2010, Stat Appl Genet Mol \
 Biol 9:39). recall_p_cells[k], recall_p_times[k]: the two p-values; recall_p_value[k]: the larger; recall_z[k]: \
