@@ -269,10 +269,10 @@ KEYS: tuple[Key, ...] = (
        "Window of the recall test and the overlap scores: while the cue is on (cued) or right after it (persistent)",
        choices=("cued", "persistent")),
     _k("detection.recall_alpha", 0.01, "1",
-       "Per-test false-positive rate of the recall test: an assembly is recalled when the p-value of its evoked "
-       "completion against pseudo-assemblies is at most this", low=1e-6, high=0.5),
+       "Per-test false-positive rate of the recall test: an assembly is recalled when its evoked completion beats "
+       "both nulls (pseudo-assemblies, background times) at this p-value", low=1e-6, high=0.5),
     _k("detection.recall_null_draws", 1000, "1",
-       "Pseudo-assemblies (random sets of uncued cells) drawn for each recall test's null distribution",
+       "Draws of each of the recall test's two nulls (random sets of uncued cells; background times)",
        low=10, high=1_000_000),
     _k("detection.active_factor", 3.0, "1",
        "A cell is active when its window rate exceeds this multiple of the baseline E rate",

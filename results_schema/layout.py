@@ -64,8 +64,8 @@ VARIABLES: tuple[Variable, ...] = (
     Variable("engine", "1", "Brian2 code generation target used", dtype="int8", flags=ENGINE_NAMES),
     Variable("seed", "1", "random seed of the point (from base_seed and point id)", dtype="int64"),
     Variable("runaway_onset_s", "s", "first time the smoothed E rate stayed above the runaway threshold"),
-    Variable("recalled_count", "1", "assemblies recalled by the final recall test: evoked completion beyond the "
-             "pseudo-assembly null at detection.recall_alpha, not already active", dtype="int32"),
+    Variable("recalled_count", "1", "assemblies recalled by the final recall test: evoked completion beyond both "
+             "nulls at detection.recall_alpha, not already active", dtype="int32"),
     Variable("already_active_count", "1", "assemblies whose members fired above the active threshold just before "
              "their cue in the final recall test", dtype="int32"),
     Variable("stuck_count", "1", "assemblies whose members' smoothed rate stayed above the runaway threshold for "
