@@ -17,3 +17,11 @@ OUTCOMES: tuple[str, ...] = ("stable", "runaway", "silent")
 
 STABLE, RUNAWAY, SILENT = OUTCOMES
 """The outcome labels by name: code compares against these, never against spelled-out strings."""
+
+RECALL_STATES: tuple[str, ...] = ("recalled", "not_recalled", "already_active")
+"""Verdict of an assembly's recall test (see the ``recall_state`` metric definition): evoked completion beyond both
+nulls; not beyond them; or its members already fired above the active threshold before the cue (counted as not
+recalled). An untested assembly keeps the fill value."""
+
+RECALLED, NOT_RECALLED, ALREADY_ACTIVE = RECALL_STATES
+"""The recall-state labels by name."""

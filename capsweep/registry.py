@@ -262,11 +262,18 @@ KEYS: tuple[Key, ...] = (
        "Start of the baseline window, which ends with the settle phase (skips the start-up transient)",
        low=0.0, high=1e5),
     _k("detection.recall_threshold", 0.5, "1",
-       "recall score (overlap normalised by coding level: 1 = perfect completion, 0 = chance) at or above which "
-       "an assembly counts as recalled", low=-1.0, high=1.0),
+       "Overlap recall score (normalised by coding level: 1 = perfect completion, 0 = chance) at or above which an "
+       "assembly counts in overlap_recalled_count, the earlier rule kept for comparison (success uses the recall "
+       "test)", low=-1.0, high=1.0),
     _k("detection.recall_mode", "cued", "1",
-       "Which recall score decides success: scored while the cue is on (cued) or in the window after it (persistent)",
+       "Window of the recall test and the overlap scores: while the cue is on (cued) or right after it (persistent)",
        choices=("cued", "persistent")),
+    _k("detection.recall_alpha", 0.01, "1",
+       "Per-test false-positive rate of the recall test: an assembly is recalled when its evoked completion beats "
+       "both nulls (pseudo-assemblies, background times) at this p-value", low=1e-6, high=0.5),
+    _k("detection.recall_null_draws", 1000, "1",
+       "Draws of each of the recall test's two nulls (random sets of uncued cells; background times)",
+       low=10, high=1_000_000),
     _k("detection.active_factor", 3.0, "1",
        "A cell is active when its window rate exceeds this multiple of the baseline E rate",
        low=1.0, high=1000.0),

@@ -9,8 +9,13 @@ baseline E rate: mean excitatory rate from detection.baseline_start_s to the end
 start-up transient left out).
 recall tests: at each of protocol.retention_delays_s after hold start and once after the hold, every assembly is \
 cued in turn (an order drawn per point) for protocol.cue_duration_s, followed by protocol.cue_gap_s. After the \
-last cue the run goes on with background only for at least detection.runaway_hold_s + detection.smoothing_s.
-recall_score[k]: the overlap of Amit, Gutfreund & Sompolinsky (1985, Phys Rev Lett 55:1530) on rates, \
+last cue the run goes on with background only for at least detection.runaway_hold_s + detection.smoothing_s. \
+Every assembly is tested, so the final test lasts assemblies.count x (cue + gap): the assembly cued last meets \
+its cue (count - 1) cue periods, and as many other assemblies' cues with plasticity on, after the first. This \
+exposure is stored (test_position, cue_time_s), not equalised; the order is random per point, so recall against \
+test position measures its effect.
+recall_score[k] (kept for comparison; recall is decided by the recall test below): the overlap of Amit, \
+Gutfreund & Sompolinsky (1985, Phys Rev Lett 55:1530) on rates, \
 m = sum_i (xi_i - a) r_i / (N a (1 - a) mean rate of members), over the N excitatory cells not cued (U_k and O), \
 with xi membership of A_k, a the fraction of members among them and r_i spike counts in the recall window (the \
 cue period minus its first protocol.cue_skip_s); equal to 1 - mean rate of O / mean rate of U_k. 1 = perfect \
@@ -22,9 +27,43 @@ recall_contrast[k]: mean count of U_k minus mean count of O, in units of the sta
 completion[k]: fraction of U_k active in the recall window; spurious[k]: fraction of O active. A cell is active \
 when its window rate exceeds max(detection.active_factor x baseline E rate, detection.active_floor_hz).
 cross_talk[k]: the largest recall_score of any other assembly j != k over the cells outside A_k while k is cued.
-recalled_count: number of assemblies whose score in detection.recall_mode (cued: recall_score, persistent: \
-persistence_score) in the final recall test is >= detection.recall_threshold.
-retention_recalled[t], retention_score[t]: assemblies recalled, and their mean score, in recall test t; \
+recall test (decides recall, one per assembly and cue): recall window W = the cue period minus its first \
+protocol.cue_skip_s (detection.recall_mode = cued) or the protocol.persistence_window_s after the cue (persistent); \
+pre-cue window P = as long as W, ending at the cue's start, in the background gap after the previous cue (a config \
+where P would reach into a previous cue, an imprint input or before the run is refused). \
+evoked_completion_hz[k] = mean over U_k of (rate in W - rate in P): a difference, not a ratio, because a ratio is \
+undefined for cells silent in P, most of them at a few Hz in a window of 0.18 s. It is compared with two nulls of \
+detection.recall_null_draws draws each, scored with the same statistic in the same way: (cells) pseudo-assemblies, \
+|U_k| cells drawn without replacement from every excitatory cell not cued in this cue (U_k and O together, so that \
+the observed set is one the null can draw: an exact permutation test); (times) U_k itself with W and P moved \
+together to uniformly drawn background-only times from hold start to the end of the run (windows overlapping no \
+cue), which holds the members' own spontaneous co-activation and asks that they rise against their own background, \
+not only fall less than other cells (approximate: it assumes a stationary background and needs about 1 / alpha \
+independent window pairs of it to resolve alpha). Each p-value is randomised over ties: \
+p = (#{null > e} + u (#{null = e} + 1)) / (n + 1), with u uniform from a generator seeded by the point's seed \
+and the cue's start; under exchangeability \
+it is uniform on (0, 1), so p <= alpha has probability alpha even where most counts are zero (randomised \
+permutation p-value [common practice]; the (b + 1) / (m + 1) form: Phipson & Smyth 2010, Stat Appl Genet Mol \
+Biol 9:39). recall_p_cells[k], recall_p_times[k]: the two p-values; recall_p_value[k]: the larger; recall_z[k]: \
+(e - mean of the cells null) / its standard deviation.
+recall_state[k]: already_active when the mean rate of all of A_k in P exceeds the active threshold (see \
+completion) - the assembly was on before its cue, counted as not recalled; else recalled when recall_p_value <= \
+detection.recall_alpha (both nulls beaten: an intersection-union test, per-test false-positive rate at most \
+detection.recall_alpha); else not_recalled; the fill value for an assembly not tested. precue_rate_hz[k]: that \
+mean rate of A_k in P. test_position[k]: the assembly's place in the final test's cue order (0 = first).
+recalled_count: assemblies recalled in the final recall test; already_active_count: assemblies already active \
+in it. Multiplicity: success needs every assembly of a point recalled, and all of them pass by chance at most as \
+often as any one does, so without an effect of the cue a point succeeds with probability at most \
+detection.recall_alpha at every count, with no correction; a rule asking for any one assembly recalled would need \
+one (e.g. alpha / count).
+overlap_recalled_count: assemblies whose overlap score in detection.recall_mode (cued: recall_score, persistent: \
+persistence_score) in the final recall test is >= detection.recall_threshold (the earlier rule, kept for \
+comparison; it counts assemblies that were on before their cue, and members that fell less than the others).
+stuck_onset_s[k]: the runaway onset (below) of the mean rate of A_k's members instead of the population, from \
+hold start to the end of the run, cue periods excluded; NaN if never. stuck_count: assemblies with an onset, \
+flagged even when the population rate stays below the runaway threshold.
+retention_recalled[t], retention_score[t]: assemblies recalled (by the recall test), and their mean overlap \
+score, in recall test t; \
 retention_s[k]: the longest delay after hold start up to which assembly k was recalled in every recall test \
 (0 if not in the first).
 weight_correlation[s]: Pearson correlation over all E->E synapses between the weights at hold snapshot s and at \
@@ -36,8 +75,9 @@ max(detection.runaway_factor x baseline E rate, detection.runaway_floor_hz) for 
 periods are excluded. NaN if never.
 outcome: runaway if a runaway onset exists; else silent if the E rate over the last smoothing window before \
 recall, or over the background-only tail after it, is below detection.silence_hz; else stable.
-success of a point: status done, outcome stable and recalled_count equal to its assemblies.count (every assembly \
-recalled). A failed (crashed) point is neither success nor failure: it is left out and counted; a pending one \
+success of a point: status done, outcome stable, recalled_count equal to its assemblies.count (every assembly \
+recalled by the recall test, none already active) and stuck_count 0 (no assembly stuck on). A failed (crashed) \
+point is neither success nor failure: it is left out and counted; a pending one \
 leaves its condition undecided.
 capacity (derived at query time): for each condition of the other axes, the largest assemblies.count k such that \
 every count <= k in the grid succeeds in at least a stated fraction (default 0.5) of its done replicates; 0 if \

@@ -17,9 +17,9 @@ import numpy as np
 
 from ..axes import Axis
 from ..engines import NAMES as ENGINE_NAMES
-from ..flags import OUTCOMES, STATUSES
+from ..flags import OUTCOMES, RECALL_STATES, STATUSES
 
-SCHEMA_VERSION = "2.1"
+SCHEMA_VERSION = "3.0"
 
 FLAG_FILL = -1
 INNER_DIMS: tuple[str, ...] = ("assembly", "snapshot", "time_bin", "retention")
@@ -64,8 +64,15 @@ VARIABLES: tuple[Variable, ...] = (
     Variable("engine", "1", "Brian2 code generation target used", dtype="int8", flags=ENGINE_NAMES),
     Variable("seed", "1", "random seed of the point (from base_seed and point id)", dtype="int64"),
     Variable("runaway_onset_s", "s", "first time the smoothed E rate stayed above the runaway threshold"),
-    Variable("recalled_count", "1", "assemblies whose recall score (in detection.recall_mode) reaches the recall "
-             "threshold", dtype="int32"),
+    Variable("recalled_count", "1", "assemblies recalled by the final recall test: evoked completion beyond both "
+             "nulls at detection.recall_alpha, not already active", dtype="int32"),
+    Variable("already_active_count", "1", "assemblies whose members fired above the active threshold just before "
+             "their cue in the final recall test", dtype="int32"),
+    Variable("stuck_count", "1", "assemblies whose members' smoothed rate stayed above the runaway threshold for "
+             "detection.runaway_hold_s after hold start (cue periods excluded)", dtype="int32"),
+    Variable("overlap_recalled_count", "1", "assemblies whose overlap score (recall_score or persistence_score, by "
+             "detection.recall_mode) reaches detection.recall_threshold in the final test (the earlier rule, kept "
+             "for comparison)", dtype="int32"),
     Variable("rate_exc_baseline_hz", "Hz", "mean excitatory rate over the baseline window"),
     Variable("rate_inh_baseline_hz", "Hz", "mean inhibitory rate over the baseline window"),
     Variable("isi_cv_exc", "1", "mean ISI coefficient of variation of excitatory cells over the baseline window"),
@@ -85,14 +92,33 @@ VARIABLES: tuple[Variable, ...] = (
     Variable("persistence_score", "1", "recall_score in the window after the cue ends", inner="assembly"),
     Variable("recall_contrast", "1", "uncued members' mean spike count minus non-members', in non-member standard "
              "deviations, during the cue", inner="assembly"),
+    Variable("recall_state", "1", "verdict of the assembly's final recall test", inner="assembly", dtype="int8",
+             flags=RECALL_STATES),
+    Variable("evoked_completion_hz", "Hz", "mean over uncued members of (rate in the recall window - rate in the "
+             "pre-cue window) in the final recall test", inner="assembly"),
+    Variable("recall_p_value", "1", "p-value of the recall test: the larger of recall_p_cells and recall_p_times",
+             inner="assembly"),
+    Variable("recall_p_cells", "1", "randomised p-value of evoked_completion_hz against pseudo-assemblies: as many "
+             "uncued cells drawn at random, same windows", inner="assembly"),
+    Variable("recall_p_times", "1", "randomised p-value of evoked_completion_hz against the same uncued members "
+             "with both windows moved to background-only times after hold start", inner="assembly"),
+    Variable("recall_z", "1", "evoked_completion_hz minus the pseudo-assembly mean, in pseudo-assembly standard "
+             "deviations", inner="assembly"),
+    Variable("precue_rate_hz", "Hz", "mean rate of the assembly's members in the pre-cue window of the final test",
+             inner="assembly"),
+    Variable("stuck_onset_s", "s", "first time the members' smoothed rate stayed above the runaway threshold "
+             "after hold start (NaN if never)", inner="assembly"),
+    Variable("test_position", "1", "the assembly's place in the final test's cue order (0 = cued first)",
+             inner="assembly", dtype="int32"),
     Variable("cue_time_s", "s", "start of the assembly's cue in the final recall test (cue order is drawn per point)",
              inner="assembly"),
     Variable("retention_s", "s", "longest delay after hold start up to which the assembly was recalled in every "
              "recall test (0 if not at the first)", inner="assembly"),
     Variable("retention_delay_s", "s", "delay of each recall test after hold start (the last is the final test)",
              inner="retention"),
-    Variable("retention_recalled", "1", "assemblies recalled in each recall test", inner="retention", dtype="int32"),
-    Variable("retention_score", "1", "mean recall score over assemblies in each recall test (in "
+    Variable("retention_recalled", "1", "assemblies recalled in each recall test (the test of recalled_count)",
+             inner="retention", dtype="int32"),
+    Variable("retention_score", "1", "mean overlap score over assemblies in each recall test (in "
              "detection.recall_mode)", inner="retention"),
     Variable("completion", "1", "fraction of uncued members active in the recall window", inner="assembly"),
     Variable("spurious", "1", "fraction of non-member E cells active in the recall window", inner="assembly"),

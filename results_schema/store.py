@@ -366,20 +366,25 @@ def _stored_variables() -> tuple[str, ...]:
 
 def _encode_value(var: layout.Variable, value: Any, inner_size: int | None) -> Any:
     """Turn one result value into what the variable's array holds (codes for flags, padded rows)."""
-    if var.flags:
-        if value is None:
-            return var.fill
-        if value not in var.flags:
-            raise ValueError(f"{var.name} = {value!r} is not one of {', '.join(var.flags)}")
-        return var.flags.index(value)
+    if var.flags and inner_size is None:
+        return _flag_code(var, value)
     if inner_size is None:
         return _encode_scalar(var, value)
-    row = np.asarray(value, dtype=float).ravel()
+    row = np.array([_flag_code(var, v) for v in value]) if var.flags else np.asarray(value, dtype=float).ravel()
     if row.size > inner_size:
         raise ValueError(f"{var.name} has {row.size} entries but its {var.inner} dim holds {inner_size}")
     padded = np.full(inner_size, var.fill, dtype=var.dtype)
     padded[: row.size] = row
     return padded
+
+
+def _flag_code(var: layout.Variable, label: Any) -> int:
+    """The stored code of one label of a flag variable; None (unset) becomes the fill value."""
+    if label is None:
+        return int(var.fill)
+    if label not in var.flags:
+        raise ValueError(f"{var.name} = {label!r} is not one of {', '.join(var.flags)}")
+    return var.flags.index(label)
 
 
 def _encode_scalar(var: layout.Variable, value: Any) -> Any:

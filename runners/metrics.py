@@ -7,9 +7,11 @@ t = 0; the value of bin ``b`` belongs to time ``(b + 1) * bin_s`` (its end) once
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 
-from ..flags import RUNAWAY, SILENT, STABLE
+from ..flags import ALREADY_ACTIVE, NOT_RECALLED, RECALLED, RUNAWAY, SILENT, STABLE
 
 
 def window_counts(times: np.ndarray, cells: np.ndarray, n_cells: int, t0: float, t1: float) -> np.ndarray:
@@ -175,6 +177,111 @@ def cross_talk(counts: np.ndarray, memberships: np.ndarray, k: int) -> float:
     outside = memberships[k]
     others = [recall_score(counts, memberships[j], outside) for j in range(len(memberships)) if j != k]
     return float(np.nanmax(others)) if others and not np.all(np.isnan(others)) else float("nan")
+
+
+def subset_sums(values: np.ndarray, size: int, draws: int, rng: np.random.Generator) -> np.ndarray:
+    """Sums of ``draws`` random subsets of ``size`` entries of ``values``, each drawn without replacement.
+
+    A subset is the ``size`` smallest of one uniform key per entry (every subset equally likely);
+    keys are drawn in blocks of about 2**20 so memory stays bounded for large networks.
+    """
+    block = max(1, 2**20 // max(len(values), 1))
+    sums = []
+    for start in range(0, draws, block):
+        keys = rng.random((min(block, draws - start), len(values)))
+        sums.append(values[np.argpartition(keys, size - 1, axis=1)[:, :size]].sum(axis=1))
+    return np.concatenate(sums) if sums else np.zeros(0, dtype=values.dtype)
+
+
+def randomised_p(observed: float, null: np.ndarray, u: float) -> float:
+    """Upper-tail Monte Carlo p-value with ties broken at random: ``(b + u (t + 1)) / (n + 1)``.
+
+    ``b`` null values above ``observed``, ``t`` equal to it, ``n`` in all, ``u`` uniform in [0, 1).
+    Under exchangeability of the observed value with the null draws it is uniform on (0, 1), so
+    ``p <= alpha`` has probability exactly alpha however many ties (silent cells) there are.
+    """
+    above = int(np.count_nonzero(null > observed))
+    ties = int(np.count_nonzero(null == observed))
+    return (above + u * (ties + 1)) / (len(null) + 1)
+
+
+def uniform_in_spans(spans: list[tuple[float, float]], draws: int, rng: np.random.Generator) -> np.ndarray:
+    """``draws`` times (s) drawn uniformly from the union of the intervals ``[lo, hi]`` in ``spans``.
+
+    Empty without spans of positive length.
+    """
+    lows = np.array([lo for lo, hi in spans if hi > lo])
+    lengths = np.array([hi - lo for lo, hi in spans if hi > lo])
+    if not len(lengths):
+        return np.zeros(0)
+    position = rng.random(draws) * lengths.sum()
+    ends = np.cumsum(lengths)
+    which = np.minimum(np.searchsorted(ends, position, side="right"), len(ends) - 1)
+    return lows[which] + position - (ends[which] - lengths[which])
+
+
+def shifted_differences(times: np.ndarray, starts: np.ndarray, recall: tuple[float, float],
+                        pre: tuple[float, float]) -> np.ndarray:
+    """Spike count in the recall window minus that in the pre-cue window, for windows placed at each of ``starts``.
+
+    ``times``: sorted spike times (s) of a set of cells, pooled; ``recall``/``pre``: window
+    ``[t0, t1)`` offsets (s) from a cue start. Integer counts, so ties are exact.
+    """
+    def count(lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
+        return np.searchsorted(times, hi, side="left") - np.searchsorted(times, lo, side="left")
+
+    return count(starts + recall[0], starts + recall[1]) - count(starts + pre[0], starts + pre[1])
+
+
+@dataclass(frozen=True)
+class RecallTest:
+    """The recall test of one assembly in one cue (see :func:`recall_test`)."""
+
+    evoked_hz: float  # mean over uncued members of (rate in the recall window - rate in the pre-cue window)
+    p_cells: float  # against pseudo-assemblies of uncued cells; NaN without uncued members or other uncued cells
+    p_times: float  # against the same cells at background times; NaN without background times
+    z: float  # (evoked - pseudo-assembly mean) / pseudo-assembly standard deviation; NaN if those do not vary
+    precue_rate_hz: float  # mean rate of all members in the pre-cue window
+    state: str  # capsweep.flags.RECALL_STATES
+
+    @property
+    def p_value(self) -> float:
+        """The test's p-value: the larger of the two (both nulls must be beaten); NaN if either is NaN."""
+        return float(max(self.p_cells, self.p_times)) if np.isfinite([self.p_cells, self.p_times]).all() \
+            else float("nan")
+
+
+def recall_test(during: np.ndarray, before: np.ndarray, window_s: float, members: np.ndarray, cued: np.ndarray,
+                shifted: np.ndarray, rng: np.random.Generator, active_hz: float, alpha: float) -> RecallTest:
+    """Evoked completion of one assembly against two nulls: other cells, and the same cells at other times.
+
+    ``during``/``before``: spike counts of every E cell in the recall window and in the pre-cue
+    window, both ``window_s`` s long; ``members``/``cued``: boolean masks. The statistic is the
+    sum over uncued members of (count during - count before). Null of cells: ``len(shifted)``
+    sets of as many cells, drawn without replacement from every cell not cued (uncued members
+    and the rest, so that the observed set is one the null can draw: an exact permutation test),
+    scored alike. Null of times: ``shifted``, the same statistic of the same cells with both
+    windows moved to background times (:func:`shifted_differences`). Each gives a randomised
+    p-value (:func:`randomised_p`, ``u`` drawn from ``rng``); recalled when both are at most
+    ``alpha``. Already active when the members' mean rate in the pre-cue window exceeds
+    ``active_hz`` (then never recalled).
+    """
+    diff = np.rint(during - before).astype(np.int64)
+    target, pool = members & ~cued, ~cued
+    size = int(np.count_nonzero(target))
+    precue = float(before[members].mean() / window_s) if members.any() else float("nan")
+    active = bool(precue > active_hz)
+    nan = float("nan")
+    if size == 0 or size == int(np.count_nonzero(pool)) or not len(shifted):
+        return RecallTest(nan, nan, nan, nan, precue, ALREADY_ACTIVE if active else NOT_RECALLED)
+    observed = int(diff[target].sum())
+    null = subset_sums(diff[pool], size, len(shifted), rng)
+    p_cells = randomised_p(observed, null, float(rng.random()))
+    p_times = randomised_p(observed, shifted, float(rng.random()))
+    spread = float(null.std())
+    z = (observed - float(null.mean())) / spread if spread > 0 else nan
+    state = ALREADY_ACTIVE if active else RECALLED if max(p_cells, p_times) <= alpha else NOT_RECALLED
+    return RecallTest(observed / (size * window_s), p_cells, p_times, z, precue, state)
 
 
 def weight_correlation(w: np.ndarray, w0: np.ndarray) -> float:

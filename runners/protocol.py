@@ -133,6 +133,36 @@ def stimulus_table(cfg: dict, sched: Schedule) -> tuple[np.ndarray, int]:
     return table, row
 
 
+def test_windows(cue_start_s: float, cue_stop_s: float, pr: dict, mode: str) -> tuple[tuple[float, float],
+                                                                                 tuple[float, float]]:
+    """Recall window and pre-cue window ``[t0, t1)`` (s) of a cue from ``cue_start_s`` to ``cue_stop_s``.
+
+    Recall window: the cue minus its first ``protocol.cue_skip_s`` (``mode`` "cued"), or the
+    ``protocol.persistence_window_s`` after the cue ("persistent"). Pre-cue window: as long as the
+    recall window and ending at the cue's start (in the background gap after the previous cue).
+    """
+    if mode == "cued":
+        recall = (cue_start_s + pr["cue_skip_s"], cue_stop_s)
+    else:
+        recall = (cue_stop_s, cue_stop_s + pr["persistence_window_s"])
+    return recall, (cue_start_s - (recall[1] - recall[0]), cue_start_s)
+
+
+def background_starts(sched: Schedule, end_s: float, recall: tuple[float, float],
+                      pre: tuple[float, float]) -> list[tuple[float, float]]:
+    """Intervals ``[lo, hi]`` (s) of virtual cue starts whose windows lie in background-only time.
+
+    ``recall``/``pre`` are the windows' offsets (s) from a cue start (see :func:`test_windows`);
+    background-only time runs from hold start to ``end_s`` and overlaps no cue of any recall test.
+    """
+    spans, start = [], sched.seconds(sched.imprint_end)
+    for a, b in sorted((sched.seconds(a), sched.seconds(b)) for _, a, b in sched.all_cues):
+        spans.append((start - pre[0], a - recall[1]))
+        start = max(start, b)
+    spans.append((start - pre[0], end_s - recall[1]))
+    return [(lo, hi) for lo, hi in spans if hi > lo]
+
+
 def cue_bins(sched: Schedule, bin_s: float, n_bins: int) -> np.ndarray:
     """Boolean mask of the rate-trace bins (width ``bin_s`` s) that overlap any cue window."""
     mask = np.zeros(n_bins, dtype=bool)

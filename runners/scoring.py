@@ -13,6 +13,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from ..flags import ALREADY_ACTIVE, RECALLED
 from . import metrics, protocol
 
 if TYPE_CHECKING:
@@ -32,11 +33,25 @@ class Recording:
     setup_s: float = 0.0  # wall s before the first simulated step (building, compiling); see layout's setup_time_s
 
 
-def onset_in_schedule(rate: np.ndarray, baseline: float, det: dict, sched: protocol.Schedule, bin_s: float) -> float:
-    """Runaway onset (s) of an E rate trace (Hz, bins of ``bin_s`` s) under the point's detection settings."""
+def onset_in_schedule(rate: np.ndarray, baseline: float, det: dict, sched: protocol.Schedule, bin_s: float,
+                      start_s: float | None = None) -> float:
+    """Runaway onset (s) of a rate trace (Hz, bins of ``bin_s`` s) under the point's detection settings, from
+    ``start_s`` (default: the end of settle). The one definition for the E population and each assembly's members."""
     threshold = metrics.runaway_threshold(det, baseline)
+    start = sched.seconds(sched.settle_end) if start_s is None else start_s
     return metrics.runaway_onset(rate, bin_s, det["smoothing_s"], threshold, det["runaway_hold_s"],
-                                 protocol.cue_bins(sched, bin_s, len(rate)), sched.seconds(sched.settle_end))
+                                 protocol.cue_bins(sched, bin_s, len(rate)), start)
+
+
+def stuck_onsets(det: dict, h: Handles, times: np.ndarray, cells: np.ndarray, baseline: float,
+                 sim_time_s: float) -> np.ndarray:
+    """Per assembly: runaway onset (s) of its members' rate from hold start (imprint inputs left out), NaN if never."""
+    bin_s, sched = det["trace_bin_ms"] * 1e-3, h.schedule
+    onsets = np.full(len(h.memberships), np.nan)
+    for k, members in enumerate(h.memberships):
+        rate = metrics.binned_rate(times[members[cells]], int(members.sum()), bin_s, sim_time_s)
+        onsets[k] = onset_in_schedule(rate, baseline, det, sched, bin_s, sched.seconds(sched.imprint_end))
+    return onsets
 
 
 def baseline_rate(times: np.ndarray, n_exc: int, sched: protocol.Schedule) -> float:
@@ -45,13 +60,14 @@ def baseline_rate(times: np.ndarray, n_exc: int, sched: protocol.Schedule) -> fl
 
 
 PER_ASSEMBLY = ("recall_quality", "persistence", "recall_score", "persistence_score", "recall_contrast",
-                "completion", "spurious", "cross_talk", "cue_time_s")
-"""Result variables with one entry per assembly (NaN where the run ended before that assembly's cue)."""
+                "completion", "spurious", "cross_talk", "cue_time_s", "evoked_completion_hz", "recall_p_value",
+                "recall_p_cells", "recall_p_times", "recall_z", "precue_rate_hz")
+"""Float result variables with one entry per assembly (NaN where the run ended before that assembly's cue)."""
 
 
 def _cue_scores(cfg: dict, h: Handles, times: np.ndarray, cells: np.ndarray, cue: tuple[int, int, int],
                 active_hz: float) -> dict[str, float]:
-    """Every per-assembly metric of one cue ``(assembly, start step, stop step)``."""
+    """The overlap-based scores of one cue ``(assembly, start step, stop step)``."""
     pr, sched = cfg["protocol"], h.schedule
     k, a, b = cue
     t0, t1 = sched.seconds(a) + pr["cue_skip_s"], sched.seconds(b)
@@ -72,52 +88,90 @@ def _cue_scores(cfg: dict, h: Handles, times: np.ndarray, cells: np.ndarray, cue
     }
 
 
+def _cue_test(cfg: dict, h: Handles, times: np.ndarray, cells: np.ndarray, cue: tuple[int, int, int],
+              active_hz: float, seed: int, end_s: float) -> metrics.RecallTest:
+    """The recall test of one cue in the windows of ``detection.recall_mode``; its background times are those up
+    to ``end_s`` (s). Its nulls are drawn from a generator seeded by the point's seed and the cue's start step,
+    so every test is reproducible on its own."""
+    det, sched = cfg["detection"], h.schedule
+    k, a, b = cue
+    recall, pre = protocol.test_windows(0.0, sched.seconds(b - a), cfg["protocol"], det["recall_mode"])
+    start = sched.seconds(a)
+    n_exc = len(h.exc)
+    during = metrics.window_counts(times, cells, n_exc, start + recall[0], start + recall[1])
+    before = metrics.window_counts(times, cells, n_exc, start + pre[0], start + pre[1])
+    rng = np.random.default_rng([seed, 3, a])
+    starts = metrics.uniform_in_spans(protocol.background_starts(sched, end_s, recall, pre),
+                                      det["recall_null_draws"], rng)
+    uncued = h.memberships[k] & ~h.cued[k]
+    shifted = metrics.shifted_differences(np.sort(times[uncued[cells]]), starts, recall, pre)
+    return metrics.recall_test(during, before, recall[1] - recall[0], h.memberships[k], h.cued[k], shifted, rng,
+                               active_hz, det["recall_alpha"])
+
+
 def recall_metrics(cfg: dict, h: Handles, times: np.ndarray, cells: np.ndarray, baseline: float,
-                   recalled: bool) -> dict[str, np.ndarray]:
-    """Per-assembly scores of the final recall test (see the metric definitions); NaN unless ``recalled``."""
+                   reached: bool, seed: int, end_s: float) -> dict[str, object]:
+    """Per-assembly scores and recall test of the final recall test (see the metric definitions); ``end_s``: the
+    end of the simulated run (s). NaN (states None, positions -1) unless ``reached``.
+    """
     count = len(h.memberships)
-    out = {n: np.full(count, np.nan) for n in PER_ASSEMBLY}
-    if not recalled:
-        return out
-    active = metrics.active_threshold(cfg["detection"], baseline)
-    for cue in h.schedule.cue_windows:
-        for name, value in _cue_scores(cfg, h, times, cells, cue, active).items():
-            out[name][cue[0]] = value
-    return out
+    out: dict[str, object] = {n: np.full(count, np.nan) for n in PER_ASSEMBLY}
+    states: list[str | None] = [None] * count
+    position = np.full(count, -1)
+    if reached:
+        active = metrics.active_threshold(cfg["detection"], baseline)
+        for slot, cue in enumerate(h.schedule.cue_windows):
+            k = cue[0]
+            test = _cue_test(cfg, h, times, cells, cue, active, seed, end_s)
+            values = {**_cue_scores(cfg, h, times, cells, cue, active), "evoked_completion_hz": test.evoked_hz,
+                      "recall_p_value": test.p_value, "recall_p_cells": test.p_cells, "recall_p_times": test.p_times,
+                      "recall_z": test.z, "precue_rate_hz": test.precue_rate_hz}
+            for name, value in values.items():
+                out[name][k] = value  # type: ignore[index]
+            states[k], position[k] = test.state, slot
+    return {**out, "recall_state": states, "test_position": position}
 
 
 def success_score(det: dict) -> str:
-    """Name of the per-assembly score that decides recall in ``detection.recall_mode``."""
+    """Name of the overlap score of ``detection.recall_mode`` (cued: recall_score; persistent: persistence_score)."""
     return "recall_score" if det["recall_mode"] == "cued" else "persistence_score"
 
 
-def recalled_count(recall: dict[str, np.ndarray], det: dict) -> int:
-    """Assemblies whose score in ``detection.recall_mode`` reaches ``detection.recall_threshold``."""
-    return int(np.sum(recall[success_score(det)] >= det["recall_threshold"]))
+def recall_counts(recall: dict[str, object], det: dict) -> dict[str, int]:
+    """Final-test counts: recalled and already active (recall test), and recalled by the overlap score's threshold."""
+    states = list(recall["recall_state"])  # type: ignore[call-overload]
+    score = np.asarray(recall[success_score(det)])
+    return {"recalled_count": states.count(RECALLED), "already_active_count": states.count(ALREADY_ACTIVE),
+            "overlap_recalled_count": int(np.sum(score >= det["recall_threshold"]))}
 
 
-def retention_metrics(cfg: dict, h: Handles, times: np.ndarray, cells: np.ndarray, final: dict[str, np.ndarray],
-                      sim_time_s: float) -> dict[str, np.ndarray]:
-    """Recall against time: scores of every recall test (those during the hold, then the final one).
+def retention_metrics(cfg: dict, h: Handles, times: np.ndarray, cells: np.ndarray, final: dict[str, object],
+                      sim_time_s: float, baseline: float, seed: int) -> dict[str, np.ndarray]:
+    """Recall against time: every recall test (those during the hold, then the final one).
 
     A test counts as reached when the run lasted past its last cue's persistence window (the
-    final one when ``final`` holds scores). ``retention_s`` per assembly: the longest delay after
-    hold start up to which the assembly was recalled in every reached test (0 if not at the
-    first, NaN if no test was reached).
+    final one when ``final`` holds states). Recall is the recall test's (``recall_state``); the
+    mean score is the overlap score of ``detection.recall_mode``. ``retention_s`` per assembly:
+    the longest delay after hold start up to which the assembly was recalled in every reached
+    test (0 if not at the first, NaN if no test was reached).
     """
     det, sched, pr = cfg["detection"], h.schedule, cfg["protocol"]
     count, score = len(h.memberships), success_score(det)
     delays = np.array([*pr["retention_delays_s"], sched.seconds(sched.hold_end - sched.imprint_end)])
     scores = np.full((len(delays), count), np.nan)
+    recalled = np.zeros((len(delays), count), dtype=bool)
     reached = np.zeros(len(delays), dtype=bool)
+    active = metrics.active_threshold(det, baseline)
     for j in range(len(delays) - 1):
         cues = sched.retention_windows[j * count:(j + 1) * count]
         reached[j] = bool(cues) and sched.seconds(cues[-1][2]) + pr["persistence_window_s"] <= sim_time_s
         for cue in cues if reached[j] else ():
-            scores[j, cue[0]] = _cue_scores(cfg, h, times, cells, cue, float("nan"))[score]
-    reached[-1] = count > 0 and not np.all(np.isnan(final["cue_time_s"]))
-    scores[-1] = final[score]
-    recalled = scores >= det["recall_threshold"]
+            scores[j, cue[0]] = _cue_scores(cfg, h, times, cells, cue, active)[score]
+            recalled[j, cue[0]] = _cue_test(cfg, h, times, cells, cue, active, seed, sim_time_s).state == RECALLED
+    states = list(final["recall_state"])  # type: ignore[call-overload]
+    reached[-1] = count > 0 and any(s is not None for s in states)
+    scores[-1] = np.asarray(final[score])
+    recalled[-1] = [s == RECALLED for s in states]
     leading = np.cumprod(recalled[reached], axis=0).sum(axis=0)  # tests recalled in a row from the first
     retention = np.where(leading > 0, delays[reached][np.maximum(leading - 1, 0)], 0.0) if reached.any() \
         else np.full(count, np.nan)
@@ -159,15 +213,18 @@ def score(cfg: dict, seed: int, engine: str, h: Handles, rec: Recording, start: 
     end = sched.seconds(sched.end)
     tail_rate = metrics.mean_rate(t_e, n_exc, sched.seconds(protocol.recall_end(sched)), end) \
         if sim_time >= end - 0.5 * sched.dt_s else float("nan")
-    recall = recall_metrics(cfg, h, t_e, i_e, baseline, np.isfinite(tail_rate))
-    retention = retention_metrics(cfg, h, t_e, i_e, recall, sim_time)
+    recall = recall_metrics(cfg, h, t_e, i_e, baseline, bool(np.isfinite(tail_rate)), seed, sim_time)
+    retention = retention_metrics(cfg, h, t_e, i_e, recall, sim_time, baseline, seed)
+    stuck = stuck_onsets(det, h, t_e, i_e, baseline, sim_time)
     learned = cfg["assemblies"]["imprint"] == "learned" and "imprint" in weights
     return {
         "outcome": metrics.outcome(onset, hold_end_rate, tail_rate, det["silence_hz"]),
         "engine": engine,
         "seed": int(seed),
         "runaway_onset_s": onset,
-        "recalled_count": recalled_count(recall, det),
+        **recall_counts(recall, det),
+        "stuck_count": int(np.isfinite(stuck).sum()),
+        "stuck_onset_s": stuck,
         "rate_exc_baseline_hz": baseline,
         "rate_inh_baseline_hz": metrics.mean_rate(t_i, len(h.inh), sched.seconds(sched.baseline_start), settle_end),
         "isi_cv_exc": metrics.isi_cv(t_e, i_e, sched.seconds(sched.baseline_start), settle_end),

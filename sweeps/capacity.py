@@ -3,9 +3,10 @@
 Definitions (the same words are stored in every store's attrs, see
 ``capsweep.results_schema.definitions``):
 
-- A point *succeeds* when it is done, its outcome is stable and every one of its assemblies was
-  recalled (``recalled_count == assemblies.count``; recall is decided by the coding-level
-  normalised recall score). A failed (crashed) point is neither success nor failure: it is left
+- A point *succeeds* when it is done, its outcome is stable, every one of its assemblies was
+  recalled (``recalled_count == assemblies.count``; recall is decided by the recall test against
+  pseudo-assemblies, ``capsweep.runners.metrics.recall_test``) and none is stuck on
+  (``stuck_count == 0``). A failed (crashed) point is neither success nor failure: it is left
   out and counted. A pending point leaves its condition undecided.
 - Per condition (one combination of the axes other than the count axis) and count: the success
   fraction over the done replicates, with a 95 % Wilson score interval (Wilson 1927, J Am Stat
@@ -48,7 +49,7 @@ CONFIDENCE = 0.95
 def point_success(ds: xr.Dataset) -> xr.DataArray:
     """Per point: 1.0 success, 0.0 failure, NaN undecided (pending, crashed or unneeded); see the module docstring."""
     status, outcome = labelled(ds, "status"), labelled(ds, "outcome")
-    ok = succeeds(outcome, ds["recalled_count"], _count_values(ds))
+    ok = succeeds(outcome, ds["recalled_count"], ds["stuck_count"], _count_values(ds))
     return xr.where(status == DONE, ok.astype(float), np.nan)
 
 

@@ -13,6 +13,7 @@ from typing import Any
 from ..axes import REPLICATE
 from ..errors import ConfigError
 from ..registry import inhibitory_count, nest, resolve_derived
+from ..runners.protocol import test_windows
 from .identity import Point, grid_shape, point_id, point_seed
 from .sweepfile import Sweep
 
@@ -68,7 +69,49 @@ _RULES: tuple[tuple[Callable[[dict[str, Any]], bool], str], ...] = (
     (lambda f: f["protocol.cue_skip_s"] < f["protocol.cue_duration_s"],
      "protocol.cue_skip_s ({protocol.cue_skip_s}) must be shorter than protocol.cue_duration_s "
      "({protocol.cue_duration_s})"),
+    (lambda f: _recall_window_s(f) <= f["protocol.cue_gap_s"] + 1e-9,
+     "the recall window (protocol.cue_duration_s - protocol.cue_skip_s, or protocol.persistence_window_s with "
+     "detection.recall_mode = 'persistent') must not be longer than protocol.cue_gap_s ({protocol.cue_gap_s}): "
+     "the pre-cue window of equal length must lie in the background gap after the previous cue"),
+    (lambda f: _first_test_start_s(f) >= _recall_window_s(f) - 1e-9,
+     "the first recall test (at the first of protocol.retention_delays_s {protocol.retention_delays_s}, else after "
+     "protocol.hold_s {protocol.hold_s}) starts too soon: its pre-cue window, as long as the recall window, must "
+     "lie after the start of the run and after the last imprint input (protocol.settle_s, or protocol.imprint_off_s "
+     "for learned assemblies, counts before hold start)"),
+    (lambda f: max(f["protocol.cue_gap_s"], f["detection.runaway_hold_s"] + f["detection.smoothing_s"])
+     >= _window_pair_s(f) - 1e-9,
+     "the background after the last cue (the larger of protocol.cue_gap_s ({protocol.cue_gap_s}) and "
+     "detection.runaway_hold_s + detection.smoothing_s) must hold the recall test's pre-cue and recall windows "
+     "once, for its null of background times"),
+    (lambda f: f["detection.recall_alpha"] * (f["detection.recall_null_draws"] + 1) >= 1 - 1e-9,
+     "detection.recall_null_draws ({detection.recall_null_draws}) must be at least 1 / detection.recall_alpha - 1 "
+     "({detection.recall_alpha}): with fewer pseudo-assemblies no assembly can reach that p-value for certain"),
 )
+
+
+def _windows(flat: dict[str, Any]) -> tuple[tuple[float, float], tuple[float, float]]:
+    """This config's recall and pre-cue windows, as offsets (s) from a cue's start."""
+    pr = nest(flat)["protocol"]
+    return test_windows(0.0, pr["cue_duration_s"], pr, flat["detection.recall_mode"])
+
+
+def _recall_window_s(flat: dict[str, Any]) -> float:
+    """Length (s) of the recall window, and so of the pre-cue window, of this config's recall test."""
+    (t0, t1), _ = _windows(flat)
+    return t1 - t0
+
+
+def _window_pair_s(flat: dict[str, Any]) -> float:
+    """Time (s) from a pre-cue window's start to its recall window's end."""
+    (_, t1), (p0, _) = _windows(flat)
+    return t1 - p0
+
+
+def _first_test_start_s(flat: dict[str, Any]) -> float:
+    """Background time (s) before the first recall test's first cue: from the last imprint input (learned) or the
+    start of the run (prewired) to the test."""
+    lead = flat["protocol.imprint_off_s"] if flat["assemblies.imprint"] == "learned" else flat["protocol.settle_s"]
+    return lead + min([*flat["protocol.retention_delays_s"], flat["protocol.hold_s"]])
 
 
 def _retention_tests_fit(flat: dict[str, Any]) -> bool:

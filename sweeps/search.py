@@ -107,7 +107,7 @@ class SearchRun:
         """A point finished with ``result`` (its store values; None when it failed); returns its condition."""
         count = point.config["assemblies"]["count"]
         return self.record(point, None if result is None else
-                           bool(succeeds(result["outcome"], result["recalled_count"], count)))
+                           bool(succeeds(result["outcome"], result["recalled_count"], result["stuck_count"], count)))
 
     def advance(self, keys: Iterable[tuple[int, ...]] | None = None) -> tuple[list[Point], list[Point]]:
         """For the conditions ``keys`` (default: all), the points to submit now and the points newly unneeded.
@@ -151,8 +151,9 @@ class SearchRun:
 
 
 def plan_search(points: list[Point], count_pos: int, starts: dict[tuple[int, ...], int], method: str,
-                status: np.ndarray, outcome: np.ndarray, recalled: np.ndarray, retry_failed: bool) -> SearchRun:
-    """A SearchRun over ``points`` with the verdicts already stored (status/outcome/recalled_count codes).
+                status: np.ndarray, outcome: np.ndarray, recalled: np.ndarray, stuck: np.ndarray,
+                retry_failed: bool) -> SearchRun:
+    """A SearchRun over ``points`` with the verdicts already stored (status/outcome/recalled_count/stuck_count codes).
 
     ``starts`` maps each condition key to its start index; ``method`` is "scan" or "bisect". Failed points count
     as crashed verdicts unless ``retry_failed``; unneeded points as not yet run.
@@ -166,7 +167,8 @@ def plan_search(points: list[Point], count_pos: int, starts: dict[tuple[int, ...
         label = STATUSES[int(status[point.index])]
         if label == DONE:
             count = point.config["assemblies"]["count"]
-            run.record(point, bool(succeeds(OUTCOMES[int(outcome[point.index])], int(recalled[point.index]), count)))
+            run.record(point, bool(succeeds(OUTCOMES[int(outcome[point.index])], int(recalled[point.index]),
+                                            int(stuck[point.index]), count)))
         elif label == FAILED and not retry_failed:
             run.record(point, None)
         elif label == UNNEEDED:

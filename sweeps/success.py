@@ -18,9 +18,10 @@ MIN_FRACTION = 0.5
 """Default fraction of replicates in which a count must succeed to pass (count towards capacity)."""
 
 
-def succeeds(outcome: Any, recalled_count: Any, count: Any) -> Any:
-    """Whether a done point succeeds: outcome stable and every assembly recalled (scalars or arrays alike)."""
-    return (outcome == STABLE) & (recalled_count == count)
+def succeeds(outcome: Any, recalled_count: Any, stuck_count: Any, count: Any) -> Any:
+    """Whether a done point succeeds (scalars or arrays alike): outcome stable, every assembly recalled by the
+    recall test (``recalled_count``, which leaves out already active ones) and no assembly stuck on."""
+    return (outcome == STABLE) & (recalled_count == count) & (stuck_count == 0)
 
 
 def count_passes(successes: int, done: int, min_fraction: float = MIN_FRACTION) -> bool | None:

@@ -6,11 +6,13 @@ import subprocess
 import sys
 
 
-def tiny_network(hold_s: float = 3.0, size: int = 60) -> str:
-    """Sweep-file tables of the tests' tiny network: 300 E cells, prewired assemblies, settle 1 s, hold ``hold_s``."""
+def tiny_network(hold_s: float = 3.0, size: int = 60, adapt_jump: float = 0.0) -> str:
+    """Sweep-file tables of the tests' tiny network: 300 E cells, prewired assemblies, settle 1 s, hold ``hold_s``;
+    ``adapt_jump`` 0.1 makes it the demo's network (configs/demo.toml), whose recall is cue-evoked."""
     return f"""
 [network]
 n_exc = 300
+adapt_jump = {adapt_jump}
 [assemblies]
 size = {size}
 [plasticity.triplet]

@@ -20,6 +20,9 @@ import xarray as xr
 import zarr
 from cli_runs import capsweep, tiny_network
 
+from capsweep.results_schema.dataset import flag_labels
+from capsweep.sweeps.capacity import point_success
+
 pytestmark = pytest.mark.e2e
 
 RULES_SWEEP = """
@@ -53,10 +56,28 @@ workers = 1
 """
 
 
-def write_sweep(tmp_path: Path, template: str, hold_s: float) -> tuple[Path, Path]:
+SHAM_SWEEP = """
+[sweep]
+name = "odour-sham"
+store = "{store}"
+replicates = 1
+base_seed = 3
+[[sweep.axis]]
+name = "cue"
+[sweep.axis.variants]
+cued = {{}}
+sham = {{ "protocol.cue_rate_hz" = 0.0 }}
+[[sweep.axis]]
+name = "n_odours"
+key = "assemblies.count"
+values = [1]
+"""
+
+
+def write_sweep(tmp_path: Path, template: str, hold_s: float, adapt_jump: float = 0.0) -> tuple[Path, Path]:
     store = tmp_path / "odour.zarr"
     sweep = tmp_path / "sweep.toml"
-    sweep.write_text(template.format(store=store) + tiny_network(hold_s))
+    sweep.write_text(template.format(store=store) + tiny_network(hold_s, adapt_jump=adapt_jump))
     return sweep, store
 
 
@@ -88,7 +109,7 @@ def test_triplet_alone_runs_away_and_full_rule_recalls(rules_store) -> None:
     transmitter-induced terms plus inhibitory STDP keep them stable and recallable
     (Zenke, Agnes & Gerstner 2015, Nat Commun 6:6922) [common practice in the field]."""
     _, store, _ = rules_store
-    ds = xr.open_zarr(store)
+    ds = xr.open_zarr(store).load()
     outcome = ds["outcome"].values
     runaway, stable = 1, 0
     assert (outcome[1] == runaway).all(), "triplet_only points run away"
@@ -98,7 +119,14 @@ def test_triplet_alone_runs_away_and_full_rule_recalls(rules_store) -> None:
     for count in (1, 3):
         quality = full["recall_quality"].sel(n_assemblies=count).values[0, :count]
         assert (quality >= 0.5).all(), quality
-        assert int(full["recalled_count"].sel(n_assemblies=count).values[0]) == count
+    # three odours: each cue evokes completion beyond both nulls
+    assert int(full["recalled_count"].sel(n_assemblies=3).values[0]) == 3
+    # one odour in this network without adaptation: the lone assembly turns itself on during the hold and is on
+    # before its cue, which the overlap score still counts as recalled and the recall test does not
+    one = full.sel(n_assemblies=1).isel(replicate=0, assembly=0)
+    assert flag_labels(one["recall_state"]).item() == "already_active"
+    assert int(one["overlap_recalled_count"]) == 1 and int(one["recalled_count"]) == 0
+    assert int(one["stuck_count"]) == 1 and float(one["stuck_onset_s"]) < 8.0  # before the final test (hold end 8 s)
     # aborted runaway points simulated less than the full-rule points
     assert (ds["simulated_time_s"].values[1] < ds["simulated_time_s"].values[0]).all()
 
@@ -210,3 +238,20 @@ def test_unreachable_scheduler_is_named_and_the_new_store_kept(tmp_path: Path) -
     assert proc.returncode == 2, proc.stderr
     assert "tcp://127.0.0.1:9" in proc.stderr and "Traceback" not in proc.stderr
     assert (xr.open_zarr(store)["status"].values == 0).all(), "the laid-out store holds every point as pending"
+
+
+def test_a_sham_cue_is_not_a_success_while_the_same_point_with_its_cue_is(tmp_path: Path) -> None:
+    """The control of the recall test on a real simulation: the demo's network (the tiny network with adaptation)
+    with one prewired odour, once with its cue and once with the cue input off (protocol.cue_rate_hz = 0), everything else equal. Only the cued point
+    recalls its odour and succeeds; without a cue nothing is evoked (the recall test's null of times sees the
+    members' spontaneous activity), so the sham point is not a success, whatever the overlap score says."""
+    sweep, store = write_sweep(tmp_path, SHAM_SWEEP, hold_s=7.0, adapt_jump=0.1)
+    proc = capsweep("run", str(sweep), "--workers", "1")
+    assert proc.returncode == 0, proc.stderr
+    ds = xr.open_zarr(store).load()
+    success = point_success(ds).sel(n_odours=1).isel(replicate=0)
+    assert success.sel(cue="cued").item() == 1.0 and success.sel(cue="sham").item() == 0.0
+    state = flag_labels(ds["recall_state"]).sel(n_odours=1, assembly=0).isel(replicate=0)
+    assert state.sel(cue="cued").item() == "recalled" and state.sel(cue="sham").item() != "recalled"
+    evoked = ds["evoked_completion_hz"].sel(n_odours=1, assembly=0).isel(replicate=0)
+    assert float(evoked.sel(cue="cued")) > 5.0 > float(evoked.sel(cue="sham"))

@@ -37,7 +37,7 @@ def invented_result(number: int) -> dict:
         if var.name == "seed":
             continue
         value = var.flags[0] if var.flags else number if var.dtype.startswith("int") else number / 10
-        result[var.name] = value if var.inner is None or var.flags else np.full(1, value)
+        result[var.name] = value if var.inner is None else [value] if var.flags else np.full(1, value)
     return result
 
 

@@ -86,7 +86,9 @@ def invented(count: int, outcome: str, recalled: int, predicted: str, seed: int,
     stopped = STOPPED_S if outcome == "runaway" else np.nan
     out.update({
         "outcome": outcome, "predicted_outcome": predicted, "engine": "cython", "seed": seed,
-        "recalled_count": recalled, "n_synapses": 1000, "retention_recalled": [recalled], "recall_score": score,
+        "recalled_count": recalled, "overlap_recalled_count": recalled, "already_active_count": 0, "stuck_count": 0,
+        "recall_state": ["recalled"] * recalled + ["not_recalled"] * (count - recalled),
+        "test_position": np.arange(count), "n_synapses": 1000, "retention_recalled": [recalled], "recall_score": score,
         "simulated_time_s": stopped if outcome == "runaway" else 20.0,
         "weight_correlation": np.array([1.0, 0.9, 0.8]), "snapshot_time_s": np.array([1.0, 2.0, 3.0]),
         "rate_exc_hz": np.full(n_bins, 3.0), "cue_time_s": np.full(count, cue_time_s),

@@ -79,13 +79,18 @@ def test_retention_scores_each_recall_test_and_the_last_delay_recalled_in_a_row(
                 times += list(np.linspace(sched.seconds(a) + 0.03, sched.seconds(b) - 1e-3, 20))
                 cells += [cell] * 20
     times_a, cells_a = np.array(times), np.array(cells)
-    final = recall_metrics(cfg, handles, times_a, cells_a, 3.0, True)  # type: ignore[arg-type]
-    out = retention_metrics(cfg, handles, times_a, cells_a, final, sched.seconds(sched.end))  # type: ignore[arg-type]
+    # seed 1: where nothing fires (assembly 1 after the first test) every pseudo-assembly ties with it and the
+    # randomised p-value is uniform; with this seed it is above alpha in both tests, as it is 99 % of the time
+    final = recall_metrics(cfg, handles, times_a, cells_a, 3.0, True, 1, sched.seconds(sched.end))  # type: ignore[arg-type]
+    assert final["recall_state"] == ["recalled", "not_recalled"]
+    out = retention_metrics(cfg, handles, times_a, cells_a, final, sched.seconds(sched.end), 3.0,
+                            1)  # type: ignore[arg-type]
     np.testing.assert_allclose(out["retention_delay_s"], [1.0, 3.0, 6.0])
     np.testing.assert_array_equal(out["retention_recalled"], [2, 1, 1])
     np.testing.assert_allclose(out["retention_s"], [6.0, 1.0])
     # a run that stopped (runaway) before the second test: only the first test was reached
-    cut = retention_metrics(cfg, handles, times_a, cells_a, {k: v * np.nan for k, v in final.items()},
-                            sched.seconds(sched.retention_windows[1][2]) + 0.2)  # type: ignore[arg-type]
+    unreached = recall_metrics(cfg, handles, times_a, cells_a, 3.0, False, 1, 0.0)  # type: ignore[arg-type]
+    cut = retention_metrics(cfg, handles, times_a, cells_a, unreached, sched.seconds(sched.retention_windows[1][2])
+                            + 0.2, 3.0, 1)  # type: ignore[arg-type]
     np.testing.assert_array_equal(cut["retention_recalled"], [2, -1, -1])
     np.testing.assert_allclose(cut["retention_s"], [1.0, 1.0])

@@ -80,6 +80,12 @@ def point_result(n_assemblies: int, recalled: int) -> dict:
         "cue_time_s": 8.0 + 0.7 * np.arange(n_assemblies), "retention_s": np.full(n_assemblies, 7.0),
         "retention_delay_s": [7.0], "retention_recalled": [recalled], "retention_score": [0.8],
         "weight_in": [0.05, 0.06], "weight_out": [0.05, 0.04], "weight_within": [0.25, 0.27],
+        "overlap_recalled_count": recalled, "already_active_count": 1, "stuck_count": 0,
+        "recall_state": ["already_active"] + ["recalled"] * (n_assemblies - 1),
+        "evoked_completion_hz": np.full(n_assemblies, 12.5), "recall_p_value": np.full(n_assemblies, 0.002),
+        "recall_p_cells": np.full(n_assemblies, 0.001), "recall_p_times": np.full(n_assemblies, 0.002),
+        "recall_z": np.full(n_assemblies, 4.2), "precue_rate_hz": np.full(n_assemblies, 2.5),
+        "stuck_onset_s": np.full(n_assemblies, np.nan), "test_position": np.arange(n_assemblies)[::-1],
     }
 
 
@@ -153,6 +159,9 @@ def test_write_point_reads_back_padded(tmp_path):
     assert float(point.runaway_onset_s) == 7.5 and int(point.recalled_count) == 2
     assert int(point.n_synapses) == 80000 and np.isnan(point.imprint_contrast)
     np.testing.assert_allclose(point.recall_quality.values, [0.9, 0.6, np.nan, np.nan])
+    # a flag variable over the assembly dim: labels in, codes out, padding as the fill value (unset)
+    assert flag_labels(point.recall_state).values.tolist() == ["already_active", "recalled", "", ""]
+    np.testing.assert_array_equal(point.test_position.values, [1, 0, np.nan, np.nan])  # -1 is the _FillValue
     np.testing.assert_allclose(point.snapshot_time_s.values, [1.0, 5.5, np.nan])
     np.testing.assert_allclose(point.rate_inh_hz.values[:30], np.arange(30) * 2.0)
     assert np.isnan(point.rate_inh_hz.values[30:]).all()
