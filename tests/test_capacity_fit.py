@@ -96,6 +96,9 @@ def test_censoring_says_where_the_grid_ends() -> None:
     single = fit_capacity({5: Tally(1, 3)})
     assert single is not None and (single.censoring, single.bound) == ("below", 5)
     assert fit_capacity({}) is None and fit_capacity({4: Tally(0, 0)}) is None
+    for wrong in ({0: Tally(1, 3)}, {4: Tally(4, 3)}, {4: Tally(-1, 3)}):
+        with pytest.raises(ValueError, match="successes <= decided"):
+            fit_capacity(wrong)
 
 
 def test_counts_without_decided_replicates_are_absent_not_failures() -> None:
