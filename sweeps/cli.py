@@ -7,6 +7,7 @@ exit non-zero without a traceback.
 from __future__ import annotations
 
 import functools
+import math
 import os
 import sys
 import tomllib
@@ -280,38 +281,34 @@ def capacity(
     per_count: bool = typer.Option(False, "--per-count", help="csv/json: the per-count success table instead"),
     fmt: TableFormat = typer.Option(TableFormat.table, "--format", help="table, csv or json"),
 ) -> None:
-    """Capacity per condition (combination of the other axes): largest assembly count whose every smaller count
-    succeeds.
+    """Capacity per condition (combination of the other axes): where the fitted success curve crosses the
+    fraction, with its 95 % interval.
 
-    A point succeeds when it is done, stable and recalls every assembly. The table shows each
-    count's success fraction with its 95 % Wilson interval, then the capacity with the range of
-    the per-replicate capacities; 'at least' marks the top of the grid, NA a condition with pending points.
+    A point succeeds when it is done, stable and recalls every assembly; pending, unneeded and crashed
+    points never count as failures. The table shows each count's success fraction with its 95 %
+    Wilson interval, then per condition the fitted capacity and interval ('below k': under the
+    smallest count run; 'at least k': the top of the grid still passes), the first-failure capacity
+    (largest count whose every smaller count passes) and the decided replicates used.
     """
-    from .capacity import capacity_table, count_dim, scaling_fit, success_table
+    from .capacity import capacity_report, count_dim, scaling_fit, success_table
     from .query import open_store
 
     ds = open_store(store, "capacity")
-    table = capacity_table(ds, min_fraction)
+    table = capacity_report(ds, min_fraction)
     if fmt is not TableFormat.table:
         _emit(success_table(ds) if per_count else table, fmt)
         return
     _say("success per count (n = done replicates; 95 % Wilson interval; crashed points left out):")
     _emit(success_table(ds), fmt)
-    _say(f"\ncapacity (every count up to it succeeds in >= {min_fraction:g} of replicates; "
-         "range over replicates):")
+    _say(f"\ncapacity (fitted success curve crosses {min_fraction:g}; 95 % profile-likelihood interval; "
+         "first_failure: largest count whose every smaller count passes):")
     _emit(_capacity_display(table), fmt)
-    fit = scaling_fit(ds)
-    if fit is not None:
-        _say(f"capacity ~ {fit.prefactor:.3g} x n_exc^b, b = {fit.exponent:.2f} "
-             f"[{fit.exponent_lo:.2f}, {fit.exponent_hi:.2f}] (95 % bootstrap over replicates; sizes "
-             f"{', '.join(map(str, fit.sizes))}"
-             + (f"; at the top of the grid, so underestimated: {fit.lower_bounds}" if fit.lower_bounds else "")
-             + ")")
+    _say_scaling(scaling_fit(ds, min_fraction))
     others = [c for c in table.columns if c not in _CAPACITY_COLUMNS]
     for _, row in table[table["non_monotone"]].iterrows():
         where = ", ".join(f"{c}={row[c]}" for c in others) or "the grid"
-        _say(f"warning: success is not monotone in {count_dim(ds)} for {where}: a larger count succeeds "
-             "after a smaller one failed")
+        _say(f"warning: success is not monotone in {count_dim(ds)} for {where}: larger counts succeed more often "
+             "than chance allows after smaller ones failed")
 
 
 def _say(line: str) -> None:
@@ -319,21 +316,54 @@ def _say(line: str) -> None:
     out.print(line, highlight=False, markup=False, soft_wrap=True)
 
 
-_CAPACITY_COLUMNS = ("capacity", "capacity_lo", "capacity_hi", "at_least", "non_monotone", "replicates_used",
-                     PENDING, FAILED, UNNEEDED)
+def _say_scaling(fit: Any) -> None:
+    """The power-law fit of capacity against n_exc with its interval and caveats (nothing when there is none)."""
+    if fit is None:
+        return
+    _say(f"capacity ~ {fit.prefactor:.3g} x n_exc^b, b = {fit.exponent:.2f} "
+         f"[{fit.exponent_low:.2f}, {fit.exponent_high:.2f}] (95 % profile likelihood, censored capacities as "
+         f"bounds; sizes {', '.join(f'{n:g}' for n in sorted(set(fit.sizes)))})")
+    for caveat in fit.caveats:
+        _say(f"caveat: {caveat}")
+
+
+_CAPACITY_COLUMNS = ("capacity", "capacity_lo", "capacity_hi", "censored", "bound", "first_failure",
+                     "first_failure_at_least", "non_monotone", "replicates", PENDING, FAILED, UNNEEDED)
 
 
 def _capacity_display(table: Any) -> Any:
-    """The capacity table as shown on screen: 'at least k' at the top of the grid, NA for undecided conditions."""
+    """The capacity table as shown on screen: fitted value or its bound, interval, first-failure value."""
+    shown = table.drop(columns=["capacity_lo", "capacity_hi", "censored", "bound", "first_failure_at_least"])
+    shown["capacity"] = [_fitted_text(row) for row in table.itertuples()]
+    shown.insert(shown.columns.get_loc("capacity") + 1, "interval_95",
+                 [_interval_text(row.capacity_lo, row.capacity_hi) for row in table.itertuples()])
+    shown["first_failure"] = [_first_failure_text(row) for row in table.itertuples()]
+    return shown
+
+
+def _fitted_text(row: Any) -> str:
+    """'5.83', 'below 1' or 'at least 12' (censored), 'NA' with nothing decided."""
     import pandas as pd
 
-    shown = table.drop(columns=["capacity_lo", "capacity_hi", "at_least"])
-    shown["capacity"] = ["NA" if pd.isna(row.capacity) else f"at least {row.capacity}" if row.at_least
-                         else str(row.capacity) for row in table.itertuples()]
-    shown.insert(shown.columns.get_loc("capacity") + 1, "replicate_range",
-                 ["NA" if pd.isna(row.capacity_lo) else f"{row.capacity_lo}-{row.capacity_hi}"
-                  for row in table.itertuples()])
-    return shown
+    if row.censored:
+        return f"{'below' if row.censored == 'below' else 'at least'} {row.bound}"
+    return "NA" if pd.isna(row.capacity) else f"{row.capacity:.2f}"
+
+
+def _interval_text(low: float, high: float) -> str:
+    """'4.9-6.7'; an open end (beyond the grid) is '..'; 'NA' when both are open."""
+    if math.isnan(low) and math.isnan(high):
+        return "NA"
+    return f"{'..' if math.isnan(low) else f'{low:.2f}'}-{'..' if math.isnan(high) else f'{high:.2f}'}"
+
+
+def _first_failure_text(row: Any) -> str:
+    """The first-failure capacity: 'at least k' at the top of the grid, NA while undecided."""
+    import pandas as pd
+
+    if pd.isna(row.first_failure):
+        return "NA"
+    return f"at least {row.first_failure}" if row.first_failure_at_least else str(row.first_failure)
 
 
 @app.command()
