@@ -14,7 +14,8 @@ says the crossing is inside the grid), whether its 95 % interval holds c* (an op
 past the grid), its width within the grid (open ends at the grid edge), the non-monotone flag
 (every curve here is monotone, so each flag is a false positive), and the old rule's value
 ("largest count k such that every count <= k reaches a success fraction >= 0.5"; 0 when the
-smallest count falls short) and its error.
+smallest count falls short), its error, and whether the old table's range over per-replicate
+capacities holds c* (:func:`old_range_covers`; the old rule's only interval).
 
 ``--compare-intervals`` adds, on the logistic 5 and weibull 6 curves at 3, 10 and 20 replicates
 (grid 1..12), the coverage and median width of four interval methods: the Firth-penalized profile
@@ -56,6 +57,7 @@ from scipy.special import expit
 from capsweep.sweeps.capacity_fit import CapacityFit, _crossing_interval, _Curve, fit_capacity
 from capsweep.sweeps.scaling_fit import fit_scaling
 from capsweep.sweeps.sequential import Tally, next_count, replicates_to_add
+from capsweep.sweeps.success import count_passes
 
 Curve = Callable[[np.ndarray, float], np.ndarray]
 THRESHOLD = 0.5
@@ -87,12 +89,34 @@ class Scenario:
     replicates: int
 
 
+def draw_replicates(rng: np.random.Generator, shape: str, crossing: float, counts: Iterable[int],
+                    replicates: int) -> np.ndarray:
+    """One synthetic data set, per point: success (bool) of ``replicates`` Bernoulli draws per count at the
+    true P, shape (count, replicate)."""
+    p = SHAPES[shape](np.asarray(tuple(counts), float), crossing)
+    return rng.random((len(p), replicates)) < p[:, None]
+
+
+def tallies_of(wins: np.ndarray, counts: Iterable[int]) -> dict[int, Tally]:
+    """Per count: successes of the replicates in ``wins`` (shape (count, replicate))."""
+    return {int(c): Tally(int(row.sum()), len(row)) for c, row in zip(counts, wins)}
+
+
 def draw(rng: np.random.Generator, shape: str, crossing: float, counts: Iterable[int],
          replicates: int) -> dict[int, Tally]:
-    """One synthetic data set: per count, successes of ``replicates`` Bernoulli draws at the true P."""
-    counts = np.asarray(tuple(counts))
-    k = rng.binomial(replicates, SHAPES[shape](counts.astype(float), crossing))
-    return {int(c): Tally(int(s), replicates) for c, s in zip(counts, k)}
+    """One synthetic data set as per-count tallies (:func:`draw_replicates`)."""
+    counts = tuple(counts)
+    return tallies_of(draw_replicates(rng, shape, crossing, counts, replicates), counts)
+
+
+def old_range_covers(wins: np.ndarray, counts: tuple[int, ...], truth: float) -> bool:
+    """Whether the old table's replicate range holds ``truth``, read generously: from the smallest per-replicate
+    capacity (largest count before the replicate's first failure; 0 if none) to the grid count just above the
+    largest (where that replicate failed; open at the top of the grid)."""
+    leads = [int(np.argmin(np.append(column, False))) for column in wins.T]  # first failure per replicate
+    low = min(counts[lead - 1] if lead else 0 for lead in leads)
+    top = max(leads)
+    return low <= truth and (top == len(counts) or truth <= counts[top])
 
 
 def old_rule(tallies: dict[int, Tally]) -> int:
@@ -120,14 +144,17 @@ def run_scenario(args: tuple[Scenario, int, int]) -> list[dict]:
     scenario, datasets, seed = args
     rng = np.random.default_rng(seed)
     rows = []
+    counts = GRIDS[scenario.grid]
     for _ in range(datasets):
-        tallies = draw(rng, scenario.shape, scenario.crossing, GRIDS[scenario.grid], scenario.replicates)
+        wins = draw_replicates(rng, scenario.shape, scenario.crossing, counts, scenario.replicates)
+        tallies = tallies_of(wins, counts)
         fit = fit_capacity(tallies, THRESHOLD)
         assert fit is not None
         rows.append({"scenario": scenario, "inside": fit.censoring == "inside",
                      "error": (fit.estimate - scenario.crossing) if fit.estimate is not None else math.nan,
                      "covered": covers(fit, scenario.crossing), "width": width(fit), "flag": fit.non_monotone,
-                     "old_error": old_rule(tallies) - scenario.crossing})
+                     "old_error": old_rule(tallies) - scenario.crossing,
+                     "old_covered": old_range_covers(wins, counts, scenario.crossing)})
     return rows
 
 
@@ -138,11 +165,12 @@ def summary(rows: list[dict]) -> list[str]:
     share = lambda key: 100 * np.mean([r[key] for r in rows])
     return [f"{len(rows)}", f"{share('inside'):.0f} %", f"{np.median(errors):+.2f}", f"{np.mean(errors):+.2f}",
             f"{share('covered'):.1f} %", f"{np.median([r['width'] for r in rows]):.2f}",
-            f"{np.median(old):+.2f}", f"{np.mean(old):+.2f}", f"{share('flag'):.1f} %"]
+            f"{np.median(old):+.2f}", f"{np.mean(old):+.2f}", f"{share('old_covered'):.1f} %",
+            f"{share('flag'):.1f} %"]
 
 
 COLUMNS = ("data sets", "crossing inside", "median error", "mean error", "95 % interval coverage", "median width",
-           "old rule median error", "old rule mean error", "non-monotone flags")
+           "old rule median error", "old rule mean error", "old replicate range coverage", "non-monotone flags")
 
 
 def table(rows: list[dict], key: Callable[[Scenario], tuple[str, ...]], titles: tuple[str, ...]) -> str:
@@ -236,6 +264,11 @@ def _run_count(tallies: dict[int, Tally], rng: np.random.Generator, crossing: fl
     tallies[count] = Tally(old.successes + wins, old.decided + more)
 
 
+def _passes(tallies: dict[int, Tally]) -> dict[int, bool]:
+    """Per count run: whether it passes (the capacity rule's count verdict)."""
+    return {count: bool(count_passes(t.successes, t.decided, THRESHOLD)) for count, t in tallies.items()}
+
+
 def _fill_replicates(tallies: dict[int, Tally], rng: np.random.Generator, crossing: float) -> None:
     """Rounds of ``replicates_to_add`` until every count is decided or at its cap."""
     while wanted := replicates_to_add(tallies, THRESHOLD):
@@ -254,7 +287,7 @@ def design(name: str, crossing: float, rng: np.random.Generator) -> dict[int, Ta
             _run_count(tallies, rng, crossing, count, 3)
         _fill_replicates(tallies, rng, crossing)
     else:
-        while (count := next_count(tallies, start=4, ceiling=64, threshold=THRESHOLD)) is not None:
+        while (count := next_count(_passes(tallies), start=4, ceiling=64)) is not None:
             _run_count(tallies, rng, crossing, count, 3)
             _fill_replicates(tallies, rng, crossing)
     return tallies

@@ -80,7 +80,8 @@ def fingerprint(sweep: Sweep) -> str:
         "base": identity_config(sweep.base),
     }
     if sweep.search is not None:  # only then, so that stores of grids without a search keep their fingerprint
-        identity["search"] = dataclasses.asdict(sweep.search)
+        identity["search"] = {k: v for k, v in dataclasses.asdict(sweep.search).items()  # unset replicate keys left
+                              if v is not None or k == "start"}  # out: older search stores keep their fingerprint
     blob = json.dumps(identity, sort_keys=True)
     return hashlib.sha256(blob.encode()).hexdigest()[:16]
 
@@ -106,7 +107,9 @@ def _record(sweep: Sweep) -> dict[str, Any]:
     """The store's record of ``sweep``; a count search is recorded with its first probe and the pass fraction."""
     search = None if sweep.search is None else {
         "axis": sweep.search.axis, "method": sweep.search.method,
-        "start": PRESCREEN_START if sweep.search.start is None else sweep.search.start, "min_fraction": MIN_FRACTION}
+        "start": PRESCREEN_START if sweep.search.start is None else sweep.search.start, "min_fraction": MIN_FRACTION,
+        **({} if sweep.search.replicate_rule is None else dict(zip(("first_replicates", "more_replicates"),
+                                                                   sweep.search.replicate_rule)))}
     return attrs.sweep_record(sweep.name, str(sweep.source), sweep.text, sweep.text_sha256, sweep.replicates,
                               sweep.base_seed, search)
 

@@ -138,7 +138,8 @@ def _execute_search(dask: EarlyClient, sweep: Sweep, points: list[Point], store:
     starts = search_starts(sweep, points, count_pos, client)
     search = plan_search(points, count_pos, starts, sweep.search.method, store.status(),
                          store.scalar_values("outcome"), store.scalar_values("recalled_count"),
-                         store.scalar_values("stuck_count"), options.retry_failed)
+                         store.scalar_values("stuck_count"), options.retry_failed,
+                         int(sweep.axes[count_pos].values[0]), sweep.search.replicate_rule)
 
     def advance(keys: list[tuple[int, ...]] | None = None) -> list[Job]:
         """The jobs the search wants next (in the conditions ``keys``, default all); points decided without marked."""

@@ -11,12 +11,23 @@ the capacity table, :func:`capsweep.sweeps.success.count_passes`). Two methods:
   is needed. The scan runs every count from the bottom up to ``start`` at once (a seed, e.g. the
   prescreen's stability bound, buys parallel wall time), then one count at a time, and stops
   at the first failing count. It gives the full grid's capacity on any grid.
+- ``grow`` (open upper end): probe the start count, double while every probe passes (up to
+  ``high``, the ceiling laid out in the store), halve while none does, then close in on the
+  geometric midpoint of the largest passing and the smallest failing count until they are adjacent
+  (:func:`capsweep.sweeps.sequential.next_count`). A grown capacity is bracketed by a passing and a
+  failing count, or censored at ``high`` or ``low``. It assumes monotone success as bisect does.
 - ``bisect`` (fewer points for large capacities, assumes success falls monotonically with the
   count): keep the largest passing index ``lo`` (-1: none yet) and the smallest failing index
   ``hi`` (len: none yet), probe the start count first, gallop up (start + 1, + 3, + 7, ...) while
   nothing failed, gallop down (start - 1, - 3, - 7, ...) while nothing passed, then bisect until
   ``hi - lo == 1``. Counts it skipped below the capacity are assumed to pass: on a noisy grid (a
   failing count below a passing one) it can report more than the full grid would.
+
+Replicates where they decide: with ``first_replicates`` set, a probed count runs its first
+``first_replicates`` replicates; while their 95 % Wilson interval still holds the pass fraction, it
+runs ``more_replicates`` more (always the next replicate indices), up to every replicate laid out
+(the sweep's ``replicates``) (:func:`capsweep.sweeps.sequential.replicates_to_add`). The count then
+passes or fails on all its decided replicates. Replicates never needed get status ``unneeded``.
 
 Every step is a function of the verdicts stored so far, so a killed search resumes exactly where
 it stopped and gives the same capacities. When a condition closes, its points never run get status
@@ -37,6 +48,7 @@ import numpy as np
 
 from ..flags import DONE, FAILED, OUTCOMES, STATUSES, UNNEEDED
 from .identity import Point
+from .sequential import Tally, next_count, replicates_to_add
 from .success import count_passes, leading_passes, succeeds
 
 Verdict = bool | None
@@ -51,6 +63,7 @@ class ConditionSearch:
     start: int  # index of the count probed first (bisect) or scanned up to at once (scan)
     method: str = "scan"  # one of SEARCH_METHODS
     passes: dict[int, bool] = field(default_factory=dict)  # count index -> whether the count passes
+    first_count: int = 1  # the count at index 0 (a searched axis holds every count from low to high)
 
     def bounds(self) -> tuple[int, int]:
         """(largest passing index or -1, smallest failing index or n_counts)."""
@@ -62,8 +75,15 @@ class ConditionSearch:
         """Count indices to run now (empty when the condition's capacity is decided)."""
         if self.method == "scan":
             return self._scan()
-        probe = self._bisect()
+        probe = self._grow() if self.method == "grow" else self._bisect()
         return [] if probe is None else [probe]
+
+    def _grow(self) -> int | None:
+        """Next index of the open-ended search (:func:`capsweep.sweeps.sequential.next_count`), None when decided."""
+        low = self.first_count
+        count = next_count({low + k: ok for k, ok in self.passes.items()}, low + self.start,
+                           low + self.n_counts - 1, floor=low)
+        return None if count is None else count - low
 
     def _scan(self) -> list[int]:
         """Every undecided index from the bottom up to max(start, first index not yet known to pass)."""
@@ -97,6 +117,7 @@ class SearchRun:
     submitted: set[tuple[int, ...]] = field(default_factory=set)
     marked: set[tuple[int, ...]] = field(default_factory=set)  # points already given status unneeded
     closed: set[tuple[int, ...]] = field(default_factory=set)  # conditions whose capacity is decided
+    replicate_rule: tuple[int, int] | None = None  # (first, more) replicates per probed count; None: all at once
 
     def record(self, point: Point, verdict: Verdict) -> tuple[int, ...]:
         """A point finished with ``verdict``; returns its condition."""
@@ -121,13 +142,32 @@ class SearchRun:
             search = self.conditions[key]
             probes = self._advance(key, search)
             if probes:
-                wanted += [p for k in probes for p in self.points[key, k] if self._untouched(p)]
+                wanted += [p for k in probes for p in self._in_play(key, k) if self._untouched(p)]
                 self.submitted.update(p.index for p in wanted)
             elif key not in self.closed:
                 self.closed.add(key)
                 unneeded += [p for k in range(search.n_counts) for p in self.points[key, k] if self._untouched(p)]
         self.marked.update(p.index for p in unneeded)
         return wanted, unneeded
+
+    def _in_play(self, key: tuple[int, ...], k: int) -> list[Point]:
+        """The replicates of count index ``k`` that run: all, or under ``replicate_rule`` the first ones and more
+        while their decided verdicts leave the count undecided (a function of the stored verdicts: resumes exactly).
+        """
+        points = self.points[key, k]
+        if self.replicate_rule is None:
+            return points
+        first, more = self.replicate_rule
+        n = min(first, len(points))
+        while n < len(points) and all(p.index in self.verdicts for p in points[:n]):
+            verdicts = [self.verdicts[p.index] for p in points[:n]]
+            done = [v for v in verdicts if v is not None]
+            tally = Tally(sum(done), len(done), len(verdicts) - len(done))
+            added = replicates_to_add({k: tally}, batch=more, cap=len(points)).get(k, 0)
+            if not added:
+                break
+            n += added
+        return points[:n]
 
     def _untouched(self, point: Point) -> bool:
         """Neither finished, submitted nor marked unneeded."""
@@ -139,7 +179,7 @@ class SearchRun:
         while probes := search.next_probes():
             still_open = []
             for probe in probes:
-                replicates = [p.index for p in self.points[key, probe]]
+                replicates = [p.index for p in self._in_play(key, probe)]
                 if any(index not in self.verdicts for index in replicates):
                     still_open.append(probe)
                     continue
@@ -152,17 +192,18 @@ class SearchRun:
 
 def plan_search(points: list[Point], count_pos: int, starts: dict[tuple[int, ...], int], method: str,
                 status: np.ndarray, outcome: np.ndarray, recalled: np.ndarray, stuck: np.ndarray,
-                retry_failed: bool) -> SearchRun:
+                retry_failed: bool, first_count: int = 1, replicate_rule: tuple[int, int] | None = None) -> SearchRun:
     """A SearchRun over ``points`` with the verdicts already stored (status/outcome/recalled_count/stuck_count codes).
 
-    ``starts`` maps each condition key to its start index; ``method`` is "scan" or "bisect". Failed points count
-    as crashed verdicts unless ``retry_failed``; unneeded points as not yet run.
+    ``starts`` maps each condition key to its start index; ``method`` is one of SEARCH_METHODS; ``first_count``
+    the count at index 0; ``replicate_rule`` (first, more) replicates per probed count, None for all at once.
+    Failed points count as crashed verdicts unless ``retry_failed``; unneeded points as not yet run.
     """
-    run = SearchRun(count_pos, {}, {}, {})
+    run = SearchRun(count_pos, {}, {}, {}, replicate_rule=replicate_rule)
     n_counts = max(p.index[count_pos] for p in points) + 1
-    for point in points:
+    for point in sorted(points, key=lambda p: p.index[-1]):  # replicates in index order: the rule runs the first
         key, k = condition_key(point.index, count_pos), point.index[count_pos]
-        run.conditions.setdefault(key, ConditionSearch(n_counts, starts[key], method))
+        run.conditions.setdefault(key, ConditionSearch(n_counts, starts[key], method, first_count=first_count))
         run.points.setdefault((key, k), []).append(point)
         label = STATUSES[int(status[point.index])]
         if label == DONE:

@@ -32,7 +32,7 @@ from collections.abc import Mapping
 from statistics import NormalDist
 from typing import NamedTuple
 
-from .success import MIN_FRACTION, count_passes
+from .success import MIN_FRACTION
 
 CONFIDENCE = 0.95
 """Level of the Wilson interval that decides whether a count needs more replicates."""
@@ -91,28 +91,28 @@ def replicates_to_add(tallies: Mapping[int, Tally], threshold: float = MIN_FRACT
             if used[count] < cap and undecided(tally, threshold, confidence)}
 
 
-def next_count(tallies: Mapping[int, Tally], start: int, ceiling: int, threshold: float = MIN_FRACTION) -> int | None:
+def next_count(passes: Mapping[int, bool], start: int, ceiling: int, floor: int = 1) -> int | None:
     """The next assembly count to run in an open-ended count search, or None when the capacity is bracketed.
 
-    A count passes when its decided replicates succeed in at least ``threshold`` of them (the
-    success rule of capacity). With ``hi`` the smallest failing count and ``lo`` the largest
-    passing count below it (0 if none): nothing run yet -> ``start``; no failure yet -> double
-    ``lo`` (at most ``ceiling``; None once ``lo`` is the ceiling: censored above); no pass below
-    ``hi`` -> halve ``hi`` (None when ``hi`` is 1: censored below); else the geometric midpoint of
-    ``lo`` and ``hi``, None once they are adjacent. Passing counts above ``hi`` (non-monotone
-    success) do not move the bracket. Counts are numbers of assemblies, 1 <= start <= ceiling.
+    ``passes`` maps each count run so far to whether it passes (the success rule of capacity,
+    :func:`capsweep.sweeps.success.count_passes`). With ``hi`` the smallest failing count and ``lo`` the
+    largest passing count below it (``floor`` - 1 if none): nothing run yet -> ``start``; no failure yet ->
+    double ``lo`` (at most ``ceiling``; None once ``lo`` is the ceiling: censored above); no pass below
+    ``hi`` -> halve ``hi`` (not below ``floor``; None when ``hi`` is the floor: censored below); else the
+    geometric midpoint of ``lo`` and ``hi``, None once they are adjacent. Passing counts above ``hi``
+    (non-monotone success) do not move the bracket. Counts are numbers of assemblies,
+    1 <= floor <= start <= ceiling.
     """
-    if not 1 <= start <= ceiling:
-        raise ValueError(f"need 1 <= start <= ceiling, got start={start}, ceiling={ceiling}")
-    verdicts = {count: count_passes(t.successes, t.decided, threshold) for count, t in tallies.items() if t.decided}
-    if not verdicts:
+    if not 1 <= floor <= start <= ceiling:
+        raise ValueError(f"need 1 <= floor <= start <= ceiling, got floor={floor}, start={start}, ceiling={ceiling}")
+    if not passes:
         return start
-    hi = min((count for count, ok in verdicts.items() if not ok), default=None)
-    lo = max((count for count, ok in verdicts.items() if ok and (hi is None or count < hi)), default=0)
+    hi = min((count for count, ok in passes.items() if not ok), default=None)
+    lo = max((count for count, ok in passes.items() if ok and (hi is None or count < hi)), default=floor - 1)
     if hi is None:
         return None if lo >= ceiling else min(2 * lo, ceiling)
     if hi - lo <= 1:
         return None
-    if lo == 0:
-        return hi // 2
+    if lo < floor:
+        return max(hi // 2, floor)
     return min(max(round(math.sqrt(lo * hi)), lo + 1), hi - 1)

@@ -12,7 +12,7 @@ import math
 
 import numpy as np
 import pytest
-from hypothesis import given
+from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.optimize import isotonic_regression
 from scipy.special import expit, logit
@@ -67,6 +67,7 @@ def test_isotonic_by_hand_and_against_scipy() -> None:
     assert isotonic_decreasing(np.array([0.2, 0.6]), np.array([3, 1])) == pytest.approx([0.3, 0.3])
 
 
+@settings(deadline=None)  # no timing in tests: the machine may be busy
 @given(st.lists(st.tuples(st.integers(0, 10), st.integers(1, 10)), min_size=1, max_size=12))
 def test_isotonic_matches_scipy(pairs: list[tuple[int, int]]) -> None:
     k = np.array([min(s, n) for s, n in pairs], float)
@@ -75,6 +76,7 @@ def test_isotonic_matches_scipy(pairs: list[tuple[int, int]]) -> None:
     assert isotonic_decreasing(k / n, n) == pytest.approx(expected, abs=1e-12)
 
 
+@settings(deadline=None)  # no timing in tests: the machine may be busy
 @given(st.lists(st.tuples(st.integers(0, 10), st.integers(1, 10), st.floats(0.01, 0.99)), min_size=1, max_size=8))
 def test_deviance_matches_scipys_g_statistic(rows: list[tuple[int, int, float]]) -> None:
     # G^2 of observed against expected cell counts (Read & Cressie 1988 power divergence, lambda = 0): scipy's

@@ -17,13 +17,15 @@ import numpy as np
 import pytest
 import xarray as xr
 from cli_runs import capsweep
-from hypothesis import given
+from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from capsweep.errors import ConfigError
-from capsweep.flags import STATUSES
+from capsweep.flags import DONE, OUTCOMES, RUNAWAY, STABLE, STATUSES, UNNEEDED
 from capsweep.sweeps.capacity import capacity_table
-from capsweep.sweeps.search import ConditionSearch
+from capsweep.sweeps.identity import Point
+from capsweep.sweeps.search import ConditionSearch, SearchRun, plan_search
+from capsweep.sweeps.sequential import wilson_interval
 from capsweep.sweeps.sweepfile import parse_sweep
 
 
@@ -76,6 +78,84 @@ def test_bisect_assumes_monotone_success_where_scan_does_not() -> None:
     assert _search(passes, 3, "scan")[0] == _grid_capacity(passes) == 0
 
 
+@settings(deadline=None)  # no timing in tests: the machine may be busy
+@given(st.integers(1, 64), st.data())
+def test_grow_brackets_the_capacity_of_every_monotone_grid(n: int, data: st.DataObject) -> None:
+    """The open upper end: whatever the start, grow ends with the capacity bracketed by a passing and a failing
+    count (or censored at the grid's ends) in O(log n) probes."""
+    capacity = data.draw(st.integers(0, n))
+    start = data.draw(st.integers(0, n - 1))
+    search = ConditionSearch(n, start, "grow", first_count=1)
+    probed = []
+    while probes := search.next_probes():
+        probed += probes
+        search.passes.update({k: k < capacity for k in probes})
+    assert search.bounds()[0] + 1 == capacity
+    assert capacity in (0, n) or (search.passes[capacity - 1] and not search.passes[capacity])
+    assert len(probed) <= 2 * int(np.ceil(np.log2(n + 1))) + 3
+
+
+def _verdict(index: tuple[int, ...], p: float) -> bool:
+    """A point's synthetic verdict: a function of its index alone (as a simulation is of its config and seed)."""
+    return bool(np.random.default_rng(list(index)).random() < p)
+
+
+def _synthetic_points(counts: int, replicates: int) -> list[Point]:
+    """One condition's points over counts 1..``counts`` x ``replicates`` (index: count, replicate)."""
+    return [Point((k, r), {}, {"assemblies": {"count": k + 1}}, f"p{k}-{r}", 0, 0)
+            for k in range(counts) for r in range(replicates)]
+
+
+def _drive(run: SearchRun, chance: list[float], stop_after: int | None = None) -> dict[tuple[int, ...], bool]:
+    """Run the search on synthetic verdicts (success chance per count index) one point at a time; the verdicts
+    stored, and whether it was stopped (killed) after ``stop_after`` points."""
+    stored: dict[tuple[int, ...], bool] = {}
+    queue, _ = run.advance()
+    while queue:
+        point = queue.pop(0)
+        stored[point.index] = _verdict(point.index, chance[point.index[0]])
+        if stop_after is not None and len(stored) == stop_after:
+            break
+        more, _ = run.advance([run.record(point, stored[point.index])])
+        queue += more
+    return stored
+
+
+def _replan(points: list[Point], stored: dict[tuple[int, ...], bool], unneeded: set[tuple[int, ...]],
+            method: str) -> SearchRun:
+    """A search rebuilt from a store's arrays, as a resumed ``capsweep run`` rebuilds it."""
+    status = np.zeros((16, 10), dtype=np.int8)
+    outcome, recalled = np.zeros_like(status), np.zeros((16, 10), dtype=np.int32)
+    for index, ok in stored.items():
+        status[index], recalled[index] = STATUSES.index(DONE), index[0] + 1 if ok else 0
+        outcome[index] = OUTCOMES.index(STABLE if ok else RUNAWAY)
+    for index in unneeded:
+        status[index] = STATUSES.index(UNNEEDED)
+    return plan_search(points, 0, {(): 3}, method, status, outcome, recalled, False, 1, (3, 2))
+
+
+@pytest.mark.parametrize("method", ["scan", "grow"])
+def test_replicates_where_they_decide_and_an_exact_resume(method: str) -> None:
+    """Counts 1-16, success chance falling from 1 through 0.5 at count 6 to 0; 3 replicates first, 2 more while
+    the Wilson interval holds 0.5, at most 10. Only counts whose 3 replicates straddle get more; no count
+    uses more than 10; a run killed after 7 points and rebuilt from its stored verdicts runs exactly the
+    points an uninterrupted run runs."""
+    chance = [float(1 / (1 + (k / 6) ** 5)) for k in range(1, 17)]
+    points = _synthetic_points(16, 10)
+    full = _drive(_replan(points, {}, set(), method), chance)
+    straddles = lambda k, n: (lambda low, high: low < 0.5 <= high)(*wilson_interval(sum(full[k, r] for r in range(n)), n))
+    for k in {c for c, _ in full}:
+        n = sum(c == k for c, _ in full)
+        assert all((k, r) in full for r in range(n)) and 3 <= n <= 10, "the first replicates, 3 to 10 of them"
+        assert n == 3 or straddles(k, n - 1 if n == 10 else n - 2), f"count {k + 1} got more needlessly"
+        assert n == 10 or not straddles(k, n), f"count {k + 1} stopped undecided"
+    killed = _replan(points, {}, set(), method)
+    first = _drive(killed, chance, stop_after=7)
+    resumed = _replan(points, first, set(), method)
+    second = _drive(resumed, chance)
+    assert {**first, **second} == full
+
+
 SEARCH_HEAD = """
 [sweep]
 name = "odour-search"
@@ -113,6 +193,8 @@ workers = 2
     ("search = { low = 1, high = 8, step = 2 }", "unknown key search.step"),
     ("search = { low = 1, high = 8, method = 'halving' }", "search.method = 'halving' is not allowed"),
     ("values = [1, 2]\nsearch = { low = 1, high = 8 }", "without values"),
+    ("search = { low = 1, high = 8, first_replicates = 2 }", "first_replicates = 2 is not allowed"),
+    ("search = { low = 1, high = 8, more_replicates = 2 }", "together with search.first_replicates"),
 ])
 def test_bad_search_tables_are_named(counts: str, message: str) -> None:
     with pytest.raises(ConfigError, match=message):
