@@ -14,9 +14,9 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from scipy.optimize import isotonic_regression
+from scipy.optimize import isotonic_regression, minimize
 from scipy.special import expit, logit
-from scipy.stats import binom, power_divergence
+from scipy.stats import binom, chi2, power_divergence
 
 from capsweep.sweeps.capacity_fit import binomial_deviance, fit_capacity, isotonic_decreasing
 from capsweep.sweeps.sequential import Tally
@@ -164,3 +164,42 @@ def test_old_rule_is_biased_low_where_the_fit_is_not() -> None:
     estimates = [f.estimate for t in data if (f := fit_capacity(t)) is not None and f.estimate is not None]
     assert len(estimates) >= 55
     assert abs(np.median(estimates) - 6.0) < 0.3 < 6.0 - expected_old
+
+
+def _penalized_loglik(b: np.ndarray, x: np.ndarray, k: np.ndarray, n: np.ndarray) -> float:
+    """Binomial log-likelihood of logit P = b0 + b1 x plus Firth's penalty 1/2 ln det(X' W X), W = n p (1 - p)
+    (Firth 1993, Biometrika 80:27, Eq. 2 [memory]: the Jeffreys-prior penalty), written out here with numpy."""
+    p = expit(b[0] + b[1] * x)
+    design = np.column_stack([np.ones_like(x), x])
+    info = design.T @ ((n * p * (1 - p))[:, None] * design)
+    return float(np.sum(k * np.log(p) + (n - k) * np.log1p(-p)) + 0.5 * np.linalg.slogdet(info)[1])
+
+
+@pytest.mark.reference
+def test_penalized_fit_and_profile_interval_match_scipy_optimize() -> None:
+    # 20 replicates per count 1..12 falling through one half near 6. Reference: scipy.optimize.minimize (Nelder-Mead)
+    # of the penalized likelihood above; the profile at a fixed crossing theta maximizes over curves with
+    # b0 = logit(1/2) - b1 theta. The interval's low end must sit where the profile deviance reaches the chi-square(1)
+    # 95 % quantile (Venzon & Moolgavkar 1988, Appl Stat 37:87 [memory]); its high end here is widened to the
+    # isotonic bracket's first failing count (7), where the deviance is past that quantile.
+    counts = np.arange(1, 13)
+    k = np.array([20, 20, 19, 18, 15, 12, 8, 5, 3, 1, 1, 0], float)
+    n = np.full(12, 20.0)
+    x = np.log(counts)
+    fit = fit_capacity({int(c): Tally(int(s), 20) for c, s in zip(counts, k)})
+    assert fit is not None and fit.estimate is not None and fit.low is not None and fit.high is not None
+    options = {"xatol": 1e-10, "fatol": 1e-12, "maxiter": 5000}
+    best = minimize(lambda b: -_penalized_loglik(b, x, k, n), np.array([0.0, -1.0]), method="Nelder-Mead",
+                    options=options)
+    b0, b1 = best.x
+    assert fit.slope == pytest.approx(b1, rel=1e-5)
+    assert fit.estimate == pytest.approx(math.exp(-b0 / b1), rel=1e-5)
+
+    def deviance(count: float) -> float:
+        theta = math.log(count)
+        profile = minimize(lambda s: -_penalized_loglik(np.array([-s[0] * theta, s[0]]), x, k, n), np.array([b1]),
+                           method="Nelder-Mead", options=options)
+        return float(2 * (profile.fun - best.fun))
+
+    assert deviance(fit.low) == pytest.approx(chi2.ppf(0.95, 1), abs=0.05)
+    assert fit.high == fit.isotonic_fail == 7 and deviance(7.0) > chi2.ppf(0.95, 1)
