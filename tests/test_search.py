@@ -6,11 +6,13 @@ The reference for the search is the capacity definition itself, applied to the f
 
 from __future__ import annotations
 
+import json
 import os
 import signal
 import subprocess
 import sys
 import time
+from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
@@ -21,11 +23,13 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from capsweep.errors import ConfigError
-from capsweep.flags import DONE, OUTCOMES, RUNAWAY, STABLE, STATUSES, UNNEEDED
+from capsweep.flags import DONE, FAILED, OUTCOMES, RUNAWAY, STABLE, STATUSES, UNNEEDED
 from capsweep.sweeps.capacity import capacity_table
+from capsweep.sweeps.expand import expand
 from capsweep.sweeps.identity import Point
 from capsweep.sweeps.search import ConditionSearch, SearchRun, plan_search
 from capsweep.sweeps.sequential import wilson_interval
+from capsweep.sweeps.success import succeeds
 from capsweep.sweeps.sweepfile import parse_sweep
 
 
@@ -106,14 +110,15 @@ def _synthetic_points(counts: int, replicates: int) -> list[Point]:
             for k in range(counts) for r in range(replicates)]
 
 
-def _drive(run: SearchRun, chance: list[float], stop_after: int | None = None) -> dict[tuple[int, ...], bool]:
-    """Run the search on synthetic verdicts (success chance per count index) one point at a time; the verdicts
-    stored, and whether it was stopped (killed) after ``stop_after`` points."""
-    stored: dict[tuple[int, ...], bool] = {}
+def _drive(run: SearchRun, verdict: Callable[[tuple[int, ...]], bool | None],
+           stop_after: int | None = None) -> dict[tuple[int, ...], bool | None]:
+    """Run the search one point at a time, each point's verdict from ``verdict`` (by index); the verdicts stored,
+    stopping (as if killed) after ``stop_after`` points."""
+    stored: dict[tuple[int, ...], bool | None] = {}
     queue, _ = run.advance()
     while queue:
         point = queue.pop(0)
-        stored[point.index] = _verdict(point.index, chance[point.index[0]])
+        stored[point.index] = verdict(point.index)
         if stop_after is not None and len(stored) == stop_after:
             break
         more, _ = run.advance([run.record(point, stored[point.index])])
@@ -121,7 +126,7 @@ def _drive(run: SearchRun, chance: list[float], stop_after: int | None = None) -
     return stored
 
 
-def _replan(points: list[Point], stored: dict[tuple[int, ...], bool], unneeded: set[tuple[int, ...]],
+def _replan(points: list[Point], stored: dict[tuple[int, ...], bool | None], unneeded: set[tuple[int, ...]],
             method: str) -> SearchRun:
     """A search rebuilt from a store's arrays, as a resumed ``capsweep run`` rebuilds it."""
     status = np.zeros((16, 10), dtype=np.int8)
@@ -142,7 +147,8 @@ def test_replicates_where_they_decide_and_an_exact_resume(method: str) -> None:
     points an uninterrupted run runs."""
     chance = [float(1 / (1 + (k / 6) ** 5)) for k in range(1, 17)]
     points = _synthetic_points(16, 10)
-    full = _drive(_replan(points, {}, set(), method), chance)
+    verdict = lambda index: _verdict(index, chance[index[0]])
+    full = _drive(_replan(points, {}, set(), method), verdict)
     straddles = lambda k, n: (lambda low, high: low < 0.5 <= high)(*wilson_interval(sum(full[k, r] for r in range(n)), n))
     for k in {c for c, _ in full}:
         n = sum(c == k for c, _ in full)
@@ -150,9 +156,9 @@ def test_replicates_where_they_decide_and_an_exact_resume(method: str) -> None:
         assert n == 3 or straddles(k, n - 1 if n == 10 else n - 2), f"count {k + 1} got more needlessly"
         assert n == 10 or not straddles(k, n), f"count {k + 1} stopped undecided"
     killed = _replan(points, {}, set(), method)
-    first = _drive(killed, chance, stop_after=7)
+    first = _drive(killed, verdict, stop_after=7)
     resumed = _replan(points, first, set(), method)
-    second = _drive(resumed, chance)
+    second = _drive(resumed, verdict)
     assert {**first, **second} == full
 
 
@@ -251,3 +257,49 @@ def test_killed_search_resumes_and_matches_the_full_grid(tmp_path: Path) -> None
     ran = status == STATUSES.index("done")
     for name in ("recalled_count", "rate_exc_baseline_hz", "rate_exc_tail_hz", "runaway_onset_s"):
         np.testing.assert_array_equal(searched[name].values[ran], grid[name].values[ran])
+
+
+@pytest.mark.e2e
+def test_grown_search_with_replicates_where_they_decide_resumes_exactly(tmp_path: Path) -> None:
+    """A real grown search (counts 1-4, start 2, 2 replicates first, 2 more while undecided, at most 4), killed
+    after two stored points and resumed. Exact resume: a search replayed from scratch on the stored verdicts
+    (each point's verdict is a function of its config and seed) asks for exactly the points the store holds as
+    done, and every other point is unneeded; the capacity report fits those replicates."""
+    sweep_file, store = tmp_path / "grow.toml", tmp_path / "grow.zarr"
+    text = SEARCH_HEAD.format(store=store, counts='search = { low = 1, high = 4, start = 2, method = "grow", '
+                                                  "first_replicates = 2, more_replicates = 2 }")
+    text = text.replace("replicates = 1", "replicates = 4").replace(
+        'triplet_inhibitory = { "plasticity.heterosynaptic.enabled" = false, "plasticity.transmitter.enabled" = false }\n',
+        "")
+    sweep_file.write_text(text)
+    first = subprocess.Popen([sys.executable, "-m", "capsweep.sweeps.cli", "run", str(sweep_file)],
+                             start_new_session=True, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    deadline = time.monotonic() + 600
+    while time.monotonic() < deadline and (_status(store) == STATUSES.index(DONE)).sum() < 2:
+        time.sleep(0.2)
+    os.killpg(first.pid, signal.SIGKILL)
+    first.wait()
+    killed = _status(store)
+    assert (killed == STATUSES.index(DONE)).sum() >= 2 and (killed == STATUSES.index("pending")).any()
+    resumed = capsweep("run", str(sweep_file))
+    assert resumed.returncode == 0, resumed.stderr
+
+    ds = xr.open_zarr(store)
+    status = ds["status"].values
+    assert not (status == STATUSES.index("pending")).any()
+    sweep = parse_sweep(text)
+    points = expand(sweep)
+    done = {p.index for p in points if STATUSES[status[p.index]] in (DONE, FAILED)}
+    stored = {p.index: bool(succeeds(OUTCOMES[int(ds["outcome"].values[p.index])],
+                                     int(ds["recalled_count"].values[p.index]), p.config["assemblies"]["count"]))
+              if status[p.index] == STATUSES.index(DONE) else None for p in points if p.index in done}
+    empty = np.zeros(status.shape, dtype=np.int8)
+    replay = plan_search(points, 1, {(0,): 1}, "grow", empty, empty, empty.astype(np.int32), False, 1, (2, 2))
+    asked = _drive(replay, lambda index: stored.get(index))
+    assert set(asked) == done
+    assert all(status[p.index] == STATUSES.index(UNNEEDED) for p in points if p.index not in done)
+    report = json.loads(capsweep("capacity", str(store), "--format", "json").stdout)
+    assert len(report) == 1 and report[0]["replicates"] + report[0]["failed"] == len(done)
+    assert report[0]["pending"] == 0
+    per_count = [sum(1 for index in done if index[1] == k) for k in range(4)]
+    assert all(n in (0, 2, 4) for n in per_count) and any(per_count), per_count
