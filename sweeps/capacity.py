@@ -44,12 +44,15 @@ import pandas as pd
 import xarray as xr
 
 from ..axes import COUNT_KEY, REPLICATE
+from ..errors import ConfigError
 from ..flags import DONE, FAILED, PENDING, UNNEEDED
+from ..results_schema import attrs
 from .capacity_fit import CapacityFit, fit_capacity
 from .query import QueryError, axis_keys, labelled
 from .scaling_fit import ScalingFit, fit_scaling
 from .sequential import Tally, wilson_interval
 from .success import MIN_FRACTION, count_passes, leading_passes, succeeds
+from .sweepfile import parse_sweep
 
 
 def point_success(ds: xr.Dataset) -> xr.DataArray:
@@ -241,21 +244,32 @@ def capacity_report(ds: xr.Dataset, min_fraction: float = MIN_FRACTION) -> pd.Da
     return table
 
 
-def size_dim(ds: xr.Dataset) -> str | None:
-    """The sweep dim over ``network.n_exc``, if any."""
-    return next((d for d, k in axis_keys(ds).items() if k == SIZE_KEY), None)
+def network_sizes(ds: xr.Dataset) -> tuple[str, dict[object, float]] | None:
+    """The dim that sets the network size and the n_exc (cells) of each of its values: an axis over
+    ``network.n_exc``, or a variants axis whose every variant sets it (e.g. n_exc with its in-degrees and
+    weights), read from the sweep text the store holds; None when there is neither."""
+    size = next((d for d, k in axis_keys(ds).items() if k == SIZE_KEY), None)
+    if size is not None:
+        return size, {v: float(v) for v in ds[size].values.tolist()}
+    try:
+        sweep = parse_sweep(str(ds.attrs.get(attrs.SWEEP_TEXT, "")))
+    except ConfigError:
+        return None
+    return next(((name, {label: float(overrides[SIZE_KEY]) for label, overrides in table.items()})
+                 for name, table in sweep.variants.items()
+                 if table and all(SIZE_KEY in overrides for overrides in table.values())), None)
 
 
 def scaling_fit(ds: xr.Dataset, min_fraction: float = MIN_FRACTION) -> ScalingFit | None:
     """capacity ~ a n_exc^b over the store's sizes from the fitted capacities, censored ones included.
 
-    Needs axes over n_exc and the assembly count and no other axis with more than one value; None
-    otherwise or when :func:`capsweep.sweeps.scaling_fit.fit_scaling` has too little to fit. The
-    fit's ``caveats`` say when to read b with care (few sizes, non-monotone success, censored values).
+    Needs an axis that sets n_exc (:func:`network_sizes`) and one over the assembly count, and no other axis
+    with more than one value; None otherwise or when :func:`capsweep.sweeps.scaling_fit.fit_scaling` has too
+    little to fit. Its ``caveats`` say when to read b with care (few sizes, non-monotone success, censoring).
     """
-    size = size_dim(ds)
-    if size is None or any(ds.sizes[d] > 1 for d in axis_keys(ds) if d not in (size, count_dim(ds))):
+    sizes = network_sizes(ds)
+    if sizes is None or any(ds.sizes[d] > 1 for d in axis_keys(ds) if d not in (sizes[0], count_dim(ds))):
         return None
-    fits = [(float(condition.labels[size]), fit) for condition in _conditions(ds)  # type: ignore[arg-type]
+    fits = [(sizes[1][condition.labels[sizes[0]]], fit) for condition in _conditions(ds)
             if (fit := _fit_of(condition, min_fraction)) is not None]
     return fit_scaling(fits)

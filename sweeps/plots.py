@@ -41,9 +41,9 @@ from .capacity import (
     capacity_report,
     capacity_table,
     count_dim,
+    network_sizes,
     point_success,
     scaling_fit,
-    size_dim,
     success_table,
     wilson_interval,
 )
@@ -307,16 +307,20 @@ def capacity_scaling(ds: xr.Dataset) -> Figure | None:
     fit = scaling_fit(ds)
     if fit is None:
         return None
-    size, count = size_dim(ds), count_dim(ds)
+    sizes, count = network_sizes(ds), count_dim(ds)
+    assert sizes is not None, "a scaling fit has network sizes"
+    size = sizes[0]
     fig, ax = plt.subplots(figsize=(5.5, 4.0))
     table = capacity_report(ds)
+    table["n_exc_cells"] = table[size].map(sizes[1])
     inside = table[table["censored"] == ""]
-    ax.errorbar(inside[size], inside["capacity"], fmt="o", color="C0", label="fitted capacity (bar: 95 % interval)",
-                yerr=[(inside["capacity"] - inside["capacity_lo"]).fillna(0),
-                      (inside["capacity_hi"] - inside["capacity"]).fillna(0)])
+    bars = [(inside["capacity"] - inside["capacity_lo"]).fillna(0),
+            (inside["capacity_hi"] - inside["capacity"]).fillna(0)]
+    ax.errorbar(inside["n_exc_cells"], inside["capacity"], yerr=bars, fmt="o", color="C0",
+                label="fitted capacity (bar: 95 % interval)")
     for side, marker in (("above", "^"), ("below", "v")):
         rows = table[table["censored"] == side]
-        ax.plot(rows[size], rows["bound"].astype(float), marker, color="C2", ls="none",
+        ax.plot(rows["n_exc_cells"], rows["bound"].astype(float), marker, color="C2", ls="none",
                 label=f"censored {side} (bound)" if len(rows) else None)
     grid = np.geomspace(min(fit.sizes), max(fit.sizes), 50)
     ax.plot(grid, fit.prefactor * grid**fit.exponent, color="C1",
@@ -326,7 +330,7 @@ def capacity_scaling(ds: xr.Dataset) -> Figure | None:
     _integer_ticks(ax.set_xticks, sorted(set(fit.sizes)))
     for axis in (ax.xaxis, ax.yaxis):
         axis.set_minor_formatter(NullFormatter())
-    ax.set_xlabel(_axis_label(ds, str(size)))
+    ax.set_xlabel(_axis_label(ds, str(size)) if ds[size].dtype.kind in "iuf" else "excitatory cells (n_exc)")
     ax.set_ylabel(f"capacity ({count})")
     ax.legend(fontsize=7)
     ax.set_title("capacity against network size (95 % profile-likelihood interval on the exponent)"

@@ -17,8 +17,9 @@ from scipy.stats import linregress, norm
 from scipy.stats import t as student
 from typer.testing import CliRunner
 
-from capsweep.axes import key_axis
+from capsweep.axes import key_axis, variant_axis
 from capsweep.flags import PENDING, STATUSES
+from capsweep.results_schema import attrs
 from capsweep.results_schema.dataset import open_dataset
 from capsweep.results_schema.layout import VARIABLES, GridSpec
 from capsweep.results_schema.store import ResultStore, create_store
@@ -263,16 +264,25 @@ def test_plausibility_flags_nothing_for_a_few_hertz_irregular_base(store: Path) 
     assert check.rate_exc_hz == (3.0, 3.0) and check.warnings == ()
 
 
-def _scaling_store(tmp_path: Path, capacities: dict[int, list[int]]) -> Path:
+def _scaling_store(tmp_path: Path, capacities: dict[int, list[int]], as_variants: bool = False) -> Path:
     """A store over n_exc x n_odours (1-8) x 3 replicates where replicate r of size n succeeds up to
-    ``capacities[n][r]`` assemblies and runs away above."""
+    ``capacities[n][r]`` assemblies and runs away above; ``as_variants``: the sizes as named variants that each
+    set network.n_exc (and an in-degree), recorded in the store's sweep text as ``capsweep run`` records it."""
     counts = (1, 2, 3, 4, 5, 6, 7, 8)
-    axes = (key_axis("n_exc", "network.n_exc", tuple(capacities)), key_axis("n_odours", "assemblies.count", counts))
+    sizes = key_axis("n_exc", "network.n_exc", tuple(capacities))
+    text = ""
+    if as_variants:
+        sizes = variant_axis("size", tuple(f"n{n}" for n in capacities))
+        text = ('[sweep]\nname = "odour-sizes"\nstore = "s.zarr"\nreplicates = 3\n[[sweep.axis]]\nname = "size"\n'
+                "[sweep.axis.variants]\n" + "".join(f'n{n} = {{ "network.n_exc" = {n}, "network.indegree_exc" = '
+                                                    f"{n // 10} }}\n" for n in capacities)
+                + '[[sweep.axis]]\nname = "n_odours"\nkey = "assemblies.count"\nvalues = [1, 2, 3, 4, 5, 6, 7, 8]\n')
+    axes = (sizes, key_axis("n_odours", "assemblies.count", counts))
     shape = (len(capacities), len(counts), 3)
-    path = tmp_path / "scaling.zarr"
+    path = tmp_path / ("variants.zarr" if as_variants else "scaling.zarr")
     seeds = np.arange(np.prod(shape)).reshape(shape)
     ids = np.array([f"p{i}" for i in range(np.prod(shape))], dtype=object).reshape(shape)
-    create_store(path, GridSpec(axes, 3, 8, 3, 20, 0.5, "fp", {}), ids, seeds)
+    create_store(path, GridSpec(axes, 3, 8, 3, 20, 0.5, "fp", {attrs.SWEEP_TEXT: text}), ids, seeds)
     writer = ResultStore.open(path)
     for (i, j, r) in np.ndindex(*shape):
         count = counts[j]
@@ -298,6 +308,8 @@ def test_scaling_fits_the_fitted_capacities_and_says_three_sizes_are_few(tmp_pat
                                                                   abs=0.05)
     output = CliRunner().invoke(app, ["capacity", str(path)]).output
     assert "caveat: only 3 network sizes" in output
+    by_variants = scaling_fit(open_dataset(_scaling_store(tmp_path, capacities, as_variants=True)))
+    assert by_variants is not None and by_variants.sizes == fit.sizes and by_variants.exponent == fit.exponent
 
 
 def test_point_table_rows_keep_their_own_point_id_and_sweep_order(store: Path) -> None:
