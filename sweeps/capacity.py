@@ -38,6 +38,7 @@ from __future__ import annotations
 import itertools
 from collections.abc import Iterator
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -244,7 +245,7 @@ def capacity_report(ds: xr.Dataset, min_fraction: float = MIN_FRACTION) -> pd.Da
     return table
 
 
-def network_sizes(ds: xr.Dataset) -> tuple[str, dict[object, float]] | None:
+def network_sizes(ds: xr.Dataset) -> tuple[str, dict[Any, float]] | None:
     """The dim that sets the network size and the n_exc (cells) of each of its values: an axis over
     ``network.n_exc``, or a variants axis whose every variant sets it (e.g. n_exc with its in-degrees and
     weights), read from the sweep text the store holds; None when there is neither."""
