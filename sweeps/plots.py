@@ -328,6 +328,9 @@ def capacity_scaling(ds: xr.Dataset) -> Figure | None:
     ax.set_xscale("log")
     ax.set_yscale("log")
     _integer_ticks(ax.set_xticks, sorted(set(fit.sizes)))
+    top = np.nanmax(table[["capacity", "capacity_hi"]].to_numpy(float).ravel().tolist()
+                    + table["bound"].astype(float).tolist())
+    _integer_ticks(ax.set_yticks, range(1, int(top) + 2))
     for axis in (ax.xaxis, ax.yaxis):
         axis.set_minor_formatter(NullFormatter())
     ax.set_xlabel(_axis_label(ds, str(size)) if ds[size].dtype.kind in "iuf" else "excitatory cells (n_exc)")
