@@ -277,7 +277,8 @@ def query(
 def capacity(
     store: Path = typer.Argument(..., help="Zarr store directory"),
     min_fraction: float = typer.Option(MIN_FRACTION, "--min-fraction",
-                                       help="fraction of replicates in which each count up to capacity must succeed"),
+                                       help="success fraction where the fitted curve gives the capacity, and that each "
+                                            "count up to the first-failure capacity must reach (at 1 the fit is NA)"),
     per_count: bool = typer.Option(False, "--per-count", help="csv/json: the per-count success table instead"),
     fmt: TableFormat = typer.Option(TableFormat.table, "--format", help="table, csv or json"),
 ) -> None:
