@@ -136,7 +136,8 @@ def _replan(points: list[Point], stored: dict[tuple[int, ...], bool | None], unn
         outcome[index] = OUTCOMES.index(STABLE if ok else RUNAWAY)
     for index in unneeded:
         status[index] = STATUSES.index(UNNEEDED)
-    return plan_search(points, 0, {(): 3}, method, status, outcome, recalled, False, 1, (3, 2))
+    return plan_search(points, 0, {(): 3}, method, status, outcome, recalled, np.zeros_like(recalled), False, 1,
+                       (3, 2))
 
 
 @pytest.mark.parametrize("method", ["scan", "grow"])
@@ -291,10 +292,12 @@ def test_grown_search_with_replicates_where_they_decide_resumes_exactly(tmp_path
     points = expand(sweep)
     done = {p.index for p in points if STATUSES[status[p.index]] in (DONE, FAILED)}
     stored = {p.index: bool(succeeds(OUTCOMES[int(ds["outcome"].values[p.index])],
-                                     int(ds["recalled_count"].values[p.index]), p.config["assemblies"]["count"]))
+                                     int(ds["recalled_count"].values[p.index]), int(ds["stuck_count"].values[p.index]),
+                                     p.config["assemblies"]["count"]))
               if status[p.index] == STATUSES.index(DONE) else None for p in points if p.index in done}
     empty = np.zeros(status.shape, dtype=np.int8)
-    replay = plan_search(points, 1, {(0,): 1}, "grow", empty, empty, empty.astype(np.int32), False, 1, (2, 2))
+    replay = plan_search(points, 1, {(0,): 1}, "grow", empty, empty, empty.astype(np.int32), empty.astype(np.int32),
+                         False, 1, (2, 2))
     asked = _drive(replay, lambda index: stored.get(index))
     assert set(asked) == done
     assert all(status[p.index] == STATUSES.index(UNNEEDED) for p in points if p.index not in done)
