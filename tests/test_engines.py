@@ -16,12 +16,14 @@ fallback) follow at the end.
 
 from __future__ import annotations
 
+import importlib.metadata
 import os
 import pickle
 import subprocess
 import sys
 import time
 from collections.abc import Callable
+from pathlib import Path
 from typing import NamedTuple
 
 import numpy as np
@@ -185,6 +187,30 @@ def test_coefficients_and_durations_do_not_change_the_build(point_config, demo_n
              key({"network.delay_ms": 2.0})]
     assert all(k == base for k in same)
     assert all(k != base for k in other)
+
+
+def test_the_build_key_covers_the_code_that_generates_the_binary(tmp_path: Path, point_config, demo_network,
+                                                                  monkeypatch: pytest.MonkeyPatch) -> None:
+    """A binary compiled from other capsweep sources or under another Brian2 is never reused.
+
+    The fingerprint of copies of the generating sources equals the installed one; a comment added
+    to one copy, or another Brian2 version, changes it, and a changed fingerprint changes the key.
+    """
+    here = Path(builds.__file__).parent
+    copies = [tmp_path / name for name in builds.GENERATING_SOURCES]
+    for copy in copies:
+        copy.write_bytes((here / copy.name).read_bytes())
+    brian2_version = importlib.metadata.version("brian2")
+    installed = builds.fingerprint(copies, brian2_version)
+    assert installed == builds.code_fingerprint()
+    other_brian2 = builds.fingerprint(copies, brian2_version + ".post1")
+    (tmp_path / "model.py").write_bytes((here / "model.py").read_bytes() + b"\n# edited\n")
+    edited = builds.fingerprint(copies, brian2_version)
+    assert len({installed, other_brian2, edited}) == 3
+    cfg = point_config(demo_network, {"execution.engine": "standalone"})
+    key = builds.build_key(cfg)
+    monkeypatch.setattr(builds, "code_fingerprint", lambda: edited)
+    assert builds.build_key(cfg) != key
 
 
 def test_compile_is_charged_to_setup_not_to_the_point(short_runs) -> None:
