@@ -289,6 +289,9 @@ KEYS: tuple[Key, ...] = (
        "Simulated time between checkpoints of a point's full state, from which a killed point resumes with the same "
        "result (0 = off; runtime engines only: standalone points fall back to cython)", low=0.0, high=1e6,
        sweepable=False),
+    _k("execution.threads", 1, "1",
+       "Threads per point: OpenMP threads of the standalone binary (results depend on the count, which each point "
+       "stores; the runtime engines run on one thread)", low=1, high=256, sweepable=False),
     _k("execution.cluster.kind", LOCAL, "1",
        "Where the Dask workers run: local processes (execution.workers), an existing scheduler (execution.scheduler), "
        "or batch jobs through dask-jobqueue (pip install 'capsweep[cluster]')",

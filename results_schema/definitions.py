@@ -31,6 +31,9 @@ weight_correlation[s]: Pearson correlation over all E->E synapses between the we
 hold start. assembly_contrast[s]: mean within-assembly E->E weight / mean of all other E->E weights. \
 weight_in[s], weight_out[s], weight_within[s]: mean E->E weight into members from cells in no assembly, from \
 members to such cells, and between members of a shared assembly.
+threads: the threads a point's simulation ran on (execution.threads for the standalone engine's OpenMP loop, 1 \
+for the others). Results of one point are bitwise reproducible for a given count and differ between counts (each \
+thread draws from its own random stream, and the order of floating-point sums changes).
 runaway_onset_s: first time the excitatory population rate, smoothed over detection.smoothing_s, stays above \
 max(detection.runaway_factor x baseline E rate, detection.runaway_floor_hz) for detection.runaway_hold_s; cue \
 periods are excluded. NaN if never.

@@ -77,6 +77,8 @@ VARIABLES: tuple[Variable, ...] = (
              "generating and compiling its code (the compile, paid by the first point of a build, lands here)"),
     Variable("simulated_time_s", "s", "biological time simulated (shorter than planned after an early abort)"),
     Variable("n_synapses", "1", "number of synapses in the network", dtype="int64"),
+    Variable("threads", "1", "threads the point's simulation ran on (execution.threads on the standalone engine, "
+             "else 1); results depend on it", dtype="int32"),
     Variable("recall_quality", "1", "Pearson r over uncued E cells between recall-window spike count and "
              "membership of the cued assembly", inner="assembly"),
     Variable("persistence", "1", "recall_quality in the window after the cue ends", inner="assembly"),

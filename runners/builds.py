@@ -29,7 +29,7 @@ BUILD_DIR_ENV = "CAPSWEEP_BUILD_DIR"
 _KEYS_IN_CODE = (
     "network.n_exc", "network.inh_per_exc", "network.indegree_exc", "network.indegree_inh",
     "network.delay_ms", "network.dt_ms", "plasticity.heterosynaptic.w_ref_mode",
-    "protocol.snapshots", "detection.trace_bin_ms", "execution.engine",
+    "protocol.snapshots", "detection.trace_bin_ms", "execution.engine", "execution.threads",
 )
 """Config keys that change the generated code (everything else is passed per run)."""
 _COEFFICIENTS_OF = {
@@ -81,17 +81,18 @@ def fingerprint(sources: list[Path], brian2_version: str) -> str:
 
 
 @functools.cache
-def code_fingerprint() -> str:
-    """:func:`fingerprint` of this capsweep's :data:`GENERATING_SOURCES` and the installed Brian2 (once per process)."""
+def code_fingerprint(*also: str) -> str:
+    """:func:`fingerprint` of this capsweep's :data:`GENERATING_SOURCES` (and the runners modules ``also``) and the
+    installed Brian2; computed once per process."""
     here = Path(__file__).parent
-    return fingerprint([here / name for name in GENERATING_SOURCES], importlib.metadata.version("brian2"))
+    return fingerprint([here / name for name in GENERATING_SOURCES + also], importlib.metadata.version("brian2"))
 
 
 def build_key(cfg: dict) -> str:
     """Hash of a point's compiled code: points with equal keys share one compiled binary.
 
     Covers the config values that change the generated code (sizes, in-degrees, delay, dt, the
-    reference-weight mode, the snapshot count, the trace bin, and the engine: see
+    reference-weight mode, the snapshot count, the trace bin, the engine and its threads: see
     ``_KEYS_IN_CODE``) and :func:`code_fingerprint`, so a binary compiled by other capsweep code or
     another Brian2 is never reused; plasticity switches are not structural (see :func:`compiled_form`).
     """

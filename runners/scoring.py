@@ -13,6 +13,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from ..engines import threads_of
 from . import metrics, protocol
 
 if TYPE_CHECKING:
@@ -178,6 +179,7 @@ def score(cfg: dict, seed: int, engine: str, h: Handles, rec: Recording, start: 
         "setup_time_s": rec.setup_s,
         "simulated_time_s": sim_time,
         "n_synapses": int(h.n_synapses),
+        "threads": threads_of(cfg),
         **recall,
         **retention,
         **_drift(h, rec.snaps, len(sched.snapshots)),

@@ -47,6 +47,7 @@ from typing import Any
 import brian2 as b2
 import numpy as np
 
+from ..engines import threads_of
 from . import protocol
 from .builds import build_key, build_root, compiled_form, locked
 from .model import SNAPSHOT_VARIABLE, Handles, build_network
@@ -336,6 +337,8 @@ def _compile(cfg: dict, seed: int, wiring_seed: int | None, key: str) -> _Build:
     """Generate (and, if the code changed, compile) the build of ``key``; keep its objects live."""
     directory = build_root() / key
     device = _use_standalone(directory, fresh=True)
+    threads = threads_of(cfg)
+    b2.prefs.devices.cpp_standalone.openmp_threads = threads if threads > 1 else 0  # 0: no OpenMP at all
     network, ns, handles = build_network(cfg, seed, wiring_seed, standalone=True)
     watch = b2.NeuronGroup(1, _WATCH_EQUATIONS, name="watch")
     snapshots = b2.NeuronGroup(len(handles.schedule.snapshots) + 1, "step : integer (constant)", name="snapshots")
@@ -346,8 +349,9 @@ def _compile(cfg: dict, seed: int, wiring_seed: int | None, key: str) -> _Build:
                         name="stimulus_tick")
     network.add(watch, snapshots)
     device.apply_run_args()
-    device.insert_code("main", "brian::_random_generators[0].seed((unsigned long) "
-                               f"{device.get_array_name(watch.variables['rng_seed'])}[0]);")
+    device.insert_code("main", "for (size_t _g = 0; _g < brian::_random_generators.size(); _g++) "
+                               "brian::_random_generators[_g].seed((unsigned long) "
+                               f"{device.get_array_name(watch.variables['rng_seed'])}[0] + _g);")
     network.run(MAX_DURATION_S * b2.second, namespace=ns)
     with locked(build_root() / f"{key}.lock"):
         device.build(directory=str(directory), compile=True, run=False, with_output=False)
