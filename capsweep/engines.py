@@ -50,8 +50,7 @@ ENGINES: dict[str, Engine] = {
         Engine("standalone", "Brian2 C++ standalone: one binary compiled per network structure, rerun per point",
                "capsweep.runners.standalone:simulate", first_point_s=2.5, reuses_builds=True,
                limits="capsweep.runners.builds:unsupported",
-               cannot="a detection.trace_bin_ms that is not a whole number of network.dt_ms steps;"
-               " within-point checkpoints (execution.checkpoint_interval_s > 0)",
+               cannot="a detection.trace_bin_ms that is not a whole number of network.dt_ms steps",
                fallback="cython", threads=True),
     )
 }

@@ -109,6 +109,14 @@ VARIABLES: tuple[Variable, ...] = (
     Variable("weight_out", "g_leak", "mean E->E weight from assembly members to cells in no assembly",
              inner="snapshot"),
     Variable("weight_within", "g_leak", "mean E->E weight between members of a shared assembly", inner="snapshot"),
+    Variable("weight_between", "g_leak", "mean E->E weight between members of different assemblies (pre and post "
+             "each in some assembly, sharing none)", inner="snapshot"),
+    Variable("upper_share_within", "1", "share of within-assembly E->E synapses whose reference weight is in the "
+             "upper state (w_ref > w_P/2; bistable w_ref_mode only)", inner="snapshot"),
+    Variable("upper_share_between", "1", "share of between-assembly E->E synapses whose reference weight is in the "
+             "upper state (w_ref > w_P/2; bistable w_ref_mode only)", inner="snapshot"),
+    Variable("upper_share_other", "1", "share of the other E->E synapses (at least one cell in no assembly) whose "
+             "reference weight is in the upper state (w_ref > w_P/2; bistable w_ref_mode only)", inner="snapshot"),
     Variable("snapshot_time_s", "s", "simulated time of each weight snapshot", inner="snapshot"),
     Variable("rate_exc_hz", "Hz", "binned excitatory population rate", inner="time_bin"),
     Variable("rate_inh_hz", "Hz", "binned inhibitory population rate", inner="time_bin"),

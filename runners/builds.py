@@ -62,8 +62,6 @@ def unsupported(cfg: dict) -> str | None:
     bin_steps = cfg["detection"]["trace_bin_ms"] / cfg["network"]["dt_ms"]
     if abs(bin_steps - round(bin_steps)) > 1e-9:
         return "detection.trace_bin_ms is not a whole number of network.dt_ms steps"
-    if cfg["execution"]["checkpoint_interval_s"] > 0:
-        return "execution.checkpoint_interval_s > 0: within-point checkpoints need a runtime engine"
     return None
 
 
