@@ -1,7 +1,7 @@
 """Within-point checkpoints: a point killed mid-run resumes from its last checkpoint with the same result.
 
-A tiny learned-assembly point (100 E cells, one assembly imprinted once) on each engine that
-writes checkpoints: on cython about 2.3 simulated s with a consolidating reference weight,
+The tiny learned-assembly point of ``conftest.py`` (100 E cells, one assembly imprinted once) on each
+engine that writes checkpoints: on cython about 2.3 simulated s with a consolidating reference weight,
 checkpointed every 0.25 s; on standalone a 21.5 s point with a bistable reference weight,
 checkpointed every 0.5 s (the binary runs the point in about a second, so a longer hold leaves
 time to kill it). The point runs in a subprocess whose process group (the binary included) is
@@ -36,20 +36,10 @@ from capsweep.runners.standalone import read_checkpoint
 from capsweep.sweeps.identity import point_id
 
 SEED, WIRING = 5, 9
-TINY = {
-    "network.n_exc": 100, "network.indegree_exc": 40, "network.indegree_inh": 10,
-    "assemblies.count": 1, "assemblies.size": 25, "assemblies.imprint": "learned",
-    "plasticity.heterosynaptic.w_ref_mode": "consolidating", "plasticity.heterosynaptic.tau_consolidation_s": 1.0,
-    "protocol.settle_s": 0.3, "protocol.imprint_on_s": 0.3, "protocol.imprint_off_s": 0.2,
-    "protocol.imprint_repeats": 1, "protocol.hold_s": 1.0, "protocol.cue_gap_s": 0.3,
-    "detection.runaway_hold_s": 0.2, "detection.smoothing_s": 0.1, "execution.engine": "cython",
-}
-"""A 2.3 s learned point: settle 0.3, imprint 0.5, hold 1.0, one cue 0.2 + gap 0.3 (dotted keys)."""
-STANDALONE = {**TINY, "plasticity.heterosynaptic.w_ref_mode": "bistable", "protocol.hold_s": 20.0,
-              "protocol.cue_gap_s": 0.5, "execution.engine": "standalone"}
+STANDALONE = {"plasticity.heterosynaptic.w_ref_mode": "bistable", "protocol.hold_s": 20.0, "protocol.cue_gap_s": 0.5}
 """The standalone point: bistable reference weight, 20 s hold, a 0.5 s gap after the cue (21.5 s)."""
-POINTS = {"cython": (TINY, 0.25, 2.3), "standalone": (STANDALONE, 0.5, 21.5)}
-"""Engine -> (dotted keys, checkpoint interval in s, simulated s)."""
+POINTS = {"cython": ({}, 0.25, 2.3), "standalone": (STANDALONE, 0.5, 21.5)}
+"""Engine -> (dotted keys over the tiny learned point, checkpoint interval in s, simulated s)."""
 FILES = {"cython": "*.pkl", "standalone": "*.bin"}
 
 
@@ -112,10 +102,11 @@ def _run_until_checkpoint(cfg: dict, folder: Path, after_step: int, seed: int = 
 
 
 @pytest.fixture(scope="module", params=list(POINTS))
-def killed(request, tmp_path_factory: pytest.TempPathFactory, build_root: Path) -> tuple[dict, dict, Path, bytes]:
+def killed(request, tmp_path_factory: pytest.TempPathFactory, build_root: Path,
+           tiny_learned: dict[str, object]) -> tuple[dict, dict, Path, bytes]:
     """(checkpointed config, uninterrupted result, checkpoint file of a killed run, its bytes) per engine."""
     overlay, interval, _ = POINTS[request.param]
-    base = nest({**defaults(), **overlay})
+    base = nest({**defaults(), **tiny_learned, **overlay, "execution.engine": request.param})
     uninterrupted = run_point(base, SEED, WIRING)
     cfg = nest({**flatten(base), "execution.checkpoint_interval_s": interval})
     folder = tmp_path_factory.mktemp(f"killed-{request.param}")

@@ -184,16 +184,10 @@ def test_theory_consolidating_reference_is_the_exponential_relaxation() -> None:
     assert dynamics.fixed_reference(_het(P_DEFAULT, 20.0), w, starts, 7.0) is starts
 
 
-LEARNED_TWO = {
-    "network.n_exc": 100, "network.indegree_exc": 40, "network.indegree_inh": 10,
-    "assemblies.count": 2, "assemblies.size": 25, "assemblies.imprint": "learned",
-    "plasticity.heterosynaptic.w_ref_mode": "bistable", "plasticity.heterosynaptic.tau_consolidation_s": 1.0,
-    "protocol.settle_s": 0.3, "protocol.imprint_on_s": 0.3, "protocol.imprint_off_s": 0.2,
-    "protocol.imprint_repeats": 1, "protocol.hold_s": 20.0, "protocol.cue_gap_s": 0.5,
-    "detection.runaway_hold_s": 0.2, "detection.smoothing_s": 0.1,
-}
-"""Two assemblies of 25 (of 100 E cells) learned in one presentation each, bistable w_ref with tau_cons = 1 s, a 20 s
-hold (the build of tests/test_checkpoint.py's standalone point)."""
+LEARNED_TWO = {"assemblies.count": 2, "plasticity.heterosynaptic.w_ref_mode": "bistable", "protocol.hold_s": 20.0,
+               "protocol.cue_gap_s": 0.5}
+"""Over the tiny learned point of conftest.py: two assemblies of 25 (of 100 E cells) learned in one presentation
+each, bistable w_ref with tau_cons = 1 s, a 20 s hold (the build of tests/test_checkpoint.py's standalone point)."""
 
 
 def _classes_by_sets(pre: np.ndarray, post: np.ndarray, members: np.ndarray) -> dict[str, np.ndarray]:
@@ -224,27 +218,27 @@ def _scored(cfg: dict, seed: int) -> tuple[dict, dict[str, np.ndarray]]:
 
 
 @pytest.mark.parametrize("engine,hold_s", [("standalone", 20.0), ("cython", 1.0)])
-def test_upper_state_shares_per_class_match_the_recorded_reference_weights(point_config, build_root, engine: str,
-                                                                           hold_s: float) -> None:
+def test_upper_state_shares_per_class_match_the_recorded_reference_weights(point_config, build_root, tiny_learned,
+                                                                           engine: str, hold_s: float) -> None:
     """Both engines record w_ref at every hold snapshot; the stored shares and the between-assembly weight are
     those computed here, from sets of assembly indices, on the recorded w_ref and w."""
-    cfg = point_config(LEARNED_TWO, {"execution.engine": engine, "protocol.hold_s": hold_s})
+    cfg = point_config(tiny_learned, LEARNED_TWO, {"execution.engine": engine, "protocol.hold_s": hold_s})
     result, expected = _scored(cfg, seed=6)
     assert np.isfinite(result["upper_share_within"]).all()  # every snapshot reached
     for name in ("within", "between", "other"):
         np.testing.assert_array_equal(result[f"upper_share_{name}"], expected[name], err_msg=name)
     np.testing.assert_allclose(result["weight_between"], expected["weight_between"], rtol=1e-12)
-    fixed = point_config(LEARNED_TWO, {"execution.engine": engine, "protocol.hold_s": 0.5,
+    fixed = point_config(tiny_learned, LEARNED_TWO, {"execution.engine": engine, "protocol.hold_s": 0.5,
                                        "plasticity.heterosynaptic.w_ref_mode": "consolidating"})
     assert np.isnan(_scored(fixed, seed=6)[0]["upper_share_within"]).all()  # bistable consolidation only
 
 
-def test_learned_synapses_consolidate_and_the_unlearned_control_does_not_single_them_out(point_config,
-                                                                                      build_root) -> None:
+def test_learned_synapses_consolidate_and_the_unlearned_control_does_not_single_them_out(point_config, build_root,
+                                                                                      tiny_learned) -> None:
     """Learned point: within-assembly synapses reach the upper state ahead of the rest. Control (the same point
     without learning input): the within-assembly share stays with the other classes' (its false-positive margin)."""
-    learned, _ = _scored(point_config(LEARNED_TWO, {"execution.engine": "standalone"}), seed=6)
-    control, _ = _scored(point_config(LEARNED_TWO, {"execution.engine": "standalone",
+    learned, _ = _scored(point_config(tiny_learned, LEARNED_TWO, {"execution.engine": "standalone"}), seed=6)
+    control, _ = _scored(point_config(tiny_learned, LEARNED_TWO, {"execution.engine": "standalone",
                                                     "protocol.imprint_rate_hz": 0.0}), seed=6)
     assert learned["outcome"] == control["outcome"] == "stable"
     assert learned["upper_share_within"][1] > 0.2 > 0.05 > learned["upper_share_other"][1]
