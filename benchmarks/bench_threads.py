@@ -10,7 +10,10 @@ timings) is hashed: repeats of one thread count must give one hash, and the coun
 with each other. The load average of the machine is printed beside every measurement.
 
     python benchmarks/bench_threads.py [--sizes 8000,16000] [--threads 1,2] [--repeats 3]
-                                       [--wait-policy PASSIVE]
+                                       [--wait-policy PASSIVE] [--build-dir DIR]
+
+``--build-dir`` keeps the builds in DIR (reused by a later run) instead of a temporary directory.
+Every run is also printed to stderr as it finishes.
 
 ``--wait-policy`` sets ``OMP_WAIT_POLICY`` for the binaries (unset by default: libgomp spins a
 while at each barrier, then sleeps).
@@ -19,6 +22,7 @@ while at each barrier, then sleeps).
 from __future__ import annotations
 
 import argparse
+import contextlib
 import hashlib
 import json
 import os
@@ -117,6 +121,7 @@ def main() -> None:
     parser.add_argument("--threads", default="1,2")
     parser.add_argument("--repeats", type=int, default=3)
     parser.add_argument("--wait-policy", default="")
+    parser.add_argument("--build-dir", default="")
     parser.add_argument("--child", nargs=3, metavar=("KIND", "N_E", "THREADS"), help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.child:
@@ -126,7 +131,8 @@ def main() -> None:
     sizes, counts = [int(s) for s in args.sizes.split(",")], [int(t) for t in args.threads.split(",")]
     env = {"OMP_WAIT_POLICY": args.wait_policy} if args.wait_policy else {}
     rows: dict[tuple[int, int], list[dict[str, Any]]] = {(n, t): [] for n in sizes for t in counts}
-    with tempfile.TemporaryDirectory(prefix="capsweep-bench-threads-") as build_dir:
+    with contextlib.ExitStack() as stack:
+        build_dir = args.build_dir or stack.enter_context(tempfile.TemporaryDirectory(prefix="capsweep-bench-threads-"))
         for n_exc in sizes:
             for threads in counts:
                 run_child(["compile", str(n_exc), str(threads)], build_dir)
@@ -134,6 +140,7 @@ def main() -> None:
             for n_exc in sizes:
                 for threads in counts:
                     rows[n_exc, threads].append(run_child(["measure", str(n_exc), str(threads)], build_dir, env))
+                    print(n_exc, threads, json.dumps(rows[n_exc, threads][-1]), file=sys.stderr, flush=True)
     print(f"measured {time.strftime('%Y-%m-%d')} on {os.cpu_count()} cores, {args.repeats} repeats interleaved"
           + (f", OMP_WAIT_POLICY={args.wait_policy}" if args.wait_policy else ""))
     print("| N_E | threads | wall s / s simulated | CPU s / s simulated | load (1 min) | repeats bitwise equal |"
