@@ -19,7 +19,7 @@ from ..axes import Axis
 from ..engines import NAMES as ENGINE_NAMES
 from ..flags import OUTCOMES, STATUSES
 
-SCHEMA_VERSION = "2.1"
+SCHEMA_VERSION = "2.2"
 
 FLAG_FILL = -1
 INNER_DIMS: tuple[str, ...] = ("assembly", "snapshot", "time_bin", "retention")

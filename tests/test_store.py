@@ -80,6 +80,8 @@ def point_result(n_assemblies: int, recalled: int) -> dict:
         "cue_time_s": 8.0 + 0.7 * np.arange(n_assemblies), "retention_s": np.full(n_assemblies, 7.0),
         "retention_delay_s": [7.0], "retention_recalled": [recalled], "retention_score": [0.8],
         "weight_in": [0.05, 0.06], "weight_out": [0.05, 0.04], "weight_within": [0.25, 0.27],
+        "weight_between": [0.05, 0.05], "threads": 1, "upper_share_within": [np.nan, np.nan],
+        "upper_share_between": [np.nan, np.nan], "upper_share_other": [np.nan, np.nan],
     }
 
 
