@@ -37,7 +37,7 @@ def result(count: int, outcome: str, recalled: int, seed: int) -> dict:
     out.update({
         "outcome": outcome, "engine": "cython", "seed": seed, "predicted_outcome": None,
         "runaway_onset_s": 5.0 if outcome == "runaway" else np.nan, "recalled_count": recalled,
-        "n_synapses": 1000, "retention_recalled": [recalled],
+        "n_synapses": 1000, "retention_recalled": [recalled], "threads": 1,
         "rate_exc_baseline_hz": 3.0, "rate_inh_baseline_hz": 7.0, "isi_cv_exc": 0.9, "rate_exc_hold_end_hz": 3.5,
         "wall_time_s": 10.0, "simulated_time_s": 8.0,
         "recall_quality": score, "recall_score": score, "persistence": score / 2, "completion": score,
