@@ -35,6 +35,8 @@ class Engine:
     """What the engine cannot express, in words (for notes and docs)."""
     fallback: str = ""
     """Engine that runs a point this one cannot express."""
+    threads: bool = False
+    """Runs a point on ``execution.threads`` threads (the others run on one and ignore the key)."""
 
 
 ENGINES: dict[str, Engine] = {
@@ -48,9 +50,8 @@ ENGINES: dict[str, Engine] = {
         Engine("standalone", "Brian2 C++ standalone: one binary compiled per network structure, rerun per point",
                "capsweep.runners.standalone:simulate", first_point_s=2.5, reuses_builds=True,
                limits="capsweep.runners.builds:unsupported",
-               cannot="a detection.trace_bin_ms that is not a whole number of network.dt_ms steps;"
-               " within-point checkpoints (execution.checkpoint_interval_s > 0)",
-               fallback="cython"),
+               cannot="a detection.trace_bin_ms that is not a whole number of network.dt_ms steps",
+               fallback="cython", threads=True),
     )
 }
 """Every engine by name. First-point costs measured on a 2-core machine (December 2026):
@@ -72,6 +73,11 @@ def resolve(ref: str) -> Callable[..., Any]:
     module, _, function = ref.partition(":")
     found: Callable[..., Any] = getattr(import_module(module), function)
     return found
+
+
+def threads_of(cfg: dict[str, Any]) -> int:
+    """Threads a point of ``cfg`` runs on: ``execution.threads`` on an engine that uses it, else 1."""
+    return int(cfg["execution"]["threads"]) if engine(cfg["execution"]["engine"]).threads else 1
 
 
 def engine_for(cfg: dict[str, Any]) -> tuple[Engine, str | None]:

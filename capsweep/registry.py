@@ -294,8 +294,10 @@ KEYS: tuple[Key, ...] = (
     _k("execution.abort_on_runaway", True, "1", "Stop a point's simulation soon after runaway onset", sweepable=False),
     _k("execution.checkpoint_interval_s", 0.0, "s",
        "Simulated time between checkpoints of a point's full state, from which a killed point resumes with the same "
-       "result (0 = off; runtime engines only: standalone points fall back to cython)", low=0.0, high=1e6,
-       sweepable=False),
+       "result (0 = off)", low=0.0, high=1e6, sweepable=False),
+    _k("execution.threads", 1, "1",
+       "Threads per point: OpenMP threads of the standalone binary (results depend on the count, which each point "
+       "stores; the runtime engines run on one thread)", low=1, high=256, sweepable=False),
     _k("execution.cluster.kind", LOCAL, "1",
        "Where the Dask workers run: local processes (execution.workers), an existing scheduler (execution.scheduler), "
        "or batch jobs through dask-jobqueue (pip install 'capsweep[cluster]')",

@@ -199,6 +199,11 @@ def _print_run_summary(progress: Any) -> None:
     if asked is not None and asked.fallback and progress.engines.get(asked.fallback):
         err.print(f"note: some points ran on {asked.fallback} because the {asked.name} engine cannot express "
                   f"their settings ({asked.cannot})")
+    single = {name for name in progress.engines if not ENGINES[name].threads}
+    if progress.threads > 1 and single:
+        err.print(f"note: points on {', '.join(sorted(single))} ran on one thread: execution.threads = "
+                  f"{progress.threads} applies to the {', '.join(e.name for e in ENGINES.values() if e.threads)} "
+                  "engine only")
 
 
 @app.command()

@@ -43,6 +43,7 @@ class Progress:
     engines: dict[str, int] = field(default_factory=dict)  # engine that actually ran each point
     dashboard: str = ""
     engine: str = ""  # engine the run asked for
+    threads: int = 1  # execution.threads the run asked for
     started_at: float = field(default_factory=time.monotonic)
     last: str = ""  # description of the last stored point
     worker_count: Callable[[], int] = lambda: 0  # Dask workers connected now (asked live: batch jobs come and go)
@@ -122,6 +123,7 @@ def _started(dask: EarlyClient, todo: list[Point], options: RunOptions, progress
              on_event: Callable[[Progress], None]) -> Client:
     """The Dask client, once started; reports the engine and dashboard first."""
     progress.engine = options.engine or todo[0].config["execution"]["engine"]
+    progress.threads = todo[0].config["execution"]["threads"]
     progress.worker_count = dask.worker_count
     client = dask.client()
     progress.dashboard = client.dashboard_link if dask.has_dashboard else ""

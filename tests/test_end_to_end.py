@@ -74,6 +74,21 @@ values = [1]
 """
 
 
+THREADS_SWEEP = """
+[sweep]
+name = "odour-threads"
+store = "{store}"
+replicates = 2
+[[sweep.axis]]
+name = "n_assemblies"
+key = "assemblies.count"
+values = [1]
+[execution]
+workers = 1
+threads = 2
+"""
+
+
 def write_sweep(tmp_path: Path, template: str, hold_s: float, adapt_jump: float = 0.0) -> tuple[Path, Path]:
     store = tmp_path / "odour.zarr"
     sweep = tmp_path / "sweep.toml"
@@ -229,6 +244,18 @@ def test_killed_sweep_resumes_without_recomputing(tmp_path: Path) -> None:
     ds = xr.open_zarr(store)
     assert (ds["status"].values == 1).all()
     np.testing.assert_array_equal(ds["wall_time_s"].values[done_before], kept[done_before])
+
+
+def test_one_worker_with_two_threads_per_point(tmp_path: Path, build_root: Path) -> None:
+    """execution.threads = 2 on one local worker: every point runs on the standalone binary's two OpenMP threads."""
+    sweep, store = write_sweep(tmp_path, THREADS_SWEEP, hold_s=1.0)
+    run = capsweep("run", str(sweep))
+    assert run.returncode == 0, run.stderr
+    ds = xr.open_zarr(store)
+    assert (ds["status"].values == 1).all()
+    assert (ds["threads"].values == 2).all()
+    assert (ds["engine"].values == ds["engine"].attrs["flag_meanings"].split().index("standalone")).all()
+    assert np.isfinite(ds["rate_exc_baseline_hz"].values).all()
 
 
 def test_unreachable_scheduler_is_named_and_the_new_store_kept(tmp_path: Path) -> None:
