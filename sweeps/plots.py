@@ -48,6 +48,7 @@ from .capacity import (
 )
 from .expand import expand
 from .identity import grid_shape
+from .outputs import check_folder, make_folder
 from .query import QueryError, axis_keys, labelled, sweep_dims
 from .sweepfile import parse_sweep
 
@@ -104,15 +105,6 @@ def check_dpi(dpi: int) -> int:
         raise CapsweepError(f"--dpi {dpi} is not allowed: expected a whole number from {DPI_RANGE[0]} to "
                             f"{DPI_RANGE[1]}")
     return dpi
-
-
-def check_folder(out_dir: Path) -> Path:
-    """``out_dir`` if it is a folder or can become one (its nearest existing ancestor is a folder)."""
-    existing = next(p for p in (out_dir, *out_dir.absolute().parents) if p.exists())
-    if not existing.is_dir():
-        what = "is a file" if existing == out_dir else f"lies under the file {existing}"
-        raise CapsweepError(f"--out {out_dir} {what}; expected a folder (existing or new)")
-    return out_dir
 
 
 def capacity_axes(ds: xr.Dataset, axis: str | None = None) -> list[str]:
@@ -503,10 +495,10 @@ def all_plots(ds: xr.Dataset, out_dir: Path, x: str | None = None, y: str | None
     x, y = map_axes(ds, x, y)
     kinds, dpi = output_formats(formats), check_dpi(DEFAULT_DPI if dpi is None else dpi)
     against = capacity_axes(ds, capacity_axis)
-    check_folder(out_dir)
+    check_folder(out_dir, "--out")
     figures, notes = _figures(ds, x, y, against)
     try:
-        out_dir.mkdir(parents=True, exist_ok=True)
+        make_folder(out_dir, "--out")
         paths = [_save(fig, out_dir / f"{stem}.{kind}", dpi) for stem, fig in figures.items() for kind in kinds]
     finally:
         for fig in figures.values():
