@@ -236,14 +236,20 @@ def _done(store: Path) -> np.ndarray:
         return np.zeros(1, dtype=bool)
 
 
+def run_until_stored(sweep: Path, store: Path, points: int) -> subprocess.Popen[str]:
+    """Start `capsweep run SWEEP` in a session of its own and return once ``points`` points are done."""
+    run = subprocess.Popen([sys.executable, "-m", "capsweep.sweeps.cli", "run", str(sweep)], start_new_session=True,
+                           stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    deadline = time.monotonic() + 300
+    while time.monotonic() < deadline and not (store.exists() and _done(store).sum() >= points):
+        time.sleep(0.2)
+    assert store.exists() and _done(store).sum() >= points, "the run stored nothing in time"
+    return run
+
+
 def test_killed_sweep_resumes_without_recomputing(tmp_path: Path) -> None:
     sweep, store = write_sweep(tmp_path, RESUME_SWEEP, hold_s=8.0)
-    first = subprocess.Popen([sys.executable, "-m", "capsweep.sweeps.cli", "run", str(sweep)], start_new_session=True,
-                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-    deadline = time.monotonic() + 300
-    while time.monotonic() < deadline and not (store.exists() and _done(store).sum() >= 2):
-        time.sleep(0.2)
-    assert store.exists() and _done(store).sum() >= 2, "first run stored nothing in time"
+    first = run_until_stored(sweep, store, 2)
     second = capsweep("run", str(sweep))  # concurrent run on a locked store
     assert second.returncode == 3 and "locked" in second.stderr, second.stderr
     os.killpg(first.pid, signal.SIGKILL)
@@ -304,12 +310,7 @@ def test_ctrl_c_mid_run_stops_quietly_and_keeps_what_was_stored(tmp_path: Path) 
     """Ctrl-C printed about 30 lines of Dask worker tracebacks. A terminal's Ctrl-C sends SIGINT to the whole
     foreground process group [POSIX, General Terminal Interface, 11.1.9]: here, to the run's new session."""
     sweep, store = write_sweep(tmp_path, RESUME_SWEEP, hold_s=8.0)
-    run = subprocess.Popen([sys.executable, "-m", "capsweep.sweeps.cli", "run", str(sweep)], start_new_session=True,
-                           stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-    deadline = time.monotonic() + 300
-    while time.monotonic() < deadline and not (store.exists() and _done(store).sum() >= 1):
-        time.sleep(0.2)
-    assert _done(store).sum() >= 1, "the run stored nothing in time"
+    run = run_until_stored(sweep, store, 1)
     os.killpg(run.pid, signal.SIGINT)
     _, stderr = run.communicate(timeout=120)
     assert run.returncode == 130, stderr
