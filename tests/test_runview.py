@@ -108,3 +108,29 @@ def test_csv_writes_the_float_a_person_means() -> None:
     keeping every digit a float64 holds reliably [IEEE 754: float64 carries 15.95 decimal digits]."""
     text = table_csv(pd.DataFrame({"fraction": [1 - 2**-53, 0.123456789012345]}), {})
     assert text.splitlines()[1:] == ["1", "0.123456789012345"]
+
+
+def test_a_compile_announced_on_a_worker_reaches_the_progress_while_it_lasts() -> None:
+    """The bar sat at '0/N ETA -:--:--' for 30 s during the first compile. The notice travels through Dask's
+    event log (a real in-process cluster): open while the build compiles, gone once it is done."""
+    from distributed import Client
+
+    from capsweep.runners.notices import COMPILE_TOPIC, announce
+    from capsweep.sweeps.launch import _compile_notice
+
+    state = progress(compiling={})
+    seen: list[dict[str, float]] = []
+    with Client(processes=False, n_workers=1, threads_per_worker=1, dashboard_address=None) as client:
+        client.subscribe_topic(COMPILE_TOPIC, lambda event: (_compile_notice(state, event[1]),
+                                                             seen.append(dict(state.compiling))))
+        client.submit(announce, COMPILE_TOPIC, {"build": "k1", "expected_s": 42.0, "done": False}).result()
+        deadline = time.monotonic() + 30
+        while not seen and time.monotonic() < deadline:
+            time.sleep(0.05)
+        assert state.compiling == {"k1": 42.0}
+        assert "compiling network (first time, ~42 s)" in status_line(state, 200)
+        client.submit(announce, COMPILE_TOPIC, {"build": "k1", "expected_s": 0.0, "done": True}, pure=False).result()
+        while len(seen) < 2 and time.monotonic() < deadline:
+            time.sleep(0.05)
+    assert state.compiling == {}
+    announce(COMPILE_TOPIC, {"build": "k2", "expected_s": 1.0, "done": False})  # outside a worker: nothing happens
