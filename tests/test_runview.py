@@ -116,11 +116,13 @@ def test_a_compile_announced_on_a_worker_reaches_the_progress_while_it_lasts() -
     from distributed import Client
 
     from capsweep.runners.notices import COMPILE_TOPIC, announce
+    from capsweep.sweeps.dispatch import QUIET_HTTP_ADDRESS
     from capsweep.sweeps.launch import _compile_notice
 
     state = progress(compiling={})
     seen: list[dict[str, float]] = []
-    with Client(processes=False, n_workers=1, threads_per_worker=1, dashboard_address=None) as client:
+    with Client(processes=False, n_workers=1, threads_per_worker=1, dashboard_address=None,
+                scheduler_kwargs={"dashboard_address": QUIET_HTTP_ADDRESS}) as client:
         client.subscribe_topic(COMPILE_TOPIC, lambda event: (_compile_notice(state, event[1]),
                                                              seen.append(dict(state.compiling))))
         client.submit(announce, COMPILE_TOPIC, {"build": "k1", "expected_s": 42.0, "done": False}).result()
