@@ -226,13 +226,14 @@ def test_shrink_builds_takes_to_mib() -> None:
 
 
 def test_check_names_a_fallback_engine_and_its_cost(tmp_path: Path) -> None:
-    """A within-point checkpoint forces the cython fallback (minutes of compiling); check used not to say so."""
-    result = invoke("check", str(write(tmp_path, SWEEP + "[execution]\ncheckpoint_interval_s = 2.0\n")))
+    """A trace bin that is not a whole number of steps forces the cython fallback (minutes of compiling); check
+    used not to say so."""
+    result = invoke("check", str(write(tmp_path, SWEEP + "[detection]\ntrace_bin_ms = 10.05\n")))
     assert result.exit_code == 0, result.output
     builds = [line for line in result.stdout.splitlines() if line.startswith("  build ")]
     assert len(builds) == 2
     for line in builds:
-        assert "cython engine instead of standalone, because" in line and "checkpoint" in line
+        assert "cython engine instead of standalone, because" in line and "trace_bin_ms" in line
         assert "compiles its code cache once per machine" in line
 
 
