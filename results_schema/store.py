@@ -250,7 +250,7 @@ class ResultStore:
         if "seed" in result and int(result["seed"]) != int(self._seeds[index]):
             raise ValueError(f"result seed {result['seed']} differs from the stored seed {self._seeds[index]}")
         return {
-            name: _encode_value(layout.BY_NAME[name], value, self._inner_size(layout.BY_NAME[name]))
+            name: encode_value(layout.BY_NAME[name], value, self._inner_size(layout.BY_NAME[name]))
             for name, value in result.items()
             if name != "seed"
         }
@@ -364,7 +364,7 @@ def _stored_variables() -> tuple[str, ...]:
     return (*(v.name for v in layout.VARIABLES), layout.STATUS.name, *STRING_VARIABLES)
 
 
-def _encode_value(var: layout.Variable, value: Any, inner_size: int | None) -> Any:
+def encode_value(var: layout.Variable, value: Any, inner_size: int | None) -> Any:
     """Turn one result value into what the variable's array holds (codes for flags, padded rows)."""
     if var.flags and inner_size is None:
         return _flag_code(var, value)

@@ -69,6 +69,11 @@ CLUSTER_SETTINGS = {
 """
 
 
+QUIET_HTTP_ADDRESS = "127.0.0.1:0"
+"""Where a local scheduler without dashboard serves its small HTTP endpoint (health, metrics): any free port on
+this host. Dask's default, port 8787, warns whenever another Dask cluster on the machine holds it."""
+
+
 def cluster_table(cluster: Mapping[str, Any] | None = None) -> dict[str, Any]:
     """The ``[execution.cluster]`` table: registry defaults overlaid with ``cluster`` (leaf names, checked values)."""
     prefix = "execution.cluster."
@@ -122,6 +127,7 @@ def dask_client(workers: int, scheduler: str = "", dashboard: bool = False,
     else:
         with dask.config.set({**CLUSTER_SETTINGS, **_fault_settings(table)}), LocalCluster(
             n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=":0" if dashboard else None,
+            scheduler_kwargs={} if dashboard else {"dashboard_address": QUIET_HTTP_ADDRESS},
             silence_logs=50, preload=[WORKER_PRELOAD],
         ) as local, contextlib.closing(Client(local)) as client:
             client.register_plugin(PrepareWorker(leave_fast=True))

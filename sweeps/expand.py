@@ -25,13 +25,18 @@ def expand(sweep: Sweep) -> list[Point]:
         *position, replicate = index
         flat = dict(sweep.base)
         labels: dict[str, Any] = {}
+        given = set(sweep.given)
         for axis, i in zip(sweep.axes, position):
             value = axis.values[i]
-            flat.update(sweep.variants[axis.name][value] if axis.name in sweep.variants else {axis.key: value})
+            overrides = sweep.variants[axis.name][value] if axis.name in sweep.variants else {axis.key: value}
+            flat.update(overrides)
+            given.update(overrides)
             labels[axis.name] = value
         labels[REPLICATE] = replicate
+        where = f"{sweep.source}: point {_describe(labels)}"
+        check_given(flat, given, where)
         flat = resolve_derived(flat)
-        check_consistency(flat, f"{sweep.source}: point {_describe(labels)}")
+        check_consistency(flat, where)
         pid = point_id(flat, replicate)
         wiring = point_seed(sweep.base_seed, f"wiring/{replicate}")
         points.append(Point(index, labels, nest(flat), pid, point_seed(sweep.base_seed, pid), wiring))
@@ -86,7 +91,27 @@ _RULES: tuple[tuple[Callable[[dict[str, Any]], bool], str], ...] = (
     (lambda f: f["detection.recall_alpha"] * (f["detection.recall_null_draws"] + 1) >= 1 - 1e-9,
      "detection.recall_null_draws ({detection.recall_null_draws}) must be at least 1 / detection.recall_alpha - 1 "
      "({detection.recall_alpha}): with fewer pseudo-assemblies no assembly can reach that p-value for certain"),
+    (lambda f: _initial_ee_weight(f) <= f["plasticity.triplet.w_max"],
+     "the initial E->E weights (network.w_e_to_e ({network.w_e_to_e}), x assemblies.prewire_gain "
+     "({assemblies.prewire_gain}) within prewired assemblies) must not exceed their clip plasticity.triplet.w_max "
+     "({plasticity.triplet.w_max}): the first spike would cut them down"),
 )
+_GIVEN_TOGETHER = (("assemblies.size", "assemblies.coding_level"),)
+"""Keys a point may not both set: the second, when above 0, derives the first (size = round(level x n_exc))."""
+
+
+def _initial_ee_weight(flat: dict[str, Any]) -> float:
+    """The largest initial E->E weight of a point (g_leak): within a prewired assembly it is multiplied by the gain."""
+    prewired = flat["assemblies.imprint"] == "prewired" and flat["assemblies.count"] > 0
+    return float(flat["network.w_e_to_e"] * (max(flat["assemblies.prewire_gain"], 1.0) if prewired else 1.0))
+
+
+def check_given(flat: dict[str, Any], given: set[str], where: str) -> None:
+    """Raise ConfigError if a point sets a key together with the key that derives it (``_GIVEN_TOGETHER``)."""
+    for derived, source in _GIVEN_TOGETHER:
+        if derived in given and source in given and flat[source] > 0:
+            raise ConfigError(f"{where}: {derived} ({flat[derived]}) and {source} ({flat[source]}) are both set, "
+                              f"but {source} decides the size alone (round({source} x network.n_exc)); set only one")
 
 
 def _windows(flat: dict[str, Any]) -> tuple[tuple[float, float], tuple[float, float]]:

@@ -135,7 +135,7 @@ def open_or_create(sweep: Sweep, points: list[Point]) -> ResultStore:
     if not path.exists():
         store.create_store(path, grid_spec(sweep, points), *id_and_seed_arrays(sweep, points))
     elif store.growing_to(path) == target or store.stored_attrs(path)[attrs.FINGERPRINT] != target:
-        reason = growth_refusal(_recorded_sweep(path, store.stored_attrs(path, growing=target)), sweep)
+        reason = growth_refusal(recorded_sweep(path, store.stored_attrs(path, growing=target)), sweep)
         if reason:
             raise StoreError(f"{path} was built from a different sweep grid: {reason}; a store grows only by values "
                              "appended to its axes and by more replicates (use another store path for another grid)")
@@ -144,7 +144,7 @@ def open_or_create(sweep: Sweep, points: list[Point]) -> ResultStore:
     return store.ResultStore.open(path, fingerprint=target, batching=store.WRITER_BATCHING)
 
 
-def _recorded_sweep(path: Path, stored: dict[str, Any]) -> Sweep:
+def recorded_sweep(path: Path, stored: dict[str, Any]) -> Sweep:
     """The sweep a store was built from, parsed from its recorded sweep text (StoreError if unreadable)."""
     try:
         with warnings.catch_warnings():

@@ -16,6 +16,7 @@ from typing import TYPE_CHECKING, Any
 
 from ..flags import DONE, FAILED, STATUSES, UNNEEDED
 from ..locks import store_lock
+from ..runners.notices import COMPILE_TOPIC
 from ..runners.task import TaskFailure, simulate_task
 from .dispatch import EarlyClient, Job, early_client, point_jobs, run_tasks, submission_sequence
 from .expand import expand
@@ -47,6 +48,9 @@ class Progress:
     started_at: float = field(default_factory=time.monotonic)
     last: str = ""  # description of the last stored point
     worker_count: Callable[[], int] = lambda: 0  # Dask workers connected now (asked live: batch jobs come and go)
+    failed_before: int = 0  # failed points stored before this run and not run again (no --retry-failed)
+    store: Path = Path()
+    compiling: dict[str, float] = field(default_factory=dict)  # build key -> expected first compile (s), while it lasts
 
     @property
     def elapsed_s(self) -> float:
@@ -88,11 +92,14 @@ def run_sweep(
         store = open_or_create(sweep, points)
         with store_lock(sweep.store), store:  # closing the store writes its last batch
             todo = pending(points, store, options.retry_failed)
-            progress = Progress(total=len(points), to_run=len(todo), already_done=len(points) - len(todo))
+            progress = Progress(total=len(points), to_run=len(todo), already_done=len(points) - len(todo),
+                                failed_before=len(pending(points, store, True)) - len(todo), store=sweep.store)
             if todo and sweep.search is not None:
                 _execute_search(dask, sweep, points, store, options, progress, on_event)
             elif todo:
                 _execute(dask, todo, store, options, progress, on_event)
+            workers = dask.worker_count()
+            progress.worker_count = lambda: workers  # the count at the end, kept once the cluster is closed
             on_event(progress)
     return progress
 
@@ -126,9 +133,18 @@ def _started(dask: EarlyClient, todo: list[Point], options: RunOptions, progress
     progress.threads = todo[0].config["execution"]["threads"]
     progress.worker_count = dask.worker_count
     client = dask.client()
+    client.subscribe_topic(COMPILE_TOPIC, lambda event: _compile_notice(progress, event[1]))
     progress.dashboard = client.dashboard_link if dask.has_dashboard else ""
     on_event(progress)
     return client
+
+
+def _compile_notice(progress: Progress, message: dict[str, Any]) -> None:
+    """Keep a build's first compile in ``progress.compiling`` while it lasts (runs in the client's event loop)."""
+    if message["done"]:
+        progress.compiling.pop(message["build"], None)
+    else:
+        progress.compiling[message["build"]] = float(message["expected_s"])
 
 
 def _execute_search(dask: EarlyClient, sweep: Sweep, points: list[Point], store: ResultStore, options: RunOptions,

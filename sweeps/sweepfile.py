@@ -10,7 +10,7 @@ in ``[sweep] quiet_warnings``.
 from __future__ import annotations
 
 import hashlib
-import re
+import keyword
 import tomllib
 import warnings
 from dataclasses import dataclass, field
@@ -44,7 +44,6 @@ SEARCH_METHODS = ("scan", "bisect")
 """How a count search moves: see ``capsweep.sweeps.search``."""
 PRESCREEN_START = "prescreen"
 """``start`` value that seeds a count search with the prescreen's stability bound."""
-_DIM_NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
 _RESERVED_DIMS = set(INNER_DIMS) | {REPLICATE}
 
 
@@ -71,6 +70,7 @@ class Sweep:
     source: Path = Path("<memory>")
     variants: dict[str, dict[str, dict[str, Any]]] = field(default_factory=dict, repr=False)
     search: CountSearch | None = None
+    given: frozenset[str] = frozenset()  # config keys the file's tables set (not left at their defaults)
 
     @property
     def text_sha256(self) -> str:
@@ -123,6 +123,8 @@ def parse_sweep(text: str, source: Path = Path("<memory>"), store: str | Path | 
         search=_count_search(head.get("axis", []), axes, source),
         text=text,
         source=source,
+        given=frozenset(path for section in SECTIONS if isinstance(doc.get(section), dict)
+                        for path in flatten(doc[section], section + ".")),
     )
     _warn_implausible(sweep, head["quiet_warnings"])
     return sweep
@@ -198,9 +200,10 @@ def _axis(raw: Any, position: int, source: Path) -> tuple[Axis, dict[str, dict[s
         if key not in AXIS_KEYS:
             raise ConfigError(f"{where}: unknown key {key!r}; {did_you_mean(key, AXIS_KEYS)}")
     name = raw.get("name")
-    if not isinstance(name, str) or not _DIM_NAME.match(name) or name in _RESERVED_DIMS:
+    if not isinstance(name, str) or not name.isidentifier() or keyword.iskeyword(name) or name in _RESERVED_DIMS:
         raise ConfigError(
-            f"{where}: name {name!r} is not allowed: a Python-style identifier other than "
+            f"{where}: name {name!r} is not allowed: a Python identifier (letters of any script, digits, '_'; not "
+            "a keyword) other than "
             + ", ".join(sorted(_RESERVED_DIMS))
         )
     if "variants" in raw:

@@ -162,3 +162,44 @@ def estimate_sweep(
         estimate_s=STARTUP_S + engines.engine(engine).first_point_s + makespan(durations, workers),
     )
 
+
+
+@dataclass(frozen=True)
+class BuildPlan:
+    """The points of one network build and the engine that will run them."""
+
+    label: str  # what sets this build apart from the sweep's others ('' when there is one)
+    points: int
+    engine: str  # the engine that runs these points
+    asked: str  # the engine the sweep asks for
+    reason: str | None  # why ``asked`` cannot run them (they fall back to ``engine``), None if it can
+
+    def describe(self) -> str:
+        """One line: the build, its point count, its engine (and the fallback with its reason) and what that costs."""
+        head = f"build {self.label} ({self.points} points)" if self.label else f"{self.points} points"
+        cost = engines.engine(self.engine).cost
+        if self.reason is None:
+            return f"{head}: {self.engine} engine, which {cost}"
+        return (f"{head}: {self.engine} engine instead of {self.asked}, because {self.reason}; {self.engine} "
+                f"{cost}")
+
+
+def engine_plan(points: list[Point], engine: str | None = None) -> list[BuildPlan]:
+    """Per distinct build of ``points`` (in grid order): its points and the engine that runs them (``engine``
+    overrides the sweep's), with the reason of any fallback."""
+    from ..runners.builds import structure
+
+    groups: dict[tuple[str, str, str | None], list[Point]] = {}
+    shapes: dict[tuple[str, str, str | None], dict[str, object]] = {}
+    for point in points:
+        config = with_execution(point.config, engine=engine)
+        runner, reason = engines.engine_for(config)
+        shape = structure(config)
+        group = (repr(sorted(shape.items())), runner.name, reason)
+        groups.setdefault(group, []).append(point)
+        shapes.setdefault(group, shape)
+    differing = [k for k in next(iter(shapes.values()), {}) if k != "execution.engine"
+                 and len({repr(s[k]) for s in shapes.values()}) > 1]
+    asked = engine or (points[0].config["execution"]["engine"] if points else "")
+    return [BuildPlan(", ".join(f"{k.rsplit('.', 1)[-1]}={shapes[g][k]}" for k in differing), len(members), g[1],
+                      asked, g[2]) for g, members in groups.items()]

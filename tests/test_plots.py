@@ -206,8 +206,13 @@ def test_rate_trace_panels_name_their_point_and_shade_the_cues(ds: xr.Dataset) -
     runaway = panels[1]
     starts = [SETTLE_S + RETENTION_S, SETTLE_S + HOLD_S]
     expected = sorted((s + k * (CUE_S + GAP_S), s + k * (CUE_S + GAP_S) + CUE_S) for s in starts for k in range(3))
-    np.testing.assert_allclose(_spans(runaway, "cue"), expected, atol=1e-9)
+    np.testing.assert_allclose(_spans(panels[0], "cue"), [(s, s + CUE_S) for s in starts], atol=1e-9)  # 1 odour
+    # the runaway run stopped at STOPPED_S: nothing after it is shaded (it used to be, as if the run went on)
+    until_stop = [(a, min(b, STOPPED_S)) for a, b in expected if a < STOPPED_S]
+    assert len(until_stop) == 3 and until_stop[-1][1] == STOPPED_S  # 1.5-1.7, 2.2-2.4, 2.9-3.0 (cut)
+    np.testing.assert_allclose(_spans(runaway, "cue"), until_stop, atol=1e-9)
     np.testing.assert_allclose(_spans(runaway, "settle"), [(0.0, SETTLE_S)])
+    assert not _spans(runaway, "tail") and _spans(panels[0], "tail")
     assert not _spans(runaway, "imprint")
     assert [line.get_xdata()[0] for line in runaway.lines if line.get_gid() == "stopped"] == [STOPPED_S]
     assert not [line for line in panels[0].lines if line.get_gid() == "stopped"]
