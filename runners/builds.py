@@ -24,7 +24,7 @@ from ..locks import COMPILE, held
 from ..registry import flatten
 
 BUILD_DIR_ENV = "CAPSWEEP_BUILD_DIR"
-_KEYS_IN_CODE = (
+KEYS_IN_CODE = (
     "network.n_exc", "network.inh_per_exc", "network.indegree_exc", "network.indegree_inh",
     "network.delay_ms", "network.dt_ms", "plasticity.heterosynaptic.w_ref_mode",
     "protocol.snapshots", "detection.trace_bin_ms", "execution.engine",
@@ -69,12 +69,17 @@ def build_key(cfg: dict) -> str:
     """Structural hash of a point: points with equal keys share one compiled binary.
 
     Covers sizes, in-degrees, delay, dt, the reference-weight mode, the snapshot count, the
-    trace bin and the engine (see ``_KEYS_IN_CODE``); plasticity switches are not structural
+    trace bin and the engine (see ``KEYS_IN_CODE``); plasticity switches are not structural
     (see :func:`compiled_form`).
     """
     flat = flatten(compiled_form(cfg))
-    text = json.dumps({k: flat[k] for k in _KEYS_IN_CODE}, sort_keys=True)
+    text = json.dumps({k: flat[k] for k in KEYS_IN_CODE}, sort_keys=True)
     return hashlib.sha256(text.encode()).hexdigest()[:16]
+
+
+def compiled(key: str) -> bool:
+    """Whether the build of ``key`` is in the cache (compiled: its binary exists)."""
+    return (build_root() / key / "main").is_file()
 
 
 def build_root(root: str | os.PathLike | None = None) -> Path:

@@ -26,7 +26,7 @@ from capsweep.results_schema.layout import TIMINGS
 from capsweep.runners import protocol
 from capsweep.runners.point import run_point
 from capsweep.runners.runtime import CHECKPOINT_DIR_ENV
-from capsweep.sweeps.identity import point_id
+from capsweep.sweeps.ids import point_id
 
 SEED, WIRING = 5, 9
 TINY = {
