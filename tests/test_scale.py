@@ -22,6 +22,11 @@ def values(n: int, step: float) -> list[float]:
     return [round(step * (i + 1), 6) for i in range(n)]
 
 
+def axis(name: str, key: str, axis_values: object) -> str:
+    """A sweep-file axis table over ``key``."""
+    return f'[[sweep.axis]]\nname = "{name}"\nkey = "{key}"\nvalues = {axis_values}\n'
+
+
 def million(counts: list[int], size: int = 100) -> str:
     """25 x 20 x 20 rule coefficients x ``counts`` x 10 replicates, 1200 cells."""
     return f"""
@@ -30,22 +35,10 @@ name = "odour-million"
 store = "unused.zarr"
 replicates = 10
 base_seed = 3
-[[sweep.axis]]
-name = "a_ltp"
-key = "plasticity.triplet.a_ltp"
-values = {values(25, 0.001)}
-[[sweep.axis]]
-name = "beta"
-key = "plasticity.heterosynaptic.beta"
-values = {values(20, 0.01)}
-[[sweep.axis]]
-name = "eta"
-key = "plasticity.inhibitory.eta"
-values = {values(20, 0.0005)}
-[[sweep.axis]]
-name = "n_odours"
-key = "assemblies.count"
-values = {counts}
+{axis("a_ltp", "plasticity.triplet.a_ltp", values(25, 0.001))}
+{axis("beta", "plasticity.heterosynaptic.beta", values(20, 0.01))}
+{axis("eta", "plasticity.inhibitory.eta", values(20, 0.0005))}
+{axis("n_odours", "assemblies.count", counts)}
 [network]
 n_exc = 1200
 [assemblies]
