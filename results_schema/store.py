@@ -46,7 +46,7 @@ from .layout import GridSpec
 ALWAYS_SET: frozenset[str] = frozenset({layout.STATUS.name, "seed"})
 STRING_VARIABLES: dict[str, str] = {
     layout.ERROR: "error text of a failed point ('' when none)",
-    layout.POINT_ID: "hash of the point's fully resolved config",
+    layout.POINT_ID: "hash of the point's resolved config on the store's defaults table",
 }
 # Result variables a runner result must hold; seed is fixed at creation, the prediction optional.
 OPTIONAL_RESULTS: frozenset[str] = frozenset({"seed", "predicted_outcome"})
