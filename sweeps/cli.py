@@ -539,7 +539,7 @@ def estimate(
     measured = result.measured
     if measured is not None:
         out.print(f"measured: {measured.points} done points took {measured.measured_s:.1f} s (set-up + run); the cost "
-                  f"model before learning from them gave {measured.estimated_s:.1f} s ({measured.error:+.0%})",
+                  f"model without them gave {measured.estimated_s:.1f} s ({measured.error:+.0%})",
                   highlight=False)
     for size, entry in sorted(result.model.sizes.items()):
         cost = entry.cost

@@ -62,7 +62,7 @@ class Workload:
 
 @dataclass(frozen=True)
 class Measured:
-    """A store's done points against the cost model before it learned from them."""
+    """A store's done points against the cost model without what it learned from that store."""
 
     points: int  # done points compared (run on the estimated engine)
     measured_s: float  # their set-up + wall time, summed, s
@@ -205,9 +205,10 @@ def _learn_from_store(grid: Grid, engine: str, model: CostModel) -> tuple[Measur
                             grid.shape)[done]
     builds = np.broadcast_to(np.expand_dims(grid.build_keys(engine), -1), grid.shape)[done]
     setup, wall, simulated = (stored[name][done] for name in ("setup_time_s", "wall_time_s", "simulated_time_s"))
-    if model.sizes:
-        estimated = sum(float(np.sum(model.point_s(int(n), simulated[n_exc == n]))) for n in np.unique(n_exc))
+    source = f"{store} ({int(done.sum())} points)"
+    prior = CostModel({n: e for n, e in model.sizes.items() if not e.source.startswith(f"{store} (")}, model.compile_s)
+    measured = None
+    if prior.sizes:  # compared only with what the model knew without these points (not after it learned them)
+        estimated = sum(float(np.sum(prior.point_s(int(n), simulated[n_exc == n]))) for n in np.unique(n_exc))
         measured = Measured(int(done.sum()), float(np.sum(setup + wall)), estimated)
-    else:
-        measured = None
-    return measured, costs.learn(model, f"{store} ({int(done.sum())} points)", n_exc, setup, wall, simulated, builds)
+    return measured, costs.learn(model, source, n_exc, setup, wall, simulated, builds)

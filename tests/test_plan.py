@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
+import pytest
 
 from capsweep.sweeps.costs import Cost, CostModel, Entry
 from capsweep.sweeps.expand import Grid
@@ -60,3 +61,21 @@ def test_point_cost_scales_with_size_and_duration() -> None:
     assert np.allclose(grid.durations(), planned)
     assert abs(model.point_s(300, planned) - (1.0 + 0.5 * planned)) < 1e-9
     assert abs(model.point_s(600, planned) - (1.0 + 0.5 * 2 * planned)) < 1e-9  # twice the cells
+
+
+def test_the_cost_model_learns_a_line_and_a_compile_from_stored_points(tmp_path, monkeypatch) -> None:
+    """[derived] points whose wall time is exactly 2 s + 0.5 x simulated time and whose set-up is 1 s, except 41 s for
+    the first point of build "a" (its compile): the fit must return that line, the median set-up and a 40 s compile."""
+    from capsweep.sweeps import costs
+
+    simulated = np.array([4.0, 8.0, 12.0, 16.0, 4.0, 8.0])
+    setup = np.array([41.0, 1.0, 1.0, 1.0, 1.0, 1.0])
+    builds = np.array(["a", "a", "a", "b", "b", "b"])
+    model = costs.learn(CostModel(), "store", np.full(6, 300), setup, 2.0 + 0.5 * simulated, simulated, builds)
+    cost = model.sizes[300].cost
+    assert cost.per_sim_s == pytest.approx(0.5) and cost.overhead_s == pytest.approx(1.0 + 2.0)
+    assert model.compile_s == pytest.approx(40.0)
+    assert model.covers(500) and not model.covers(700), "an entry covers sizes within a factor 2"
+    monkeypatch.setenv(costs.COST_FILE_ENV, str(tmp_path / "costs.json"))
+    costs.save("standalone", model)
+    assert costs.load("standalone") == model and costs.load("cython").sizes == {}
