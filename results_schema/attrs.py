@@ -41,7 +41,7 @@ AXIS_SETTINGS = "axis_settings"
 POINT_ID_SCHEME = "point_id_scheme"
 """How the stored point ids were made (:data:`ID_SCHEME`)."""
 ID_SCHEME = ("sha256(json.dumps({'config': the point's resolved config minus [execution] entries, keeping the keys "
-             "of the first defaults table (store schema 2.1) and any other key where it differs from "
+             "of the first defaults table (store schema 3.0) and any other key where it differs from "
              "identity_defaults, 'replicate': replicate}, sort_keys=True))[:16]; seed: "
              "sha256(f'{base_seed}/{point_id}')[:4] little-endian & 0x7FFFFFFF")
 """The value of :data:`POINT_ID_SCHEME` this capsweep writes (see ``capsweep.sweeps.identity``)."""

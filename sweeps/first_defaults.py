@@ -1,4 +1,4 @@
-"""The defaults table of the stores made before stores recorded theirs (store schema 2.1, capsweep 0.2.0).
+"""The defaults table of the stores made before stores recorded theirs (store schemas up to 3.0).
 
 Those stores hashed every key below into each point id with its value, whatever it was; ids keep doing so
 (:func:`capsweep.sweeps.identity.id_entries`), so their ids stay valid. A store that records no table
@@ -20,7 +20,9 @@ FIRST_DEFAULTS: dict[str, Any] = {
     "detection.active_factor": 3.0,
     "detection.active_floor_hz": 5.0,
     "detection.baseline_start_s": 0.2,
+    "detection.recall_alpha": 0.01,
     "detection.recall_mode": "cued",
+    "detection.recall_null_draws": 1000,
     "detection.recall_threshold": 0.5,
     "detection.runaway_factor": 4.0,
     "detection.runaway_floor_hz": 10.0,

@@ -48,10 +48,10 @@ EXTRA = "network.extra_tau_ms"  # a key a later version might add
 CHANGED = "network.delay_ms"  # a key whose default a later version might change
 
 
-def schema_2_1_id(flat: dict, replicate: int) -> str:
-    """A point id as stores of schema 2.1 (capsweep 0.2.0) made it: SHA-256 of the JSON (sorted keys) of the whole
-    resolved config without [execution] and the replicate, first 16 hex digits [derived: that release's
-    ``identity.point_id``, written out here, not imported]."""
+def full_config_id(flat: dict, replicate: int) -> str:
+    """A point id as stores of schema 3.0 (before stores recorded a defaults table) made it: SHA-256 of the JSON (sorted keys) of the whole
+    resolved config without [execution] and the replicate, first 16 hex digits [derived: that
+    version's ``identity.point_id``, written out here, not imported]."""
     config = {k: v for k, v in flat.items() if not k.startswith("execution.")}
     blob = json.dumps({"config": config, "replicate": replicate}, sort_keys=True)
     return hashlib.sha256(blob.encode()).hexdigest()[:16]
@@ -79,13 +79,13 @@ def grid(tmp_path: Path, extra: str = "") -> Grid:
     return Grid(parse_sweep(SWEEP.format(store=tmp_path / "odour.zarr", extra=extra)))
 
 
-def test_demo_ids_and_fingerprint_are_those_of_schema_2_1_stores() -> None:
-    """Stores made before this change resume: every id of the demo is the 2.1 hash of its full config."""
+def test_demo_ids_are_those_of_schema_3_0_stores() -> None:
+    """Stores made before this change resume: every id of the demo is the schema 3.0 hash of its full config."""
     demo = Grid(load_sweep(CONFIGS / "demo.toml"))
     ids, _ = demo.ids_and_seeds()
     assert ids.size == 36
     for point in demo.points():
-        assert ids[point.index] == point.point_id == schema_2_1_id(demo.flat(point.index[:-1]), point.index[-1])
+        assert ids[point.index] == point.point_id == full_config_id(demo.flat(point.index[:-1]), point.index[-1])
 
 
 def test_a_new_key_at_its_default_changes_no_id_and_no_fingerprint(tmp_path, monkeypatch) -> None:
@@ -115,15 +115,15 @@ def test_a_store_records_the_defaults_table_and_resolved_config_its_ids_rest_on(
     assert stored[attrs.AXIS_SETTINGS] == [{"name": "n_odours", "key": "assemblies.count", "values": [1, 2]}]
     rebuilt = {**stored[attrs.BASE_CONFIG], "assemblies.count": 2}
     ids = np.asarray(zarr.open_group(tmp_path / "odour.zarr", mode="r")["point_id"][...])
-    assert ids[1, 1] == schema_2_1_id(rebuilt, 1), "the recorded config rebuilds a stored id"
+    assert ids[1, 1] == full_config_id(rebuilt, 1), "the recorded config rebuilds a stored id"
 
 
-def test_a_store_of_schema_2_1_without_a_defaults_table_still_opens(tmp_path, monkeypatch) -> None:
+def test_a_store_without_a_defaults_table_still_opens(tmp_path, monkeypatch) -> None:
     store, _ = open_or_create(grid(tmp_path))
     store.close()
     group = zarr.open_group(tmp_path / "odour.zarr", mode="r+")
     for name in (attrs.IDENTITY_DEFAULTS, attrs.BASE_CONFIG, attrs.AXIS_SETTINGS, attrs.POINT_ID_SCHEME):
-        del group.attrs[name]  # as capsweep 0.2.0 wrote it
+        del group.attrs[name]  # as schema 3.0 stores were written
     with_keys(monkeypatch, extra_key())  # and a later registry
     store, reopened = open_or_create(grid(tmp_path))
     store.close()
