@@ -162,9 +162,7 @@ class Grid:
         if holds.all():
             return
         cell = tuple(int(i) for i in np.argwhere(~holds)[0])
-        message = rule.message
-        for key, value in self.flat(cell).items():
-            message = message.replace("{" + key + "}", str(value))
+        message = rule.text(self.flat(cell))
         positions = self.axes_setting(rule.keys)
         where = ", ".join(f"{self.sweep.axes[p].name}={self.sweep.axes[p].values[cell[p]]}" for p in positions)
         raise ConfigError(f"{self.sweep.source}: {f'point {where}: ' if where else ''}{message}")
@@ -193,6 +191,21 @@ class Rule:
     keys: tuple[str, ...]
     holds: Callable[[Mapping[str, Any]], bool]
     message: str
+
+    def text(self, flat: Mapping[str, Any]) -> str:
+        """The message with the values of ``flat`` filled in."""
+        message = self.message
+        for key, value in flat.items():
+            message = message.replace("{" + key + "}", str(value))
+        return message
+
+
+def check_consistency(flat: Mapping[str, Any], where: str) -> None:
+    """Raise ConfigError (prefixed with ``where``) if keys of one flat config that are valid alone contradict each
+    other (:data:`RULES`)."""
+    for rule in RULES:
+        if not rule.holds(flat):
+            raise ConfigError(f"{where}: {rule.text(flat)}")
 
 
 def _windows(flat: Mapping[str, Any]) -> tuple[tuple[float, float], tuple[float, float]]:
