@@ -26,7 +26,7 @@ from ..locks import COMPILE, held
 from ..registry import flatten
 
 BUILD_DIR_ENV = "CAPSWEEP_BUILD_DIR"
-_KEYS_IN_CODE = (
+KEYS_IN_CODE = (
     "network.n_exc", "network.inh_per_exc", "network.indegree_exc", "network.indegree_inh",
     "network.delay_ms", "network.dt_ms", "plasticity.heterosynaptic.w_ref_mode",
     "protocol.snapshots", "detection.trace_bin_ms", "execution.engine", "execution.threads",
@@ -91,7 +91,7 @@ def build_key(cfg: dict) -> str:
 
     Covers the config values that change the generated code (sizes, in-degrees, delay, dt, the
     reference-weight mode, the snapshot count, the trace bin, the engine and its threads: see
-    ``_KEYS_IN_CODE``) and :func:`code_fingerprint`, so a binary compiled by other capsweep code or
+    ``KEYS_IN_CODE``) and :func:`code_fingerprint`, so a binary compiled by other capsweep code or
     another Brian2 is never reused; plasticity switches are not structural (see :func:`compiled_form`).
     """
     text = json.dumps({"config": structure(cfg), "code": code_fingerprint()}, sort_keys=True)
@@ -99,9 +99,14 @@ def build_key(cfg: dict) -> str:
 
 
 def structure(cfg: dict) -> dict[str, object]:
-    """The config keys that change the generated code, with this point's values (see ``_KEYS_IN_CODE``)."""
+    """The config keys that change the generated code, with this point's values (see ``KEYS_IN_CODE``)."""
     flat = flatten(compiled_form(cfg))
-    return {k: flat[k] for k in _KEYS_IN_CODE}
+    return {k: flat[k] for k in KEYS_IN_CODE}
+
+
+def compiled(key: str) -> bool:
+    """Whether the build of ``key`` is in the cache (compiled: its binary exists)."""
+    return (build_root() / key / "main").is_file()
 
 
 def build_root(root: str | os.PathLike | None = None) -> Path:

@@ -10,7 +10,7 @@ from __future__ import annotations
 from typing import Any
 
 COMPILE_TOPIC = "capsweep-compile"
-"""Topic of the standalone engine's first compile of a build: ``{"build": key, "expected_s": s, "done": bool}``."""
+"""Topic of the standalone engine's first compile of a build: ``{"build": key, "expected_s": s, "finished": bool}``."""
 
 
 def announce(topic: str, message: dict[str, Any]) -> None:

@@ -567,13 +567,13 @@ def _first_compile_announced(key: str, directory: Path) -> Iterator[None]:
     if (directory / "main").exists():
         yield
         return
-    announce(COMPILE_TOPIC, {"build": key, "expected_s": expected_compile_s(), "done": False})
+    announce(COMPILE_TOPIC, {"build": key, "expected_s": expected_compile_s(), "finished": False})
     started = time.perf_counter()
     try:
         yield
         record_compile_s(key, time.perf_counter() - started)
     finally:
-        announce(COMPILE_TOPIC, {"build": key, "expected_s": 0.0, "done": True})
+        announce(COMPILE_TOPIC, {"build": key, "expected_s": 0.0, "finished": True})
 
 
 def _point_values(cfg: dict, seed: int, wiring_seed: int | None) -> Handles:

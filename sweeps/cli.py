@@ -27,10 +27,10 @@ from ..clusters import NAMES as CLUSTER_KINDS
 from ..engines import ENGINES, NAMES
 from ..errors import CapsweepError
 from ..flags import DONE, FAILED, PENDING, UNNEEDED
+from ..interrupts import ignore_interrupts_if_spawned
 from ..registry import ImplausibleValue
 from ..results_schema import attrs
 from ..results_schema.layout import TIMINGS
-from .console import ignore_interrupts_if_spawned
 from .success import MIN_FRACTION
 
 ignore_interrupts_if_spawned()  # also when run as `python -m capsweep.sweeps.cli`
@@ -533,7 +533,7 @@ def check(sweep_file: Path = typer.Argument(..., metavar="SWEEP", help="TOML swe
     work = workload(sweep)
     _say(f"{sweep_file}: valid; sweep {sweep.name!r}, store {sweep.store}")
     _print_workload(work)
-    for build in engine_plan(work.points):
+    for build in engine_plan(work.grid):
         _say(f"  {build.describe()}")
 
 
@@ -542,7 +542,7 @@ def _print_workload(work: Any) -> None:
     from .tables import duration_text
 
     axes = " x ".join(f"{name} {len(values)}" for name, values in work.axes.items()) or "no axes"
-    _say(f"{len(work.points)} points: {axes} x {work.replicates} replicates")
+    _say(f"{work.n_points} points: {axes} x {work.replicates} replicates")
     for name, values in work.axes.items():
         _say(f"  {name}: {', '.join(map(str, values))}")
     _say(f"simulated time in all: {duration_text(work.simulated_s)}; distinct network builds: {work.builds}")
@@ -590,7 +590,12 @@ def estimate(
     workers: int = typer.Option(None, "--workers", min=1, metavar="N", help="worker count to estimate for"),
     engine: str = typer.Option(None, "--engine", metavar="NAME", help=f"engine to estimate for: {', '.join(NAMES)}"),
 ) -> None:
-    """Show the expanded grid, distinct builds and an estimated wall time (calibrated by probe runs)."""
+    """Show the expanded grid, distinct builds and an estimated wall time from this machine's cost model.
+
+    The model (kept in $CAPSWEEP_COST_FILE, default ~/.cache/capsweep/costs.json) learns from the sweep's store when
+    it holds done points, and probes a network size it does not cover yet (a few short runs, once per size).
+    """
+    from .costs import cost_file
     from .tables import duration_text
     from .workload import estimate_sweep
 
@@ -598,11 +603,20 @@ def estimate(
     result = estimate_sweep(sweep_file, workers, engine,
                             on_probe=lambda n: err.print(f"probing a network of {n} E cells ..."))
     _print_workload(result.workload)
-    for size, cost in sorted(result.costs.items()):
-        out.print(f"  N_E {size}: {cost.per_sim_s:.2f} s wall per simulated s + {cost.overhead_s:.1f} s per point "
-                  f"({result.engine})", highlight=False)
+    measured = result.measured
+    if measured is not None:
+        out.print(f"measured: {measured.points} done points took {measured.measured_s:.1f} s (set-up + run); the cost "
+                  f"model without them gave {measured.estimated_s:.1f} s ({measured.error:+.0%})",
+                  highlight=False)
+    for size, entry in sorted(result.model.sizes.items()):
+        cost = entry.cost
+        out.print(f"  N_E {size}: {cost.per_sim_s:.3f} s wall per simulated s + {cost.overhead_s:.2f} s per point "
+                  f"({result.engine}; {entry.source}, {entry.on})", markup=False, highlight=False)
+    compiles = (f"; {result.uncompiled} build(s) to compile, {result.model.compile_s:.0f} s each"
+                if result.uncompiled else "")
     out.print(f"estimated wall time on {result.workers} workers: {duration_text(result.estimate_s)} "
-              "(upper bound: points that run away stop early)", highlight=False)
+              f"(upper bound: points that run away stop early{compiles}); cost model: {cost_file()}",
+              markup=False, highlight=False)
 
 
 def _check_engine(engine: str | None) -> None:

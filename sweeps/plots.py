@@ -47,7 +47,7 @@ from .capacity import (
     wilson_interval,
 )
 from .expand import expand
-from .identity import grid_shape
+from .ids import grid_shape
 from .outputs import check_folder, make_folder
 from .query import QueryError, axis_keys, labelled, sweep_dims
 from .sweepfile import parse_sweep

@@ -28,7 +28,8 @@ from ..flags import DONE
 from ..registry import with_execution
 from ..results_schema import layout
 from ..results_schema.store import encode_value, stored_attrs
-from .identity import Point, recorded_sweep
+from .identity import recorded_sweep
+from .ids import Point, store_basis
 from .outputs import fault, make_folder, new_file
 
 if TYPE_CHECKING:
@@ -60,9 +61,11 @@ def find_point(store: Path, point_id: str) -> tuple[Point, str]:
 
     Raises CapsweepError if the store has no such point or the point is not done.
     """
-    from .expand import expand
+    from .expand import Grid
 
-    points = {p.point_id: p for p in expand(recorded_sweep(store, stored_attrs(store)))}
+    stored = stored_attrs(store)
+    basis = store_basis(stored)
+    points = {p.point_id: p for p in Grid(recorded_sweep(store, stored, basis)).on_basis(basis).points()}
     if point_id not in points:
         raise CapsweepError(f"{store} has no point {point_id!r}; `capsweep query {store} --all --format csv` lists "
                             "the point_id of every point")

@@ -13,13 +13,15 @@ import hashlib
 import keyword
 import tomllib
 import warnings
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 from ..axes import COUNT_KEY, REPLICATE, VARIANT_KEY, Axis, key_axis, variant_axis
 from ..errors import ConfigError
-from ..registry import BY_PATH, SECTIONS, ImplausibleValue, Key, defaults, did_you_mean, flatten, lookup
+from ..registry import BY_PATH, SECTIONS, ImplausibleValue, Key, did_you_mean, flatten, lookup
+from ..registry import defaults as registry_defaults
 from ..results_schema.layout import INNER_DIMS
 
 SWEEP_KEYS = {
@@ -70,7 +72,7 @@ class Sweep:
     source: Path = Path("<memory>")
     variants: dict[str, dict[str, dict[str, Any]]] = field(default_factory=dict, repr=False)
     search: CountSearch | None = None
-    given: frozenset[str] = frozenset()  # config keys the file's tables set (not left at their defaults)
+    explicit: frozenset[str] = frozenset()  # keys the file's tables set (the others hold their defaults)
 
     @property
     def text_sha256(self) -> str:
@@ -93,8 +95,10 @@ def load_sweep(path: str | Path, store: str | Path | None = None) -> Sweep:
     return parse_sweep(text, source=path, store=store)
 
 
-def parse_sweep(text: str, source: Path = Path("<memory>"), store: str | Path | None = None) -> Sweep:
-    """Validate sweep-file ``text``; ``source`` names it in messages."""
+def parse_sweep(text: str, source: Path = Path("<memory>"), store: str | Path | None = None,
+                defaults: Mapping[str, Any] | None = None) -> Sweep:
+    """Validate sweep-file ``text``; ``source`` names it in messages. Keys the file leaves out take ``defaults`` (a
+    flat table of every key; default: the registry's)."""
     try:
         doc = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
@@ -103,7 +107,7 @@ def parse_sweep(text: str, source: Path = Path("<memory>"), store: str | Path | 
     if unknown:
         hint = did_you_mean(f"[{unknown[0]}]", [f"[{s}]" for s in ("sweep", *SECTIONS)], "valid tables")
         raise ConfigError(f"{source}: unknown table [{unknown[0]}]; {hint}")
-    base = _base_config(doc, source)
+    base, explicit = _base_config(doc, source, registry_defaults() if defaults is None else defaults)
     head = _sweep_table(doc, source)
     parsed = [_axis(raw, i, source) for i, raw in enumerate(head.get("axis", []))]
     axes = tuple(axis for axis, _ in parsed)
@@ -123,8 +127,7 @@ def parse_sweep(text: str, source: Path = Path("<memory>"), store: str | Path | 
         search=_count_search(head.get("axis", []), axes, source),
         text=text,
         source=source,
-        given=frozenset(path for section in SECTIONS if isinstance(doc.get(section), dict)
-                        for path in flatten(doc[section], section + ".")),
+        explicit=explicit,
     )
     _warn_implausible(sweep, head["quiet_warnings"])
     return sweep
@@ -180,15 +183,18 @@ def _quiet_warnings(head: dict[str, Any], source: Path) -> frozenset[str]:
     return frozenset(lookup(k, where=f"{source} (sweep.quiet_warnings)").path for k in keys)
 
 
-def _base_config(doc: dict[str, Any], source: Path) -> dict[str, Any]:
-    """Flat config: registry defaults overlaid with the file's sections, every value checked."""
-    flat = defaults()
+def _base_config(doc: dict[str, Any], source: Path, defaults: Mapping[str, Any]) -> tuple[dict[str, Any],
+                                                                                           frozenset[str]]:
+    """Flat config: ``defaults`` overlaid with the file's sections, every value checked; and the keys the file set."""
+    flat = dict(defaults)
+    explicit = set()
     for section in SECTIONS:
         node = doc.get(section, {})
         leaves = flatten(node, section + ".") if isinstance(node, dict) else {section: node}
         for path, value in leaves.items():
             flat[path] = lookup(path, where=str(source)).check(value, where=str(source))
-    return flat
+            explicit.add(path)
+    return flat, frozenset(explicit)
 
 
 def _axis(raw: Any, position: int, source: Path) -> tuple[Axis, dict[str, dict[str, Any]]]:

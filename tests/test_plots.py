@@ -20,8 +20,8 @@ from capsweep.results_schema.layout import VARIABLES
 from capsweep.results_schema.store import ResultStore, create_store
 from capsweep.sweeps.capacity import capacity_table, success_table
 from capsweep.sweeps.cli import app
-from capsweep.sweeps.expand import expand
-from capsweep.sweeps.identity import grid_spec, id_and_seed_arrays
+from capsweep.sweeps.expand import Grid, expand
+from capsweep.sweeps.identity import grid_spec
 from capsweep.sweeps.plots import (
     all_plots,
     capacity_against,
@@ -102,8 +102,8 @@ def store(tmp_path_factory: pytest.TempPathFactory) -> Path:
     sweep = parse_sweep(SWEEP)
     points = expand(sweep)
     path = tmp_path_factory.mktemp("plots") / "odour.zarr"
-    grid = grid_spec(sweep, points)
-    create_store(path, grid, *id_and_seed_arrays(sweep, points))
+    grid = grid_spec(Grid(sweep))
+    create_store(path, grid, *Grid(sweep).ids_and_seeds())
     writer = ResultStore.open(path)
     for p in points:
         count = p.config["assemblies"]["count"]

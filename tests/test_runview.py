@@ -125,14 +125,14 @@ def test_a_compile_announced_on_a_worker_reaches_the_progress_while_it_lasts() -
                 scheduler_kwargs={"dashboard_address": QUIET_HTTP_ADDRESS}) as client:
         client.subscribe_topic(COMPILE_TOPIC, lambda event: (_compile_notice(state, event[1]),
                                                              seen.append(dict(state.compiling))))
-        client.submit(announce, COMPILE_TOPIC, {"build": "k1", "expected_s": 42.0, "done": False}).result()
+        client.submit(announce, COMPILE_TOPIC, {"build": "k1", "expected_s": 42.0, "finished": False}).result()
         deadline = time.monotonic() + 30
         while not seen and time.monotonic() < deadline:
             time.sleep(0.05)
         assert state.compiling == {"k1": 42.0}
         assert "compiling network (first time, ~42 s)" in status_line(state, 200)
-        client.submit(announce, COMPILE_TOPIC, {"build": "k1", "expected_s": 0.0, "done": True}, pure=False).result()
+        client.submit(announce, COMPILE_TOPIC, {"build": "k1", "expected_s": 0.0, "finished": True}, pure=False).result()
         while len(seen) < 2 and time.monotonic() < deadline:
             time.sleep(0.05)
     assert state.compiling == {}
-    announce(COMPILE_TOPIC, {"build": "k2", "expected_s": 1.0, "done": False})  # outside a worker: nothing happens
+    announce(COMPILE_TOPIC, {"build": "k2", "expected_s": 1.0, "finished": False})  # outside a worker: nothing happens

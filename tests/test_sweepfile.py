@@ -20,7 +20,7 @@ from capsweep.errors import ConfigError
 from capsweep.registry import KEYS, defaults
 from capsweep.sweeps.cli import app
 from capsweep.sweeps.expand import expand
-from capsweep.sweeps.identity import grid_shape, point_id
+from capsweep.sweeps.ids import grid_shape, point_id
 from capsweep.sweeps.sweepfile import parse_sweep
 
 GOOD = """
