@@ -7,15 +7,16 @@ its id and seeds come from :mod:`capsweep.sweeps.identity`.
 from __future__ import annotations
 
 import itertools
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 from typing import Any
 
 from ..axes import REPLICATE
 from ..errors import ConfigError
 from ..registry import inhibitory_count, nest, resolve_derived
+from ..results_schema import attrs
 from ..runners.protocol import test_windows
 from .identity import Point, grid_shape, point_id, point_seed
-from .sweepfile import Sweep
+from .sweepfile import Sweep, parse_sweep
 
 
 def expand(sweep: Sweep) -> list[Point]:
@@ -41,6 +42,16 @@ def expand(sweep: Sweep) -> list[Point]:
         wiring = point_seed(sweep.base_seed, f"wiring/{replicate}")
         points.append(Point(index, labels, nest(flat), pid, point_seed(sweep.base_seed, pid), wiring))
     return points
+
+
+def recorded_points(stored: Mapping[str, Any], shape: tuple[int, ...]) -> list[Point]:
+    """The points of the sweep a store records (root attrs ``stored``: its ``sweep_text``), in grid order; none when
+    that text does not parse or does not expand to the store's grid ``shape`` (sweep dims)."""
+    try:
+        sweep = parse_sweep(str(stored.get(attrs.SWEEP_TEXT, "")))
+        return expand(sweep) if grid_shape(sweep) == shape else []
+    except ConfigError:
+        return []
 
 
 def _describe(labels: dict[str, Any]) -> str:
