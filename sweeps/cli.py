@@ -24,6 +24,7 @@ from typer.core import TyperGroup
 
 from .. import __version__
 from ..clusters import NAMES as CLUSTER_KINDS
+from ..controls import CONTROL_DIM
 from ..engines import ENGINES, NAMES
 from ..errors import CapsweepError
 from ..flags import DONE, FAILED, PENDING, UNNEEDED
@@ -312,6 +313,8 @@ def capacity(
     min_fraction: float = typer.Option(MIN_FRACTION, "--min-fraction", metavar="F",
                                        help="fraction of replicates in which each count up to capacity must succeed"),
     per_count: bool = typer.Option(False, "--per-count", help="only the per-count success table (every format)"),
+    controls: bool = typer.Option(False, "--controls",
+                                  help="csv/json: each control's success per condition instead (control dim)"),
     fmt: TableFormat = typer.Option(TableFormat.table, "--format", metavar="FORMAT", help=_FORMAT_HELP),
     wide: bool = typer.Option(False, "--wide", help=_WIDE_HELP),
 ) -> None:
@@ -322,16 +325,20 @@ def capacity(
     success fraction with its 95 % Wilson interval, then the capacity with the range of the per-replicate
     capacities: 'censored' marks a capacity at the top of the grid (a lower bound), NA a condition with
     pending points. csv and json write one table (the capacity table, or with --per-count the per-count
-    table); json as {"units", "filter", "rows"}, as query writes it.
+    table); json as {"units", "filter", "rows"}, as query writes it. A store with controls ([controls] in the
+    sweep file) also shows each condition's capacity beside its controls' success, and flags a condition whose
+    sham or unstructured control succeeds beyond chance at the recall test's false-positive rate
+    (detection.recall_alpha); with --controls, csv and json write that table.
     """
     from .capacity import capacity_table, count_dim, scaling_fit, success_table
+    from .control_table import control_success
     from .query import open_store, sweep_dims
 
     ds = open_store(store, "capacity")
     table = capacity_table(ds, min_fraction)
     labels = [d for d in sweep_dims(ds) if d in table.columns or d == count_dim(ds)]
     if fmt is not TableFormat.table:
-        _emit(success_table(ds) if per_count else table, fmt, {}, "")
+        _emit(success_table(ds) if per_count else control_success(ds) if controls else table, fmt, {}, "")
         return
     _say("success per count (n = done replicates; 95 % Wilson interval; crashed points left out):")
     _table(success_table(ds), labels, wide, hide_zero=_STATUS_COUNTS)
@@ -340,6 +347,7 @@ def capacity(
     _say(f"\ncapacity (every count up to it succeeds in >= {min_fraction:g} of replicates; "
          "range over replicates):")
     _table(_capacity_display(table), labels, wide, hide_zero=_STATUS_COUNTS)
+    _print_controls(control_success(ds), _capacity_display(table), labels)
     fit = scaling_fit(ds)
     if fit is not None:
         _say(f"capacity ~ {fit.prefactor:.3g} x n_exc^b, b = {fit.exponent:.2f} "
@@ -352,6 +360,23 @@ def capacity(
         where = ", ".join(f"{c}={row[c]}" for c in others) or "the grid"
         _say(f"warning: success is not monotone in {count_dim(ds)} for {where}: a larger count succeeds "
              "after a smaller one failed")
+
+
+def _print_controls(controls: Any, shown: Any, labels: Sequence[str]) -> None:
+    """Each condition's capacity (as ``shown``) beside its ``controls``' success, and one warning per flag."""
+    from .control_table import STAT_COLUMNS, controls_beside
+
+    if controls.empty:
+        return
+    _say("\ncontrols beside each condition (success over every count and replicate, 95 % Wilson interval; "
+         "over_alpha: sham or unstructured succeeding beyond chance at the recall test's false-positive rate):")
+    _table(controls_beside(shown, controls, ("capacity", CENSORED)), labels, wide=True)
+    others = [c for c in controls.columns if c not in (*STAT_COLUMNS, CONTROL_DIM)]
+    for _, row in controls[controls["flagged"]].iterrows():
+        where = ", ".join(f"{c}={row[c]}" for c in others) or "the grid"
+        _say(f"warning: the {row[CONTROL_DIM]} control of {where} succeeds in {row['successes']} of {row['n']} points "
+             f"(95 % Wilson interval {row['wilson_lo']:.3f}-{row['wilson_hi']:.3f}), above the recall test's "
+             f"false-positive rate {row['alpha']:g}: success there does not need the memory or its cue")
 
 
 def _say(line: str) -> None:

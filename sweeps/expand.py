@@ -22,6 +22,7 @@ from ..axes import REPLICATE, VARIANT_KEY, Axis
 from ..engines import engine as engine_named
 from ..errors import ConfigError
 from ..registry import DERIVED_FROM, inhibitory_count, nest, resolve_derived
+from ..results_schema import attrs
 from ..runners.builds import KEYS_IN_CODE, build_key
 from ..runners.protocol import SCHEDULE_KEYS, test_windows, total_duration_s
 from .ids import (
@@ -33,9 +34,10 @@ from .ids import (
     ids_and_seeds,
     point_id,
     point_seed,
+    store_basis,
     wiring_seed,
 )
-from .sweepfile import Sweep
+from .sweepfile import Sweep, parse_sweep
 
 Cell = tuple[int, ...]
 """Position of a grid point along each axis (a point's index without its replicate)."""
@@ -195,6 +197,18 @@ def expand(sweep: Sweep) -> list[Point]:
 def _setting(sweep: Sweep, axis: Axis, value: Any) -> dict[str, Any]:
     """The flat config entries one value of ``axis`` sets."""
     return dict(sweep.variants[axis.name][value]) if axis.key == VARIANT_KEY else {axis.key: value}
+
+
+def recorded_points(stored: Mapping[str, Any], shape: tuple[int, ...]) -> list[Point]:
+    """The points of the sweep a store records (root attrs ``stored``: its ``sweep_text``, ids on the defaults it
+    records), in grid order; none when that text does not parse or does not expand to the store's grid ``shape``."""
+    try:
+        sweep = parse_sweep(str(stored.get(attrs.SWEEP_TEXT, "")))
+        if grid_shape(sweep) != shape:
+            return []
+        return list(Grid(sweep).on_basis(store_basis(dict(stored))).points())
+    except ConfigError:
+        return []
 
 
 def _named(path: str, keys: set[str]) -> bool:

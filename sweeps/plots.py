@@ -32,7 +32,7 @@ from matplotlib.transforms import blended_transform_factory
 from matplotlib.typing import ColorType
 
 from ..axes import COUNT_KEY, REPLICATE
-from ..errors import CapsweepError, ConfigError
+from ..errors import CapsweepError
 from ..flags import DONE, OUTCOMES, PENDING, RUNAWAY, UNNEEDED
 from ..results_schema import attrs
 from ..runners.protocol import Schedule, cue_order, recall_end, schedule
@@ -46,11 +46,9 @@ from .capacity import (
     success_table,
     wilson_interval,
 )
-from .expand import expand
-from .ids import grid_shape
+from .expand import recorded_points
 from .outputs import check_folder, make_folder
 from .query import QueryError, axis_keys, labelled, sweep_dims
-from .sweepfile import parse_sweep
 
 OUTCOME_COLOURS = dict(zip(OUTCOMES, ("tab:green", "tab:red", "tab:grey")))
 FORMATS = ("png", "svg", "pdf")
@@ -385,12 +383,7 @@ def point_schedules(ds: xr.Dataset) -> dict[tuple[int, ...], Schedule]:
     A timeline is kept only where it agrees with what the point stored: the start of each assembly's
     final cue (``cue_time_s``), where written. None at all when the store holds no readable sweep text.
     """
-    ids = ds["point_id"].values
-    try:
-        sweep = parse_sweep(str(ds.attrs.get(attrs.SWEEP_TEXT, "")))
-        points = expand(sweep) if grid_shape(sweep) == ids.shape else []
-    except ConfigError:
-        return {}
+    points = recorded_points(ds.attrs, ds["point_id"].shape)
     seeds, stored = ds["seed"].values, ds["cue_time_s"].values
     timelines = {}
     for p in points:

@@ -23,6 +23,7 @@ from cli_runs import capsweep, tiny_network
 
 from capsweep.results_schema.dataset import flag_labels
 from capsweep.sweeps.capacity import point_success
+from capsweep.sweeps.control_table import control_success
 
 pytestmark = pytest.mark.e2e
 
@@ -64,14 +65,11 @@ store = "{store}"
 replicates = 1
 base_seed = 3
 [[sweep.axis]]
-name = "cue"
-[sweep.axis.variants]
-cued = {{}}
-sham = {{ "protocol.cue_rate_hz" = 0.0 }}
-[[sweep.axis]]
 name = "n_odours"
 key = "assemblies.count"
 values = [1]
+[controls]
+kinds = ["sham"]
 """
 
 
@@ -291,19 +289,27 @@ def test_unreachable_scheduler_is_named_and_the_new_store_kept(tmp_path: Path) -
 
 def test_a_sham_cue_is_not_a_success_while_the_same_point_with_its_cue_is(tmp_path: Path) -> None:
     """The control of the recall test on a real simulation: the demo's network (the tiny network with adaptation)
-    with one prewired odour, once with its cue and once with the cue input off (protocol.cue_rate_hz = 0), everything else equal. Only the cued point
-    recalls its odour and succeeds; without a cue nothing is evoked (the recall test's null of times sees the
-    members' spontaneous activity), so the sham point is not a success, whatever the overlap score says."""
+    with one prewired odour and its sham control ([controls] kinds = ["sham"]: the cue input off, everything else
+    equal). Only the cued point recalls its odour and succeeds; without a cue nothing is evoked (the recall test's
+    null of times sees the members' spontaneous activity), so the sham point is not a success, whatever the overlap
+    score says. `capsweep capacity` shows the sham's 0 of 1 beside the condition's capacity and flags nothing."""
     sweep, store = write_sweep(tmp_path, SHAM_SWEEP, hold_s=7.0, adapt_jump=0.1)
     proc = capsweep("run", str(sweep), "--workers", "1")
     assert proc.returncode == 0, proc.stderr
     ds = xr.open_zarr(store).load()
     success = point_success(ds).sel(n_odours=1).isel(replicate=0)
-    assert success.sel(cue="cued").item() == 1.0 and success.sel(cue="sham").item() == 0.0
+    assert success.sel(control="none").item() == 1.0 and success.sel(control="sham").item() == 0.0
     state = flag_labels(ds["recall_state"]).sel(n_odours=1, assembly=0).isel(replicate=0)
-    assert state.sel(cue="cued").item() == "recalled" and state.sel(cue="sham").item() != "recalled"
+    assert state.sel(control="none").item() == "recalled" and state.sel(control="sham").item() != "recalled"
     evoked = ds["evoked_completion_hz"].sel(n_odours=1, assembly=0).isel(replicate=0)
-    assert float(evoked.sel(cue="cued")) > 5.0 > float(evoked.sel(cue="sham"))
+    assert float(evoked.sel(control="none")) > 5.0 > float(evoked.sel(control="sham"))
+    sham = control_success(ds).set_index("control").loc["sham"]
+    assert (sham["n"], sham["successes"], sham["alpha"], sham["flagged"]) == (1, 0, 0.01, False)
+    report = capsweep("capacity", str(store))
+    assert report.returncode == 0, report.stderr
+    beside = report.stdout.split("controls beside each condition")[1]
+    assert "lower bound" in beside and "0/1 (0-79 %)" in beside, "capacity 1 of 1 beside the sham's 0 of 1"
+    assert "warning" not in report.stdout
 
 
 def test_ctrl_c_mid_run_stops_quietly_and_keeps_what_was_stored(tmp_path: Path) -> None:
