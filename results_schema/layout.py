@@ -84,6 +84,8 @@ VARIABLES: tuple[Variable, ...] = (
              "generating and compiling its code (the compile, paid by the first point of a build, lands here)"),
     Variable("simulated_time_s", "s", "biological time simulated (shorter than planned after an early abort)"),
     Variable("n_synapses", "1", "number of synapses in the network", dtype="int64"),
+    Variable("threads", "1", "threads the point's simulation ran on (execution.threads on the standalone engine, "
+             "else 1); results depend on it", dtype="int32"),
     Variable("recall_quality", "1", "Pearson r over uncued E cells between recall-window spike count and "
              "membership of the cued assembly", inner="assembly"),
     Variable("persistence", "1", "recall_quality in the window after the cue ends", inner="assembly"),
@@ -133,6 +135,14 @@ VARIABLES: tuple[Variable, ...] = (
     Variable("weight_out", "g_leak", "mean E->E weight from assembly members to cells in no assembly",
              inner="snapshot"),
     Variable("weight_within", "g_leak", "mean E->E weight between members of a shared assembly", inner="snapshot"),
+    Variable("weight_between", "g_leak", "mean E->E weight between members of different assemblies (pre and post "
+             "each in some assembly, sharing none)", inner="snapshot"),
+    Variable("upper_share_within", "1", "share of within-assembly E->E synapses whose reference weight is in the "
+             "upper state (w_ref > w_P/2; bistable w_ref_mode only)", inner="snapshot"),
+    Variable("upper_share_between", "1", "share of between-assembly E->E synapses whose reference weight is in the "
+             "upper state (w_ref > w_P/2; bistable w_ref_mode only)", inner="snapshot"),
+    Variable("upper_share_other", "1", "share of the other E->E synapses (at least one cell in no assembly) whose "
+             "reference weight is in the upper state (w_ref > w_P/2; bistable w_ref_mode only)", inner="snapshot"),
     Variable("snapshot_time_s", "s", "simulated time of each weight snapshot", inner="snapshot"),
     Variable("rate_exc_hz", "Hz", "binned excitatory population rate", inner="time_bin"),
     Variable("rate_inh_hz", "Hz", "binned inhibitory population rate", inner="time_bin"),

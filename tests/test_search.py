@@ -26,7 +26,6 @@ from capsweep.errors import ConfigError
 from capsweep.flags import DONE, FAILED, OUTCOMES, RUNAWAY, STABLE, STATUSES, UNNEEDED
 from capsweep.sweeps.capacity import capacity_table
 from capsweep.sweeps.expand import expand
-from capsweep.sweeps.identity import Point
 from capsweep.sweeps.search import ConditionSearch, SearchRun, plan_search
 from capsweep.sweeps.sequential import wilson_interval
 from capsweep.sweeps.success import succeeds
@@ -104,12 +103,6 @@ def _verdict(index: tuple[int, ...], p: float) -> bool:
     return bool(np.random.default_rng(list(index)).random() < p)
 
 
-def _synthetic_points(counts: int, replicates: int) -> list[Point]:
-    """One condition's points over counts 1..``counts`` x ``replicates`` (index: count, replicate)."""
-    return [Point((k, r), {}, {"assemblies": {"count": k + 1}}, f"p{k}-{r}", 0, 0)
-            for k in range(counts) for r in range(replicates)]
-
-
 def _drive(run: SearchRun, verdict: Callable[[tuple[int, ...]], bool | None],
            stop_after: int | None = None) -> dict[tuple[int, ...], bool | None]:
     """Run the search one point at a time, each point's verdict from ``verdict`` (by index); the verdicts stored,
@@ -117,17 +110,16 @@ def _drive(run: SearchRun, verdict: Callable[[tuple[int, ...]], bool | None],
     stored: dict[tuple[int, ...], bool | None] = {}
     queue, _ = run.advance()
     while queue:
-        point = queue.pop(0)
-        stored[point.index] = verdict(point.index)
+        index = queue.pop(0)
+        stored[index] = verdict(index)
         if stop_after is not None and len(stored) == stop_after:
             break
-        more, _ = run.advance([run.record(point, stored[point.index])])
+        more, _ = run.advance([run.record(index, stored[index])])
         queue += more
     return stored
 
 
-def _replan(points: list[Point], stored: dict[tuple[int, ...], bool | None], unneeded: set[tuple[int, ...]],
-            method: str) -> SearchRun:
+def _replan(stored: dict[tuple[int, ...], bool | None], unneeded: set[tuple[int, ...]], method: str) -> SearchRun:
     """A search rebuilt from a store's arrays, as a resumed ``capsweep run`` rebuilds it."""
     status = np.zeros((16, 10), dtype=np.int8)
     outcome, recalled = np.zeros_like(status), np.zeros((16, 10), dtype=np.int32)
@@ -136,8 +128,8 @@ def _replan(points: list[Point], stored: dict[tuple[int, ...], bool | None], unn
         outcome[index] = OUTCOMES.index(STABLE if ok else RUNAWAY)
     for index in unneeded:
         status[index] = STATUSES.index(UNNEEDED)
-    return plan_search(points, 0, {(): 3}, method, status, outcome, recalled, np.zeros_like(recalled), False, 1,
-                       (3, 2))
+    return plan_search(tuple(range(1, 17)), 0, {(): 3}, method, status, outcome, recalled, np.zeros_like(recalled),
+                       False, (3, 2))
 
 
 @pytest.mark.parametrize("method", ["scan", "grow"])
@@ -147,18 +139,17 @@ def test_replicates_where_they_decide_and_an_exact_resume(method: str) -> None:
     uses more than 10; a run killed after 7 points and rebuilt from its stored verdicts runs exactly the
     points an uninterrupted run runs."""
     chance = [float(1 / (1 + (k / 6) ** 5)) for k in range(1, 17)]
-    points = _synthetic_points(16, 10)
     verdict = lambda index: _verdict(index, chance[index[0]])
-    full = _drive(_replan(points, {}, set(), method), verdict)
+    full = _drive(_replan({}, set(), method), verdict)
     straddles = lambda k, n: (lambda low, high: low < 0.5 <= high)(*wilson_interval(sum(full[k, r] for r in range(n)), n))
     for k in {c for c, _ in full}:
         n = sum(c == k for c, _ in full)
         assert all((k, r) in full for r in range(n)) and 3 <= n <= 10, "the first replicates, 3 to 10 of them"
         assert n == 3 or straddles(k, n - 1 if n == 10 else n - 2), f"count {k + 1} got more needlessly"
         assert n == 10 or not straddles(k, n), f"count {k + 1} stopped undecided"
-    killed = _replan(points, {}, set(), method)
+    killed = _replan({}, set(), method)
     first = _drive(killed, verdict, stop_after=7)
-    resumed = _replan(points, first, set(), method)
+    resumed = _replan(first, set(), method)
     second = _drive(resumed, verdict)
     assert {**first, **second} == full
 
@@ -296,12 +287,12 @@ def test_grown_search_with_replicates_where_they_decide_resumes_exactly(tmp_path
                                      p.config["assemblies"]["count"]))
               if status[p.index] == STATUSES.index(DONE) else None for p in points if p.index in done}
     empty = np.zeros(status.shape, dtype=np.int8)
-    replay = plan_search(points, 1, {(0,): 1}, "grow", empty, empty, empty.astype(np.int32), empty.astype(np.int32),
-                         False, 1, (2, 2))
+    replay = plan_search(sweep.axes[1].values, 1, {(0,): 1}, "grow", empty, empty, empty.astype(np.int32),
+                         empty.astype(np.int32), False, (2, 2))
     asked = _drive(replay, lambda index: stored.get(index))
     assert set(asked) == done
     assert all(status[p.index] == STATUSES.index(UNNEEDED) for p in points if p.index not in done)
-    report = json.loads(capsweep("capacity", str(store), "--format", "json").stdout)
+    report = json.loads(capsweep("capacity", str(store), "--format", "json").stdout)["rows"]
     assert len(report) == 1 and report[0]["replicates"] + report[0]["failed"] == len(done)
     assert report[0]["pending"] == 0
     per_count = [sum(1 for index in done if index[1] == k) for k in range(4)]
