@@ -61,6 +61,8 @@ NO_DATA_COLOUR = "0.85"
 """Colour of map tiles and marks that hold no done point."""
 PHASE_COLOURS = {"settle": "0.85", "imprint": "tab:purple", "final recall": "tab:blue", "tail": "0.92"}
 CUE_COLOUR = "tab:orange"
+LEGEND_BESIDE_WIDTH = 9.0
+"""Width (inches) of a one-axes figure whose legend stands right of its axes."""
 
 
 @dataclass(frozen=True)
@@ -248,41 +250,43 @@ def _mark_missing(ax: plt.Axes, x: float, text: str, colour: ColorType) -> None:
 
 
 def capacity_against(ds: xr.Dataset, axis: str, min_fraction: float = MIN_FRACTION) -> Figure:
-    """Capacity of each condition against ``axis`` (one line per value of the remaining axes); the vertical bar is
-    the range of the per-replicate capacities, a triangle a lower bound (top of the count grid), and an
-    undecided capacity (NA) is labelled with its reason instead of drawn."""
+    """Capacity of each condition (value of the remaining axes) against ``axis``: a line on a numeric axis; on a
+    categorical one (rule names have no order) separate marks, joined by no line. The vertical bar is the range of
+    the per-replicate capacities, a triangle a lower bound (top of the count grid); an undecided capacity (NA) is
+    not drawn, its value and reason named in the legend (beside the axes, where no text covers a bar)."""
     count = count_dim(ds)
     table = capacity_table(ds, min_fraction)
     others = [d for d in _other_axes(ds, count) if d != axis]
     values = list(ds[axis].values)
     numeric = ds[axis].dtype.kind in "iuf"
     spacing = float(np.ptp(values)) / max(len(values) - 1, 1) if numeric else 1.0
-    fig, ax = plt.subplots(figsize=(6.0, 4.0))
+    fig, ax = plt.subplots(figsize=(LEGEND_BESIDE_WIDTH, 4.0))
     groups = _groups(table, others)
     for i, (key, rows) in enumerate(groups):
         dodge = 0.06 * spacing * (i - (len(groups) - 1) / 2)
         x = np.array([(v if numeric else values.index(v)) for v in rows[axis]], dtype=float) + dodge
         known = rows["capacity"].notna().to_numpy()
-        line, = ax.plot(x[known], rows["capacity"][known].astype(float), marker="o",
-                        label=_condition_label(others, key))
+        undecided = _where([PENDING if row.pending else "crashed" for row in rows[~known].itertuples()],
+                           rows[axis][~known])
+        line, = ax.plot(x[known], rows["capacity"][known].astype(float), marker="o", ls="-" if numeric else "none",
+                        label=_condition_label(others, key) + (f" (NA, {'; '.join(undecided)})" if undecided else ""))
         colour = line.get_color()
         ranged = rows["capacity_lo"].notna().to_numpy()
         ax.vlines(x[ranged], rows["capacity_lo"][ranged].astype(float), rows["capacity_hi"][ranged].astype(float),
                   colors=colour, lw=2.5, alpha=0.4, gid="replicate_range")
         top = (rows["at_least"] & known).to_numpy()
         ax.plot(x[top], rows["capacity"][top].astype(float), "^", ms=9, mfc="none", mec=colour)
-        for xi, row in zip(x[~known], rows[~known].itertuples()):
-            _mark_missing(ax, xi, "NA: pending" if row.pending else "NA: crashed", colour)
     if numeric:
         (_integer_ticks if ds[axis].dtype.kind in "iu" else _value_ticks)(ax.set_xticks, values)
     else:
         _category_ticks(ax.set_xticks, ds, axis)
+        ax.set_xlim(-0.5, len(values) - 0.5)
     ax.yaxis.set_major_locator(MaxNLocator(integer=True))
     ax.plot([], [], "^", mfc="none", mec="k", label="at least (top of the count grid)")
     ax.plot([], [], color="k", lw=2.5, alpha=0.4, label="range over replicates")
     ax.set_xlabel(_axis_label(ds, axis))
     ax.set_ylabel(f"capacity ({count})")
-    ax.legend(fontsize=7, loc="best")
+    _legend_beside(ax)
     ax.set_title(f"capacity against {axis} (every count up to it succeeds in >= {min_fraction:g} of replicates)",
                  fontsize=8)
     return _finish(fig)
@@ -560,6 +564,19 @@ def _point_label(ds: xr.Dataset, index: tuple[int, ...]) -> str:
     dims = sweep_dims(ds)
     labels = [f"{d}={_tick_text(ds[d].values[i])}" for d, i in zip(dims, index) if d != REPLICATE]
     return ", ".join(labels + [f"replicate {index[-1]}: {labelled(ds, 'outcome').values[index]}"])
+
+
+def _where(labels: Sequence[str], at: Sequence[Any]) -> list[str]:
+    """'pending at 2, 3' for each distinct label (in order of first appearance): what holds at which axis values."""
+    places: dict[str, list[str]] = {}
+    for label, value in zip(labels, at):
+        places.setdefault(label, []).append(_tick_text(value))
+    return [f"{label} at {', '.join(values)}" for label, values in places.items()]
+
+
+def _legend_beside(ax: plt.Axes) -> None:
+    """The axes' legend right of it, outside the data, so no legend text covers a bar or a mark."""
+    ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0.0)
 
 
 def _tick_text(value: Any) -> str:
