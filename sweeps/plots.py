@@ -193,7 +193,7 @@ def capacity_curves(ds: xr.Dataset, min_fraction: float = MIN_FRACTION) -> Figur
     count = count_dim(ds)
     table = success_table(ds)
     capacities = capacity_table(ds, min_fraction)
-    others = _other_axes(ds, count)
+    others = _other_axes(ds)
     shown = ["NA" if pd.isna(c.capacity) else f"{'>=' if c.at_least else ''}{c.capacity}"
              for c in capacities.itertuples()]
     missing = np.select([table[PENDING] > 0, table[UNNEEDED] > 0], [PENDING, "not needed by the search"],
@@ -256,7 +256,7 @@ def capacity_against(ds: xr.Dataset, axis: str, min_fraction: float = MIN_FRACTI
     not drawn, its value and reason named in the legend (beside the axes, where no text covers a bar)."""
     count = count_dim(ds)
     table = capacity_table(ds, min_fraction)
-    others = [d for d in _other_axes(ds, count) if d != axis]
+    others = [d for d in _other_axes(ds) if d != axis]
     values = list(ds[axis].values)
     numeric = ds[axis].dtype.kind in "iuf"
     spacing = float(np.ptp(values)) / max(len(values) - 1, 1) if numeric else 1.0
@@ -351,7 +351,7 @@ def recall_per_assembly(ds: xr.Dataset) -> Figure:
     table = stats.to_dataframe().reset_index().sort_values(count)
     missing = np.select([table[PENDING] > 0, table[UNNEEDED] > 0, table[DONE] > 0],
                         [PENDING, "not needed by the search", "no recall score"], "crashed")
-    others = _other_axes(ds, count)
+    others = _other_axes(ds)
     fig, ax = plt.subplots(figsize=(6.0, 4.0))
     _count_lines(ax, table.assign(missing=missing), count, others, ("mean", "lo", "hi"))
     ax.set_xlabel(_axis_label(ds, count))
@@ -473,22 +473,42 @@ def _shade_schedule(ax: plt.Axes, sched: Schedule | None, until_s: float = np.in
     return drawn
 
 
-def weight_drift(ds: xr.Dataset) -> Figure:
-    """Weight correlation with hold start against snapshot time (s) of every done point, coloured by outcome."""
-    done = labelled(ds, "status").values.ravel() == DONE
-    outcome = labelled(ds, "outcome").values.ravel()[done]
-    corr = ds["weight_correlation"].values.reshape(done.size, -1)[done]
-    times = ds["snapshot_time_s"].values.reshape(done.size, -1)[done]
-    fig, ax = plt.subplots(figsize=(5.5, 3.8))
-    for row, name in enumerate(outcome):
-        ax.plot(times[row], corr[row], color=OUTCOME_COLOURS[name], alpha=0.6, marker=".")
-    for name in (o for o in OUTCOMES if o in outcome):
-        ax.plot([], [], color=OUTCOME_COLOURS[name], label=f"{name} (n={int(np.sum(outcome == name))})")
-    ax.set_xlabel("time (s)")
-    ax.set_ylabel("corr(w(t), w(hold start))")
-    ax.legend(fontsize=7)
-    ax.set_title("E->E weight drift during hold (done points)", fontsize=9)
-    return _finish(fig)
+def weight_drift(ds: xr.Dataset, columns: int = 3) -> Figure:
+    """Weight correlation with hold start against snapshot time (s) of every done point, coloured by outcome, one
+    panel per condition (value of the axes other than the assembly count: each rule its own panel, never pooled
+    with another); a panel holds its condition's counts and replicates, up to ``columns`` panels a row.
+    Conditions without a done point are left out and counted in the title."""
+    others = _other_axes(ds)
+    status, outcome = labelled(ds, "status"), labelled(ds, "outcome")
+    conditions = [dict(zip(others, c)) for c in itertools.product(*(range(ds.sizes[d]) for d in others))]
+    conditions = [c for c in conditions if np.any(status.isel(c).values == DONE)]
+    rows = -(-len(conditions) // columns)
+    fig, axs = plt.subplots(rows, min(columns, len(conditions)), squeeze=False, sharex=True, sharey=True,
+                            figsize=(0.4 + 3.3 * min(columns, len(conditions)), 0.8 + 2.6 * rows))
+    for ax, condition in itertools.zip_longest(axs.flat, conditions):
+        if condition is None:
+            ax.set_visible(False)
+            continue
+        done = status.isel(condition).values.ravel() == DONE
+        corr = ds["weight_correlation"].isel(condition).values.reshape(done.size, -1)[done]
+        times = ds["snapshot_time_s"].isel(condition).values.reshape(done.size, -1)[done]
+        for t, c, name in zip(times, corr, outcome.isel(condition).values.ravel()[done]):
+            ax.plot(t, c, color=OUTCOME_COLOURS[name], alpha=0.6, marker=".")
+        label = _condition_label(others, [_tick_text(ds[d].values[i]) for d, i in condition.items()])
+        ax.set_title(f"{label} ({int(done.sum())} done)", fontsize=8)
+    for ax in axs[-1]:
+        ax.set_xlabel("time (s)")
+    for ax in axs[:, 0]:
+        ax.set_ylabel("corr(w(t), w(hold start))")
+    names = outcome.values[status.values == DONE]
+    fig.legend(handles=[Line2D([], [], color=OUTCOME_COLOURS[o], label=f"{o} (n={int(np.sum(names == o))})")
+                        for o in OUTCOMES if o in names], loc="lower center", ncol=len(OUTCOMES), fontsize=7,
+               frameon=False)
+    left_out = int(np.prod([ds.sizes[d] for d in others])) - len(conditions)
+    fig.suptitle("E->E weight drift during hold (done points)"
+                 + (f"; {left_out} conditions without a done point left out" if left_out else ""), fontsize=9)
+    fig.tight_layout(rect=(0, 0.06, 1, 1))
+    return fig
 
 
 # ---------------------------------------------------------------- all together
@@ -545,9 +565,9 @@ def _figures(ds: xr.Dataset, x: str, y: str | None, against: list[str]) -> tuple
 # ---------------------------------------------------------------- helpers
 
 
-def _other_axes(ds: xr.Dataset, count: str) -> list[str]:
+def _other_axes(ds: xr.Dataset) -> list[str]:
     """Sweep axes other than the count axis (replicate excluded), in store order."""
-    return [d for d in axis_keys(ds) if d != count]
+    return [d for d, key in axis_keys(ds).items() if key != COUNT_KEY]
 
 
 def _groups(table: pd.DataFrame, others: list[str]) -> list[tuple[Any, pd.DataFrame]]:
