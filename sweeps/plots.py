@@ -28,8 +28,6 @@ from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
 from matplotlib.ticker import MaxNLocator, NullFormatter
-from matplotlib.transforms import blended_transform_factory
-from matplotlib.typing import ColorType
 
 from ..axes import COUNT_KEY, REPLICATE
 from ..errors import CapsweepError
@@ -186,9 +184,9 @@ def capacity_curves(ds: xr.Dataset, min_fraction: float = MIN_FRACTION) -> Figur
     """Success fraction against assembly count with 95 % Wilson intervals, one line per condition (combination of
     the other axes).
 
-    Counts without a done replicate are not drawn but labelled "pending" (or "crashed"); the legend
-    gives each condition's capacity and its n of done replicates per count, a point with fewer or with
-    pending replicates is marked with its own n, and the dashed line is the fraction capacity requires.
+    Counts without a done replicate are not drawn; the legend (beside the axes) gives each condition's capacity,
+    its n of done replicates per count, the counts with fewer or with pending replicates and their n, and the
+    counts not drawn and why ("pending at 2"). The dashed line is the fraction capacity requires.
     """
     count = count_dim(ds)
     table = success_table(ds)
@@ -198,14 +196,14 @@ def capacity_curves(ds: xr.Dataset, min_fraction: float = MIN_FRACTION) -> Figur
              for c in capacities.itertuples()]
     missing = np.select([table[PENDING] > 0, table[UNNEEDED] > 0], [PENDING, "not needed by the search"],
                         "crashed")
-    fig, ax = plt.subplots(figsize=(6.0, 4.0))
+    fig, ax = plt.subplots(figsize=(LEGEND_BESIDE_WIDTH, 4.0))
     _count_lines(ax, table.assign(missing=missing), count, others, ("fraction", "wilson_lo", "wilson_hi"),
                  [f": capacity {c}" for c in shown])
     ax.axhline(min_fraction, color="grey", ls="--", lw=0.8)
     ax.set_xlabel(_axis_label(ds, count))
     ax.set_ylabel("fraction of replicates: stable, all recalled")
     ax.set_ylim(-0.05, 1.05)
-    ax.legend(fontsize=7, loc="best")
+    _legend_beside(ax)
     ax.set_title("capacity curves (95 % Wilson intervals; one line per " + (", ".join(others) or "store")
                  + f"; dashed: {min_fraction:g})", fontsize=8)
     return _finish(fig)
@@ -215,38 +213,24 @@ def _count_lines(ax: plt.Axes, table: pd.DataFrame, count: str, others: list[str
                  legend_extra: list[str] | None = None) -> None:
     """One line per condition of the ``others`` axes (table order): the ``columns`` (value, low, high) against
     ``count`` with bars from low to high, integer ticks at the counts; ``legend_extra`` follows each condition's
-    legend label. Rows need ``n`` (values behind a point) and ``pending``; a row with n = 0 is not drawn but labelled
-    with its ``missing`` text."""
+    legend label. Rows need ``n`` (values behind a point) and ``pending``; a row with n = 0 is not drawn. Its
+    ``missing`` text, and the n of a point with fewer values than the condition's most or with pending ones, go in
+    the condition's legend label (beside the axes): written beside a point they covered a neighbour's bar."""
     value, low, high = columns
     groups = _groups(table, others)
     for i, ((key, rows), extra) in enumerate(zip(groups, legend_extra or [""] * len(groups))):
         dodge = 0.05 * (i - (len(groups) - 1) / 2)  # side by side, so the bars stay readable
         drawn = rows[rows["n"] > 0]
         n_most = int(drawn["n"].max()) if len(drawn) else 0
+        fewer = drawn[(drawn["n"] < n_most) | (drawn[PENDING] > 0)]
+        notes = _where([f"n={r.n}" + (f" +{r.pending} pending" if r.pending else "") for r in fewer.itertuples()],
+                       fewer[count])
+        notes += _where(rows["missing"][rows["n"] == 0], rows[count][rows["n"] == 0])
         yerr = np.vstack([drawn[value] - drawn[low], drawn[high] - drawn[value]])
-        line = ax.errorbar(drawn[count] + dodge, drawn[value], yerr=yerr, marker="o", capsize=3,
-                           label=f"{_condition_label(others, key)}{extra} (n={n_most} per count)")
-        colour = line.lines[0].get_color()
-        _mark_fewer(ax, drawn[count] + dodge, drawn[value], drawn["n"], drawn[PENDING], n_most, colour)
-        for row in rows[rows["n"] == 0].itertuples():
-            _mark_missing(ax, getattr(row, count) + dodge, str(row.missing), colour)
+        ax.errorbar(drawn[count] + dodge, drawn[value], yerr=yerr, marker="o", capsize=3,
+                    label=f"{_condition_label(others, key)}{extra} (" + "; ".join([f"n={n_most} per count", *notes])
+                    + ")")
     _integer_ticks(ax.set_xticks, sorted(table[count].unique()))
-
-
-def _mark_fewer(ax: plt.Axes, x: pd.Series, y: pd.Series, n: pd.Series, pending: pd.Series, n_most: int,
-                colour: ColorType) -> None:
-    """Write its own n beside each point with fewer done replicates than the legend's n or with pending ones."""
-    for xi, yi, ni, pi in zip(x, y, n, pending):
-        if ni < n_most or pi:
-            text = f"n={ni}" + (f" +{pi} pending" if pi else "")
-            ax.annotate(text, (xi, yi), xytext=(4, -10), textcoords="offset points", fontsize=6, color=colour)
-
-
-def _mark_missing(ax: plt.Axes, x: float, text: str, colour: ColorType) -> None:
-    """Label data position ``x`` as holding no value (e.g. pending), upright in the middle of the axes."""
-    at = blended_transform_factory(ax.transData, ax.transAxes)
-    ax.text(x, 0.5, text, transform=at, rotation=90, ha="center", va="center", fontsize=7, color=colour,
-            style="italic", bbox={"fc": "white", "ec": NO_DATA_COLOUR, "lw": 0.5})
 
 
 def capacity_against(ds: xr.Dataset, axis: str, min_fraction: float = MIN_FRACTION) -> Figure:
@@ -341,8 +325,8 @@ def capacity_scaling(ds: xr.Dataset) -> Figure | None:
 def recall_per_assembly(ds: xr.Dataset) -> Figure:
     """Recall score per assembly (mean over a done point's assemblies) against assembly count: mean over
     replicates with their range as bars, one line per condition of the other axes; counts without a scored
-    replicate are labelled with the reason (pending, crashed, or done without a recall score, as after
-    an early abort), fewer replicates than the most are marked with their n."""
+    replicate are not drawn, the legend names them with the reason (pending, crashed, or done without a recall
+    score, as after an early abort) and the counts with fewer replicates than the most with their n."""
     count, status = count_dim(ds), labelled(ds, "status")
     per_point = ds["recall_score"].where(status == DONE).mean("assembly", skipna=True)
     stats = xr.Dataset({"mean": per_point.mean(REPLICATE), "lo": per_point.min(REPLICATE),
@@ -352,11 +336,11 @@ def recall_per_assembly(ds: xr.Dataset) -> Figure:
     missing = np.select([table[PENDING] > 0, table[UNNEEDED] > 0, table[DONE] > 0],
                         [PENDING, "not needed by the search", "no recall score"], "crashed")
     others = _other_axes(ds)
-    fig, ax = plt.subplots(figsize=(6.0, 4.0))
+    fig, ax = plt.subplots(figsize=(LEGEND_BESIDE_WIDTH, 4.0))
     _count_lines(ax, table.assign(missing=missing), count, others, ("mean", "lo", "hi"))
     ax.set_xlabel(_axis_label(ds, count))
     ax.set_ylabel("recall score per assembly\n(1 perfect completion, 0 chance)")
-    ax.legend(fontsize=7, loc="best")
+    _legend_beside(ax)
     ax.set_title("recall per assembly: mean over replicates (bar: range over replicates)", fontsize=8)
     return _finish(fig)
 

@@ -14,7 +14,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 import xarray as xr
+from matplotlib import pyplot as plt
+from matplotlib.axes import Axes
 from matplotlib.collections import LineCollection
+from matplotlib.transforms import Bbox
 from typer.testing import CliRunner
 
 from capsweep.results_schema.dataset import open_dataset
@@ -32,6 +35,7 @@ from capsweep.sweeps.plots import (
     point_schedules,
     prediction_confusion,
     rate_traces,
+    recall_per_assembly,
     stability_map,
     weight_drift,
 )
@@ -209,7 +213,7 @@ def test_capacity_curve_bars_are_the_wilson_intervals_and_pending_counts_are_not
         segments = container.lines[2][0].get_segments()
         np.testing.assert_allclose([s[0][1] for s in segments], done["wilson_lo"])
         np.testing.assert_allclose([s[1][1] for s in segments], done["wilson_hi"])
-    assert sum(t.get_text() == "pending" for t in ax.texts) == 1
+    assert not ax.texts and "pending at 2" in _labels(ax.get_legend().get_texts())[1]
 
 
 def test_capacity_against_beta_bars_are_the_replicate_ranges(ds: xr.Dataset) -> None:
@@ -257,6 +261,53 @@ def test_weight_drift_gives_each_rule_its_own_panel(rule_ds: xr.Dataset) -> None
         for line in traces:
             y = np.asarray(line.get_ydata(), float)
             np.testing.assert_allclose(y[np.isfinite(y)], 1.0 - 0.1 * (i + 1) * np.arange(3))
+
+
+def _bar_boxes(ax: Axes) -> list[Bbox]:
+    """Display extents of every error bar and replicate range (line segments, padded by their width) and cap."""
+    to_pixels = ax.figure.dpi / 72  # points to pixels (1 point = 1/72 inch)
+    boxes = [Bbox(c.get_transform().transform(segment)).padded(c.get_linewidth()[0] * to_pixels / 2)
+             for c in ax.collections if isinstance(c, LineCollection) for segment in c.get_segments()]
+    for caps in (cap for container in ax.containers for cap in container.lines[1]):
+        half = caps.get_markersize() * to_pixels / 2
+        boxes += [Bbox.from_bounds(x - half, y - half, 2 * half, 2 * half)
+                  for x, y in caps.get_transform().transform(caps.get_xydata())]
+    return boxes
+
+
+def _text_boxes(ax: Axes) -> dict[str, Bbox]:
+    """Display extents of every text on the axes (with its box, if any) and of its legend."""
+    boxes = {t.get_text(): Bbox.union([t.get_window_extent()] + ([t.get_bbox_patch().get_window_extent()]
+                                                                  if t.get_bbox_patch() else []))
+             for t in ax.texts}
+    legend = ax.get_legend()
+    return boxes | ({"legend": legend.get_window_extent()} if legend else {})
+
+
+FIGURES_WITH_BARS = {"capacity_curves": capacity_curves, "recall_per_assembly": recall_per_assembly,
+                     "capacity_against": lambda d: capacity_against(d, "beta" if "beta" in d.dims else "rule")}
+
+
+@pytest.mark.parametrize("figure", FIGURES_WITH_BARS)
+def test_no_label_or_legend_sits_on_an_error_bar(ds: xr.Dataset, rule_ds: xr.Dataset, figure: str) -> None:
+    """In both stores (a pending count beside another condition's bar, a count with one replicate pending):
+    no text or legend overlaps a bar or cap, read from the drawn figure's display coordinates."""
+    for store in (ds, rule_ds):
+        fig = FIGURES_WITH_BARS[figure](store)
+        fig.canvas.draw()
+        ax = fig.axes[0]
+        bars = _bar_boxes(ax)
+        assert bars
+        assert not [name for name, box in _text_boxes(ax).items() if any(box.overlaps(bar) for bar in bars)]
+        plt.close(fig)
+
+
+def test_what_no_bar_shows_is_in_the_legend(ds: xr.Dataset, rule_ds: xr.Dataset) -> None:
+    """beta 0.05 has no done replicate at count 2; triplet_only has one of two, the other pending."""
+    curves = _labels(capacity_curves(ds).axes[0].get_legend().get_texts())
+    assert curves[1] == "beta=0.05: capacity NA (n=2 per count; pending at 2)"
+    rules = _labels(recall_per_assembly(rule_ds).axes[0].get_legend().get_texts())
+    assert rules[0] == "rule=triplet_only (n=2 per count; n=1 +1 pending at 2)"
 
 
 def test_legends_list_only_outcomes_present(ds: xr.Dataset) -> None:
