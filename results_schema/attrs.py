@@ -33,6 +33,8 @@ DEFINITIONS = "metric_definitions"
 COUNT_SEARCH = "count_search"
 AXIS_KEY = "config_key"
 """Attribute of an axis coordinate (not a root attr): the config key the axis sets."""
+RELATIVE_TO = "relative_to"
+"""Attribute of a variable or coordinate of units "1" (not a root attr): the unit its values are multiples of."""
 
 CF_CONVENTIONS = "CF-1.11"  # the newest CF version the IOOS compliance checker (6.1) has a suite for
 VERSIONED_PACKAGES: tuple[str, ...] = ("capsweep", "brian2", "numpy", "xarray", "zarr", "dask")

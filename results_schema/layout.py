@@ -18,10 +18,13 @@ import numpy as np
 from ..axes import Axis
 from ..engines import NAMES as ENGINE_NAMES
 from ..flags import OUTCOMES, RECALL_STATES, STATUSES
+from ..registry import WEIGHT_UNIT as G_LEAK
+from ..registry import in_units_of
 
-SCHEMA_VERSION = "3.0"
+SCHEMA_VERSION = "3.1"
 
 FLAG_FILL = -1
+IN_G_LEAK = in_units_of(G_LEAK)
 INNER_DIMS: tuple[str, ...] = ("assembly", "snapshot", "time_bin", "retention")
 
 
@@ -50,6 +53,7 @@ class Variable:
     inner: str | None = None
     dtype: str = "float64"
     flags: tuple[str, ...] = ()
+    scale: str = ""  # for units "1": the unit the value is a multiple of (stored as attrs.RELATIVE_TO)
 
     @property
     def fill(self) -> float | int:
@@ -128,11 +132,12 @@ VARIABLES: tuple[Variable, ...] = (
              inner="snapshot"),
     Variable("assembly_contrast", "1", "mean within-assembly E->E weight / mean other E->E weight",
              inner="snapshot"),
-    Variable("weight_in", "g_leak", "mean E->E weight into assembly members from cells in no assembly",
-             inner="snapshot"),
-    Variable("weight_out", "g_leak", "mean E->E weight from assembly members to cells in no assembly",
-             inner="snapshot"),
-    Variable("weight_within", "g_leak", "mean E->E weight between members of a shared assembly", inner="snapshot"),
+    Variable("weight_in", "1", f"mean E->E weight into assembly members from cells in no assembly{IN_G_LEAK}",
+             inner="snapshot", scale=G_LEAK),
+    Variable("weight_out", "1", f"mean E->E weight from assembly members to cells in no assembly{IN_G_LEAK}",
+             inner="snapshot", scale=G_LEAK),
+    Variable("weight_within", "1", f"mean E->E weight between members of a shared assembly{IN_G_LEAK}",
+             inner="snapshot", scale=G_LEAK),
     Variable("snapshot_time_s", "s", "simulated time of each weight snapshot", inner="snapshot"),
     Variable("rate_exc_hz", "Hz", "binned excitatory population rate", inner="time_bin"),
     Variable("rate_inh_hz", "Hz", "binned inhibitory population rate", inner="time_bin"),
@@ -147,3 +152,4 @@ TIMINGS: tuple[str, ...] = ("wall_time_s", "setup_time_s")
 STATUS = Variable("status", "1", "run status of the point", dtype="int8", flags=STATUSES)
 ERROR = "error"  # per-point error text for failed points (string variable, '' when none)
 POINT_ID = "point_id"  # per-point hash of the resolved config (string variable)
+WRITER_VERSION = "capsweep_version"  # per-point version of the capsweep that wrote the point (string variable)

@@ -33,7 +33,7 @@ from rich.text import Text
 from .. import __version__
 from ..clusters import NAMES as CLUSTER_KINDS
 from ..engines import ENGINES, NAMES
-from ..errors import CapsweepError
+from ..errors import CapsweepError, StoreError, file_system_fault
 from ..flags import DONE, FAILED, PENDING, UNNEEDED
 from ..registry import ImplausibleValue
 from ..results_schema import attrs
@@ -79,7 +79,7 @@ def _every_command(
 
 
 def user_errors(command: Callable[..., Any]) -> Callable[..., Any]:
-    """Turn CapsweepError into one line on stderr and its exit code; Ctrl-C into exit 130."""
+    """Turn CapsweepError and file-system faults into one line on stderr and an exit code; Ctrl-C into exit 130."""
 
     @functools.wraps(command)
     def wrapper(*args: Any, **kwargs: Any) -> Any:
@@ -88,6 +88,12 @@ def user_errors(command: Callable[..., Any]) -> Callable[..., Any]:
         except CapsweepError as exc:
             typer.echo(f"capsweep: error: {exc}", err=True)
             raise typer.Exit(exc.exit_code) from None
+        except OSError as exc:
+            line = file_system_fault(exc)
+            if line is None:
+                raise
+            typer.echo(f"capsweep: error: {line}", err=True)
+            raise typer.Exit(StoreError.exit_code) from None
         except KeyboardInterrupt:
             typer.echo("capsweep: interrupted; results stored so far are kept. Rerun the same command to resume.",
                        err=True)
@@ -547,6 +553,18 @@ def _duration(seconds: float) -> str:
 def _check_engine(engine: str | None) -> None:
     if engine is not None and engine not in ENGINES:
         raise CapsweepError(f"--engine {engine!r} is not allowed: expected one of {', '.join(NAMES)}")
+
+
+@app.command("upgrade")
+@user_errors
+def upgrade_command(store: Path = typer.Argument(..., help="Zarr store directory")) -> None:
+    """Upgrade STORE in place to the store schema this capsweep writes (stored values stay as they are)."""
+    from ..results_schema.upgrade import upgrade_store
+
+    before, after = upgrade_store(store)
+    said = f"{store} already has store schema {after}" if before == after else \
+        f"{store} upgraded from store schema {before} to {after}"
+    out.print(said, markup=False, highlight=False)
 
 
 @app.command("trim-builds")

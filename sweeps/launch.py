@@ -16,6 +16,7 @@ from typing import TYPE_CHECKING, Any
 
 from ..flags import DONE, FAILED, STATUSES, UNNEEDED
 from ..locks import store_lock
+from ..results_schema.durable import check_new_store
 from ..runners.task import TaskFailure, simulate_task
 from .dispatch import EarlyClient, Job, early_client, point_jobs, run_tasks, submission_sequence
 from .expand import expand
@@ -83,9 +84,11 @@ def run_sweep(
     execution = points[0].config["execution"]
     with early_client(execution, options.workers, options.scheduler, options.dashboard, options.cluster) as dask:
         if not Path(sweep.store).exists():
+            check_new_store(Path(sweep.store))
             dask.start()
         store = open_or_create(sweep, points)
         with store_lock(sweep.store), store:  # closing the store writes its last batch
+            store.tidy()
             todo = pending(points, store, options.retry_failed)
             progress = Progress(total=len(points), to_run=len(todo), already_done=len(points) - len(todo))
             if todo and sweep.search is not None:

@@ -1,0 +1,247 @@
+"""Stores of earlier schema versions: read them as this version's layout, and upgrade them in place.
+
+Each schema version that this capsweep reads and that is not the current one has one :class:`Step` to the
+next version, in :data:`STEPS`; a store of version ``v`` passes through ``STEPS[v]``, then the step from its
+result, and so on to :data:`layout.SCHEMA_VERSION`. A new schema version adds its step here and nowhere else.
+A step changes metadata only (variable attrs, variables added as unwritten arrays: every entry reads as the
+fill value), never a stored value, so an upgrade leaves every stored value bitwise as it was.
+
+The same steps serve two readers: :func:`as_current` applies them to an opened xarray Dataset (read
+commands on a store they may not change), :func:`upgrade_store` to the store's Zarr metadata on disk.
+
+An upgrade on disk is crash-safe by a journal. It writes every changed metadata file (each array's
+``zarr.json``, the root's last, with the consolidated metadata) into ``<store>/.capsweep.upgrade/``, then
+the list of those files as ``COMMIT`` (one atomic rename: the commit point), then moves each file over its
+old one and removes the journal. Killed before the commit, the store is the old one (the journal is
+removed by the next writer); killed after it, the next open of the store moves the remaining files (each
+move is atomic and repeating them is harmless), so every reader sees the old layout or the new one.
+"""
+
+from __future__ import annotations
+
+import copy
+import json
+import os
+import shutil
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+from ..errors import StoreError
+from ..flags import STATUSES
+from ..locks import store_lock
+from ..registry import cf_unit, in_units_of, relative_scale
+from . import attrs, layout
+from .durable import check_writable, fsync_dir, fsync_file
+
+if TYPE_CHECKING:
+    import xarray as xr
+
+JOURNAL = ".capsweep.upgrade"
+"""The upgrade's journal directory inside the store."""
+COMMIT = "COMMIT"
+ROOT_META = "zarr.json"
+
+
+@dataclass(frozen=True)
+class Added:
+    """A variable a step adds: unwritten (every entry the fill value), shaped and chunked as ``like``."""
+
+    name: str
+    like: str  # a stored variable of the same dims, dtype and fill value
+
+
+@dataclass(frozen=True)
+class Step:
+    """What one schema version changes in the layout of the version before it."""
+
+    to: str
+    changes: Callable[[dict[str, dict[str, Any]]], dict[str, dict[str, Any]]]
+    """Stored variables' attrs (name -> attrs) -> the attrs this step sets, by variable."""
+    added: tuple[Added, ...] = field(default=())
+
+
+def _status_flags(stored: dict[str, dict[str, Any]]) -> dict[str, dict[str, Any]]:
+    """2.0 -> 2.1: the status ``unneeded`` joins the status flags."""
+    return {layout.STATUS.name: {"flag_values": list(range(len(STATUSES))), "flag_meanings": " ".join(STATUSES)}}
+
+
+def _parseable_units(stored: dict[str, dict[str, Any]]) -> dict[str, dict[str, Any]]:
+    """2.1 -> 2.2: a unit relative to g_leak becomes "1", its scale named in ``relative_to`` and the long name."""
+    changed = {}
+    for name, described in stored.items():
+        unit = str(described.get("units", ""))
+        scale = relative_scale(unit)
+        if scale:
+            changed[name] = {"units": cf_unit(unit), attrs.RELATIVE_TO: scale,
+                             "long_name": str(described.get("long_name", "")) + in_units_of(scale)}
+    return changed
+
+
+def _variable_described(name: str) -> dict[str, Any]:
+    from .store import variable_attrs  # the store module imports Zarr: only an upgrade needs it
+
+    return variable_attrs(layout.BY_NAME[name])
+
+
+STEPS: dict[str, Step] = {
+    "2.0": Step("2.1", _status_flags, (Added("setup_time_s", "wall_time_s"),)),
+    "2.1": Step("2.2", _parseable_units, (Added(layout.WRITER_VERSION, layout.ERROR),)),
+}
+"""The step from each earlier readable schema version to the next one."""
+READABLE: tuple[str, ...] = (*STEPS, layout.SCHEMA_VERSION)
+"""Every schema version this capsweep reads (the earlier ones through :data:`STEPS`)."""
+
+
+def added_attrs(added: Added) -> dict[str, Any]:
+    """The attrs of a variable a step adds: the current layout's (a string variable: its units and long name)."""
+    if added.name in layout.BY_NAME:
+        return _variable_described(added.name)
+    from .store import STRING_VARIABLES
+
+    return {"units": "1", "long_name": STRING_VARIABLES[added.name]}
+
+
+def chain(version: str) -> list[Step]:
+    """The steps from schema ``version`` to the current one (StoreError for a version this capsweep cannot read)."""
+    steps = []
+    while version != layout.SCHEMA_VERSION:
+        if version not in STEPS:
+            raise StoreError(f"store schema version {version} is not one this capsweep reads "
+                             f"({', '.join(READABLE)}); use the capsweep version that made it")
+        steps.append(STEPS[version])
+        version = STEPS[version].to
+    return steps
+
+
+def as_current(ds: xr.Dataset) -> xr.Dataset:
+    """``ds``, a store of a readable schema opened by xarray, as this schema lays it out (in memory only)."""
+    import xarray as xr
+
+    for step in chain(str(ds.attrs[attrs.SCHEMA])):
+        for name, changed in step.changes({str(n): dict(ds[n].attrs) for n in ds.variables}).items():
+            ds[name].attrs.update(changed)
+        for added in step.added:
+            if added.name not in ds.variables:
+                like = ds[added.like]
+                described = {k: v for k, v in added_attrs(added).items() if k != "_FillValue"}
+                fill = "" if like.dtype.kind in "OTU" else float("nan")
+                ds[added.name] = xr.full_like(like, fill, dtype=object if fill == "" else like.dtype).assign_attrs(
+                    described)
+    return ds
+
+
+def upgrade_store(path: str | Path) -> tuple[str, str]:
+    """Upgrade the store at ``path`` in place to the current schema; return (version before, version after).
+
+    Takes the store's lock. Stored values are untouched; see the module docstring for the journal that makes it
+    crash-safe. Raises StoreError for a store this capsweep cannot read or write, or one another run holds.
+    """
+    path = Path(path)
+    if not path.is_dir():
+        raise StoreError(f"no result store at {path}")
+    check_writable(path)
+    with store_lock(path):
+        finish_upgrade(path)
+        discard_journal(path)
+        metas = _read_metadata(path)
+        before = str(metas[ROOT_META]["attributes"][attrs.SCHEMA])
+        steps = chain(before)
+        if steps:
+            _write_journal(path, _upgraded(metas, steps, before))
+            _apply(path)
+    return before, layout.SCHEMA_VERSION
+
+
+def _read_metadata(path: Path) -> dict[str, dict[str, Any]]:
+    """Every metadata file of the store: relative path -> its JSON (the root's as ``zarr.json``)."""
+    try:
+        root = json.loads((path / ROOT_META).read_text())
+        names = list(root["consolidated_metadata"]["metadata"])
+        metas = {f"{name}/{ROOT_META}": json.loads((path / name / ROOT_META).read_text()) for name in names}
+    except (OSError, KeyError, TypeError, ValueError) as exc:
+        raise StoreError(f"{path} is not a capsweep result store whose metadata can be read ({exc})") from None
+    if attrs.SCHEMA not in root.get("attributes", {}):
+        raise StoreError(f"{path} is not a capsweep result store (its root attributes lack {attrs.SCHEMA})")
+    return {ROOT_META: root, **metas}
+
+
+def _upgraded(metas: dict[str, dict[str, Any]], steps: list[Step], before: str) -> dict[str, dict[str, Any]]:
+    """The metadata files that ``steps`` change, as they are afterwards (root last)."""
+    root = copy.deepcopy(metas[ROOT_META])
+    arrays = {name.split("/")[0]: copy.deepcopy(meta) for name, meta in metas.items() if name != ROOT_META}
+    touched: set[str] = set()
+    for step in steps:
+        for name, changed in step.changes({n: a["attributes"] for n, a in arrays.items()}).items():
+            arrays[name]["attributes"].update(changed)
+            touched.add(name)
+        for added in step.added:
+            if added.name not in arrays:
+                arrays[added.name] = {**copy.deepcopy(arrays[added.like]), "attributes": added_attrs(added)}
+                touched.add(added.name)
+    now = datetime.now(UTC).isoformat(timespec="seconds")
+    history = f"{root['attributes'].get(attrs.HISTORY, '')}\n{now} capsweep {attrs.package_version('capsweep')}: " \
+              f"upgraded from store schema {before} to {layout.SCHEMA_VERSION}"
+    root["attributes"].update({attrs.SCHEMA: layout.SCHEMA_VERSION, attrs.HISTORY: history.strip()})
+    root["consolidated_metadata"]["metadata"] = arrays
+    return {**{f"{name}/{ROOT_META}": arrays[name] for name in sorted(touched)}, ROOT_META: root}
+
+
+def _write_journal(path: Path, changed: dict[str, dict[str, Any]]) -> None:
+    """Write the changed files into the journal, each synced, then COMMIT (the list, in order) by one rename."""
+    journal = path / JOURNAL
+    journal.mkdir()
+    for name, meta in changed.items():
+        target = journal / name
+        target.parent.mkdir(exist_ok=True)
+        target.write_text(json.dumps(meta, indent=2))
+        fsync_file(target)
+        fsync_dir(target.parent)
+    partial = journal / f"{COMMIT}.partial"
+    partial.write_text(json.dumps(list(changed)))
+    fsync_file(partial)
+    os.replace(partial, journal / COMMIT)
+    fsync_dir(journal)
+
+
+def finish_upgrade(path: Path) -> None:
+    """Finish an upgrade of ``path`` cut short after its commit (nothing to do otherwise).
+
+    Raises StoreError if the store cannot be written (the upgrade is then half applied on disk).
+    """
+    if (path / JOURNAL / COMMIT).exists():
+        try:
+            _apply(path)
+        except OSError as exc:
+            raise StoreError(f"{path} was being upgraded to store schema {layout.SCHEMA_VERSION} when it stopped, "
+                             f"and the upgrade cannot be finished here ({exc.strerror}); run `capsweep upgrade "
+                             f"{path}` where the store is writable") from None
+
+
+def discard_journal(path: Path) -> None:
+    """Remove an upgrade's journal that never reached its commit (the store is the old one); the lock holder only."""
+    journal = path / JOURNAL
+    if journal.exists() and not (journal / COMMIT).exists():
+        shutil.rmtree(journal)
+
+
+def _apply(path: Path) -> None:
+    """Move each journalled file over its old one (those moved already are skipped), then remove the journal."""
+    journal = path / JOURNAL
+    try:
+        names = json.loads((journal / COMMIT).read_text())
+    except FileNotFoundError:  # another process finished it
+        return
+    for name in names:
+        staged, target = journal / name, path / name
+        target.parent.mkdir(exist_ok=True)
+        try:
+            os.replace(staged, target)
+        except FileNotFoundError:
+            continue
+        fsync_dir(target.parent)
+    fsync_dir(path)
+    (journal / COMMIT).unlink(missing_ok=True)
+    shutil.rmtree(journal, ignore_errors=True)
