@@ -1,0 +1,192 @@
+"""Stores written by earlier capsweep releases: every read command reads them, `capsweep upgrade` brings them to
+this schema crash-safely, and a run of their sweep file then computes nothing.
+
+The fixtures were written by capsweep at the commit of each schema (2.0: 39a272a, 2.1: 551b9ed) from
+``fixtures/odour-fixture.toml``: 2 odour counts x 2 rules (full, triplet STDP alone) x 2 replicates, 200 E
+cells. Expected values come from the fixture's arrays read with zarr alone, never through capsweep.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+import zarr
+from cli_runs import capsweep
+from typer.testing import CliRunner, Result
+
+from capsweep.flags import OUTCOMES, STABLE, STATUSES
+from capsweep.results_schema import attrs, layout
+from capsweep.results_schema.dataset import open_dataset
+from capsweep.results_schema.store import stored_attrs
+from capsweep.results_schema.upgrade import JOURNAL
+from capsweep.sweeps.cli import app
+
+FIXTURES = Path(__file__).parent / "fixtures"
+SWEEP = FIXTURES / "odour-fixture.toml"
+STORES = {"2.0": "schema20.zarr", "2.1": "schema21.zarr"}
+"""Fixture store of each earlier schema version."""
+
+
+def invoke(*args: str | Path) -> Result:
+    return CliRunner().invoke(app, [str(a) for a in args])
+
+
+@pytest.fixture(params=sorted(STORES))
+def old_store(request: pytest.FixtureRequest, tmp_path: Path) -> Path:
+    """A copy of the fixture store of one earlier schema version."""
+    return copy_fixture(request.param, tmp_path)
+
+
+def copy_fixture(version: str, folder: Path) -> Path:
+    path = folder / STORES[version]
+    shutil.copytree(FIXTURES / STORES[version], path)
+    return path
+
+
+def files(path: Path, metadata: bool = True) -> dict[str, bytes]:
+    """Every file of the store at ``path`` (with ``metadata=False``: data files only, no zarr.json) and its bytes;
+    capsweep's own lock and journal left out."""
+    return {str(p.relative_to(path)): p.read_bytes() for p in sorted(path.rglob("*"))
+            if p.is_file() and (metadata or p.name != "zarr.json") and not p.relative_to(path).parts[0].startswith(
+                ".capsweep.")}
+
+
+def raw(path: Path, name: str) -> np.ndarray:
+    """A stored array as zarr reads it, flattened over the sweep dims (sweep order) with inner dims kept."""
+    values = np.asarray(zarr.open_array(path / name, mode="r")[...])
+    return values.reshape(8, *values.shape[3:])
+
+
+def test_the_read_commands_read_an_old_store_and_change_nothing(old_store: Path, tmp_path: Path) -> None:
+    before = files(old_store)
+    outcome, recalled = raw(old_store, "outcome"), raw(old_store, "recalled_count")
+    stable = outcome == OUTCOMES.index(STABLE)
+
+    status = invoke("status", old_store)
+    assert status.exit_code == 0, status.output
+    assert f"done {np.sum(raw(old_store, 'status') == STATUSES.index('done'))}," in status.stdout
+    assert f"stable {stable.sum()}, runaway {np.sum(outcome == OUTCOMES.index('runaway'))}" in status.stdout
+
+    query = invoke("query", old_store, "--all", "--format", "csv")
+    assert query.exit_code == 0, query.output
+    table = pd.read_csv(io.StringIO(query.stdout))
+    np.testing.assert_array_equal(table["recalled_count"], recalled)
+    np.testing.assert_array_equal(table["rate_exc_baseline_hz"], raw(old_store, "rate_exc_baseline_hz"))
+    np.testing.assert_array_equal(table["recall_score_min"], np.nanmin(raw(old_store, "recall_score"), axis=1))
+
+    per_count = invoke("capacity", old_store, "--per-count", "--format", "csv")
+    assert per_count.exit_code == 0, per_count.output
+    counts = pd.read_csv(io.StringIO(per_count.stdout)).set_index(["rule", "n_odours"])["successes"]
+    n_odours = np.repeat([1, 2], 4)  # the sweep file's counts, over rule x replicate
+    success = (stable & (recalled == n_odours)).reshape(2, 2, 2).sum(axis=2)  # n_odours x rule
+    for i, count in enumerate((1, 2)):
+        for j, rule in enumerate(("full", "triplet_only")):
+            assert counts[(rule, count)] == success[i, j], (rule, count)
+
+    plots = invoke("plot", old_store, "--out", tmp_path / "plots")
+    assert plots.exit_code == 0, plots.output
+    assert (tmp_path / "plots" / "stability_map.png").stat().st_size > 0
+
+    exported = invoke("export", old_store, "--netcdf", tmp_path / "all.nc", "--csv", tmp_path / "points.csv")
+    assert exported.exit_code == 0, exported.output
+    import netCDF4
+
+    with netCDF4.Dataset(tmp_path / "all.nc") as nc:
+        within = nc["weight_within"]
+        assert within.units == "1" and within.relative_to == "g_leak"
+        assert np.asarray(within[:].filled(np.nan)).reshape(8, -1).tobytes() == raw(old_store, "weight_within").tobytes()
+    assert len(pd.read_csv(tmp_path / "points.csv")) == 8
+    assert files(old_store) == before, "a read command changed the store"
+
+
+def test_upgrade_keeps_every_stored_value_and_the_run_computes_nothing(old_store: Path) -> None:
+    data = files(old_store, metadata=False)
+    version = json.loads((old_store / "zarr.json").read_text())["attributes"][attrs.SCHEMA]
+    upgraded = invoke("upgrade", old_store)
+    assert upgraded.exit_code == 0, upgraded.output
+    assert f"upgraded from store schema {version} to {layout.SCHEMA_VERSION}" in upgraded.stdout
+    assert "already has" in invoke("upgrade", old_store).stdout
+    root = json.loads((old_store / "zarr.json").read_text())["attributes"]
+    assert root[attrs.SCHEMA] == layout.SCHEMA_VERSION
+    assert f"upgraded from store schema {version}" in root[attrs.HISTORY].splitlines()[-1]
+
+    run = capsweep("run", str(SWEEP), "--store", str(old_store))
+    assert run.returncode == 0, run.stderr
+    said = " ".join((run.stdout + run.stderr).split())
+    assert "ran 0 of 0 points" in said and "8 were already stored" in said, said
+    assert files(old_store, metadata=False) == data, "upgrade or run changed a stored value"
+    ds = open_dataset(old_store)
+    assert set(ds[layout.WRITER_VERSION].values.ravel()) == {""}, "points written before 2.2 name no writer"
+
+
+CHILD = """
+import os, pathlib, shutil, sys, time
+hook, at, ready = sys.argv[2], int(sys.argv[3]), pathlib.Path(sys.argv[4])
+real = getattr(os if hook == "replace" else shutil, {"replace": "replace", "rmtree": "rmtree"}[hook])
+calls = []
+def paused(*args, **kwargs):
+    if ".capsweep.lock" in str(args[-1]):  # the lock's own record
+        return real(*args, **kwargs)
+    if len(calls) == at:
+        ready.touch()
+        time.sleep(600)
+    calls.append(args)
+    return real(*args, **kwargs)
+setattr(os if hook == "replace" else shutil, hook, paused)
+from capsweep.results_schema.upgrade import upgrade_store
+upgrade_store(sys.argv[1])
+"""
+
+
+def kill_upgrade_at(path: Path, hook: str, at: int) -> None:
+    """Run an upgrade of ``path`` in a child process and kill -9 it at call ``at`` of os.replace or shutil.rmtree
+    (on the store's files, the lock's left alone)."""
+    ready = path.parent / "paused"
+    child = subprocess.Popen([sys.executable, "-c", CHILD, str(path), hook, str(at), str(ready)])
+    deadline = time.monotonic() + 120
+    while not ready.exists() and child.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.05)
+    assert ready.exists(), "the upgrade never reached the point to kill it at"
+    os.kill(child.pid, signal.SIGKILL)
+    child.wait()
+
+
+@pytest.mark.parametrize(("hook", "at", "after"), [
+    ("replace", 0, "2.1"),  # journal written, not committed
+    ("replace", 1, layout.SCHEMA_VERSION),  # committed, nothing moved yet
+    ("replace", 3, layout.SCHEMA_VERSION),  # half the files moved
+    ("rmtree", 0, layout.SCHEMA_VERSION),  # every file moved, the journal not yet removed
+])
+def test_an_upgrade_killed_at_any_moment_leaves_the_old_or_the_new_layout(tmp_path: Path, hook: str, at: int,
+                                                                         after: str) -> None:
+    path = copy_fixture("2.1", tmp_path)
+    data = files(path, metadata=False)
+    kill_upgrade_at(path, hook, at)
+
+    assert stored_attrs(path)[attrs.SCHEMA] == after  # an open finishes a committed upgrade
+    root = json.loads((path / "zarr.json").read_text())
+    for name, meta in root["consolidated_metadata"]["metadata"].items():
+        assert json.loads((path / name / "zarr.json").read_text()) == meta, f"{name}: old and new layout mixed"
+    assert open_dataset(path)["weight_in"].attrs["units"] == "1"
+    assert files(path, metadata=False) == data
+
+    again = invoke("upgrade", path)
+    assert again.exit_code == 0, again.output
+    assert not (path / JOURNAL).exists()
+    reference = copy_fixture("2.1", tmp_path / "uninterrupted")
+    invoke("upgrade", reference)
+    assert files(path).keys() == files(reference).keys()
+    for name in files(path):
+        if name.endswith("zarr.json") and name != "zarr.json":
+            assert (path / name).read_bytes() == (reference / name).read_bytes(), name
