@@ -55,7 +55,9 @@ def synthetic_result(rng: np.random.Generator, count: int) -> dict[str, Any]:
     for var in layout.VARIABLES:
         if var.name == "seed":
             continue
-        if var.flags:
+        if var.flags and var.inner is not None:
+            result[var.name] = [var.flags[int(i)] for i in rng.integers(len(var.flags), size=count)]
+        elif var.flags:
             result[var.name] = var.flags[int(rng.integers(len(var.flags)))]
         elif var.inner is not None:
             size = count if var.inner == "assembly" else INNER[var.inner]

@@ -22,6 +22,7 @@ import json
 import math
 import shutil
 import struct
+import tempfile
 import threading
 import time
 import warnings
@@ -52,7 +53,7 @@ STRING_VARIABLES: dict[str, str] = {
     layout.ERROR: "error text of a failed point ('' when none)",
     layout.POINT_ID: "hash of the point's fully resolved config",
     layout.WRITER_VERSION: "version of the capsweep that wrote the point ('' if unwritten or written before store "
-                           "schema 2.2)",
+                           "schema 3.1)",
 }
 # Result variables a runner result must hold; seed is fixed at creation, the prediction optional.
 OPTIONAL_RESULTS: frozenset[str] = frozenset({"seed", "predicted_outcome"})
@@ -518,7 +519,7 @@ def _axis_array(axis: Axis) -> np.ndarray:
 
 def _create_point_variable(group: zarr.Group, name: str, sweep_dims: tuple[str, ...], sweep_shape: tuple[int, ...],
                            inner_dims: tuple[str, ...], inner_shape: tuple[int, ...], dtype: Any, fill: Any,
-                           described: dict[str, Any]) -> None:
+                           described: dict[str, Any], chunks: tuple[int, ...] | None = None) -> None:
     """Create one per-point array whose chunks (one file each) hold ``point_block`` points, whole along inner dims.
 
     Variables with an inner dim are compressed (zstd); per-point scalars are not (a few bytes a
@@ -527,9 +528,26 @@ def _create_point_variable(group: zarr.Group, name: str, sweep_dims: tuple[str, 
     itemsize = STRING_BYTES if dtype is str else np.dtype(dtype).itemsize
     inner = tuple(max(n, 1) for n in inner_shape)
     block = point_block(sweep_shape, max(1, min(MAX_POINTS_PER_FILE, FILE_BYTES // (itemsize * math.prod(inner)))))
-    group.create_array(name, shape=(*sweep_shape, *inner_shape), chunks=(*block, *inner), dtype=dtype,
+    group.create_array(name, shape=(*sweep_shape, *inner_shape), chunks=chunks or (*block, *inner), dtype=dtype,
                        dimension_names=(*sweep_dims, *inner_dims), fill_value=fill, attributes=described,
                        compressors="auto" if inner else None)
+
+
+def unwritten_array(name: str, shape: tuple[int, ...], chunks: tuple[int, ...],
+                    dims: tuple[str, ...]) -> dict[str, Any]:
+    """The Zarr metadata (``zarr.json``) of the variable ``name`` of the layout (or a string variable) as an array of
+    ``shape``, ``chunks`` and ``dims`` with nothing written: what an upgrade adds."""
+    var = layout.BY_NAME.get(name)
+    with tempfile.TemporaryDirectory() as folder:
+        group = zarr.create_group(folder, zarr_format=3)
+        if var is None:
+            _create_point_variable(group, name, dims, shape, (), (), str, "",
+                                   {"units": "1", "long_name": STRING_VARIABLES[name]}, chunks)
+        else:
+            swept = len(shape) - (1 if var.inner else 0)
+            _create_point_variable(group, name, dims[:swept], shape[:swept], dims[swept:], shape[swept:], var.dtype,
+                                   _zarr_fill(var), variable_attrs(var), chunks)
+        return dict(json.loads((Path(folder) / name / "zarr.json").read_text()))
 
 
 def point_block(sweep_shape: tuple[int, ...], points: int) -> tuple[int, ...]:

@@ -29,6 +29,8 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+import numpy as np
+
 from ..errors import StoreError
 from ..flags import STATUSES
 from ..locks import store_lock
@@ -50,7 +52,7 @@ class Added:
     """A variable a step adds: unwritten (every entry the fill value), shaped and chunked as ``like``."""
 
     name: str
-    like: str  # a stored variable of the same dims, dtype and fill value
+    like: str  # a stored variable of the same dims
 
 
 @dataclass(frozen=True)
@@ -61,6 +63,8 @@ class Step:
     changes: Callable[[dict[str, dict[str, Any]]], dict[str, dict[str, Any]]]
     """Stored variables' attrs (name -> attrs) -> the attrs this step sets, by variable."""
     added: tuple[Added, ...] = field(default=())
+    renamed: tuple[tuple[str, str], ...] = field(default=())
+    """(old name, new name): the variable's stored values move to the new name, bitwise (before ``added``)."""
 
 
 def _status_flags(stored: dict[str, dict[str, Any]]) -> dict[str, dict[str, Any]]:
@@ -69,7 +73,7 @@ def _status_flags(stored: dict[str, dict[str, Any]]) -> dict[str, dict[str, Any]
 
 
 def _parseable_units(stored: dict[str, dict[str, Any]]) -> dict[str, dict[str, Any]]:
-    """2.1 -> 2.2: a unit relative to g_leak becomes "1", its scale named in ``relative_to`` and the long name."""
+    """3.0 -> 3.1: a unit relative to g_leak becomes "1", its scale named in ``relative_to`` and the long name."""
     changed = {}
     for name, described in stored.items():
         unit = str(described.get("units", ""))
@@ -80,15 +84,34 @@ def _parseable_units(stored: dict[str, dict[str, Any]]) -> dict[str, dict[str, A
     return changed
 
 
+def _recall_test(stored: dict[str, dict[str, Any]]) -> dict[str, dict[str, Any]]:
+    """2.1 -> 3.0: the layout's descriptions of the variables the recall test redefined; retention_recalled keeps the
+    counts of the overlap rule, which its comment says."""
+    names = ("overlap_recalled_count", "retention_recalled")
+    changed = {name: {key: _variable_described(name)[key] for key in ("long_name", "units")} for name in names}
+    changed["retention_recalled"]["comment"] = ("points written before store schema 3.0 (capsweep_version '') "
+                                                "count by the overlap rule (see overlap_recalled_count)")
+    return changed
+
+
 def _variable_described(name: str) -> dict[str, Any]:
     from .store import variable_attrs  # the store module imports Zarr: only an upgrade needs it
 
     return variable_attrs(layout.BY_NAME[name])
 
 
+_PER_ASSEMBLY_3_0 = ("recall_state", "evoked_completion_hz", "recall_p_value", "recall_p_cells", "recall_p_times",
+                     "recall_z", "precue_rate_hz", "stuck_onset_s", "test_position")
 STEPS: dict[str, Step] = {
     "2.0": Step("2.1", _status_flags, (Added("setup_time_s", "wall_time_s"),)),
-    "2.1": Step("2.2", _parseable_units, (Added(layout.WRITER_VERSION, layout.ERROR),)),
+    # The recall test of 3.0 did not run for a 2.x point: its variables start missing, and the count of 2.x
+    # (the overlap rule) moves to the name 3.0 gives that rule.
+    "2.1": Step("3.0", _recall_test,
+                (*(Added(name, "runaway_onset_s") for name in ("recalled_count", "already_active_count",
+                                                                "stuck_count")),
+                 *(Added(name, "recall_score") for name in _PER_ASSEMBLY_3_0)),
+                renamed=(("recalled_count", "overlap_recalled_count"),)),
+    "3.0": Step("3.1", _parseable_units, (Added(layout.WRITER_VERSION, layout.ERROR),)),
 }
 """The step from each earlier readable schema version to the next one."""
 READABLE: tuple[str, ...] = (*STEPS, layout.SCHEMA_VERSION)
@@ -121,15 +144,14 @@ def as_current(ds: xr.Dataset) -> xr.Dataset:
     import xarray as xr
 
     for step in chain(str(ds.attrs[attrs.SCHEMA])):
+        ds = ds.rename_vars(dict(step.renamed))
         for name, changed in step.changes({str(n): dict(ds[n].attrs) for n in ds.variables}).items():
             ds[name].attrs.update(changed)
-        for added in step.added:
-            if added.name not in ds.variables:
-                like = ds[added.like]
-                described = {k: v for k, v in added_attrs(added).items() if k != "_FillValue"}
-                fill = "" if like.dtype.kind in "OTU" else float("nan")
-                ds[added.name] = xr.full_like(like, fill, dtype=object if fill == "" else like.dtype).assign_attrs(
-                    described)
+        for added in (a for a in step.added if a.name not in ds.variables):
+            described = {k: v for k, v in added_attrs(added).items() if k != "_FillValue"}
+            text = added.name not in layout.BY_NAME
+            ds[added.name] = xr.full_like(ds[added.like], "" if text else np.nan,
+                                          dtype=object if text else float).assign_attrs(described)
     return ds
 
 
@@ -150,7 +172,7 @@ def upgrade_store(path: str | Path) -> tuple[str, str]:
         before = str(metas[ROOT_META]["attributes"][attrs.SCHEMA])
         steps = chain(before)
         if steps:
-            _write_journal(path, _upgraded(metas, steps, before))
+            _write_journal(path, _upgraded(metas, steps, before), [pair for step in steps for pair in step.renamed])
             _apply(path)
     return before, layout.SCHEMA_VERSION
 
@@ -174,13 +196,16 @@ def _upgraded(metas: dict[str, dict[str, Any]], steps: list[Step], before: str) 
     arrays = {name.split("/")[0]: copy.deepcopy(meta) for name, meta in metas.items() if name != ROOT_META}
     touched: set[str] = set()
     for step in steps:
+        for old, new in step.renamed:
+            arrays[new] = arrays.pop(old)
+            arrays[new]["attributes"] = {**arrays[new]["attributes"], **_variable_described(new)}
+            touched.add(new)
         for name, changed in step.changes({n: a["attributes"] for n, a in arrays.items()}).items():
             arrays[name]["attributes"].update(changed)
             touched.add(name)
-        for added in step.added:
-            if added.name not in arrays:
-                arrays[added.name] = {**copy.deepcopy(arrays[added.like]), "attributes": added_attrs(added)}
-                touched.add(added.name)
+        for added in (a for a in step.added if a.name not in arrays):
+            arrays[added.name] = _unwritten(added, arrays[added.like])
+            touched.add(added.name)
     now = datetime.now(UTC).isoformat(timespec="seconds")
     history = f"{root['attributes'].get(attrs.HISTORY, '')}\n{now} capsweep {attrs.package_version('capsweep')}: " \
               f"upgraded from store schema {before} to {layout.SCHEMA_VERSION}"
@@ -189,8 +214,17 @@ def _upgraded(metas: dict[str, dict[str, Any]], steps: list[Step], before: str) 
     return {**{f"{name}/{ROOT_META}": arrays[name] for name in sorted(touched)}, ROOT_META: root}
 
 
-def _write_journal(path: Path, changed: dict[str, dict[str, Any]]) -> None:
-    """Write the changed files into the journal, each synced, then COMMIT (the list, in order) by one rename."""
+def _unwritten(added: Added, like: dict[str, Any]) -> dict[str, Any]:
+    """The metadata of an added variable: the layout's dtype, fill value and attrs, ``like``'s shape and chunks."""
+    from .store import unwritten_array
+
+    chunks = like["chunk_grid"]["configuration"]["chunk_shape"]
+    return unwritten_array(added.name, tuple(like["shape"]), tuple(chunks), tuple(like["dimension_names"]))
+
+
+def _write_journal(path: Path, changed: dict[str, dict[str, Any]], renamed: list[tuple[str, str]]) -> None:
+    """Write the changed files into the journal, each synced, then COMMIT (the renames and the files, in order) by
+    one rename."""
     journal = path / JOURNAL
     journal.mkdir()
     for name, meta in changed.items():
@@ -200,7 +234,7 @@ def _write_journal(path: Path, changed: dict[str, dict[str, Any]]) -> None:
         fsync_file(target)
         fsync_dir(target.parent)
     partial = journal / f"{COMMIT}.partial"
-    partial.write_text(json.dumps(list(changed)))
+    partial.write_text(json.dumps({"renamed": renamed, "files": list(changed)}))
     fsync_file(partial)
     os.replace(partial, journal / COMMIT)
     fsync_dir(journal)
@@ -228,13 +262,18 @@ def discard_journal(path: Path) -> None:
 
 
 def _apply(path: Path) -> None:
-    """Move each journalled file over its old one (those moved already are skipped), then remove the journal."""
+    """Rename the renamed variables' folders, move each journalled file over its old one (what was done already is
+    skipped), then remove the journal."""
     journal = path / JOURNAL
     try:
-        names = json.loads((journal / COMMIT).read_text())
+        commit = json.loads((journal / COMMIT).read_text())
     except FileNotFoundError:  # another process finished it
         return
-    for name in names:
+    for old, new in commit["renamed"]:
+        if (path / old).exists() and not (path / new).exists():
+            os.rename(path / old, path / new)
+            fsync_dir(path)
+    for name in commit["files"]:
         staged, target = journal / name, path / name
         target.parent.mkdir(exist_ok=True)
         try:
