@@ -4,15 +4,16 @@ Each schema version that this capsweep reads and that is not the current one has
 next version, in :data:`STEPS`; a store of version ``v`` passes through ``STEPS[v]``, then the step from its
 result, and so on to :data:`layout.SCHEMA_VERSION`. A new schema version adds its step here and nowhere else.
 A step changes metadata only (variable attrs, variables added as unwritten arrays: every entry reads as the
-fill value), never a stored value, so an upgrade leaves every stored value bitwise as it was.
+fill value, a variable renamed by moving its folder), never a stored value, so an upgrade leaves every stored
+value bitwise as it was.
 
 The same steps serve two readers: :func:`as_current` applies them to an opened xarray Dataset (read
 commands on a store they may not change), :func:`upgrade_store` to the store's Zarr metadata on disk.
 
 An upgrade on disk is crash-safe by a journal. It writes every changed metadata file (each array's
 ``zarr.json``, the root's last, with the consolidated metadata) into ``<store>/.capsweep.upgrade/``, then
-the list of those files as ``COMMIT`` (one atomic rename: the commit point), then moves each file over its
-old one and removes the journal. Killed before the commit, the store is the old one (the journal is
+the renames and the list of those files as ``COMMIT`` (one atomic rename: the commit point), then renames the
+folders, moves each file over its old one and removes the journal. Killed before the commit, the store is the old one (the journal is
 removed by the next writer); killed after it, the next open of the store moves the remaining files (each
 move is atomic and repeating them is harmless), so every reader sees the old layout or the new one.
 """
