@@ -13,9 +13,10 @@ commands on a store they may not change), :func:`upgrade_store` to the store's Z
 An upgrade on disk is crash-safe by a journal. It writes every changed metadata file (each array's
 ``zarr.json``, the root's last, with the consolidated metadata) into ``<store>/.capsweep.upgrade/``, then
 the renames and the list of those files as ``COMMIT`` (one atomic rename: the commit point), then renames the
-folders, moves each file over its old one and removes the journal. Killed before the commit, the store is the old one (the journal is
-removed by the next writer); killed after it, the next open of the store moves the remaining files (each
-move is atomic and repeating them is harmless), so every reader sees the old layout or the new one.
+folders, moves each file over its old one and removes the journal. Killed before the commit, the store is the
+old one (the journal is removed by the next writer); killed after it, the next open of the store does the
+remaining renames and moves (each is atomic and repeating them is harmless), so every reader sees the old layout
+or the new one.
 """
 
 from __future__ import annotations
