@@ -29,14 +29,20 @@ FILE_SYSTEM_FAULTS: dict[int, tuple[str, str]] = {
     errno.EPERM: ("operation not permitted", "fix the permissions"),
     errno.ENOENT: ("no such file or folder", "create the folder or fix the path"),
 }
-"""File-system faults told as one line: errno -> (what happened, what to do)."""
+"""File-system faults told as one line: errno -> (what happened, what to do). Every message of a file-system fault
+says them through :func:`fault_parts`."""
 
 
-def file_system_fault(exc: OSError) -> str | None:
-    """One line for a file-system fault ``exc`` (None for an OSError that is not one of FILE_SYSTEM_FAULTS)."""
-    if exc.errno not in FILE_SYSTEM_FAULTS:
-        return None
-    what, fix = FILE_SYSTEM_FAULTS[exc.errno]
+def fault_parts(exc: OSError) -> tuple[str, str]:
+    """What happened and what to do, for the file-system fault ``exc``: from FILE_SYSTEM_FAULTS, else the system's
+    own words for it."""
+    return FILE_SYSTEM_FAULTS.get(exc.errno or 0, (exc.strerror or str(exc), "check the path"))
+
+
+def fault_line(exc: OSError) -> str:
+    """One line for a file-system fault ``exc`` no command named itself: what happened, the file it names, that the
+    stored results are kept, and what to do."""
+    what, fix = fault_parts(exc)
     where = f" ({exc.filename})" if exc.filename else ""
     return (f"{what}{where}; what was stored before is kept (points not yet written read as pending): {fix} and run "
             "the same command again")

@@ -312,8 +312,10 @@ KEYS: tuple[Key, ...] = (
     _k("execution.abort_on_runaway", True, "1", "Stop a point's simulation soon after runaway onset", sweepable=False),
     _k("execution.checkpoint_interval_s", 0.0, "s",
        "Simulated time between checkpoints of a point's full state, from which a killed point resumes with the same "
-       "result (0 = off; runtime engines only: standalone points fall back to cython)", low=0.0, high=1e6,
-       sweepable=False),
+       "result (0 = off)", low=0.0, high=1e6, sweepable=False),
+    _k("execution.threads", 1, "1",
+       "Threads per point: OpenMP threads of the standalone binary (results depend on the count, which each point "
+       "stores; the runtime engines run on one thread)", low=1, high=256, sweepable=False),
     _k("execution.cluster.kind", LOCAL, "1",
        "Where the Dask workers run: local processes (execution.workers), an existing scheduler (execution.scheduler), "
        "or batch jobs through dask-jobqueue (pip install 'capsweep[cluster]')",
@@ -432,7 +434,12 @@ def inhibitory_count(n_exc: int, inh_per_exc: float) -> int:
     return max(1, int(round(n_exc * inh_per_exc)))
 
 
+DERIVED_FROM: dict[str, tuple[str, ...]] = {"assemblies.size": ("assemblies.coding_level", "network.n_exc")}
+"""Keys that :func:`resolve_derived` may fill in, with the keys their value is computed from."""
+
+
 def resolve_derived(flat: dict[str, Any]) -> dict[str, Any]:
-    """A flat config with the keys that other keys imply filled in (assemblies.size from a coding level)."""
+    """A flat config with the keys that other keys imply filled in (:data:`DERIVED_FROM`: assemblies.size from a
+    coding level)."""
     level = flat["assemblies.coding_level"]
     return {**flat, "assemblies.size": int(round(level * flat["network.n_exc"]))} if level > 0 else flat

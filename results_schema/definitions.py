@@ -70,6 +70,17 @@ weight_correlation[s]: Pearson correlation over all E->E synapses between the we
 hold start. assembly_contrast[s]: mean within-assembly E->E weight / mean of all other E->E weights. \
 weight_in[s], weight_out[s], weight_within[s]: mean E->E weight into members from cells in no assembly, from \
 members to such cells, and between members of a shared assembly.
+weight_between[s]: mean E->E weight of the synapses whose pre and post cells are each in some assembly but share \
+none (interference between memories).
+upper_share_within[s], upper_share_between[s], upper_share_other[s] (w_ref_mode bistable only, else NaN): the \
+share of E->E synapses of each class whose reference weight w_ref at hold snapshot s is in the upper state, \
+w_ref > w_P/2 (w_P = plasticity.heterosynaptic.bistable_upper_weight; w_P/2 is the unstable point between the \
+stable states 0 and w_P). Classes: within (pre and post share an assembly), between (as for weight_between), \
+other (every other E->E synapse: at least one of pre and post in no assembly, i.e. the inflow, outflow and \
+background synapses). The three partition the E->E synapses.
+threads: the threads a point's simulation ran on (execution.threads for the standalone engine's OpenMP loop, 1 \
+for the others). Results of one point are bitwise reproducible for a given count and differ between counts (each \
+thread draws from its own random stream, and the order of floating-point sums changes).
 runaway_onset_s: first time the excitatory population rate, smoothed over detection.smoothing_s, stays above \
 max(detection.runaway_factor x baseline E rate, detection.runaway_floor_hz) for detection.runaway_hold_s; cue \
 periods are excluded. NaN if never.
@@ -88,4 +99,8 @@ reaches that fraction after a smaller one did not. Per count: the success fracti
 Interval on k: the range (min, max) of the per-replicate capacities (replicate r: the largest k with every count \
 <= k successful in r), a distribution-free summary; a replicate whose run of successes ends at a crashed point \
 is left out.
+control (a dim, from the sweep file's [controls] table): none = the condition itself; sham = cue input off \
+(protocol.cue_rate_hz 0); frozen = no weight change after imprinting; unstructured = prewiring gain 1 and no \
+learning input. A condition (other axes than count and control) is flagged when its sham or unstructured control, \
+pooled over counts and replicates, has a 95 % Wilson interval whose lower end lies above detection.recall_alpha.
 """

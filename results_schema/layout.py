@@ -88,6 +88,8 @@ VARIABLES: tuple[Variable, ...] = (
              "generating and compiling its code (the compile, paid by the first point of a build, lands here)"),
     Variable("simulated_time_s", "s", "biological time simulated (shorter than planned after an early abort)"),
     Variable("n_synapses", "1", "number of synapses in the network", dtype="int64"),
+    Variable("threads", "1", "threads the point's simulation ran on (execution.threads on the standalone engine, "
+             "else 1); results depend on it", dtype="int32"),
     Variable("recall_quality", "1", "Pearson r over uncued E cells between recall-window spike count and "
              "membership of the cued assembly", inner="assembly"),
     Variable("persistence", "1", "recall_quality in the window after the cue ends", inner="assembly"),
@@ -138,6 +140,14 @@ VARIABLES: tuple[Variable, ...] = (
              inner="snapshot", scale=G_LEAK),
     Variable("weight_within", "1", f"mean E->E weight between members of a shared assembly{IN_G_LEAK}",
              inner="snapshot", scale=G_LEAK),
+    Variable("weight_between", "1", "mean E->E weight between members of different assemblies (pre and post "
+             f"each in some assembly, sharing none){IN_G_LEAK}", inner="snapshot", scale=G_LEAK),
+    Variable("upper_share_within", "1", "share of within-assembly E->E synapses whose reference weight is in the "
+             "upper state (w_ref > w_P/2; bistable w_ref_mode only)", inner="snapshot"),
+    Variable("upper_share_between", "1", "share of between-assembly E->E synapses whose reference weight is in the "
+             "upper state (w_ref > w_P/2; bistable w_ref_mode only)", inner="snapshot"),
+    Variable("upper_share_other", "1", "share of the other E->E synapses (at least one cell in no assembly) whose "
+             "reference weight is in the upper state (w_ref > w_P/2; bistable w_ref_mode only)", inner="snapshot"),
     Variable("snapshot_time_s", "s", "simulated time of each weight snapshot", inner="snapshot"),
     Variable("rate_exc_hz", "Hz", "binned excitatory population rate", inner="time_bin"),
     Variable("rate_inh_hz", "Hz", "binned inhibitory population rate", inner="time_bin"),

@@ -26,7 +26,7 @@ import tempfile
 import threading
 import time
 import warnings
-from collections.abc import Mapping
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
@@ -51,7 +51,7 @@ from .layout import GridSpec
 ALWAYS_SET: frozenset[str] = frozenset({layout.STATUS.name, "seed"})
 STRING_VARIABLES: dict[str, str] = {
     layout.ERROR: "error text of a failed point ('' when none)",
-    layout.POINT_ID: "hash of the point's fully resolved config",
+    layout.POINT_ID: "hash of the point's resolved config on the store's defaults table",
     layout.WRITER_VERSION: "version of the capsweep that wrote the point ('' if unwritten or written before store "
                            "schema 3.1)",
 }
@@ -124,7 +124,7 @@ class ResultStore:
     def __init__(self, path: Path, group: zarr.Group, batching: Batching = IMMEDIATE) -> None:
         self.path = path
         self._group = group
-        self._arrays: dict[str, zarr.Array] = {name: _array(group, name) for name in _stored_variables()}
+        self._arrays: dict[str, zarr.Array] = {name: _array(group, name) for name in stored_variables()}
         self._seeds = np.asarray(self._arrays["seed"][...])
         self._fills = {name: self._fill_block(layout.BY_NAME[name]) for name in REQUIRED_RESULTS}
         self._version = attrs.package_version("capsweep")
@@ -150,7 +150,7 @@ class ResultStore:
         group = _open_group(path, consolidated=False)
         _check_identity(path, dict(group.attrs), fingerprint, writing=True)
         check_writable(path)
-        missing = [name for name in _stored_variables() if name not in group]  # no listing: the lock file is there
+        missing = [name for name in stored_variables() if name not in group]  # no listing: the lock file is there
         if missing:
             raise StoreError(f"{path} is damaged: variables {', '.join(missing)} are missing")
         return cls(path, group, batching)
@@ -190,9 +190,18 @@ class ResultStore:
         upgrade.discard_journal(self.path)
         return remove_strays(self.path)
 
-    def mark_unneeded(self, index: tuple[int, ...]) -> None:
-        """Set a pending point's status to unneeded: an adaptive search decided without it (its writer recorded)."""
-        self._queue(self._check_index(index), {layout.WRITER_VERSION: self._version}, UNNEEDED)
+    def mark_unneeded(self, indices: Iterable[tuple[int, ...]]) -> None:
+        """Set pending points' status to unneeded: an adaptive search decided without them (their writer recorded,
+        nothing else written).
+
+        Written with the next batch of points, however many there are.
+        """
+        checked = [self._check_index(index) for index in indices]
+        with self._lock:
+            self._raise_failure()
+            if checked and not self._buffer:
+                self._oldest = time.monotonic()
+            self._buffer.update((index, ({layout.WRITER_VERSION: self._version}, UNNEEDED)) for index in checked)
 
     def write_point(self, index: tuple[int, ...], result: Mapping[str, Any]) -> None:
         """Write a finished point: every result variable and an empty error, then status done.
@@ -278,7 +287,7 @@ class ResultStore:
         if "seed" in result and int(result["seed"]) != int(self._seeds[index]):
             raise ValueError(f"result seed {result['seed']} differs from the stored seed {self._seeds[index]}")
         return {
-            name: _encode_value(layout.BY_NAME[name], value, self._inner_size(layout.BY_NAME[name]))
+            name: encode_value(layout.BY_NAME[name], value, self._inner_size(layout.BY_NAME[name]))
             for name, value in result.items()
             if name != "seed"
         }
@@ -325,6 +334,16 @@ def stored_attrs(path: str | Path, growing: str | None = None) -> dict[str, Any]
     stored = dict(_open_group(path, mode="r", consolidated=False).attrs)
     _check_identity(path, stored, None, growing)
     return stored
+
+
+def read_variables(path: str | Path, names: tuple[str, ...]) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+    """The root attrs of the store at ``path`` and its variables ``names`` as stored (codes for flags), read-only
+    (StoreError as ``check_store``)."""
+    path = Path(path)
+    group = _open_group(path, mode="r", consolidated=False)
+    stored = dict(group.attrs)
+    _check_identity(path, stored, None)
+    return stored, {name: np.asarray(_array(group, name)[...]) for name in names}
 
 
 def growing_to(path: str | Path) -> str | None:
@@ -389,11 +408,12 @@ def _kind(values: np.ndarray) -> str:
     return "s" if values.dtype.kind in "OTU" else values.dtype.kind
 
 
-def _stored_variables() -> tuple[str, ...]:
+def stored_variables() -> tuple[str, ...]:
+    """Every per-point array of the layout: the result variables, status, then the string variables."""
     return (*(v.name for v in layout.VARIABLES), layout.STATUS.name, *STRING_VARIABLES)
 
 
-def _encode_value(var: layout.Variable, value: Any, inner_size: int | None) -> Any:
+def encode_value(var: layout.Variable, value: Any, inner_size: int | None) -> Any:
     """Turn one result value into what the variable's array holds (codes for flags, padded rows)."""
     if var.flags and inner_size is None:
         return _flag_code(var, value)
@@ -428,7 +448,7 @@ def _encode_scalar(var: layout.Variable, value: Any) -> Any:
 def _check_grid(grid: GridSpec, point_ids: np.ndarray, seeds: np.ndarray) -> tuple[int, ...]:
     """Return the sweep shape, or raise ValueError for a grid the layout cannot hold."""
     names = [axis.name for axis in grid.axes]
-    taken = {REPLICATE, *layout.INNER_DIMS, *_stored_variables()}
+    taken = {REPLICATE, *layout.INNER_DIMS, *stored_variables()}
     clashes = sorted(set(names) & taken)
     if clashes or len(set(names)) != len(names):
         raise ValueError(f"axis names must be unique and not among {sorted(taken)}: {names}")
@@ -519,7 +539,7 @@ def _axis_array(axis: Axis) -> np.ndarray:
 
 def _create_point_variable(group: zarr.Group, name: str, sweep_dims: tuple[str, ...], sweep_shape: tuple[int, ...],
                            inner_dims: tuple[str, ...], inner_shape: tuple[int, ...], dtype: Any, fill: Any,
-                           described: dict[str, Any], chunks: tuple[int, ...] | None = None) -> None:
+                           described: dict[str, Any]) -> None:
     """Create one per-point array whose chunks (one file each) hold ``point_block`` points, whole along inner dims.
 
     Variables with an inner dim are compressed (zstd); per-point scalars are not (a few bytes a
@@ -528,25 +548,24 @@ def _create_point_variable(group: zarr.Group, name: str, sweep_dims: tuple[str, 
     itemsize = STRING_BYTES if dtype is str else np.dtype(dtype).itemsize
     inner = tuple(max(n, 1) for n in inner_shape)
     block = point_block(sweep_shape, max(1, min(MAX_POINTS_PER_FILE, FILE_BYTES // (itemsize * math.prod(inner)))))
-    group.create_array(name, shape=(*sweep_shape, *inner_shape), chunks=chunks or (*block, *inner), dtype=dtype,
+    group.create_array(name, shape=(*sweep_shape, *inner_shape), chunks=(*block, *inner), dtype=dtype,
                        dimension_names=(*sweep_dims, *inner_dims), fill_value=fill, attributes=described,
                        compressors="auto" if inner else None)
 
 
-def unwritten_array(name: str, shape: tuple[int, ...], chunks: tuple[int, ...],
-                    dims: tuple[str, ...]) -> dict[str, Any]:
+def unwritten_array(name: str, shape: tuple[int, ...], dims: tuple[str, ...]) -> dict[str, Any]:
     """The Zarr metadata (``zarr.json``) of the variable ``name`` of the layout (or a string variable) as an array of
-    ``shape``, ``chunks`` and ``dims`` with nothing written: what an upgrade adds."""
+    ``shape`` over ``dims``, chunked as a new store would be, with nothing written: what an upgrade adds."""
     var = layout.BY_NAME.get(name)
     with tempfile.TemporaryDirectory() as folder:
         group = zarr.create_group(folder, zarr_format=3)
         if var is None:
             _create_point_variable(group, name, dims, shape, (), (), str, "",
-                                   {"units": "1", "long_name": STRING_VARIABLES[name]}, chunks)
+                                   {"units": "1", "long_name": STRING_VARIABLES[name]})
         else:
             swept = len(shape) - (1 if var.inner else 0)
             _create_point_variable(group, name, dims[:swept], shape[:swept], dims[swept:], shape[swept:], var.dtype,
-                                   _zarr_fill(var), variable_attrs(var), chunks)
+                                   _zarr_fill(var), variable_attrs(var))
         return dict(json.loads((Path(folder) / name / "zarr.json").read_text()))
 
 

@@ -25,7 +25,7 @@ import copy
 import json
 import os
 import shutil
-from collections.abc import Callable
+from collections.abc import Callable, Collection
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
@@ -33,7 +33,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from ..errors import StoreError
+from ..errors import StoreError, fault_parts
 from ..flags import STATUSES
 from ..locks import store_lock
 from ..registry import cf_unit, in_units_of, relative_scale
@@ -50,23 +50,31 @@ ROOT_META = "zarr.json"
 
 
 @dataclass(frozen=True)
-class Added:
-    """A variable a step adds: unwritten (every entry the fill value), shaped and chunked as ``like``."""
-
-    name: str
-    like: str  # a stored variable of the same dims
-
-
-@dataclass(frozen=True)
 class Step:
     """What one schema version changes in the layout of the version before it."""
 
     to: str
     changes: Callable[[dict[str, dict[str, Any]]], dict[str, dict[str, Any]]]
     """Stored variables' attrs (name -> attrs) -> the attrs this step sets, by variable."""
-    added: tuple[Added, ...] = field(default=())
+    added: tuple[str, ...] = field(default=())
+    """Variables the step adds, unwritten (every entry the fill value), with the current layout's dtype and attrs."""
     renamed: tuple[tuple[str, str], ...] = field(default=())
     """(old name, new name): the variable's stored values move to the new name, bitwise (before ``added``)."""
+    adds_missing: bool = False
+    """Also add, unwritten, every variable of the current layout the store still lacks (the step to the current
+    version: a variable new in that version needs no entry here)."""
+
+    def adds(self, stored: Collection[str]) -> list[str]:
+        """The variables this step adds to a store holding the variables ``stored`` (after its renames)."""
+        wanted = (*self.added, *(current_variables() if self.adds_missing else ()))
+        return [name for name in dict.fromkeys(wanted) if name not in stored]
+
+
+def current_variables() -> tuple[str, ...]:
+    """Every per-point variable of the current layout, status and the string variables included."""
+    from .store import stored_variables  # the store module imports Zarr: only an upgrade needs it
+
+    return stored_variables()
 
 
 def _status_flags(stored: dict[str, dict[str, Any]]) -> dict[str, dict[str, Any]]:
@@ -104,29 +112,35 @@ def _variable_described(name: str) -> dict[str, Any]:
 
 _PER_ASSEMBLY_3_0 = ("recall_state", "evoked_completion_hz", "recall_p_value", "recall_p_cells", "recall_p_times",
                      "recall_z", "precue_rate_hz", "stuck_onset_s", "test_position")
+_ENGINE_3_0 = ("threads", "weight_between", "upper_share_within", "upper_share_between", "upper_share_other")
 STEPS: dict[str, Step] = {
-    "2.0": Step("2.1", _status_flags, (Added("setup_time_s", "wall_time_s"),)),
+    "2.0": Step("2.1", _status_flags, ("setup_time_s",)),
     # The recall test of 3.0 did not run for a 2.x point: its variables start missing, and the count of 2.x
-    # (the overlap rule) moves to the name 3.0 gives that rule.
+    # (the overlap rule) moves to the name 3.0 gives that rule. So do the thread count and the weight variables
+    # that 3.0 added (no release wrote 3.0 without them).
     "2.1": Step("3.0", _recall_test,
-                (*(Added(name, "runaway_onset_s") for name in ("recalled_count", "already_active_count",
-                                                                "stuck_count")),
-                 *(Added(name, "recall_score") for name in _PER_ASSEMBLY_3_0)),
+                ("recalled_count", "already_active_count", "stuck_count", *_PER_ASSEMBLY_3_0, *_ENGINE_3_0),
                 renamed=(("recalled_count", "overlap_recalled_count"),)),
-    "3.0": Step("3.1", _parseable_units, (Added(layout.WRITER_VERSION, layout.ERROR),)),
+    "3.0": Step("3.1", _parseable_units, (layout.WRITER_VERSION,), adds_missing=True),
 }
 """The step from each earlier readable schema version to the next one."""
 READABLE: tuple[str, ...] = (*STEPS, layout.SCHEMA_VERSION)
 """Every schema version this capsweep reads (the earlier ones through :data:`STEPS`)."""
 
 
-def added_attrs(added: Added) -> dict[str, Any]:
+def added_attrs(name: str) -> dict[str, Any]:
     """The attrs of a variable a step adds: the current layout's (a string variable: its units and long name)."""
-    if added.name in layout.BY_NAME:
-        return _variable_described(added.name)
+    if name in layout.BY_NAME:
+        return _variable_described(name)
     from .store import STRING_VARIABLES
 
-    return {"units": "1", "long_name": STRING_VARIABLES[added.name]}
+    return {"units": "1", "long_name": STRING_VARIABLES[name]}
+
+
+def _inner(name: str) -> tuple[str, ...]:
+    """The inner dim of the current layout's variable ``name`` (none for a string variable), as a tuple."""
+    var = layout.BY_NAME.get(name)
+    return () if var is None or var.inner is None else (var.inner,)
 
 
 def chain(version: str) -> list[Step]:
@@ -149,11 +163,12 @@ def as_current(ds: xr.Dataset) -> xr.Dataset:
         ds = ds.rename_vars(dict(step.renamed))
         for name, changed in step.changes({str(n): dict(ds[n].attrs) for n in ds.variables}).items():
             ds[name].attrs.update(changed)
-        for added in (a for a in step.added if a.name not in ds.variables):
-            described = {k: v for k, v in added_attrs(added).items() if k != "_FillValue"}
-            text = added.name not in layout.BY_NAME
-            ds[added.name] = xr.full_like(ds[added.like], "" if text else np.nan,
-                                          dtype=object if text else float).assign_attrs(described)
+        for name in step.adds([str(n) for n in ds.variables]):
+            described = {k: v for k, v in added_attrs(name).items() if k != "_FillValue"}
+            text = name not in layout.BY_NAME
+            dims = (*ds[layout.STATUS.name].dims, *_inner(name))
+            ds[name] = xr.DataArray(np.full([ds.sizes[d] for d in dims], "" if text else np.nan,
+                                            dtype=object if text else float), dims=dims, attrs=described)
     return ds
 
 
@@ -205,9 +220,9 @@ def _upgraded(metas: dict[str, dict[str, Any]], steps: list[Step], before: str) 
         for name, changed in step.changes({n: a["attributes"] for n, a in arrays.items()}).items():
             arrays[name]["attributes"].update(changed)
             touched.add(name)
-        for added in (a for a in step.added if a.name not in arrays):
-            arrays[added.name] = _unwritten(added, arrays[added.like])
-            touched.add(added.name)
+        for name in step.adds(arrays):
+            arrays[name] = _unwritten(name, arrays)
+            touched.add(name)
     now = datetime.now(UTC).isoformat(timespec="seconds")
     history = f"{root['attributes'].get(attrs.HISTORY, '')}\n{now} capsweep {attrs.package_version('capsweep')}: " \
               f"upgraded from store schema {before} to {layout.SCHEMA_VERSION}"
@@ -216,12 +231,15 @@ def _upgraded(metas: dict[str, dict[str, Any]], steps: list[Step], before: str) 
     return {**{f"{name}/{ROOT_META}": arrays[name] for name in sorted(touched)}, ROOT_META: root}
 
 
-def _unwritten(added: Added, like: dict[str, Any]) -> dict[str, Any]:
-    """The metadata of an added variable: the layout's dtype, fill value and attrs, ``like``'s shape and chunks."""
+def _unwritten(name: str, arrays: dict[str, dict[str, Any]]) -> dict[str, Any]:
+    """The metadata of the added variable ``name`` in a store of the variables ``arrays`` (name -> metadata): the
+    layout's dtype, fill value and attrs, over the status's sweep dims and the stored size of its inner dim."""
     from .store import unwritten_array
 
-    chunks = like["chunk_grid"]["configuration"]["chunk_shape"]
-    return unwritten_array(added.name, tuple(like["shape"]), tuple(chunks), tuple(like["dimension_names"]))
+    status = arrays[layout.STATUS.name]
+    inner = _inner(name)
+    shape = (*status["shape"], *(arrays[dim]["shape"][0] for dim in inner))
+    return unwritten_array(name, tuple(shape), (*status["dimension_names"], *inner))
 
 
 def _write_journal(path: Path, changed: dict[str, dict[str, Any]], renamed: list[tuple[str, str]]) -> None:
@@ -252,7 +270,7 @@ def finish_upgrade(path: Path) -> None:
             _apply(path)
         except OSError as exc:
             raise StoreError(f"{path} was being upgraded to store schema {layout.SCHEMA_VERSION} when it stopped, "
-                             f"and the upgrade cannot be finished here ({exc.strerror}); run `capsweep upgrade "
+                             f"and the upgrade cannot be finished here ({fault_parts(exc)[0]}); run `capsweep upgrade "
                              f"{path}` where the store is writable") from None
 
 

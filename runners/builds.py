@@ -13,7 +13,9 @@ across them) or on node-local scratch (each node compiles once): the compile loc
 from __future__ import annotations
 
 import contextlib
+import functools
 import hashlib
+import importlib.metadata
 import json
 import os
 import shutil
@@ -24,10 +26,10 @@ from ..locks import COMPILE, held
 from ..registry import flatten
 
 BUILD_DIR_ENV = "CAPSWEEP_BUILD_DIR"
-_KEYS_IN_CODE = (
+KEYS_IN_CODE = (
     "network.n_exc", "network.inh_per_exc", "network.indegree_exc", "network.indegree_inh",
     "network.delay_ms", "network.dt_ms", "plasticity.heterosynaptic.w_ref_mode",
-    "protocol.snapshots", "detection.trace_bin_ms", "execution.engine",
+    "protocol.snapshots", "detection.trace_bin_ms", "execution.engine", "execution.threads",
 )
 """Config keys that change the generated code (everything else is passed per run)."""
 _COEFFICIENTS_OF = {
@@ -60,21 +62,51 @@ def unsupported(cfg: dict) -> str | None:
     bin_steps = cfg["detection"]["trace_bin_ms"] / cfg["network"]["dt_ms"]
     if abs(bin_steps - round(bin_steps)) > 1e-9:
         return "detection.trace_bin_ms is not a whole number of network.dt_ms steps"
-    if cfg["execution"]["checkpoint_interval_s"] > 0:
-        return "execution.checkpoint_interval_s > 0: within-point checkpoints need a runtime engine"
     return None
 
 
-def build_key(cfg: dict) -> str:
-    """Structural hash of a point: points with equal keys share one compiled binary.
+GENERATING_SOURCES: tuple[str, ...] = ("builds.py", "model.py", "protocol.py", "rules.py", "standalone.py")
+"""Modules of ``capsweep.runners`` whose text takes part in generating a build's C++ project."""
 
-    Covers sizes, in-degrees, delay, dt, the reference-weight mode, the snapshot count, the
-    trace bin and the engine (see ``_KEYS_IN_CODE``); plasticity switches are not structural
-    (see :func:`compiled_form`).
+
+def fingerprint(sources: list[Path], brian2_version: str) -> str:
+    """Hash of the code that generates a build: the bytes of ``sources`` (with their names) and Brian2's version."""
+    digest = hashlib.sha256(brian2_version.encode())
+    for path in sources:
+        digest.update(f"\0{path.name}\0".encode())
+        digest.update(path.read_bytes())
+    return digest.hexdigest()[:16]
+
+
+@functools.cache
+def code_fingerprint(*also: str) -> str:
+    """:func:`fingerprint` of this capsweep's :data:`GENERATING_SOURCES` (and the runners modules ``also``) and the
+    installed Brian2; computed once per process."""
+    here = Path(__file__).parent
+    return fingerprint([here / name for name in GENERATING_SOURCES + also], importlib.metadata.version("brian2"))
+
+
+def build_key(cfg: dict) -> str:
+    """Hash of a point's compiled code: points with equal keys share one compiled binary.
+
+    Covers the config values that change the generated code (sizes, in-degrees, delay, dt, the
+    reference-weight mode, the snapshot count, the trace bin, the engine and its threads: see
+    ``KEYS_IN_CODE``) and :func:`code_fingerprint`, so a binary compiled by other capsweep code or
+    another Brian2 is never reused; plasticity switches are not structural (see :func:`compiled_form`).
     """
-    flat = flatten(compiled_form(cfg))
-    text = json.dumps({k: flat[k] for k in _KEYS_IN_CODE}, sort_keys=True)
+    text = json.dumps({"config": structure(cfg), "code": code_fingerprint()}, sort_keys=True)
     return hashlib.sha256(text.encode()).hexdigest()[:16]
+
+
+def structure(cfg: dict) -> dict[str, object]:
+    """The config keys that change the generated code, with this point's values (see ``KEYS_IN_CODE``)."""
+    flat = flatten(compiled_form(cfg))
+    return {k: flat[k] for k in KEYS_IN_CODE}
+
+
+def compiled(key: str) -> bool:
+    """Whether the build of ``key`` is in the cache (compiled: its binary exists)."""
+    return (build_root() / key / "main").is_file()
 
 
 def build_root(root: str | os.PathLike | None = None) -> Path:
@@ -91,6 +123,28 @@ def locked(path: Path, blocking: bool = True) -> Iterator[bool]:
     path.parent.mkdir(parents=True, exist_ok=True)
     with held(path, COMPILE, blocking) as taken:
         yield taken
+
+
+FIRST_COMPILE_S = 40.0
+"""Expected first compile of a build (s) before one was measured here: 20-80 s on 2 cores (December 2026)."""
+COMPILE_TIME_FILE = "compile_s"
+"""File in a build's directory holding how long its first compile took (s)."""
+
+
+def expected_compile_s(root: str | os.PathLike | None = None) -> float:
+    """How long a first compile takes here (s): the median of the compiles measured in the cache, else
+    :data:`FIRST_COMPILE_S`."""
+    measured = []
+    for path in build_root(root).glob(f"*/{COMPILE_TIME_FILE}"):
+        with contextlib.suppress(OSError, ValueError):
+            measured.append(float(path.read_text()))
+    return float(sorted(measured)[len(measured) // 2]) if measured else FIRST_COMPILE_S
+
+
+def record_compile_s(key: str, seconds: float, root: str | os.PathLike | None = None) -> None:
+    """Keep how long the first compile of build ``key`` took (s), for :func:`expected_compile_s`."""
+    with contextlib.suppress(OSError):
+        (build_root(root) / key / COMPILE_TIME_FILE).write_text(f"{seconds:.1f}\n")
 
 
 def _dir_bytes(path: Path) -> int:

@@ -309,16 +309,38 @@ def outcome(onset_s: float, rate_before_recall_hz: float, rate_after_recall_hz: 
     return SILENT if any(np.isfinite(r) and r < silence_hz for r in rates) else STABLE
 
 
-def pathway_means(w: np.ndarray, pre: np.ndarray, post: np.ndarray, members: np.ndarray) -> tuple[float, float, float]:
-    """Mean E->E weight (g_leak) into members from non-members, out of members to non-members, and within members.
+def synapse_classes(pre: np.ndarray, post: np.ndarray, members: np.ndarray) -> dict[str, np.ndarray]:
+    """Boolean masks over E->E synapses by the assemblies of their cells; the five partition the synapses.
 
     ``pre``/``post`` are the synapses' cell indices, ``members`` a boolean (count, n_cells)
-    membership matrix: "within" means pre and post share an assembly, "in" a post cell in some
-    assembly with a pre cell in none, "out" the reverse. NaN for an empty pathway.
+    membership matrix. "within": pre and post share an assembly; "between": pre and post are
+    each in some assembly but share none; "in": post in some assembly, pre in none; "out": the
+    reverse; "background": neither in any.
     """
     in_any = np.asarray(members.any(axis=0))
     within = (members[:, pre] & members[:, post]).any(axis=0)
-    into = in_any[post] & ~in_any[pre]
-    out = in_any[pre] & ~in_any[post]
-    into_w, out_w, within_w = (float(w[mask].mean()) if mask.any() else float("nan") for mask in (into, out, within))
+    return {"within": within, "between": in_any[pre] & in_any[post] & ~within,
+            "in": in_any[post] & ~in_any[pre], "out": in_any[pre] & ~in_any[post],
+            "background": ~in_any[pre] & ~in_any[post]}
+
+
+def mean_over(values: np.ndarray, mask: np.ndarray) -> float:
+    """Mean of ``values`` where ``mask`` holds; NaN for an empty mask."""
+    return float(values[mask].mean()) if mask.any() else float("nan")
+
+
+def pathway_means(w: np.ndarray, pre: np.ndarray, post: np.ndarray, members: np.ndarray) -> tuple[float, float, float]:
+    """Mean E->E weight (g_leak) into members from non-members, out of members to non-members, and within members.
+
+    The "in", "out" and "within" classes of :func:`synapse_classes`; NaN for an empty pathway.
+    """
+    classes = synapse_classes(pre, post, members)
+    into_w, out_w, within_w = (mean_over(w, classes[name]) for name in ("in", "out", "within"))
     return into_w, out_w, within_w
+
+
+def upper_share(w_ref: np.ndarray, mask: np.ndarray, upper_weight: float) -> float:
+    """Fraction of the synapses in ``mask`` whose reference weight lies in the upper state of the bistable
+    consolidation: w_ref > w_P / 2, the unstable point between its stable states 0 and w_P = ``upper_weight``
+    (g_leak). NaN for an empty mask."""
+    return mean_over(w_ref > upper_weight / 2, mask)

@@ -263,6 +263,13 @@ def _stimulus_constants(cfg: dict) -> dict[str, Any]:
 
 SNAPSHOT_VARIABLE = "w_snap{}"
 """Per-synapse E->E copies of ``w`` (standalone): index 0 at imprint end, ``1 + s`` at hold snapshot ``s``."""
+REF_SNAPSHOT_VARIABLE = "w_ref_snap{}"
+"""Per-synapse E->E copies of ``w_ref`` (standalone, :func:`records_w_ref`): index ``s`` at hold snapshot ``s``."""
+
+
+def records_w_ref(cfg: dict) -> bool:
+    """True if the reference weight moves (w_ref_mode not fixed), so the engines record it at each hold snapshot."""
+    return bool(cfg["plasticity"]["heterosynaptic"]["w_ref_mode"] != "fixed")
 
 
 def build_network(cfg: dict, seed: int, wiring_seed: int | None = None, *,
@@ -294,6 +301,8 @@ def build_network(cfg: dict, seed: int, wiring_seed: int | None = None, *,
     ee, ie = rules.ee_rule(cfg), rules.ie_rule(cfg)
     snap_model = "".join(f"\n{SNAPSHOT_VARIABLE.format(s)} : 1" for s in range(len(sched.snapshots) + 1)) \
         if standalone else ""
+    if standalone and records_w_ref(cfg):
+        snap_model += "".join(f"\n{REF_SNAPSHOT_VARIABLE.format(s)} : 1" for s in range(len(sched.snapshots)))
     i_ee, j_ee = fixed_indegree(n_exc, n_exc, k_e, wiring, no_self=True)
     s_ee = _synapses(exc, exc, ee, "g_e_post += w", i_ee, j_ee, delay, "ee", const, {}, snap_model)
     within = (memberships[:, i_ee] & memberships[:, j_ee]).any(axis=0)

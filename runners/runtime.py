@@ -16,20 +16,19 @@ gives bitwise the result of an uninterrupted run. The file is deleted once the r
 from __future__ import annotations
 
 import ctypes
-import hashlib
-import json
 import os
 import pickle
 import time
 from collections.abc import Iterator
-from pathlib import Path
 from typing import Any
 
 import brian2 as b2
 import numpy as np
 from brian2.codegen.generators.cython_generator import _BUFFER_SIZE as RANDOM_BUFFER_SIZE
 
-from .model import Handles, build_network
+from .builds import code_fingerprint
+from .checkpoints import checkpoint_root, interval_steps, point_key, refuse_foreign, stamp
+from .model import Handles, build_network, records_w_ref
 from .scoring import Recording, baseline_rate, onset_in_schedule
 
 CHECK_INTERVAL_S = 0.1
@@ -70,15 +69,6 @@ class RunawayWatch:
         self.onset = onset_in_schedule(rate, self.baseline, self.det, sched, self.bin_s)
         if np.isfinite(self.onset):
             self.network.stop()
-
-
-CHECKPOINT_DIR_ENV = "CAPSWEEP_CHECKPOINT_DIR"
-"""Environment variable naming the checkpoint directory (default ``~/.cache/capsweep/checkpoints``)."""
-
-
-def checkpoint_root() -> Path:
-    """Directory of the checkpoint files: ``$CAPSWEEP_CHECKPOINT_DIR``, else ``~/.cache/capsweep/checkpoints``."""
-    return Path(os.environ.get(CHECKPOINT_DIR_ENV) or Path.home() / ".cache" / "capsweep" / "checkpoints").expanduser()
 
 
 def _objects(objects: Any) -> Iterator[Any]:
@@ -135,12 +125,9 @@ class Checkpoint:
     """The checkpoint file of one point (units: steps of ``network.dt_ms``; path keyed by what fixes the run)."""
 
     def __init__(self, cfg: dict, seed: int, wiring_seed: int | None) -> None:
-        ex = cfg["execution"]
-        run = {"config": {k: v for k, v in cfg.items() if k != "execution"}, "seed": seed,
-               "wiring_seed": wiring_seed, "engine": ex["engine"], "abort_on_runaway": ex["abort_on_runaway"]}
-        key = hashlib.sha256(json.dumps(run, sort_keys=True).encode()).hexdigest()[:24]
-        self.path = checkpoint_root() / f"{key}.pkl"
-        self.every = int(round(ex["checkpoint_interval_s"] / cfg["network"]["dt_ms"] * 1e3))
+        self.path = checkpoint_root() / f"{point_key(cfg, seed, wiring_seed)}.pkl"
+        self.every = interval_steps(cfg)
+        self.stamp = stamp(code_fingerprint("runtime.py"))
 
     def steps(self, end: int) -> list[int]:
         """Steps before ``end`` at which the run writes a checkpoint (none when checkpoints are off)."""
@@ -157,16 +144,20 @@ class Checkpoint:
         rename = _clock_names(network)
         state = {rename.get(name, name): value for name, value in state.items()}
         with open(partial, "wb") as handle:
-            pickle.dump({"network": state, "buffers": _random_buffers(), "progress": progress}, handle,
-                        protocol=pickle.HIGHEST_PROTOCOL)
+            pickle.dump({"stamp": self.stamp, "network": state, "buffers": _random_buffers(), "progress": progress},
+                        handle, protocol=pickle.HIGHEST_PROTOCOL)
         os.replace(partial, self.path)
 
     def restore(self, network: b2.Network) -> dict[str, Any] | None:
-        """Put the network in its checkpointed state (random state included); its progress, or None if none."""
+        """Put the network in its checkpointed state (random state included); its progress, or None if none.
+
+        CapsweepError if another program wrote the checkpoint (:func:`capsweep.runners.checkpoints.refuse_foreign`).
+        """
         if self.every <= 0 or not self.path.exists():
             return None
         with open(self.path, "rb") as handle:
             saved = pickle.load(handle)
+        refuse_foreign(self.path, saved.get("stamp"), self.stamp)
         back = {canonical: name for name, canonical in _clock_names(network).items()}
         partial = self.path.with_suffix(f".{os.getpid()}.partial")
         with open(partial, "wb") as handle:
@@ -199,14 +190,16 @@ class FirstStep:
 
 
 def _simulate(cfg: dict, network: b2.Network, ns: dict[str, Any], h: Handles, watch: RunawayWatch | None,
-              checkpoint: Checkpoint, first: FirstStep) -> tuple[dict[str, np.ndarray], list[np.ndarray]]:
-    """Run the phases (from the last checkpoint, if any); return weights at named moments and the hold snapshots."""
+              checkpoint: Checkpoint, first: FirstStep) -> tuple[dict[str, np.ndarray], list[np.ndarray],
+                                                                  list[np.ndarray]]:
+    """Run the phases (from the last checkpoint, if any); return weights at named moments, the hold snapshots of
+    ``w`` and those of ``w_ref`` (none for a fixed reference weight)."""
     sched, dt = h.schedule, h.schedule.dt_s
     marks = [("settle", sched.settle_end), ("imprint", sched.imprint_end)]
     marks += [(f"snap{i}", s) for i, s in enumerate(sched.snapshots)] + [("end", sched.end)]
     marks = sorted(marks + [("checkpoint", s) for s in checkpoint.steps(sched.end)], key=lambda m: m[1])
-    progress = checkpoint.restore(network) or {"step": 0, "weights": {}, "snaps": [], "watch": None}
-    resumed, weights, snaps = progress["step"], progress["weights"], progress["snaps"]
+    progress = checkpoint.restore(network) or {"step": 0, "weights": {}, "snaps": [], "ref_snaps": [], "watch": None}
+    resumed, weights, snaps, ref_snaps = progress["step"], progress["weights"], progress["snaps"], progress["ref_snaps"]
     if watch is not None and progress["watch"] is not None:
         watch.counts, watch.last, watch.baseline = progress["watch"]
     step = resumed
@@ -222,11 +215,14 @@ def _simulate(cfg: dict, network: b2.Network, ns: dict[str, Any], h: Handles, wa
             weights[name] = np.array(h.s_ee.w[:])
             if name.startswith("snap"):
                 snaps.append(weights[name])
+                if records_w_ref(cfg):
+                    ref_snaps.append(np.array(h.s_ee.w_ref[:]))
         if name == "checkpoint":
             state = None if watch is None else (watch.counts, watch.last, watch.baseline)
-            checkpoint.save(network, {"step": step, "weights": weights, "snaps": snaps, "watch": state})
+            checkpoint.save(network, {"step": step, "weights": weights, "snaps": snaps, "ref_snaps": ref_snaps,
+                                      "watch": state})
     checkpoint.remove()
-    return weights, snaps
+    return weights, snaps, ref_snaps
 
 
 def simulate(cfg: dict, seed: int, wiring_seed: int | None) -> tuple[Handles, Recording]:
@@ -238,7 +234,7 @@ def simulate(cfg: dict, seed: int, wiring_seed: int | None) -> tuple[Handles, Re
     watch = RunawayWatch(cfg, h, network) if cfg["execution"]["abort_on_runaway"] else None
     if watch is not None:
         network.add(watch.operation)
-    weights, snaps = _simulate(cfg, network, ns, h, watch, Checkpoint(cfg, seed, wiring_seed), first)
+    weights, snaps, ref_snaps = _simulate(cfg, network, ns, h, watch, Checkpoint(cfg, seed, wiring_seed), first)
     sim_time = float(network.t / b2.second)  # network.t_ is not a float after network.stop()
     return h, Recording(np.asarray(h.mon_exc.t_[:]), np.asarray(h.mon_exc.i[:]), np.asarray(h.mon_inh.t_[:]),
-                        sim_time, weights, snaps, (first.at or time.perf_counter()) - start)
+                        sim_time, weights, snaps, (first.at or time.perf_counter()) - start, ref_snaps)

@@ -8,11 +8,12 @@ Both engines (:mod:`capsweep.runners.runtime`, :mod:`capsweep.runners.standalone
 from __future__ import annotations
 
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
 
 import numpy as np
 
+from ..engines import threads_of
 from ..flags import ALREADY_ACTIVE, RECALLED
 from . import metrics, protocol
 
@@ -31,6 +32,7 @@ class Recording:
     weights: dict[str, np.ndarray]  # "imprint" and "snap{i}" when reached
     snaps: list[np.ndarray]  # hold snapshots reached, in order
     setup_s: float = 0.0  # wall s before the first simulated step (building, compiling); see layout's setup_time_s
+    ref_snaps: list[np.ndarray] = field(default_factory=list)  # E->E w_ref at the same snapshots (w_ref_mode not fixed)
 
 
 def onset_in_schedule(rate: np.ndarray, baseline: float, det: dict, sched: protocol.Schedule, bin_s: float,
@@ -185,16 +187,31 @@ def retention_metrics(cfg: dict, h: Handles, times: np.ndarray, cells: np.ndarra
     }
 
 
-def _drift(h: Handles, snaps: list[np.ndarray], n_snap: int) -> dict[str, np.ndarray]:
-    """Per-snapshot weight statistics: correlation with hold start, assembly contrast, pathway means."""
-    names = ("weight_correlation", "assembly_contrast", "weight_in", "weight_out", "weight_within")
+UPPER_SHARE_CLASSES = ("within", "between", "other")
+"""Synapse classes of the ``upper_share_*`` variables: "other" is every E->E synapse in neither of the first two."""
+
+
+def _drift(cfg: dict, h: Handles, rec: Recording, n_snap: int) -> dict[str, np.ndarray]:
+    """Per-snapshot weight statistics: correlation with hold start, assembly contrast, pathway means, and (bistable
+    reference weight) the share of each class of :data:`UPPER_SHARE_CLASSES` whose w_ref is in the upper state."""
+    names = ("weight_correlation", "assembly_contrast", "weight_in", "weight_out", "weight_within", "weight_between",
+             *(f"upper_share_{c}" for c in UPPER_SHARE_CLASSES))
     out = {n: np.full(n_snap, np.nan) for n in names}
     pre, post = h.wiring["ee"]
-    for s, w in enumerate(snaps):
-        out["weight_correlation"][s] = metrics.weight_correlation(w, snaps[0])
+    classes = metrics.synapse_classes(pre, post, h.memberships)
+    shares = {"within": classes["within"], "between": classes["between"],
+              "other": ~(classes["within"] | classes["between"])}
+    het = cfg["plasticity"]["heterosynaptic"]
+    ref_snaps = rec.ref_snaps if het["w_ref_mode"] == "bistable" else []
+    for s, w in enumerate(rec.snaps):
+        out["weight_correlation"][s] = metrics.weight_correlation(w, rec.snaps[0])
         out["assembly_contrast"][s] = metrics.assembly_contrast(w, h.within)
         out["weight_in"][s], out["weight_out"][s], out["weight_within"][s] = \
             metrics.pathway_means(w, pre, post, h.memberships)
+        out["weight_between"][s] = metrics.mean_over(w, classes["between"])
+    for s, w_ref in enumerate(ref_snaps):
+        for name in UPPER_SHARE_CLASSES:
+            out[f"upper_share_{name}"][s] = metrics.upper_share(w_ref, shares[name], het["bistable_upper_weight"])
     return out
 
 
@@ -235,9 +252,10 @@ def score(cfg: dict, seed: int, engine: str, h: Handles, rec: Recording, start: 
         "setup_time_s": rec.setup_s,
         "simulated_time_s": sim_time,
         "n_synapses": int(h.n_synapses),
+        "threads": threads_of(cfg),
         **recall,
         **retention,
-        **_drift(h, rec.snaps, len(sched.snapshots)),
+        **_drift(cfg, h, rec, len(sched.snapshots)),
         "snapshot_time_s": np.array([sched.seconds(s) for s in sched.snapshots], dtype=float),
         "rate_exc_hz": rate_exc,
         "rate_inh_hz": metrics.binned_rate(t_i, len(h.inh), bin_s, sim_time),

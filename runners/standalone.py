@@ -36,6 +36,7 @@ from __future__ import annotations
 import contextlib
 import dataclasses
 import gc
+import json
 import shutil
 import tempfile
 import time
@@ -47,9 +48,13 @@ from typing import Any
 import brian2 as b2
 import numpy as np
 
+from ..engines import threads_of
+from ..errors import CapsweepError
 from . import protocol
-from .builds import build_key, build_root, compiled_form, locked
-from .model import SNAPSHOT_VARIABLE, Handles, build_network
+from .builds import build_key, build_root, compiled_form, expected_compile_s, locked, record_compile_s
+from .checkpoints import checkpoint_root, interval_steps, point_key, refuse_foreign, stamp
+from .model import REF_SNAPSHOT_VARIABLE, SNAPSHOT_VARIABLE, Handles, build_network
+from .notices import COMPILE_TOPIC, announce
 from .scoring import Recording
 
 MAX_DURATION_S = 1e7
@@ -73,6 +78,8 @@ bin_s : 1 (shared, constant)
 factor : 1 (shared, constant)
 floor_hz : 1 (shared, constant)
 rng_seed : 1 (shared, constant)
+checkpoint_every : integer (shared, constant)
+resume : integer (shared, constant)
 """
 
 _WATCH_CODE = """
@@ -105,8 +112,13 @@ static bool _capsweep_bin_done(long b, size_t total) {
     return _capsweep_run_start >= 0 && b - _capsweep_run_start >= W(hold_bins);
 }
 
+CHECKPOINTS
+
 int capsweep_watch(int64_t step) {
     using namespace brian;
+    if (step == 0 && W(resume)) step = _capsweep_restore();
+    else if (W(checkpoint_every) > 0 && step > 0 && step % W(checkpoint_every) == 0 && step < W(end_step))
+        _capsweep_save(step);
     SNAPSHOTS
     const size_t total = SPIKES.size();
     if (step == W(baseline_start)) _capsweep_base_count = total;
@@ -128,6 +140,162 @@ int capsweep_watch(int64_t step) {
     return 0;
 }
 """
+
+
+_CHECKPOINT_HEADERS = ["<cstdio>", "<cstdlib>", "<cstring>", "<fstream>", "<iostream>", "<random>", "<sstream>",
+                       "<string>", "<utility>", "<unistd.h>"]
+"""Headers of the checkpoint code, included at the top of its file (support code sits in an anonymous namespace)."""
+_CHECKPOINT_CODE = r"""
+// Private members, reached through explicit template instantiation (where access checks do not apply,
+// C++ [temp.explicit]): each generator's engine state, and how the network picks the clocks due at a step.
+template <typename Tag, typename Tag::type Member> struct _capsweep_reach {
+    friend typename Tag::type _capsweep_member(Tag) { return Member; }
+};
+#define CAPSWEEP_TAG(NAME, TYPE) struct NAME { using type = TYPE; friend type _capsweep_member(NAME); }
+CAPSWEEP_TAG(_capsweep_engine, std::mt19937 brian::RandomGenerator::*);
+CAPSWEEP_TAG(_capsweep_gauss, double brian::RandomGenerator::*);
+CAPSWEEP_TAG(_capsweep_has_gauss, bool brian::RandomGenerator::*);
+CAPSWEEP_TAG(_capsweep_due, Clock* (Network::*)());
+template struct _capsweep_reach<_capsweep_engine, &brian::RandomGenerator::gen>;
+template struct _capsweep_reach<_capsweep_gauss, &brian::RandomGenerator::stored_gauss>;
+template struct _capsweep_reach<_capsweep_has_gauss, &brian::RandomGenerator::has_stored_gauss>;
+template struct _capsweep_reach<_capsweep_due, &Network::next_clocks>;
+
+// One pass over the state, writing it to or reading it from a file: the same calls in both directions.
+struct _capsweep_io {
+    FILE* file;
+    bool saving;
+    bool ok;
+    void bytes(void* data, size_t n) {
+        if (!ok || n == 0) return;
+        ok = (saving ? std::fwrite(data, 1, n, file) : std::fread(data, 1, n, file)) == n;
+    }
+    template <typename T> void value(T& v) { bytes(&v, sizeof(T)); }
+    template <typename T> void fixed(T* data, uint64_t n) {  // an array of fixed length: the lengths must agree
+        uint64_t stored = n;
+        value(stored);
+        ok = ok && stored == n;
+        bytes(data, n * sizeof(T));
+    }
+    template <typename T> void growing(std::vector<T>& v) {  // a dynamic array: takes the stored length
+        uint64_t n = v.size();
+        value(n);
+        if (!saving && ok) v.resize(n);
+        bytes(v.data(), n * sizeof(T));
+    }
+    void text(std::string& s) {
+        uint64_t n = s.size();
+        value(n);
+        ok = ok && n < (1u << 24);
+        if (!saving && ok) s.resize(n);
+        if (n > 0) bytes(&s[0], n);
+    }
+    void queue(CSpikeQueue* q) {  // spikes in flight: Brian2's own store/restore form of a queue
+        std::pair<int, std::vector<std::vector<int32_t> > > state = q->_full_state();
+        value(state.first);
+        uint64_t slots = state.second.size();
+        value(slots);
+        if (!saving && ok) state.second.assign(slots, std::vector<int32_t>());
+        for (size_t s = 0; ok && s < state.second.size(); s++) growing(state.second[s]);
+        if (!saving && ok) q->_restore_from_full_state(state);
+    }
+    void generator(brian::RandomGenerator& g) {
+        std::string engine;
+        if (saving) {
+            std::ostringstream out;
+            out << g.*_capsweep_member(_capsweep_engine());
+            engine = out.str();
+        }
+        text(engine);
+        if (!saving && ok) {
+            std::istringstream in(engine);
+            in >> g.*_capsweep_member(_capsweep_engine());
+            ok = !in.fail();
+        }
+        value(g.*_capsweep_member(_capsweep_gauss()));
+        value(g.*_capsweep_member(_capsweep_has_gauss()));
+    }
+};
+
+// Everything that evolves: state arrays (constants are the run's settings), spike queues, generators, the watch.
+static void _capsweep_state(_capsweep_io& io) {
+    using namespace brian;
+    STATE
+    uint64_t generators = _random_generators.size();
+    io.value(generators);
+    io.ok = io.ok && generators == _random_generators.size();
+    for (size_t g = 0; io.ok && g < _random_generators.size(); g++) io.generator(_random_generators[g]);
+    io.growing(_capsweep_rate);
+    io.growing(_capsweep_keep);
+    io.value(_capsweep_last);
+    io.value(_capsweep_run_start);
+    io.value(_capsweep_threshold);
+    io.value(_capsweep_base_count);
+    io.value(_capsweep_cue_in_bin);
+}
+
+static char _capsweep_head[9] = "CAPSWCK1", _capsweep_tail[9] = "CAPSWEND";
+static std::string _capsweep_ck_path, _capsweep_ck_stamp;
+
+static void _capsweep_ck_fail(const std::string& what) {
+    std::cout << "capsweep: " << what << std::endl;
+    std::exit(3);
+}
+
+static void _capsweep_ck_settings() {  // the checkpoint's path and the writer's stamp, from the run directory
+    if (!_capsweep_ck_path.empty()) return;
+    std::ifstream in("SETTINGS_FILE");
+    std::getline(in, _capsweep_ck_path);
+    std::getline(in, _capsweep_ck_stamp);
+    if (_capsweep_ck_path.empty()) _capsweep_ck_fail("no checkpoint path in SETTINGS_FILE");
+}
+
+// The state at the start of `step` (nothing of the step has run: the watch is its first object), written
+// to a file of this process that replaces the checkpoint in one rename.
+static void _capsweep_save(int64_t step) {
+    _capsweep_ck_settings();
+    std::ostringstream partial;
+    partial << _capsweep_ck_path << ".partial." << getpid();
+    FILE* file = std::fopen(partial.str().c_str(), "wb");
+    _capsweep_io io = {file, true, file != NULL};
+    io.bytes(_capsweep_head, 8);
+    io.text(_capsweep_ck_stamp);
+    io.value(step);
+    _capsweep_state(io);
+    io.bytes(_capsweep_tail, 8);
+    bool ok = io.ok && std::fflush(file) == 0 && fsync(fileno(file)) == 0;
+    if (file != NULL) ok = std::fclose(file) == 0 && ok;
+    if (!ok || std::rename(partial.str().c_str(), _capsweep_ck_path.c_str()) != 0) {
+        std::remove(partial.str().c_str());
+        _capsweep_ck_fail("could not write the checkpoint " + _capsweep_ck_path);
+    }
+}
+
+// Called by the watch at step 0, before any other object ran: puts the checkpointed state in place and
+// lets the network pick the clocks due at the restored step; returns that step.
+static int64_t _capsweep_restore() {
+    _capsweep_ck_settings();
+    FILE* file = std::fopen(_capsweep_ck_path.c_str(), "rb");
+    _capsweep_io io = {file, false, file != NULL};
+    char head[8] = {0}, tail[8] = {0};
+    std::string stamp;
+    int64_t step = -1;
+    io.bytes(head, 8);
+    io.text(stamp);
+    io.value(step);
+    io.ok = io.ok && std::memcmp(head, _capsweep_head, 8) == 0 && stamp == _capsweep_ck_stamp;
+    _capsweep_state(io);
+    io.bytes(tail, 8);
+    if (file != NULL) std::fclose(file);
+    if (!io.ok || std::memcmp(tail, _capsweep_tail, 8) != 0)
+        _capsweep_ck_fail("the checkpoint " + _capsweep_ck_path + " is damaged or not this build's");
+    (brian::NETWORK.*_capsweep_member(_capsweep_due()))();
+    return step;
+}
+"""
+CHECKPOINT_SETTINGS_FILE = "capsweep_checkpoint.txt"
+"""Per-run file of the checkpoint code, in the run directory: the checkpoint's path, then the writer's stamp."""
+_HEAD, _TAIL = b"CAPSWCK1", b"CAPSWEND"
 
 
 _STIMULUS_CODE = """
@@ -276,23 +444,29 @@ _CURRENT: dict[str, _Build] = {}
 
 
 def _watch_function(handles: Handles, watch: b2.NeuronGroup, snapshots: b2.NeuronGroup,
-                    stimulus: b2.Function) -> b2.Function:
+                    stimulus: b2.Function, network: b2.Network) -> b2.Function:
     """The C++ ``capsweep_watch(step)`` function, with the array names of this build filled in.
 
     It asks the ``stimulus`` function's code whether a cue is on, to leave cue periods out of
-    the runaway test as :func:`capsweep.runners.protocol.cue_bins` does offline.
+    the runaway test as :func:`capsweep.runners.protocol.cue_bins` does offline, and writes and
+    restores checkpoints (:data:`_CHECKPOINT_CODE`) of the state of ``network`` (see :func:`_state_code`).
     """
     device = b2.get_device()
 
     def array(group: Any, name: str, dynamic: bool = False) -> str:
         return device.get_array_name(group.variables[name], access_data=not dynamic)
 
-    w_name, steps = array(handles.s_ee, "w", dynamic=True), array(snapshots, "step")
+    steps = array(snapshots, "step")
+    copied = [("w", SNAPSHOT_VARIABLE.format(s), s) for s in range(len(snapshots))]
+    if REF_SNAPSHOT_VARIABLE.format(0) in handles.s_ee.variables:
+        copied += [("w_ref", REF_SNAPSHOT_VARIABLE.format(s), s + 1) for s in range(len(snapshots) - 1)]
     copies = "\n    ".join(
-        f"if (step == {steps}[{s}]) std::copy({w_name}.begin(), {w_name}.end(), "
-        f"{array(handles.s_ee, SNAPSHOT_VARIABLE.format(s), dynamic=True)}.begin());"
-        for s in range(len(snapshots)))
-    code = (_WATCH_CODE.replace("SNAPSHOTS", copies)
+        f"if (step == {steps}[{at}]) std::copy({array(handles.s_ee, source, dynamic=True)}.begin(), "
+        f"{array(handles.s_ee, source, dynamic=True)}.end(), {array(handles.s_ee, copy, dynamic=True)}.begin());"
+        for source, copy, at in copied)
+    checkpoints = (_CHECKPOINT_CODE.replace("STATE", _state_code(network)).replace("NETWORK", network.name)
+                   .replace("SETTINGS_FILE", CHECKPOINT_SETTINGS_FILE))
+    code = (_WATCH_CODE.replace("CHECKPOINTS", checkpoints).replace("SNAPSHOTS", copies)
             .replace("SPIKES", array(handles.mon_exc, "t", dynamic=True))
             .replace("N_EXC", f"{len(handles.exc)}.0").replace("MARGIN", repr(_MARGIN)))
     for name in watch.equations.names:
@@ -300,8 +474,27 @@ def _watch_function(handles: Handles, watch: b2.NeuronGroup, snapshots: b2.Neuro
     fn = b2.Function(lambda step: 0, arg_units=[1], return_unit=1, arg_types=["integer"], return_type="integer")
     fn.implementations.add_implementation("cpp", code, name="capsweep_watch",
                                           dependencies={STIMULUS_FUNCTION: stimulus},
-                                          compiler_kwds={"headers": ['"network.h"']})
+                                          compiler_kwds={"headers": ['"network.h"', *_CHECKPOINT_HEADERS]})
     return fn
+
+
+def _state_arrays() -> tuple[list[str], list[str]]:
+    """Names of the device's fixed-length and dynamic arrays that hold state, sorted (constants are settings)."""
+    device = b2.get_device()
+    if device.dynamic_arrays_2d:
+        raise RuntimeError("the standalone checkpoint code has no form for 2-d dynamic arrays (state monitors)")
+    fixed = sorted(name for var, name in device.arrays.items() if var not in device.dynamic_arrays and not var.constant)
+    dynamic = sorted(name for var, name in device.dynamic_arrays.items() if not var.constant)
+    return fixed, dynamic
+
+
+def _state_code(network: b2.Network) -> str:
+    """The C++ calls of ``_capsweep_state``: every state array (:func:`_state_arrays`), then every spike queue."""
+    fixed, dynamic = _state_arrays()
+    lines = [f"io.fixed({name}, _num_{name});" for name in fixed] + [f"io.growing({name});" for name in dynamic]
+    pathways = sorted(p.name for obj in network.objects if isinstance(obj, b2.Synapses) for p in obj._pathways)
+    lines += [f"for (int q = 0; q < {name}._nb_threads; q++) io.queue({name}.queue[q]);" for name in pathways]
+    return "\n    ".join(lines)
 
 
 def _watch_values(cfg: dict, seed: int, sched: protocol.Schedule) -> dict[str, Any]:
@@ -336,20 +529,28 @@ def _compile(cfg: dict, seed: int, wiring_seed: int | None, key: str) -> _Build:
     """Generate (and, if the code changed, compile) the build of ``key``; keep its objects live."""
     directory = build_root() / key
     device = _use_standalone(directory, fresh=True)
+    threads = threads_of(cfg)
+    b2.prefs.devices.cpp_standalone.openmp_threads = threads if threads > 1 else 0  # 0: no OpenMP at all
     network, ns, handles = build_network(cfg, seed, wiring_seed, standalone=True)
     watch = b2.NeuronGroup(1, _WATCH_EQUATIONS, name="watch")
     snapshots = b2.NeuronGroup(len(handles.schedule.snapshots) + 1, "step : integer (constant)", name="snapshots")
     stimulus = _stimulus_function(handles.exc)
-    ns = {**ns, "capsweep_watch": _watch_function(handles, watch, snapshots, stimulus), STIMULUS_FUNCTION: stimulus}
-    watch.run_regularly("flag = capsweep_watch(timestep(t, dt))", when="start", name="watch_tick")
+    # the watch is each step's first object: a checkpoint holds the state before anything of its step ran
+    watch.run_regularly("flag = capsweep_watch(timestep(t, dt))", when="start", order=-1, name="watch_tick")
     watch.run_regularly(f"kicks = {STIMULUS_FUNCTION}(timestep(t, dt))", when="synapses", order=1,
                         name="stimulus_tick")
     network.add(watch, snapshots)
+    ns = {**ns, "capsweep_watch": _watch_function(handles, watch, snapshots, stimulus, network),
+          STIMULUS_FUNCTION: stimulus}
+    state = _state_arrays()
     device.apply_run_args()
-    device.insert_code("main", "brian::_random_generators[0].seed((unsigned long) "
-                               f"{device.get_array_name(watch.variables['rng_seed'])}[0]);")
+    device.insert_code("main", "for (size_t _g = 0; _g < brian::_random_generators.size(); _g++) "
+                               "brian::_random_generators[_g].seed((unsigned long) "
+                               f"{device.get_array_name(watch.variables['rng_seed'])}[0] + _g);")
     network.run(MAX_DURATION_S * b2.second, namespace=ns)
-    with locked(build_root() / f"{key}.lock"):
+    if _state_arrays() != state:  # made by code generation, after the checkpoint code was written
+        raise RuntimeError("the standalone checkpoint code misses state arrays made during code generation")
+    with _first_compile_announced(key, directory), locked(build_root() / f"{key}.lock"):
         device.build(directory=str(directory), compile=True, run=False, with_output=False)
     wiring = {}
     for name in handles.wiring:
@@ -358,6 +559,21 @@ def _compile(cfg: dict, seed: int, wiring_seed: int | None, key: str) -> _Build:
     build = _Build(key, directory, network, handles, watch, wiring)
     _CURRENT[key] = build
     return build
+
+
+@contextlib.contextmanager
+def _first_compile_announced(key: str, directory: Path) -> Iterator[None]:
+    """Announce a build's first compile (no binary yet) to the sweep's client while it lasts; keep its duration."""
+    if (directory / "main").exists():
+        yield
+        return
+    announce(COMPILE_TOPIC, {"build": key, "expected_s": expected_compile_s(), "finished": False})
+    started = time.perf_counter()
+    try:
+        yield
+        record_compile_s(key, time.perf_counter() - started)
+    finally:
+        announce(COMPILE_TOPIC, {"build": key, "expected_s": 0.0, "finished": True})
 
 
 def _point_values(cfg: dict, seed: int, wiring_seed: int | None) -> Handles:
@@ -394,16 +610,83 @@ def _run_directory(build: _Build, point: Handles, learned: bool) -> Iterator[Pat
         shutil.rmtree(run_dir, ignore_errors=True)
 
 
+@dataclass(frozen=True)
+class _Checkpoint:
+    """A point's checkpoint file, written and read by the binary (:data:`_CHECKPOINT_CODE`).
+
+    Layout (host byte order): ``CAPSWCK1``; the writer's stamp (uint64 length, JSON text of
+    :func:`capsweep.runners.checkpoints.stamp` with the build key); the int64 step; the state; ``CAPSWEND``.
+    """
+
+    path: Path
+    every: int  # steps between checkpoints (0: off)
+    stamp: dict[str, str]
+
+    @classmethod
+    def of(cls, cfg: dict, seed: int, wiring_seed: int | None, key: str) -> _Checkpoint:
+        return cls(checkpoint_root() / f"{point_key(cfg, seed, wiring_seed)}.bin", interval_steps(cfg), stamp(key))
+
+    def resumes(self) -> bool:
+        """True if the run resumes from the file; CapsweepError if another program or build wrote it."""
+        if self.every <= 0 or not self.path.exists():
+            return False
+        refuse_foreign(self.path, read_checkpoint(self.path)[0], self.stamp)
+        return True
+
+    def prepare(self, run_dir: Path, resume: bool) -> dict[str, int]:
+        """Write the run's checkpoint settings file; the watch's checkpoint values (run_args)."""
+        if self.every > 0:
+            self.path.parent.mkdir(parents=True, exist_ok=True)
+            self._remove_partial()
+        text = f"{self.path.resolve()}\n{json.dumps(self.stamp, sort_keys=True)}\n"
+        (run_dir / CHECKPOINT_SETTINGS_FILE).write_text(text)
+        return {"checkpoint_every": min(self.every, 2**31 - 1), "resume": int(resume)}
+
+    def remove(self) -> None:
+        """Delete the checkpoint (its point is complete) and any file a killed writer left half written."""
+        self.path.unlink(missing_ok=True)
+        self._remove_partial()
+
+    def _remove_partial(self) -> None:
+        for partial in self.path.parent.glob(f"{self.path.name}.partial.*"):
+            partial.unlink(missing_ok=True)
+
+
+def read_checkpoint(path: Path) -> tuple[Any, int]:
+    """The writer's stamp and the step of the standalone checkpoint at ``path``; (None, -1) if it is not one."""
+    with open(path, "rb") as handle:
+        head = handle.read(8)
+        length = np.frombuffer(handle.read(8).ljust(8, b"\0"), dtype=np.uint64)[0]
+        text = handle.read(int(min(length, 1 << 24)))
+        step = np.frombuffer(handle.read(8).ljust(8, b"\0"), dtype=np.int64)[0]
+    try:
+        found = json.loads(text) if head == _HEAD else None
+    except ValueError:
+        found = None
+    return found, int(step) if found is not None else -1
+
+
+def _binary_said(run_dir: Path) -> str | None:
+    """The binary's own line of a failed run (``capsweep: ...`` on its output), if it wrote one."""
+    output = run_dir / "results" / "stdout.txt"
+    lines = output.read_text(errors="replace").splitlines() if output.exists() else []
+    return next((line.removeprefix("capsweep: ") for line in reversed(lines) if line.startswith("capsweep: ")), None)
+
+
 def simulate(cfg: dict, seed: int, wiring_seed: int | None = None) -> tuple[Handles, Recording]:
     """Run one point on the (cached or new) build of its structure; see the module docstring.
 
     Returns the point's handles (membership, schedule, sizes; its Brian2 objects are inert) and
-    what the run recorded. Check :func:`capsweep.runners.builds.unsupported` first.
+    what the run recorded. With ``execution.checkpoint_interval_s`` > 0 the binary writes a
+    checkpoint every interval and a rerun resumes from it (CapsweepError for a checkpoint of
+    another program or build). Check :func:`capsweep.runners.builds.unsupported` first.
     """
     start = time.perf_counter()
     cfg = compiled_form(cfg)
     key = build_key(cfg)
     values = _point_values(cfg, seed, wiring_seed)
+    checkpoint = _Checkpoint.of(cfg, seed, wiring_seed, key)
+    resume = checkpoint.resumes()
     build = _CURRENT.get(key) or _compile(cfg, seed, wiring_seed, key)
     device = _use_standalone(build.directory, fresh=False)
     net, sched = build.network, values.schedule
@@ -412,15 +695,29 @@ def simulate(cfg: dict, seed: int, wiring_seed: int | None = None) -> tuple[Hand
     run_args[net["snapshots"].step] = np.array([sched.imprint_end, *sched.snapshots])
     project_dir = device.project_dir
     with _run_directory(build, values, cfg["assemblies"]["imprint"] == "learned") as run_dir:
+        ck_values = checkpoint.prepare(run_dir, resume)
+        run_args.update({getattr(build.watch, name): value for name, value in ck_values.items()})
         device.project_dir = str(run_dir)
         try:
             setup_s = time.perf_counter() - start
-            device.run(directory=str(run_dir), results_directory="results", with_output=False, run_args=run_args)
+            _run_binary(device, run_dir, run_args)
             recording = dataclasses.replace(_read(build, sched), setup_s=setup_s)
         finally:
             device.project_dir = project_dir
+    checkpoint.remove()
     (build.directory / "last_used").touch()
     return values, recording
+
+
+def _run_binary(device: Any, run_dir: Path, run_args: dict) -> None:
+    """Run the build's binary in ``run_dir``; a failure it explains itself becomes a one-line CapsweepError."""
+    try:
+        device.run(directory=str(run_dir), results_directory="results", with_output=False, run_args=run_args)
+    except RuntimeError:
+        said = _binary_said(run_dir)
+        if said is None:
+            raise
+        raise CapsweepError(said) from None
 
 
 def _read(build: _Build, sched: protocol.Schedule) -> Recording:
@@ -431,11 +728,14 @@ def _read(build: _Build, sched: protocol.Schedule) -> Recording:
     limit = sim_time - 0.5 * sched.dt_s  # the stop step itself still runs: drop its spikes
     t_e, i_e, t_i = np.asarray(h.mon_exc.t_[:]), np.asarray(h.mon_exc.i[:]), np.asarray(h.mon_inh.t_[:])
     before_e = t_e < limit
-    weights, snaps = {}, []
+    weights, snaps, ref_snaps = {}, [], []
+    reference = REF_SNAPSHOT_VARIABLE.format(0) in h.s_ee.variables
     for s, (name, step) in enumerate([("imprint", sched.imprint_end)]
                                      + [(f"snap{i}", x) for i, x in enumerate(sched.snapshots)]):
         if step <= stop:
             weights[name] = np.array(getattr(h.s_ee, SNAPSHOT_VARIABLE.format(s))[:])
             if name.startswith("snap"):
                 snaps.append(weights[name])
-    return Recording(t_e[before_e], i_e[before_e], t_i[t_i < limit], sim_time, weights, snaps)
+                if reference:
+                    ref_snaps.append(np.array(getattr(h.s_ee, REF_SNAPSHOT_VARIABLE.format(s - 1))[:]))
+    return Recording(t_e[before_e], i_e[before_e], t_i[t_i < limit], sim_time, weights, snaps, ref_snaps=ref_snaps)

@@ -42,6 +42,17 @@ TRIPLET_ONLY: dict[str, object] = {
 }
 """Triplet STDP alone: the stabilising terms switched off (dotted keys)."""
 
+TINY_LEARNED: dict[str, object] = {
+    "network.n_exc": 100, "network.indegree_exc": 40, "network.indegree_inh": 10,
+    "assemblies.count": 1, "assemblies.size": 25, "assemblies.imprint": "learned",
+    "plasticity.heterosynaptic.w_ref_mode": "consolidating", "plasticity.heterosynaptic.tau_consolidation_s": 1.0,
+    "protocol.settle_s": 0.3, "protocol.imprint_on_s": 0.3, "protocol.imprint_off_s": 0.2,
+    "protocol.imprint_repeats": 1, "protocol.hold_s": 1.0, "protocol.cue_gap_s": 0.3,
+    "detection.runaway_hold_s": 0.2, "detection.smoothing_s": 0.1,
+}
+"""A tiny learned point (dotted keys): 100 E cells, one assembly of 25 imprinted once, consolidating w_ref with
+tau_cons = 1 s; settle 0.3, imprint 0.5, hold 1.0, one cue 0.2 + gap 0.3 (2.3 s)."""
+
 ConfigFactory = Callable[..., dict]
 DriftResult = dict[str, tuple[np.ndarray, np.ndarray]]
 
@@ -103,6 +114,12 @@ def point_config() -> ConfigFactory:
 def demo_network() -> dict[str, object]:
     """Dotted-key overlay of the demo's small network: 300 E cells, three prewired assemblies of 60, 11.1 s."""
     return dict(DEMO_NETWORK)
+
+
+@pytest.fixture(scope="session")
+def tiny_learned() -> dict[str, object]:
+    """Dotted-key overlay of a tiny learned point (100 E cells, one assembly imprinted once, 2.3 s)."""
+    return dict(TINY_LEARNED)
 
 
 @pytest.fixture(scope="session")

@@ -182,3 +182,66 @@ def test_theory_consolidating_reference_is_the_exponential_relaxation() -> None:
     got = dynamics.consolidating_reference(_het(P_DEFAULT, 20.0), w, starts, 7.0)
     np.testing.assert_allclose(got, w + (starts - w) * np.exp(-7.0 / 20.0), rtol=1e-12)
     assert dynamics.fixed_reference(_het(P_DEFAULT, 20.0), w, starts, 7.0) is starts
+
+
+LEARNED_TWO = {"assemblies.count": 2, "plasticity.heterosynaptic.w_ref_mode": "bistable", "protocol.hold_s": 20.0,
+               "protocol.cue_gap_s": 0.5}
+"""Over the tiny learned point of conftest.py: two assemblies of 25 (of 100 E cells) learned in one presentation
+each, bistable w_ref with tau_cons = 1 s, a 20 s hold (the build of tests/test_checkpoint.py's standalone point)."""
+
+
+def _classes_by_sets(pre: np.ndarray, post: np.ndarray, members: np.ndarray) -> dict[str, np.ndarray]:
+    """Within (pre and post share an assembly), between (each in one, sharing none), other: from sets of indices."""
+    groups = [set(np.flatnonzero(members[:, cell]).tolist()) for cell in range(members.shape[1])]
+    within = np.array([bool(groups[i] & groups[j]) for i, j in zip(pre, post)])
+    between = np.array([bool(groups[i]) and bool(groups[j]) and not groups[i] & groups[j] for i, j in zip(pre, post)])
+    return {"within": within, "between": between, "other": ~within & ~between}
+
+
+def _scored(cfg: dict, seed: int) -> tuple[dict, dict[str, np.ndarray]]:
+    """Run ``cfg`` on its engine; its result, and the upper-state shares per class computed here from the recording."""
+    import time
+
+    from capsweep.engines import ENGINES, resolve
+    from capsweep.runners.scoring import score
+
+    engine = cfg["execution"]["engine"]
+    start = time.perf_counter()
+    handles, recording = resolve(ENGINES[engine].simulate)(cfg, seed, 9)
+    result = score(cfg, seed, engine, handles, recording, start)
+    assert len(recording.ref_snaps) == len(recording.snaps)
+    classes = _classes_by_sets(*handles.wiring["ee"], handles.memberships)
+    expected = {name: np.array([np.mean(w_ref[mask] > W_P / 2) for w_ref in recording.ref_snaps])
+                for name, mask in classes.items()}
+    expected["weight_between"] = np.array([np.mean(w[classes["between"]]) for w in recording.snaps])
+    return result, expected
+
+
+@pytest.mark.parametrize("engine,hold_s", [("standalone", 20.0), ("cython", 1.0)])
+def test_upper_state_shares_per_class_match_the_recorded_reference_weights(point_config, build_root, tiny_learned,
+                                                                           engine: str, hold_s: float) -> None:
+    """Both engines record w_ref at every hold snapshot; the stored shares and the between-assembly weight are
+    those computed here, from sets of assembly indices, on the recorded w_ref and w."""
+    cfg = point_config(tiny_learned, LEARNED_TWO, {"execution.engine": engine, "protocol.hold_s": hold_s})
+    result, expected = _scored(cfg, seed=6)
+    assert np.isfinite(result["upper_share_within"]).all()  # every snapshot reached
+    for name in ("within", "between", "other"):
+        np.testing.assert_array_equal(result[f"upper_share_{name}"], expected[name], err_msg=name)
+    np.testing.assert_allclose(result["weight_between"], expected["weight_between"], rtol=1e-12)
+    fixed = point_config(tiny_learned, LEARNED_TWO, {"execution.engine": engine, "protocol.hold_s": 0.5,
+                                       "plasticity.heterosynaptic.w_ref_mode": "consolidating"})
+    assert np.isnan(_scored(fixed, seed=6)[0]["upper_share_within"]).all()  # bistable consolidation only
+
+
+def test_learned_synapses_consolidate_and_the_unlearned_control_does_not_single_them_out(point_config, build_root,
+                                                                                      tiny_learned) -> None:
+    """Learned point: within-assembly synapses reach the upper state ahead of the rest. Control (the same point
+    without learning input): the within-assembly share stays with the other classes' (its false-positive margin)."""
+    learned, _ = _scored(point_config(tiny_learned, LEARNED_TWO, {"execution.engine": "standalone"}), seed=6)
+    control, _ = _scored(point_config(tiny_learned, LEARNED_TWO, {"execution.engine": "standalone",
+                                                    "protocol.imprint_rate_hz": 0.0}), seed=6)
+    assert learned["outcome"] == control["outcome"] == "stable"
+    assert learned["upper_share_within"][1] > 0.2 > 0.05 > learned["upper_share_other"][1]
+    assert np.all(learned["upper_share_within"][1:] > learned["upper_share_other"][1:] + 0.1)
+    margin = control["upper_share_within"] - np.maximum(control["upper_share_between"], control["upper_share_other"])
+    assert np.all(margin < 0.05), margin

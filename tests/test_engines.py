@@ -16,18 +16,20 @@ fallback) follow at the end.
 
 from __future__ import annotations
 
+import importlib.metadata
 import os
 import pickle
 import subprocess
 import sys
 import time
 from collections.abc import Callable
+from pathlib import Path
 from typing import NamedTuple
 
 import numpy as np
 import pytest
 
-from capsweep.engines import ENGINES
+from capsweep.engines import ENGINES, threads_of
 from capsweep.errors import ConfigError
 from capsweep.results_schema.layout import TIMINGS, VARIABLES
 from capsweep.runners import builds
@@ -113,6 +115,7 @@ def test_result_has_every_variable_but_the_prediction(short_runs) -> None:
     cfg, res, _, _ = short_runs
     assert set(res) == {v.name for v in VARIABLES} - {"predicted_outcome"}
     assert res["engine"] == cfg["execution"]["engine"]
+    assert res["threads"] == 1
     assert total_duration_s(cfg) == pytest.approx(1.0)
     assert res["simulated_time_s"] == pytest.approx(1.0)
     assert len(res["recall_score"]) == cfg["assemblies"]["count"]
@@ -187,6 +190,30 @@ def test_coefficients_and_durations_do_not_change_the_build(point_config, demo_n
     assert all(k != base for k in other)
 
 
+def test_the_build_key_covers_the_code_that_generates_the_binary(tmp_path: Path, point_config, demo_network,
+                                                                  monkeypatch: pytest.MonkeyPatch) -> None:
+    """A binary compiled from other capsweep sources or under another Brian2 is never reused.
+
+    The fingerprint of copies of the generating sources equals the installed one; a comment added
+    to one copy, or another Brian2 version, changes it, and a changed fingerprint changes the key.
+    """
+    here = Path(builds.__file__).parent
+    copies = [tmp_path / name for name in builds.GENERATING_SOURCES]
+    for copy in copies:
+        copy.write_bytes((here / copy.name).read_bytes())
+    brian2_version = importlib.metadata.version("brian2")
+    installed = builds.fingerprint(copies, brian2_version)
+    assert installed == builds.code_fingerprint()
+    other_brian2 = builds.fingerprint(copies, brian2_version + ".post1")
+    (tmp_path / "model.py").write_bytes((here / "model.py").read_bytes() + b"\n# edited\n")
+    edited = builds.fingerprint(copies, brian2_version)
+    assert len({installed, other_brian2, edited}) == 3
+    cfg = point_config(demo_network, {"execution.engine": "standalone"})
+    key = builds.build_key(cfg)
+    monkeypatch.setattr(builds, "code_fingerprint", lambda: edited)
+    assert builds.build_key(cfg) != key
+
+
 def test_compile_is_charged_to_setup_not_to_the_point(short_runs) -> None:
     """Work before the first simulated step (building, compiling) goes to setup_time_s; wall_time_s is the rest.
 
@@ -225,6 +252,31 @@ def test_a_new_process_regenerates_the_same_code(demo_run, point_config, demo_ne
     subprocess.run([sys.executable, "-c", script], input=pickle.dumps(short), check=True, env=os.environ)
     assert {path.name: path.read_bytes() for path in build.glob("*.cpp")} == sources
     assert (build / "main").stat().st_mtime == full.binary_mtime
+
+
+def test_threads_repeat_bitwise_and_their_count_is_stored(point_config, demo_network, build_root) -> None:
+    """Two OpenMP threads: a point run twice gives bitwise the same result, and one thread gives another.
+
+    Each thread draws from its own random stream (seeded from the point's seed) and the order of
+    floating-point sums changes with the count, so results depend on it: each point stores its count.
+    """
+    one = point_config(demo_network, SHORT, {"execution.engine": "standalone"})
+    two = point_config(demo_network, SHORT, {"execution.engine": "standalone", "execution.threads": 2})
+    assert builds.build_key(two) != builds.build_key(one)  # OpenMP changes the generated code
+    first, again, single = run_point(two, 5), run_point(two, 5), run_point(one, 5)
+    assert (first["threads"], again["threads"], single["threads"]) == (2, 2, 1)
+    for variable, value in first.items():
+        if variable not in TIMINGS:
+            np.testing.assert_array_equal(np.asarray(again[variable]), np.asarray(value), err_msg=variable)
+    assert not np.array_equal(first["rate_exc_hz"], single["rate_exc_hz"])
+    for result in (first, single):  # the same network either way: asynchronous irregular at a few Hz [common practice]
+        assert 0.5 < result["rate_exc_baseline_hz"] < 10.0
+
+
+@pytest.mark.parametrize("name", list(ENGINES))
+def test_engines_without_threads_run_on_one(name: str, point_config) -> None:
+    cfg = point_config({"execution.engine": name, "execution.threads": 4})
+    assert threads_of(cfg) == (4 if ENGINES[name].threads else 1)
 
 
 def test_an_inexpressible_point_runs_on_the_fallback(point_config, demo_network) -> None:

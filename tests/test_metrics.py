@@ -120,6 +120,39 @@ def test_pathway_means_split_in_out_and_within() -> None:
     assert (into, out, within) == pytest.approx((0.05, 0.02, 0.4))  # hand-computed
 
 
+# Three overlapping assemblies over 7 cells: A0 = {0, 1, 2}, A1 = {2, 3}, A2 = {4}; cells 5 and 6 in none.
+_MEMBERS = np.zeros((3, 7), dtype=bool)
+_MEMBERS[0, [0, 1, 2]] = _MEMBERS[1, [2, 3]] = _MEMBERS[2, 4] = True
+_PRE = np.array([0, 1, 2, 0, 3, 4, 2, 5, 1, 5, 6])
+_POST = np.array([1, 2, 3, 3, 1, 0, 4, 0, 6, 6, 4])
+_CLASS = ["within"] * 3 + ["between"] * 4 + ["in", "out", "background", "in"]
+"""Each synapse's class by hand: (0,1) (1,2) share A0, (2,3) shares A1; (0,3) (3,1) (4,0) (2,4) join cells of
+assemblies that share none (2 is in A0 and A1, 4 only in A2); (5,0) and (6,4) enter an assembly from outside,
+(1,6) leaves one, (5,6) joins two cells of none."""
+
+
+def test_synapse_classes_partition_the_synapses_by_hand() -> None:
+    classes = metrics.synapse_classes(_PRE, _POST, _MEMBERS)
+    for name, mask in classes.items():
+        np.testing.assert_array_equal(mask, np.array(_CLASS) == name, err_msg=name)
+    assert sum(mask.astype(int) for mask in classes.values()).tolist() == [1] * len(_PRE)
+
+
+def test_mean_between_assemblies_and_upper_shares_by_hand() -> None:
+    """Means over hand-picked synapses; the upper state is w_ref > w_P/2 (strict: w_ref = w_P/2 is not in it)."""
+    w = np.array([0.30, 0.20, 0.40, 0.01, 0.03, 0.05, 0.07, 0.9, 0.9, 0.9, 0.9])
+    classes = metrics.synapse_classes(_PRE, _POST, _MEMBERS)
+    assert metrics.mean_over(w, classes["between"]) == pytest.approx((0.01 + 0.03 + 0.05 + 0.07) / 4)
+    w_ref = np.array([0.2, 0.1, 0.125, 0.3, 0.0, 0.13, 0.01, 0.2, 0.0, 0.0, 0.0])
+    w_p = 0.25
+    assert metrics.upper_share(w_ref, classes["within"], w_p) == pytest.approx(1 / 3)  # 0.2 only; 0.125 = w_P/2
+    assert metrics.upper_share(w_ref, classes["between"], w_p) == pytest.approx(2 / 4)  # 0.3 and 0.13
+    other = ~(classes["within"] | classes["between"])
+    assert metrics.upper_share(w_ref, other, w_p) == pytest.approx(1 / 4)  # 0.2 of (5,0)
+    assert np.isnan(metrics.upper_share(w_ref, np.zeros(len(w_ref), dtype=bool), w_p))
+    assert np.isnan(metrics.mean_over(w, metrics.synapse_classes(_PRE, _POST, _MEMBERS[:1])["between"]))  # one assembly
+
+
 def test_window_counts_and_mean_rate_use_half_open_windows() -> None:
     times = np.array([0.1, 0.2, 0.5, 0.5, 0.9, 1.0])
     cells = np.array([0, 1, 1, 2, 0, 0])

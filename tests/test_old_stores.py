@@ -16,6 +16,7 @@ import signal
 import subprocess
 import sys
 import time
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -89,8 +90,12 @@ def test_the_read_commands_read_an_old_store_and_change_nothing(old_store: Path,
     table = pd.read_csv(io.StringIO(query.stdout))
     np.testing.assert_array_equal(table["overlap_recalled_count"], recalled)  # the 2.x count, under its 3.x name
     assert table["recalled_count"].isna().all(), "the 3.x recall test never ran for a 2.x point"
-    np.testing.assert_array_equal(table["rate_exc_baseline_hz"], raw(old_store, "rate_exc_baseline_hz"))
-    np.testing.assert_array_equal(table["recall_score_min"], np.nanmin(raw(old_store, "recall_score"), axis=1))
+    # CSV holds floats to 15 significant digits (query.CSV_DIGITS): equal up to the 16th
+    np.testing.assert_allclose(table["rate_exc_baseline_hz"], raw(old_store, "rate_exc_baseline_hz"), rtol=1e-14)
+    with np.errstate(invalid="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # a point with no assembly scored: all NaN
+        lowest = np.nanmin(raw(old_store, "recall_score"), axis=1)
+    np.testing.assert_allclose(table["recall_score_min"], lowest, rtol=1e-14)
 
     per_count = invoke("capacity", old_store, "--per-count", "--format", "csv")
     assert per_count.exit_code == 0, per_count.output
@@ -134,8 +139,10 @@ def test_upgrade_keeps_every_stored_value(old_store: Path) -> None:
     assert set(ds[layout.WRITER_VERSION].values.ravel()) == {""}, "points written before 3.1 name no writer"
 
 
-@pytest.mark.xfail(strict=True, reason="the recall test's registry keys (schema 3.0) changed every point id and the "
-                   "fingerprint; ids that survive new keys at their defaults (issue 27, item 1) make this pass")
+@pytest.mark.xfail(strict=True, reason="2.x point ids hash two keys fewer (detection.recall_alpha, "
+                   "detection.recall_null_draws) than the first defaults table, whose every key today's ids hash "
+                   "whatever a store records; with those two keys left out, all 8 ids of both fixtures match. Passes "
+                   "once a store can name the keys its ids always hash (issue 27, item 1)")
 def test_after_the_upgrade_the_old_sweep_file_runs_nothing(old_store: Path) -> None:
     data = files(old_store, metadata=False)
     assert invoke("upgrade", old_store).exit_code == 0
