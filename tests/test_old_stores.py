@@ -29,7 +29,7 @@ from typer.testing import CliRunner, Result
 from capsweep.flags import OUTCOMES, STABLE, STATUSES
 from capsweep.results_schema import attrs, layout
 from capsweep.results_schema.dataset import open_dataset
-from capsweep.results_schema.store import stored_attrs
+from capsweep.results_schema.store import stored_attrs, stored_variables
 from capsweep.results_schema.upgrade import JOURNAL
 from capsweep.sweeps.cli import app
 
@@ -137,6 +137,10 @@ def test_upgrade_keeps_every_stored_value(old_store: Path) -> None:
     assert files(old_store, metadata=False) == moved(data), "the upgrade changed a stored value"
     ds = open_dataset(old_store)
     assert set(ds[layout.WRITER_VERSION].values.ravel()) == {""}, "points written before 3.1 name no writer"
+    assert set(stored_variables()) <= set(ds.variables), "the upgrade left out a variable of the current layout"
+    for name in ("threads", "weight_between", "upper_share_within", "upper_share_between", "upper_share_other"):
+        assert bool(ds[name].isnull().all()), f"{name} (new in 3.0) was never computed for a 2.x point"
+    assert zarr.open_array(old_store / "threads", mode="r").dtype == np.dtype(layout.BY_NAME["threads"].dtype)
 
 
 @pytest.mark.xfail(strict=True, reason="2.x point ids hash two keys fewer (detection.recall_alpha, "
