@@ -39,7 +39,7 @@ def test_each_point_records_the_capsweep_that_wrote_it(tmp_path: Path) -> None:
     with ResultStore.open(path) as store:
         store.write_point((0, 0, 0, 0), point_result(1, 1))
         store.write_failure((1, 0, 0, 0), "no spikes")
-        store.mark_unneeded((2, 0, 0, 1))
+        store.mark_unneeded([(2, 0, 0, 1)])
     writers = np.asarray(zarr.open_array(path / layout.WRITER_VERSION, mode="r")[...])
     version = importlib.metadata.version("capsweep")
     assert [writers[0, 0, 0, 0], writers[1, 0, 0, 0], writers[2, 0, 0, 1]] == [version] * 3
