@@ -21,7 +21,10 @@ from ..flags import OUTCOMES, RECALL_STATES, STATUSES
 from ..registry import WEIGHT_UNIT as G_LEAK
 from ..registry import in_units_of
 
-SCHEMA_VERSION = "3.1"
+READABLE: tuple[str, ...] = ("2.0", "2.1", "3.0", "3.1")
+"""Every store schema version this capsweep reads, oldest first; it writes the last (CHANGELOG.md says what each
+changed; ``upgrade.STEPS`` holds the step from each earlier one to the next)."""
+SCHEMA_VERSION = READABLE[-1]
 
 FLAG_FILL = -1
 IN_G_LEAK = in_units_of(G_LEAK)

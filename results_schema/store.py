@@ -22,7 +22,6 @@ import json
 import math
 import shutil
 import struct
-import tempfile
 import threading
 import time
 import warnings
@@ -37,12 +36,12 @@ import numpy as np
 import zarr
 from zarr.core.buffer import Buffer
 from zarr.errors import ZarrUserWarning
-from zarr.storage import LocalStore
+from zarr.storage import LocalStore, MemoryStore
 
 from ..axes import REPLICATE, Axis
 from ..errors import StoreError
 from ..flags import DONE, FAILED, PENDING, STATUSES, UNNEEDED
-from . import attrs, layout, upgrade
+from . import attrs, journal, layout
 from .durable import check_new_store, check_writable, remove_strays, sync_written
 from .layout import GridSpec
 
@@ -187,7 +186,7 @@ class ResultStore:
     def tidy(self) -> list[Path]:
         """Remove what writes and upgrades killed midway left (temporary files, an uncommitted upgrade's journal);
         return the files removed. Only the holder of the store's lock may call it."""
-        upgrade.discard_journal(self.path)
+        journal.discard(self.path)
         return remove_strays(self.path)
 
     def mark_unneeded(self, indices: Iterable[tuple[int, ...]]) -> None:
@@ -555,18 +554,19 @@ def _create_point_variable(group: zarr.Group, name: str, sweep_dims: tuple[str, 
 
 def unwritten_array(name: str, shape: tuple[int, ...], dims: tuple[str, ...]) -> dict[str, Any]:
     """The Zarr metadata (``zarr.json``) of the variable ``name`` of the layout (or a string variable) as an array of
-    ``shape`` over ``dims``, chunked as a new store would be, with nothing written: what an upgrade adds."""
+    ``shape`` over ``dims``, chunked as a new store would be, with nothing written: what an upgrade adds. Made in
+    memory: no file is written anywhere."""
     var = layout.BY_NAME.get(name)
-    with tempfile.TemporaryDirectory() as folder:
-        group = zarr.create_group(folder, zarr_format=3)
-        if var is None:
-            _create_point_variable(group, name, dims, shape, (), (), str, "",
-                                   {"units": "1", "long_name": STRING_VARIABLES[name]})
-        else:
-            swept = len(shape) - (1 if var.inner else 0)
-            _create_point_variable(group, name, dims[:swept], shape[:swept], dims[swept:], shape[swept:], var.dtype,
-                                   _zarr_fill(var), variable_attrs(var))
-        return dict(json.loads((Path(folder) / name / "zarr.json").read_text()))
+    files: dict[str, Buffer] = {}
+    group = zarr.create_group(MemoryStore(files), zarr_format=3)
+    if var is None:
+        _create_point_variable(group, name, dims, shape, (), (), str, "",
+                               {"units": "1", "long_name": STRING_VARIABLES[name]})
+    else:
+        swept = len(shape) - (1 if var.inner else 0)
+        _create_point_variable(group, name, dims[:swept], shape[:swept], dims[swept:], shape[swept:], var.dtype,
+                               _zarr_fill(var), variable_attrs(var))
+    return dict(json.loads(files[f"{name}/zarr.json"].to_bytes()))
 
 
 def point_block(sweep_shape: tuple[int, ...], points: int) -> tuple[int, ...]:
@@ -629,7 +629,7 @@ def _open_group(path: Path, mode: Literal["r", "r+"] = "r+", consolidated: bool 
     every array's own metadata (what a writer needs)."""
     if not path.exists():
         raise StoreError(f"no result store at {path}")
-    upgrade.finish_upgrade(path)
+    journal.finish(path, layout.SCHEMA_VERSION)
     try:
         return zarr.open_group(DurableStore(path, read_only=mode == "r"), mode=mode, use_consolidated=consolidated)
     except (FileNotFoundError, NotADirectoryError, ValueError) as exc:
@@ -646,10 +646,10 @@ def _check_identity(path: Path, stored: dict[str, Any], fingerprint: str | None,
     if attrs.SCHEMA not in stored:
         raise StoreError(f"{path} is not a capsweep result store (its root attributes lack {attrs.SCHEMA})")
     version = stored[attrs.SCHEMA]
-    if version not in upgrade.READABLE:
+    if version not in layout.READABLE:
         raise StoreError(
             f"{path} has store schema version {version}; this capsweep reads versions "
-            f"{', '.join(upgrade.READABLE)}: use the capsweep version that made it or start a new store"
+            f"{', '.join(layout.READABLE)}: use the capsweep version that made it or start a new store"
         )
     if writing and version != layout.SCHEMA_VERSION:
         raise StoreError(

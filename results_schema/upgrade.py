@@ -10,21 +10,15 @@ value bitwise as it was.
 The same steps serve two readers: :func:`as_current` applies them to an opened xarray Dataset (read
 commands on a store they may not change), :func:`upgrade_store` to the store's Zarr metadata on disk.
 
-An upgrade on disk is crash-safe by a journal. It writes every changed metadata file (each array's
-``zarr.json``, the root's last, with the consolidated metadata) into ``<store>/.capsweep.upgrade/``, then
-the renames and the list of those files as ``COMMIT`` (one atomic rename: the commit point), then renames the
-folders, moves each file over its old one and removes the journal. Killed before the commit, the store is the
-old one (the journal is removed by the next writer); killed after it, the next open of the store does the
-remaining renames and moves (each is atomic and repeating them is harmless), so every reader sees the old layout
-or the new one.
+An upgrade on disk is crash-safe by :mod:`~capsweep.results_schema.journal`: every changed metadata file
+(each array's ``zarr.json``, the root's last, with the consolidated metadata) and the folder renames are staged
+and committed at once, so a kill -9 at any moment leaves the old layout or the new one.
 """
 
 from __future__ import annotations
 
 import copy
 import json
-import os
-import shutil
 from collections.abc import Callable, Collection
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
@@ -33,19 +27,16 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from ..errors import StoreError, fault_parts
+from ..errors import StoreError
 from ..flags import STATUSES
 from ..locks import store_lock
 from ..registry import cf_unit, in_units_of, relative_scale
-from . import attrs, layout
-from .durable import check_writable, fsync_dir, fsync_file
+from . import attrs, journal, layout
+from .durable import check_writable
 
 if TYPE_CHECKING:
     import xarray as xr
 
-JOURNAL = ".capsweep.upgrade"
-"""The upgrade's journal directory inside the store."""
-COMMIT = "COMMIT"
 ROOT_META = "zarr.json"
 
 
@@ -53,7 +44,6 @@ ROOT_META = "zarr.json"
 class Step:
     """What one schema version changes in the layout of the version before it."""
 
-    to: str
     changes: Callable[[dict[str, dict[str, Any]]], dict[str, dict[str, Any]]]
     """Stored variables' attrs (name -> attrs) -> the attrs this step sets, by variable."""
     added: tuple[str, ...] = field(default=())
@@ -114,18 +104,16 @@ _PER_ASSEMBLY_3_0 = ("recall_state", "evoked_completion_hz", "recall_p_value", "
                      "recall_z", "precue_rate_hz", "stuck_onset_s", "test_position")
 _ENGINE_3_0 = ("threads", "weight_between", "upper_share_within", "upper_share_between", "upper_share_other")
 STEPS: dict[str, Step] = {
-    "2.0": Step("2.1", _status_flags, ("setup_time_s",)),
+    "2.0": Step(_status_flags, ("setup_time_s",)),
     # The recall test of 3.0 did not run for a 2.x point: its variables start missing, and the count of 2.x
     # (the overlap rule) moves to the name 3.0 gives that rule. So do the thread count and the weight variables
     # that 3.0 added (no release wrote 3.0 without them).
-    "2.1": Step("3.0", _recall_test,
+    "2.1": Step(_recall_test,
                 ("recalled_count", "already_active_count", "stuck_count", *_PER_ASSEMBLY_3_0, *_ENGINE_3_0),
                 renamed=(("recalled_count", "overlap_recalled_count"),)),
-    "3.0": Step("3.1", _parseable_units, (layout.WRITER_VERSION,), adds_missing=True),
+    "3.0": Step(_parseable_units, (layout.WRITER_VERSION,), adds_missing=True),
 }
-"""The step from each earlier readable schema version to the next one."""
-READABLE: tuple[str, ...] = (*STEPS, layout.SCHEMA_VERSION)
-"""Every schema version this capsweep reads (the earlier ones through :data:`STEPS`)."""
+"""The step from each earlier readable schema version (:data:`layout.READABLE`) to the next one."""
 
 
 def added_attrs(name: str) -> dict[str, Any]:
@@ -149,9 +137,9 @@ def chain(version: str) -> list[Step]:
     while version != layout.SCHEMA_VERSION:
         if version not in STEPS:
             raise StoreError(f"store schema version {version} is not one this capsweep reads "
-                             f"({', '.join(READABLE)}); use the capsweep version that made it")
+                             f"({', '.join(layout.READABLE)}); use the capsweep version that made it")
         steps.append(STEPS[version])
-        version = STEPS[version].to
+        version = layout.READABLE[layout.READABLE.index(version) + 1]
     return steps
 
 
@@ -183,14 +171,14 @@ def upgrade_store(path: str | Path) -> tuple[str, str]:
         raise StoreError(f"no result store at {path}")
     check_writable(path)
     with store_lock(path):
-        finish_upgrade(path)
-        discard_journal(path)
+        journal.finish(path, layout.SCHEMA_VERSION)
+        journal.discard(path)
         metas = _read_metadata(path)
         before = str(metas[ROOT_META]["attributes"][attrs.SCHEMA])
         steps = chain(before)
         if steps:
-            _write_journal(path, _upgraded(metas, steps, before), [pair for step in steps for pair in step.renamed])
-            _apply(path)
+            journal.write(path, _upgraded(metas, steps, before), [pair for step in steps for pair in step.renamed])
+            journal.apply(path)
     return before, layout.SCHEMA_VERSION
 
 
@@ -240,67 +228,3 @@ def _unwritten(name: str, arrays: dict[str, dict[str, Any]]) -> dict[str, Any]:
     inner = _inner(name)
     shape = (*status["shape"], *(arrays[dim]["shape"][0] for dim in inner))
     return unwritten_array(name, tuple(shape), (*status["dimension_names"], *inner))
-
-
-def _write_journal(path: Path, changed: dict[str, dict[str, Any]], renamed: list[tuple[str, str]]) -> None:
-    """Write the changed files into the journal, each synced, then COMMIT (the renames and the files, in order) by
-    one rename."""
-    journal = path / JOURNAL
-    journal.mkdir()
-    for name, meta in changed.items():
-        target = journal / name
-        target.parent.mkdir(exist_ok=True)
-        target.write_text(json.dumps(meta, indent=2))
-        fsync_file(target)
-        fsync_dir(target.parent)
-    partial = journal / f"{COMMIT}.partial"
-    partial.write_text(json.dumps({"renamed": renamed, "files": list(changed)}))
-    fsync_file(partial)
-    os.replace(partial, journal / COMMIT)
-    fsync_dir(journal)
-
-
-def finish_upgrade(path: Path) -> None:
-    """Finish an upgrade of ``path`` cut short after its commit (nothing to do otherwise).
-
-    Raises StoreError if the store cannot be written (the upgrade is then half applied on disk).
-    """
-    if (path / JOURNAL / COMMIT).exists():
-        try:
-            _apply(path)
-        except OSError as exc:
-            raise StoreError(f"{path} was being upgraded to store schema {layout.SCHEMA_VERSION} when it stopped, "
-                             f"and the upgrade cannot be finished here ({fault_parts(exc)[0]}); run `capsweep upgrade "
-                             f"{path}` where the store is writable") from None
-
-
-def discard_journal(path: Path) -> None:
-    """Remove an upgrade's journal that never reached its commit (the store is the old one); the lock holder only."""
-    journal = path / JOURNAL
-    if journal.exists() and not (journal / COMMIT).exists():
-        shutil.rmtree(journal)
-
-
-def _apply(path: Path) -> None:
-    """Rename the renamed variables' folders, move each journalled file over its old one (what was done already is
-    skipped), then remove the journal."""
-    journal = path / JOURNAL
-    try:
-        commit = json.loads((journal / COMMIT).read_text())
-    except FileNotFoundError:  # another process finished it
-        return
-    for old, new in commit["renamed"]:
-        if (path / old).exists() and not (path / new).exists():
-            os.rename(path / old, path / new)
-            fsync_dir(path)
-    for name in commit["files"]:
-        staged, target = journal / name, path / name
-        target.parent.mkdir(exist_ok=True)
-        try:
-            os.replace(staged, target)
-        except FileNotFoundError:
-            continue
-        fsync_dir(target.parent)
-    fsync_dir(path)
-    (journal / COMMIT).unlink(missing_ok=True)
-    shutil.rmtree(journal, ignore_errors=True)

@@ -29,6 +29,7 @@ from ..errors import ConfigError, StoreError
 from ..locks import store_lock
 from ..registry import ImplausibleValue, defaults, resolve_derived
 from ..results_schema import attrs
+from ..results_schema.durable import check_writable
 from ..results_schema.layout import GridSpec
 from .ids import EXECUTION, id_entries, identity_defaults, store_basis
 from .success import MIN_FRACTION
@@ -113,6 +114,7 @@ def open_or_create(grid: Grid) -> tuple[ResultStore, Grid]:
         grid = grid.on_basis(identity_defaults())
         store.create_store(path, grid_spec(grid), *grid.ids_and_seeds())
         return store.ResultStore.open(path, fingerprint=fingerprint(sweep), batching=store.WRITER_BATCHING), grid
+    check_writable(path)  # before the lock: whose file a read-only store cannot take
     growing = store.growing_to(path)
     stored = store.stored_attrs(path, growing=growing)
     grid = grid.on_basis(store_basis(stored))

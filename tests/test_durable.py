@@ -18,8 +18,8 @@ from test_store import make_store, point_result
 
 from capsweep.flags import STATUSES
 from capsweep.results_schema import attrs, layout
+from capsweep.results_schema.journal import JOURNAL
 from capsweep.results_schema.store import Batching, ResultStore, stored_attrs
-from capsweep.results_schema.upgrade import JOURNAL
 
 BATCH = {(1, 0, 0, 0): (2, 2), (2, 0, 0, 1): (4, 3), (0, 1, 0, 0): (1, 0)}
 """A batch of three points: index -> (assemblies, recalled)."""

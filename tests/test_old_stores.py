@@ -29,8 +29,8 @@ from typer.testing import CliRunner, Result
 from capsweep.flags import OUTCOMES, STABLE, STATUSES
 from capsweep.results_schema import attrs, layout
 from capsweep.results_schema.dataset import open_dataset
+from capsweep.results_schema.journal import JOURNAL
 from capsweep.results_schema.store import stored_attrs, stored_variables
-from capsweep.results_schema.upgrade import JOURNAL
 from capsweep.sweeps.cli import app
 
 FIXTURES = Path(__file__).parent / "fixtures"
@@ -163,7 +163,7 @@ hook, at, ready = sys.argv[2], int(sys.argv[3]), pathlib.Path(sys.argv[4])
 real = getattr(os if hook == "replace" else shutil, {"replace": "replace", "rmtree": "rmtree"}[hook])
 calls = []
 def paused(*args, **kwargs):
-    if ".capsweep.lock" in str(args[-1]):  # the lock's own record
+    if ".capsweep.lock" in str(args[-1]) or not str(args[-1]).startswith(sys.argv[1]):  # the lock's, not the store's
         return real(*args, **kwargs)
     if len(calls) == at:
         ready.touch()

@@ -14,7 +14,6 @@ from typer.testing import CliRunner
 import capsweep
 from capsweep.results_schema import layout
 from capsweep.results_schema.store import ResultStore
-from capsweep.results_schema.upgrade import READABLE
 from capsweep.sweeps.cli import app
 
 ROOT = Path(__file__).parent.parent
@@ -30,7 +29,7 @@ def test_the_version_is_one_in_the_package_the_cli_the_readme_and_the_changelog(
     changelog = (ROOT / "CHANGELOG.md").read_text()
     assert f"\n## {version}\n" in changelog
     history = changelog[changelog.index("## Store schema history"):]
-    for schema in READABLE:
+    for schema in layout.READABLE:
         assert f"\n| {schema} |" in history, f"schema {schema} missing from the CHANGELOG's schema history"
 
 
