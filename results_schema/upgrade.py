@@ -2,10 +2,10 @@
 
 Each schema version that this capsweep reads and that is not the current one has one :class:`Step` to the
 next version, in :data:`STEPS`; a store of version ``v`` passes through ``STEPS[v]``, then the step from its
-result, and so on to :data:`layout.SCHEMA_VERSION`. A new schema version adds its step here and nowhere else.
-A step changes metadata only (variable attrs, variables added as unwritten arrays: every entry reads as the
-fill value, a variable renamed by moving its folder), never a stored value, so an upgrade leaves every stored
-value bitwise as it was.
+result, and so on to :data:`layout.SCHEMA_VERSION`. A new schema version adds its step here and its name to
+:data:`layout.READABLE`. A step changes metadata only (variable attrs, root attrs it records where the store has
+none, variables added as unwritten arrays: every entry reads as the fill value, a variable renamed by moving its
+folder), never a stored value, so an upgrade leaves every stored value bitwise as it was.
 
 The same steps serve two readers: :func:`as_current` applies them to an opened xarray Dataset (read
 commands on a store they may not change), :func:`upgrade_store` to the store's Zarr metadata on disk.
@@ -33,6 +33,7 @@ from ..locks import store_lock
 from ..registry import cf_unit, in_units_of, relative_scale
 from . import attrs, journal, layout
 from .durable import check_writable
+from .first_defaults import schema_2_defaults
 
 if TYPE_CHECKING:
     import xarray as xr
@@ -50,6 +51,8 @@ class Step:
     """Variables the step adds, unwritten (every entry the fill value), with the current layout's dtype and attrs."""
     renamed: tuple[tuple[str, str], ...] = field(default=())
     """(old name, new name): the variable's stored values move to the new name, bitwise (before ``added``)."""
+    root: Callable[[], dict[str, Any]] = dict
+    """Root attrs the step records where the store has none of that name."""
     adds_missing: bool = False
     """Also add, unwritten, every variable of the current layout the store still lacks (the step to the current
     version: a variable new in that version needs no entry here)."""
@@ -94,6 +97,13 @@ def _recall_test(stored: dict[str, dict[str, Any]]) -> dict[str, dict[str, Any]]
     return changed
 
 
+def _schema_2_identity() -> dict[str, Any]:
+    """2.1 -> 3.0: what a 2.x store's point ids rest on, which 2.x stores did not record: their defaults table, whose
+    every key the ids hash whole (3.0 added two keys; without this the ids of today's table would differ)."""
+    table = schema_2_defaults()
+    return {attrs.IDENTITY_DEFAULTS: table, attrs.ID_WHOLE_KEYS: sorted(table)}
+
+
 def _variable_described(name: str) -> dict[str, Any]:
     from .store import variable_attrs  # the store module imports Zarr: only an upgrade needs it
 
@@ -110,7 +120,7 @@ STEPS: dict[str, Step] = {
     # that 3.0 added (no release wrote 3.0 without them).
     "2.1": Step(_recall_test,
                 ("recalled_count", "already_active_count", "stuck_count", *_PER_ASSEMBLY_3_0, *_ENGINE_3_0),
-                renamed=(("recalled_count", "overlap_recalled_count"),)),
+                renamed=(("recalled_count", "overlap_recalled_count"),), root=_schema_2_identity),
     "3.0": Step(_parseable_units, (layout.WRITER_VERSION,), adds_missing=True),
 }
 """The step from each earlier readable schema version (:data:`layout.READABLE`) to the next one."""
@@ -148,6 +158,7 @@ def as_current(ds: xr.Dataset) -> xr.Dataset:
     import xarray as xr
 
     for step in chain(str(ds.attrs[attrs.SCHEMA])):
+        ds.attrs = {**step.root(), **ds.attrs}
         ds = ds.rename_vars(dict(step.renamed))
         for name, changed in step.changes({str(n): dict(ds[n].attrs) for n in ds.variables}).items():
             ds[name].attrs.update(changed)
@@ -201,6 +212,7 @@ def _upgraded(metas: dict[str, dict[str, Any]], steps: list[Step], before: str) 
     arrays = {name.split("/")[0]: copy.deepcopy(meta) for name, meta in metas.items() if name != ROOT_META}
     touched: set[str] = set()
     for step in steps:
+        root["attributes"] = {**step.root(), **root["attributes"]}
         for old, new in step.renamed:
             arrays[new] = arrays.pop(old)
             arrays[new]["attributes"] = {**arrays[new]["attributes"], **_variable_described(new)}

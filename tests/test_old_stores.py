@@ -29,9 +29,14 @@ from typer.testing import CliRunner, Result
 from capsweep.flags import OUTCOMES, STABLE, STATUSES
 from capsweep.results_schema import attrs, layout
 from capsweep.results_schema.dataset import open_dataset
+from capsweep.results_schema.first_defaults import ADDED_IN_3_0, schema_2_defaults
 from capsweep.results_schema.journal import JOURNAL
 from capsweep.results_schema.store import stored_attrs, stored_variables
 from capsweep.sweeps.cli import app
+from capsweep.sweeps.expand import Grid, recorded_points
+from capsweep.sweeps.identity import open_or_create
+from capsweep.sweeps.ids import id_entries
+from capsweep.sweeps.sweepfile import parse_sweep
 
 FIXTURES = Path(__file__).parent / "fixtures"
 SWEEP = FIXTURES / "odour-fixture.toml"
@@ -143,18 +148,36 @@ def test_upgrade_keeps_every_stored_value(old_store: Path) -> None:
     assert zarr.open_array(old_store / "threads", mode="r").dtype == np.dtype(layout.BY_NAME["threads"].dtype)
 
 
-@pytest.mark.xfail(strict=True, reason="2.x point ids hash two keys fewer (detection.recall_alpha, "
-                   "detection.recall_null_draws) than the first defaults table, whose every key today's ids hash "
-                   "whatever a store records; with those two keys left out, all 8 ids of both fixtures match. Passes "
-                   "once a store can name the keys its ids always hash (issue 27, item 1)")
 def test_after_the_upgrade_the_old_sweep_file_runs_nothing(old_store: Path) -> None:
     data = files(old_store, metadata=False)
     assert invoke("upgrade", old_store).exit_code == 0
+    # the ids the upgraded store's record gives the old sweep are the ids the old release wrote, read with zarr alone
+    stored_ids = np.asarray(zarr.open_array(old_store / layout.POINT_ID, mode="r")[...])
+    points = recorded_points(stored_attrs(old_store), stored_ids.shape)
+    assert [p.point_id for p in points] == list(stored_ids.ravel())
     run = capsweep("run", str(SWEEP), "--store", str(old_store))
     said = " ".join((run.stdout + run.stderr).split())
     assert run.returncode == 0, said
-    assert "ran 0 of 0 points" in said and "8 were already stored" in said, said
+    assert "0 to run nothing to run: 8 of 8 points were already stored" in said, said
     assert files(old_store, metadata=False) == moved(data), "upgrade or run changed a stored value"
+
+
+def test_a_grown_upgraded_store_keeps_the_ids_of_its_old_points(old_store: Path) -> None:
+    """Growth rewrites the store's record of its defaults table (today's keys filled in); the keys its ids hash whole
+    stay those of the 2.x table, so no old id moves, and the points added hash no key that is at today's default."""
+    assert invoke("upgrade", old_store).exit_code == 0
+    old_ids = np.asarray(zarr.open_array(old_store / layout.POINT_ID, mode="r")[...])
+    grown = parse_sweep(SWEEP.read_text().replace("replicates = 2", "replicates = 3"), SWEEP, old_store)
+    store, grid = open_or_create(Grid(grown))
+    store.close()
+    ids = np.asarray(zarr.open_array(old_store / layout.POINT_ID, mode="r")[...])
+    assert ids.shape == (*old_ids.shape[:-1], 3)
+    np.testing.assert_array_equal(ids[..., :2], old_ids)
+    recorded = stored_attrs(old_store)
+    assert sorted(recorded[attrs.ID_WHOLE_KEYS]) == sorted(schema_2_defaults())
+    new_point = grid.point((0, 0, 2))
+    assert new_point.point_id == ids[0, 0, 2]
+    assert not set(ADDED_IN_3_0) & set(id_entries(grid.flat((0, 0)), grid.basis)), "a key at its default was hashed"
 
 
 CHILD = """
