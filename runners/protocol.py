@@ -50,7 +50,7 @@ class Schedule:
     baseline_start: int = 0  # first step of the baseline window (which ends at settle_end)
     retention_windows: tuple[tuple[int, int, int], ...] = ()  # (assembly, start, stop) of recall tests during hold
     retention_starts: tuple[int, ...] = ()  # first step of each recall test during the hold
-    block_windows: tuple[tuple[int, int, int, int], ...] = ()  # (block, assembly, start, stop): blocked learning's tests
+    block_windows: tuple[tuple[int, int, int, int], ...] = ()  # (block, assembly, start, stop) of blocked tests
 
     @property
     def test_starts(self) -> tuple[int, ...]:
@@ -110,8 +110,11 @@ def schedule(cfg: dict, cue_order: Sequence[int] | None = None) -> Schedule:
                     retention_starts, blocks)
 
 
-def _imprint(cfg: dict, start: int, on: int, off: int, block_test: Callable[[int, int], tuple[tuple[int, int, int], ...]]
-             ) -> tuple[tuple[tuple[int, int, int], ...], tuple[tuple[int, int, int, int], ...], int]:
+Cues = tuple[tuple[int, int, int], ...]
+
+
+def _imprint(cfg: dict, start: int, on: int, off: int, block_test: Callable[[int, int], Cues]
+             ) -> tuple[Cues, tuple[tuple[int, int, int, int], ...], int]:
     """Imprint windows (assembly, start, stop), blocked learning's test cues (block, assembly, start, stop) and the
     step at which imprinting ends, from step ``start``; ``block_test(step, j)`` lays out the test after block j."""
     pr, count = cfg["protocol"], cfg["assemblies"]["count"]
