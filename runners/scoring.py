@@ -181,7 +181,8 @@ def retention_metrics(cfg: dict, h: Handles, times: np.ndarray, cells: np.ndarra
         if _reached(cues, sched, pr, sim_time_s):
             ks = [k for k, _, _ in cues]
             verdict[j, ks], scores[j, ks] = _verdicts(cfg, h, times, cells, cues, baseline, seed, sim_time_s)
-    for k, state in enumerate(final["recall_state"]):  # type: ignore[call-overload]
+    states: list[str | None] = list(final["recall_state"])  # type: ignore[call-overload]
+    for k, state in enumerate(states):
         if state is not None:
             verdict[-1, k], scores[-1, k] = state == RECALLED, np.asarray(final[score])[k]
     tested = np.isfinite(verdict)

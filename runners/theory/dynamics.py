@@ -32,6 +32,7 @@ Rates in Hz, times in s, weights in g_leak.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass, field, replace
 
 import numpy as np
@@ -315,7 +316,7 @@ def bistable_reference(het: dict, w: np.ndarray, w_ref: np.ndarray, dt: float) -
 
 REFERENCE_STEPS = {"fixed": fixed_reference, "consolidating": consolidating_reference, "bistable": bistable_reference}
 """How the reference weights move over a step, per ``plasticity.heterosynaptic.w_ref_mode``."""
-REFERENCE_STARTS = {"initial": np.copy, "lower": np.zeros_like}
+REFERENCE_STARTS: dict[str, Callable[[np.ndarray], np.ndarray]] = {"initial": np.copy, "lower": np.zeros_like}
 """Reference weights at the start of a run from the initial weights, per ``plasticity.heterosynaptic.w_ref_start``
 (as :func:`capsweep.runners.model.reference_start` sets them in the simulation)."""
 HANDLED_CHOICES = {"plasticity.heterosynaptic.w_ref_mode": REFERENCE_STEPS,
