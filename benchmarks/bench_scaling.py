@@ -156,10 +156,10 @@ def main() -> None:
 
 def estimate_errors(measured: dict[tuple[str, int, str], float]) -> str:
     """Markdown table: each size's CPU cost per simulated second scaled by cell count from the nearest other
-    measured size of the same engine (as ``capsweep.sweeps.workload.point_cost`` scales), against the measured one."""
+    measured size of the same engine (as ``capsweep.sweeps.costs.CostModel.point_s`` scales), against the measured
+    one."""
     from capsweep.runners.protocol import total_duration_s
-    from capsweep.sweeps.identity import Point
-    from capsweep.sweeps.workload import Cost, point_cost
+    from capsweep.sweeps.costs import Cost, CostModel, Entry
 
     lines = ["| N_E | connectivity | engine | scaled from N_E | estimated s / s simulated | measured | error |",
              "|---" * 7 + "|"]
@@ -169,8 +169,9 @@ def estimate_errors(measured: dict[tuple[str, int, str], float]) -> str:
             continue
         source = min(others, key=lambda key: (abs(key[1] - n_exc), key[2] != connectivity))
         config = size_config(n_exc, connectivity, engine)
-        point = Point(index=(0,), labels={}, config=config, point_id="", seed=0, wiring_seed=0)
-        estimate = point_cost(point, {source[1]: Cost(0.0, measured[source])}) / total_duration_s(config)
+        simulated = total_duration_s(config)
+        model = CostModel({source[1]: Entry(Cost(0.0, measured[source]), "bench")})
+        estimate = model.point_s(n_exc, simulated) / simulated
         lines.append(f"| {n_exc} | {connectivity} | {engine} | {source[1]} ({source[2]}) | {estimate:.2f} | "
                      f"{cost:.2f} | {100 * (estimate / cost - 1):+.0f} % |")
     return "\n".join(lines)

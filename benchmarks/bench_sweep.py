@@ -52,14 +52,15 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import xarray as xr
 from engine_only import run_one
 
 from capsweep.registry import with_execution
 from capsweep.runners.builds import BUILD_DIR_ENV
-from capsweep.sweeps.dispatch import submission_order
-from capsweep.sweeps.expand import expand
-from capsweep.sweeps.identity import Point
+from capsweep.sweeps.dispatch import submission_sequence
+from capsweep.sweeps.expand import Grid
+from capsweep.sweeps.ids import Point
 from capsweep.sweeps.sweepfile import load_sweep
 
 SWEEP_FILE = Path(__file__).with_name("sweep16.toml")
@@ -97,7 +98,9 @@ def plain_loop_jobs(points: list[Point]) -> list[tuple[dict[str, Any], int, int]
 
 def engine_jobs(points: list[Point]) -> list[tuple[dict[str, Any], int, int]]:
     """The points as capsweep runs them (its default engine and abort), in capsweep's submission order."""
-    return sorted(((p.config, p.seed, p.wiring_seed) for p in points), key=lambda job: submission_order(job[0]))
+    grid = Grid(load_sweep(SWEEP_FILE))
+    flat = np.array([np.ravel_multi_index(p.index, grid.shape) for p in points])
+    return [(p.config, p.seed, p.wiring_seed) for p in grid.points(submission_sequence(grid, flat))]
 
 
 def runaway_cost(points: list[Point], store: Path) -> float:
@@ -162,7 +165,7 @@ def main() -> None:
     args = parser.parse_args()
     workdir = args.workdir or Path(tempfile.mkdtemp(prefix="capsweep-bench-"))
     workdir.mkdir(parents=True, exist_ok=True)
-    points = expand(load_sweep(SWEEP_FILE))
+    points = list(Grid(load_sweep(SWEEP_FILE)).points())
     rows = []
     for repeat in range(args.repeats):
         rows.append(one_repeat(points, workdir, repeat))

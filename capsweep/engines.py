@@ -37,6 +37,8 @@ class Engine:
     """Engine that runs a point this one cannot express."""
     threads: bool = False
     """Runs a point on ``execution.threads`` threads (the others run on one and ignore the key)."""
+    cost: str = ""
+    """What the engine costs on a 2-core machine (December 2026), in words (``capsweep check`` names it)."""
 
 
 ENGINES: dict[str, Engine] = {
@@ -44,14 +46,19 @@ ENGINES: dict[str, Engine] = {
     for engine in (
         # Order fixes the store's engine flag codes: append new engines at the end.
         Engine("cython", "Brian2 runtime with compiled cython code; a network operation stops runaway points",
-               "capsweep.runners.runtime:simulate", first_point_s=2.0),
+               "capsweep.runners.runtime:simulate", first_point_s=2.0,
+               cost="compiles its code cache once per machine (1.5-5 min), then about 1.5-2.5 s wall per simulated s "
+                    "at N_E = 800-1000 (standalone: 0.2-0.6)"),
         Engine("numpy", "Brian2 runtime in pure numpy (no compiler needed, slow)",
-               "capsweep.runners.runtime:simulate", first_point_s=0.5),
+               "capsweep.runners.runtime:simulate", first_point_s=0.5,
+               cost="compiles nothing; several times slower per simulated s than cython"),
         Engine("standalone", "Brian2 C++ standalone: one binary compiled per network structure, rerun per point",
                "capsweep.runners.standalone:simulate", first_point_s=2.5, reuses_builds=True,
                limits="capsweep.runners.builds:unsupported",
                cannot="a detection.trace_bin_ms that is not a whole number of network.dt_ms steps",
-               fallback="cython", threads=True),
+               fallback="cython", threads=True,
+               cost="compiles one binary per network structure (20-80 s, once; cached), then about 0.2-0.6 s wall "
+                    "per simulated s at N_E = 800-1000"),
     )
 }
 """Every engine by name. First-point costs measured on a 2-core machine (December 2026):

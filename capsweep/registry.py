@@ -429,7 +429,12 @@ def inhibitory_count(n_exc: int, inh_per_exc: float) -> int:
     return max(1, int(round(n_exc * inh_per_exc)))
 
 
+DERIVED_FROM: dict[str, tuple[str, ...]] = {"assemblies.size": ("assemblies.coding_level", "network.n_exc")}
+"""Keys that :func:`resolve_derived` may fill in, with the keys their value is computed from."""
+
+
 def resolve_derived(flat: dict[str, Any]) -> dict[str, Any]:
-    """A flat config with the keys that other keys imply filled in (assemblies.size from a coding level)."""
+    """A flat config with the keys that other keys imply filled in (:data:`DERIVED_FROM`: assemblies.size from a
+    coding level)."""
     level = flat["assemblies.coding_level"]
     return {**flat, "assemblies.size": int(round(level * flat["network.n_exc"]))} if level > 0 else flat

@@ -1,10 +1,11 @@
 """The store's root attributes: every name, defined once, and the one function that assembles them.
 
-Two parts make a store's root attrs: the store's own (schema version, grid fingerprint, axes, rate bin,
-creation time, package versions, the CF global attributes) and the record of the sweep that made it
-(its name, file and text, replicates, base seed, metric definitions, count search), which the sweep
-side hands over through :func:`sweep_record`. Readers use the names below. Import-light (no Zarr):
-the sweep side reads and records attrs without loading the store's libraries.
+Three parts make a store's root attrs: the store's own (schema version, grid fingerprint, axes, rate bin,
+creation time, package versions, the CF global attributes), the record of the sweep that made it
+(its name, file and text, replicates, base seed, metric definitions, count search), and what its point
+ids rest on (defaults table, resolved base config, axis settings, id scheme); the sweep side hands the
+last two over through :func:`sweep_record` and :func:`identity_record`. Readers use the names below.
+Import-light (no Zarr): the sweep side reads and records attrs without loading the store's libraries.
 """
 
 from __future__ import annotations
@@ -31,6 +32,19 @@ BASE_SEED = "base_seed"
 CREATED_BY = "created_by"
 DEFINITIONS = "metric_definitions"
 COUNT_SEARCH = "count_search"
+IDENTITY_DEFAULTS = "identity_defaults"
+"""The defaults table (flat key -> default, execution settings left out) the store's point ids are relative to."""
+BASE_CONFIG = "base_config"
+"""The sweep's resolved base config (flat key -> value, execution settings left out)."""
+AXIS_SETTINGS = "axis_settings"
+"""Per axis: name, config key, values, and for an axis over variants each variant's overrides."""
+POINT_ID_SCHEME = "point_id_scheme"
+"""How the stored point ids were made (:data:`ID_SCHEME`)."""
+ID_SCHEME = ("sha256(json.dumps({'config': the point's resolved config minus [execution] entries, keeping the keys "
+             "of the first defaults table (store schema 3.0) and any other key where it differs from "
+             "identity_defaults, 'replicate': replicate}, sort_keys=True))[:16]; seed: "
+             "sha256(f'{base_seed}/{point_id}')[:4] little-endian & 0x7FFFFFFF")
+"""The value of :data:`POINT_ID_SCHEME` this capsweep writes (see ``capsweep.sweeps.identity``)."""
 AXIS_KEY = "config_key"
 """Attribute of an axis coordinate (not a root attr): the config key the axis sets."""
 
@@ -51,6 +65,12 @@ def sweep_record(name: str, file: str, text: str, sha256: str, replicates: int, 
         BASE_SEED: base_seed, CREATED_BY: "capsweep run", DEFINITIONS: METRIC_DEFINITIONS,
         **({COUNT_SEARCH: count_search} if count_search else {}),
     }
+
+
+def identity_record(defaults: dict[str, Any], base: dict[str, Any], axes: list[dict[str, Any]]) -> dict[str, Any]:
+    """What a store's ids rest on, by the names above: the defaults table, the resolved base config, the axes'
+    settings; with them every point's resolved config and id can be rebuilt without the sweep file."""
+    return {IDENTITY_DEFAULTS: defaults, BASE_CONFIG: base, AXIS_SETTINGS: axes, POINT_ID_SCHEME: ID_SCHEME}
 
 
 def root_attrs(grid: GridSpec, created_utc: str) -> dict[str, Any]:

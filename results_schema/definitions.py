@@ -104,4 +104,8 @@ reaches that fraction after a smaller one did not. Per count: the success fracti
 Interval on k: the range (min, max) of the per-replicate capacities (replicate r: the largest k with every count \
 <= k successful in r), a distribution-free summary; a replicate whose run of successes ends at a crashed point \
 is left out.
+control (a dim, from the sweep file's [controls] table): none = the condition itself; sham = cue input off \
+(protocol.cue_rate_hz 0); frozen = no weight change after imprinting; unstructured = prewiring gain 1 and no \
+learning input. A condition (other axes than count and control) is flagged when its sham or unstructured control, \
+pooled over counts and replicates, has a 95 % Wilson interval whose lower end lies above detection.recall_alpha.
 """

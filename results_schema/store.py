@@ -24,7 +24,7 @@ import struct
 import threading
 import time
 import warnings
-from collections.abc import Mapping
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
@@ -46,7 +46,7 @@ from .layout import GridSpec
 ALWAYS_SET: frozenset[str] = frozenset({layout.STATUS.name, "seed"})
 STRING_VARIABLES: dict[str, str] = {
     layout.ERROR: "error text of a failed point ('' when none)",
-    layout.POINT_ID: "hash of the point's fully resolved config",
+    layout.POINT_ID: "hash of the point's resolved config on the store's defaults table",
 }
 # Result variables a runner result must hold; seed is fixed at creation, the prediction optional.
 OPTIONAL_RESULTS: frozenset[str] = frozenset({"seed", "predicted_outcome"})
@@ -164,9 +164,17 @@ class ResultStore:
         self.flush()
         return np.asarray(self._arrays[name][...])
 
-    def mark_unneeded(self, index: tuple[int, ...]) -> None:
-        """Set a pending point's status to unneeded: an adaptive search decided without it (nothing else written)."""
-        self._queue(self._check_index(index), {}, UNNEEDED)
+    def mark_unneeded(self, indices: Iterable[tuple[int, ...]]) -> None:
+        """Set pending points' status to unneeded: an adaptive search decided without them (nothing else written).
+
+        Written with the next batch of points, however many there are.
+        """
+        checked = [self._check_index(index) for index in indices]
+        with self._lock:
+            self._raise_failure()
+            if checked and not self._buffer:
+                self._oldest = time.monotonic()
+            self._buffer.update((index, ({}, UNNEEDED)) for index in checked)
 
     def write_point(self, index: tuple[int, ...], result: Mapping[str, Any]) -> None:
         """Write a finished point: every result variable and an empty error, then status done.
@@ -250,7 +258,7 @@ class ResultStore:
         if "seed" in result and int(result["seed"]) != int(self._seeds[index]):
             raise ValueError(f"result seed {result['seed']} differs from the stored seed {self._seeds[index]}")
         return {
-            name: _encode_value(layout.BY_NAME[name], value, self._inner_size(layout.BY_NAME[name]))
+            name: encode_value(layout.BY_NAME[name], value, self._inner_size(layout.BY_NAME[name]))
             for name, value in result.items()
             if name != "seed"
         }
@@ -296,6 +304,16 @@ def stored_attrs(path: str | Path, growing: str | None = None) -> dict[str, Any]
     stored = dict(_open_group(path, mode="r", consolidated=False).attrs)
     _check_identity(path, stored, None, growing)
     return stored
+
+
+def read_variables(path: str | Path, names: tuple[str, ...]) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+    """The root attrs of the store at ``path`` and its variables ``names`` as stored (codes for flags), read-only
+    (StoreError as ``check_store``)."""
+    path = Path(path)
+    group = _open_group(path, mode="r", consolidated=False)
+    stored = dict(group.attrs)
+    _check_identity(path, stored, None)
+    return stored, {name: np.asarray(_array(group, name)[...]) for name in names}
 
 
 def growing_to(path: str | Path) -> str | None:
@@ -364,7 +382,7 @@ def _stored_variables() -> tuple[str, ...]:
     return (*(v.name for v in layout.VARIABLES), layout.STATUS.name, *STRING_VARIABLES)
 
 
-def _encode_value(var: layout.Variable, value: Any, inner_size: int | None) -> Any:
+def encode_value(var: layout.Variable, value: Any, inner_size: int | None) -> Any:
     """Turn one result value into what the variable's array holds (codes for flags, padded rows)."""
     if var.flags and inner_size is None:
         return _flag_code(var, value)

@@ -26,7 +26,7 @@ from ..locks import COMPILE, held
 from ..registry import flatten
 
 BUILD_DIR_ENV = "CAPSWEEP_BUILD_DIR"
-_KEYS_IN_CODE = (
+KEYS_IN_CODE = (
     "network.n_exc", "network.inh_per_exc", "network.indegree_exc", "network.indegree_inh",
     "network.delay_ms", "network.dt_ms", "plasticity.heterosynaptic.w_ref_mode",
     "protocol.snapshots", "detection.trace_bin_ms", "execution.engine", "execution.threads",
@@ -91,12 +91,22 @@ def build_key(cfg: dict) -> str:
 
     Covers the config values that change the generated code (sizes, in-degrees, delay, dt, the
     reference-weight mode, the snapshot count, the trace bin, the engine and its threads: see
-    ``_KEYS_IN_CODE``) and :func:`code_fingerprint`, so a binary compiled by other capsweep code or
+    ``KEYS_IN_CODE``) and :func:`code_fingerprint`, so a binary compiled by other capsweep code or
     another Brian2 is never reused; plasticity switches are not structural (see :func:`compiled_form`).
     """
-    flat = flatten(compiled_form(cfg))
-    text = json.dumps({"config": {k: flat[k] for k in _KEYS_IN_CODE}, "code": code_fingerprint()}, sort_keys=True)
+    text = json.dumps({"config": structure(cfg), "code": code_fingerprint()}, sort_keys=True)
     return hashlib.sha256(text.encode()).hexdigest()[:16]
+
+
+def structure(cfg: dict) -> dict[str, object]:
+    """The config keys that change the generated code, with this point's values (see ``KEYS_IN_CODE``)."""
+    flat = flatten(compiled_form(cfg))
+    return {k: flat[k] for k in KEYS_IN_CODE}
+
+
+def compiled(key: str) -> bool:
+    """Whether the build of ``key`` is in the cache (compiled: its binary exists)."""
+    return (build_root() / key / "main").is_file()
 
 
 def build_root(root: str | os.PathLike | None = None) -> Path:
@@ -113,6 +123,28 @@ def locked(path: Path, blocking: bool = True) -> Iterator[bool]:
     path.parent.mkdir(parents=True, exist_ok=True)
     with held(path, COMPILE, blocking) as taken:
         yield taken
+
+
+FIRST_COMPILE_S = 40.0
+"""Expected first compile of a build (s) before one was measured here: 20-80 s on 2 cores (December 2026)."""
+COMPILE_TIME_FILE = "compile_s"
+"""File in a build's directory holding how long its first compile took (s)."""
+
+
+def expected_compile_s(root: str | os.PathLike | None = None) -> float:
+    """How long a first compile takes here (s): the median of the compiles measured in the cache, else
+    :data:`FIRST_COMPILE_S`."""
+    measured = []
+    for path in build_root(root).glob(f"*/{COMPILE_TIME_FILE}"):
+        with contextlib.suppress(OSError, ValueError):
+            measured.append(float(path.read_text()))
+    return float(sorted(measured)[len(measured) // 2]) if measured else FIRST_COMPILE_S
+
+
+def record_compile_s(key: str, seconds: float, root: str | os.PathLike | None = None) -> None:
+    """Keep how long the first compile of build ``key`` took (s), for :func:`expected_compile_s`."""
+    with contextlib.suppress(OSError):
+        (build_root(root) / key / COMPILE_TIME_FILE).write_text(f"{seconds:.1f}\n")
 
 
 def _dir_bytes(path: Path) -> int:

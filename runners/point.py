@@ -8,10 +8,14 @@ the table in :mod:`capsweep.engines`; a point its engine cannot express runs on 
 from __future__ import annotations
 
 import time
+from typing import TYPE_CHECKING
 
 from ..engines import engine_for, resolve
 from ..registry import with_execution
-from .scoring import score
+from .scoring import Recording, score
+
+if TYPE_CHECKING:
+    from .model import Handles
 
 
 def run_point(cfg: dict, seed: int, wiring_seed: int | None = None) -> dict[str, object]:
@@ -22,8 +26,14 @@ def run_point(cfg: dict, seed: int, wiring_seed: int | None = None) -> dict[str,
     RNG. Same cfg and seeds give identical results with the same engine. The ``engine`` entry
     says which engine ran the point (the fallback when the configured one cannot express it).
     """
+    return run_point_recorded(cfg, seed, wiring_seed)[0]
+
+
+def run_point_recorded(cfg: dict, seed: int, wiring_seed: int | None = None
+                       ) -> tuple[dict[str, object], Handles, Recording]:
+    """:func:`run_point`, also returning the network's handles and what it recorded (spikes, weights)."""
     start = time.perf_counter()
     engine, _ = engine_for(cfg)
     cfg = with_execution(cfg, engine=engine.name)
     handles, recording = resolve(engine.simulate)(cfg, seed, wiring_seed)
-    return score(cfg, seed, engine.name, handles, recording, start)
+    return score(cfg, seed, engine.name, handles, recording, start), handles, recording

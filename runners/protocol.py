@@ -74,6 +74,14 @@ class Schedule:
         return step * self.dt_s
 
 
+SCHEDULE_KEYS: tuple[str, ...] = (
+    "network.dt_ms", "assemblies.count", "assemblies.imprint", "protocol.", "detection.runaway_hold_s",
+    "detection.smoothing_s", "detection.baseline_start_s",
+)
+"""The config keys :func:`schedule` reads (``"protocol."``: every key of that table): a point's timeline and length
+depend on nothing else, so a sweep computes them once per distinct value of these."""
+
+
 def _steps(seconds: float, dt_s: float) -> int:
     return int(round(seconds / dt_s))
 

@@ -51,9 +51,10 @@ import numpy as np
 from ..engines import threads_of
 from ..errors import CapsweepError
 from . import protocol
-from .builds import build_key, build_root, compiled_form, locked
+from .builds import build_key, build_root, compiled_form, expected_compile_s, locked, record_compile_s
 from .checkpoints import checkpoint_root, interval_steps, point_key, refuse_foreign, stamp
 from .model import REF_SNAPSHOT_VARIABLE, SNAPSHOT_VARIABLE, Handles, build_network
+from .notices import COMPILE_TOPIC, announce
 from .scoring import Recording
 
 MAX_DURATION_S = 1e7
@@ -539,7 +540,7 @@ def _compile(cfg: dict, seed: int, wiring_seed: int | None, key: str) -> _Build:
     network.run(MAX_DURATION_S * b2.second, namespace=ns)
     if _state_arrays() != state:  # made by code generation, after the checkpoint code was written
         raise RuntimeError("the standalone checkpoint code misses state arrays made during code generation")
-    with locked(build_root() / f"{key}.lock"):
+    with _first_compile_announced(key, directory), locked(build_root() / f"{key}.lock"):
         device.build(directory=str(directory), compile=True, run=False, with_output=False)
     wiring = {}
     for name in handles.wiring:
@@ -548,6 +549,21 @@ def _compile(cfg: dict, seed: int, wiring_seed: int | None, key: str) -> _Build:
     build = _Build(key, directory, network, handles, watch, wiring)
     _CURRENT[key] = build
     return build
+
+
+@contextlib.contextmanager
+def _first_compile_announced(key: str, directory: Path) -> Iterator[None]:
+    """Announce a build's first compile (no binary yet) to the sweep's client while it lasts; keep its duration."""
+    if (directory / "main").exists():
+        yield
+        return
+    announce(COMPILE_TOPIC, {"build": key, "expected_s": expected_compile_s(), "finished": False})
+    started = time.perf_counter()
+    try:
+        yield
+        record_compile_s(key, time.perf_counter() - started)
+    finally:
+        announce(COMPILE_TOPIC, {"build": key, "expected_s": 0.0, "finished": True})
 
 
 def _point_values(cfg: dict, seed: int, wiring_seed: int | None) -> Handles:

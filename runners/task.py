@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import atexit
 import os
+import signal
 import traceback
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -18,8 +19,8 @@ from dask.distributed import Status, WorkerPlugin
 
 T = TypeVar("T")
 
-WORKER_PRELOAD = "capsweep.runners.model"
-"""Imported by every worker before it registers: Brian2, in the worker's main thread (see PrepareWorker)."""
+WORKER_PRELOAD = "capsweep.runners.task"
+"""Preloaded by every worker before it registers: :func:`dask_setup` runs in the worker's main thread."""
 
 
 @dataclass(frozen=True)
@@ -82,13 +83,27 @@ def prediction_row(config: dict[str, Any]) -> dict[str, Any]:
     }
 
 
+def dask_setup(worker: Any) -> None:
+    """Dask's preload hook, in the worker's main thread before it registers: import Brian2 (see PrepareWorker),
+    then ignore SIGINT.
+
+    Ctrl-C in the terminal reaches every process of the foreground group; the ``capsweep run`` process handles
+    it and closes the cluster, so a worker has nothing to do on it (and would print a traceback). A local
+    cluster's workers ignore it from their first import on (``capsweep.sweeps.console``); Brian2's import
+    installs its own handler, which is replaced here.
+    """
+    from . import model  # noqa: F401  (imports Brian2)
+
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+
 class PrepareWorker(WorkerPlugin):
     """Ready a worker for simulations at start-up, and let it leave quickly once closed.
 
     - Brian2 and the point runner are imported in the worker's main thread: Brian2 installs a
       SIGINT handler when first imported, which Python allows only in the main thread (tasks run
-      in an executor thread). Workers of the clusters capsweep starts have them already: they import
-      :data:`WORKER_PRELOAD` (the Brian2 network, imported by every engine) as a Dask preload,
+      in an executor thread). Workers of the clusters capsweep starts have them already: they preload
+      :data:`WORKER_PRELOAD` (:func:`dask_setup` imports the Brian2 network, imported by every engine)
       before they register, which spares the round trip of a plugin that still has work to do.
     - With ``leave_fast`` (workers of capsweep's own clusters), a worker process closed cleanly
       exits without interpreter teardown, which takes about 0.5 s with Brian2 loaded and has

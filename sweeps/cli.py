@@ -1,7 +1,8 @@
 """The ``capsweep`` command line: a thin typer layer, one library function per command.
 
-User errors (bad sweep file, foreign or locked store, bad filter) print one line on stderr and
-exit non-zero without a traceback.
+Every error a user can fix (bad sweep file, foreign or locked store, bad filter, a file-system fault, a
+mistyped option) prints one ``capsweep: error:`` line on stderr and exits non-zero without a traceback.
+Help is plain text (no markup: ``[unit]`` and ``[sweep]`` show as written).
 """
 
 from __future__ import annotations
@@ -11,36 +12,64 @@ import os
 import sys
 import tomllib
 import warnings
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from enum import StrEnum
 from pathlib import Path
 from typing import Any
 
 import typer
 from rich.console import Console
-from rich.progress import (
-    BarColumn,
-    MofNCompleteColumn,
-    Progress,
-    ProgressColumn,
-    Task,
-    TextColumn,
-    TimeElapsedColumn,
-    TimeRemainingColumn,
-)
-from rich.text import Text
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+from typer.core import TyperGroup
 
 from .. import __version__
 from ..clusters import NAMES as CLUSTER_KINDS
+from ..controls import CONTROL_DIM
 from ..engines import ENGINES, NAMES
 from ..errors import CapsweepError
 from ..flags import DONE, FAILED, PENDING, UNNEEDED
+from ..interrupts import ignore_interrupts_if_spawned
 from ..registry import ImplausibleValue
 from ..results_schema import attrs
+from ..results_schema.layout import TIMINGS
 from .success import MIN_FRACTION
 
+ignore_interrupts_if_spawned()  # also when run as `python -m capsweep.sweeps.cli`
+
+USAGE_EXIT = 2
+"""Exit code of a command line that does not parse (a missing argument, an unknown option)."""
+
+
+class _OneLineErrors(TyperGroup):
+    """The command group: a command line that does not parse gets the same one-line error as any user error."""
+
+    def main(self, args: Sequence[str] | None = None, prog_name: str | None = None, complete_var: str | None = None,
+             standalone_mode: bool = True, windows_expand_args: bool = True, **extra: Any) -> Any:
+        try:
+            code = super().main(args, prog_name, complete_var, standalone_mode=False,
+                                windows_expand_args=windows_expand_args, **extra)
+        except typer.TyperException as exc:  # the framework's usage errors
+            typer.echo(f"capsweep: error: {_usage_message(exc)}", err=True)
+            code = getattr(exc, "exit_code", USAGE_EXIT)
+        except typer.Abort:
+            typer.echo("capsweep: interrupted", err=True)
+            code = 130
+        if not standalone_mode:
+            return code
+        sys.exit(code if isinstance(code, int) else 0)
+
+
+def _usage_message(exc: Any) -> str:
+    """A usage error as one sentence with the command's help to turn to."""
+    message = " ".join(str(exc.format_message()).split())
+    context = getattr(exc, "ctx", None)
+    command = context.command_path.split()[-1] if context is not None and context.parent is not None else ""
+    return f"{message} (see `{' '.join(['capsweep', command]).strip()} --help`)"
+
+
 app = typer.Typer(
-    add_completion=False, no_args_is_help=True, pretty_exceptions_enable=False,
+    cls=_OneLineErrors, add_completion=False, no_args_is_help=True, pretty_exceptions_enable=False,
+    rich_markup_mode=None,
     help="Sweep plastic spiking-network memory models: Brian2 points on Dask, one Zarr store, capacity answers.",
 )
 err = Console(stderr=True)
@@ -88,6 +117,10 @@ def user_errors(command: Callable[..., Any]) -> Callable[..., Any]:
         except CapsweepError as exc:
             typer.echo(f"capsweep: error: {exc}", err=True)
             raise typer.Exit(exc.exit_code) from None
+        except OSError as exc:  # a file-system fault the command did not name itself
+            where = f"{exc.filename}: " if exc.filename else ""
+            typer.echo(f"capsweep: error: {where}{exc.strerror or exc}", err=True)
+            raise typer.Exit(USAGE_EXIT) from None
         except KeyboardInterrupt:
             typer.echo("capsweep: interrupted; results stored so far are kept. Rerun the same command to resume.",
                        err=True)
@@ -103,31 +136,37 @@ _CLUSTER_SET_HELP = "override execution.cluster.NAME (repeatable), e.g. max_jobs
 @app.command()
 @user_errors
 def run(
-    sweep_file: Path = typer.Argument(..., help="TOML sweep file"),
-    store: Path = typer.Option(None, "--store", help="Zarr store directory (default: \\[sweep].store)"),
-    workers: int = typer.Option(None, "--workers", min=1, help="local Dask worker processes"),
-    scheduler: str = typer.Option(None, "--scheduler", help="address of a running Dask scheduler"),
+    sweep_file: Path = typer.Argument(..., metavar="SWEEP", help="TOML sweep file"),
+    store: Path = typer.Option(None, "--store", metavar="PATH", help="Zarr store directory (default: [sweep].store)"),
+    workers: int = typer.Option(None, "--workers", min=1, metavar="N", help="local Dask worker processes"),
+    scheduler: str = typer.Option(None, "--scheduler", metavar="ADDR", help="address of a running Dask scheduler"),
     dashboard: bool = typer.Option(None, "--dashboard/--no-dashboard",
                                    help="serve the local cluster's Dask dashboard (default: execution.dashboard)"),
-    engine: str = typer.Option(None, "--engine", help=f"override execution.engine: {', '.join(NAMES)}"),
+    engine: str = typer.Option(None, "--engine", metavar="NAME", help=f"override execution.engine: {', '.join(NAMES)}"),
     retry_failed: bool = typer.Option(False, "--retry-failed", help="run failed points again"),
     prescreen: bool = typer.Option(None, "--prescreen/--no-prescreen",
                                    help="store the prescreen's predicted outcome beside each point "
                                         "(default: execution.prescreen)"),
-    cluster: str = typer.Option(None, "--cluster", help=_CLUSTER_HELP),
+    cluster: str = typer.Option(None, "--cluster", metavar="KIND", help=_CLUSTER_HELP),
     cluster_set: list[str] = typer.Option(None, "--cluster-set", metavar="NAME=VALUE", help=_CLUSTER_SET_HELP),
 ) -> None:
-    """Run every point of SWEEP_FILE not yet done, writing each result into the store as it arrives."""
+    """Run every point of SWEEP not yet done, writing each result into the store as it arrives.
+
+    Progress goes to stderr: one line redrawn on a terminal, a plain line every few seconds in a file or
+    pipe. The last lines name the store and the command to run next.
+    """
     from .launch import RunOptions, run_sweep
+    from .runview import ProgressView
 
     _check_engine(engine)
     options = RunOptions(store=store, workers=workers, scheduler=scheduler, dashboard=dashboard, engine=engine,
                          prescreen=prescreen, retry_failed=retry_failed,
                          cluster=_cluster_entries(cluster, cluster_set or []))
-    with _ProgressView() as view:
+    with ProgressView(err) as view:
         final = run_sweep(sweep_file, options, on_event=view.update)
-    _print_run_summary(final)
-    if final.failed:
+    for line in run_summary(final, sweep_file):
+        _note(line)
+    if final.failed or final.failed_before:
         raise typer.Exit(1)
 
 
@@ -146,165 +185,169 @@ def _cluster_entries(kind: str | None, pairs: list[str]) -> dict[str, Any]:
     return entries
 
 
-class _WorkersColumn(ProgressColumn):
-    """The number of Dask workers connected now, asked at each refresh (batch jobs start and end between points)."""
+def run_summary(progress: Any, sweep_file: Path) -> list[str]:
+    """The closing lines of a run: what ran, on how many workers, what failed, and the command to run next."""
+    from .tables import duration_text
 
-    def render(self, task: Task) -> Text:
-        return Text(f"workers {task.fields['workers']()}")
-
-
-class _ProgressView:
-    """Renders launch.Progress events as a rich progress bar with failures, workers and ETA."""
-
-    def __init__(self) -> None:
-        self.bar = Progress(
-            TextColumn("[bold]points"), BarColumn(), MofNCompleteColumn(),
-            TextColumn("failed {task.fields[failed]}"), _WorkersColumn(), TimeElapsedColumn(), TextColumn("ETA"),
-            TimeRemainingColumn(), TextColumn("[dim]{task.fields[last]}"), console=err, refresh_per_second=2,
-        )
-        self.task: Any = None
-        self.dashboard_shown = False
-
-    def __enter__(self) -> _ProgressView:
-        return self
-
-    def __exit__(self, *exc: object) -> None:
-        if self.task is not None:
-            self.bar.stop()
-
-    def update(self, progress: Any) -> None:
-        """Show ``progress`` (a launch.Progress)."""
-        if self.task is None:
-            err.print(f"{progress.total} points: {progress.already_done} stored before, {progress.to_run} to run")
-            self.bar.start()
-            self.task = self.bar.add_task("run", total=progress.to_run, failed=0, last="",
-                                          workers=progress.worker_count)
-        if progress.dashboard and not self.dashboard_shown:
-            self.bar.console.print(f"Dask dashboard: {progress.dashboard}")
-            self.dashboard_shown = True
-        self.bar.update(self.task, completed=progress.finished, total=progress.to_run - progress.unneeded,
-                        failed=progress.failed, last=progress.last, workers=progress.worker_count)
-
-
-def _print_run_summary(progress: Any) -> None:
     outcomes = ", ".join(f"{k} {v}" for k, v in sorted(progress.outcomes.items())) or "none"
     engines = ", ".join(f"{k} {v}" for k, v in sorted(progress.engines.items())) or "none"
-    err.print(
-        f"ran {progress.finished} of {progress.to_run} points in {progress.elapsed_s:.1f} s "
-        f"({progress.failed} failed; outcomes: {outcomes}; engines: {engines}); "
-        f"{progress.already_done} were already stored"
-        + (f"; {progress.unneeded} the count search did not need" if progress.unneeded else "")
-    )
+    store = progress.store
+    if progress.to_run:
+        lines = [f"ran {progress.finished} of {progress.to_run} points in {duration_text(progress.elapsed_s)} on "
+                 f"{progress.worker_count()} workers ({progress.failed} failed; outcomes: {outcomes}; engines: "
+                 f"{engines}); {progress.already_done - progress.failed_before} were already stored"
+                 + (f"; {progress.unneeded} the count search did not need" if progress.unneeded else "")]
+    else:
+        lines = [f"nothing to run: {progress.already_done - progress.failed_before} of {progress.total} points "
+                 "were already stored"]
     asked = ENGINES.get(progress.engine)
     if asked is not None and asked.fallback and progress.engines.get(asked.fallback):
-        err.print(f"note: some points ran on {asked.fallback} because the {asked.name} engine cannot express "
-                  f"their settings ({asked.cannot})")
+        lines.append(f"note: some points ran on {asked.fallback} because the {asked.name} engine cannot express "
+                     f"their settings ({asked.cannot})")
     single = {name for name in progress.engines if not ENGINES[name].threads}
     if progress.threads > 1 and single:
-        err.print(f"note: points on {', '.join(sorted(single))} ran on one thread: execution.threads = "
-                  f"{progress.threads} applies to the {', '.join(e.name for e in ENGINES.values() if e.threads)} "
-                  "engine only")
+        lines.append(f"note: points on {', '.join(sorted(single))} ran on one thread: execution.threads = "
+                     f"{progress.threads} applies to the {', '.join(e.name for e in ENGINES.values() if e.threads)} "
+                     "engine only")
+    failed = progress.failed + progress.failed_before
+    if progress.failed_before:
+        lines.append(f"{progress.failed_before} points failed in an earlier run and were not run again: "
+                     f"`capsweep status {store} --failed` shows why, `capsweep run {sweep_file} --retry-failed` "
+                     "runs them again")
+    if failed:
+        lines.append(f"store: {store}; next: capsweep status {store} --failed ({failed} failed points)")
+    else:
+        lines.append(f"store: {store}; next: capsweep capacity {store}")
+    return lines
+
+
+def _note(line: str) -> None:
+    """One line on stderr, never wrapped or marked up."""
+    err.print(line, markup=False, highlight=False, soft_wrap=True)
+
+
+_STORE = typer.Argument(..., metavar="STORE", help="Zarr store directory")
+_FORMAT_HELP = "table, csv or json"
+_WIDE_HELP = f"table: show every column (by default all-zero count columns are left out and the table fits " \
+             f"{100} characters)"
 
 
 @app.command()
 @user_errors
 def status(
-    store: Path = typer.Argument(..., help="Zarr store directory"),
-    failed: bool = typer.Option(False, "--failed", help="list each failed point: its labels, id and error line"),
+    store: Path = _STORE,
+    failed: bool = typer.Option(False, "--failed", help="list failed points grouped by error: the error line, then "
+                                "the labels and id of each point that failed with it"),
 ) -> None:
     """Counts of points by every status and by outcome, and the base network's plausibility."""
-    from .query import failed_points, open_store, plausibility, status_counts
+    from .query import failures_by_error, open_store, plausibility, status_counts
 
     ds = open_store(store, "status")
     counts = status_counts(ds)
-    out.print(f"store {store}: sweep {ds.attrs.get(attrs.SWEEP_NAME, '?')!r}, {int(ds['status'].size)} points",
-              markup=False, highlight=False)
-    out.print("status:  " + ", ".join(f"{k} {v}" for k, v in counts["status"].items()), highlight=False)
-    out.print("outcome: " + ", ".join(f"{k} {v}" for k, v in counts["outcome"].items()) + "  (done points)",
-              highlight=False)
+    _say(f"store {store}: sweep {ds.attrs.get(attrs.SWEEP_NAME, '?')!r}, {int(ds['status'].size)} points")
+    _say("status:  " + ", ".join(f"{k} {v}" for k, v in counts["status"].items()))
+    _say("outcome: " + ", ".join(f"{k} {v}" for k, v in counts["outcome"].items()) + "  (done points)")
     if failed:
-        for point in failed_points(ds):
-            labels = " ".join(f"{dim}={value}" for dim, value in point.labels.items())
-            out.print(f"failed {labels} ({point.point_id}): {point.error}", markup=False, highlight=False,
-                      soft_wrap=True)
+        for error, points in failures_by_error(ds).items():
+            _say(f"failed {len(points)}x: {error}")
+            for point in points:
+                labels = " ".join(f"{dim}={value}" for dim, value in point.labels.items())
+                _say(f"  {labels} ({point.point_id})")
     if counts["status"][DONE] == 0:
-        out.print("no point done yet")
+        _say("no point done yet")
         return
     check = plausibility(ds)
-    out.print(
-        f"baseline E rate {check.rate_exc_hz[0]:.2f}-{check.rate_exc_hz[1]:.2f} Hz, "
-        f"I rate {check.rate_inh_hz[0]:.2f}-{check.rate_inh_hz[1]:.2f} Hz, "
-        f"ISI CV {check.isi_cv[0]:.2f}-{check.isi_cv[1]:.2f}"
-    )
+    _say(f"baseline E rate {check.rate_exc_hz[0]:.2f}-{check.rate_exc_hz[1]:.2f} Hz, "
+         f"I rate {check.rate_inh_hz[0]:.2f}-{check.rate_inh_hz[1]:.2f} Hz, "
+         f"ISI CV {check.isi_cv[0]:.2f}-{check.isi_cv[1]:.2f}")
     for warning in check.warnings:
-        out.print(f"warning: {warning}")
+        _say(f"warning: {warning}")
 
 
 SUMMARY_COLUMNS = (
-    "outcome", "recalled_count", "recall_score_min", "runaway_onset_s", "rate_exc_baseline_hz",
+    "status", "success", "outcome", "recalled_count", "recall_score_min", "runaway_onset_s", "rate_exc_baseline_hz",
     "weight_correlation_end", "assembly_contrast_end", "wall_time_s",
 )
+"""Columns of the query table after the sweep dims, most important first (the last ones give way to the width)."""
 
 
 @app.command()
 @user_errors
 def query(
-    store: Path = typer.Argument(..., help="Zarr store directory"),
-    where: str = typer.Option(None, "--where", help='pandas filter, e.g. \'outcome == "stable" and beta > 0\''),
-    fmt: TableFormat = typer.Option(TableFormat.table, "--format", help="table, csv or json"),
-    everything: bool = typer.Option(False, "--all",
-                                    help="drop the default filter (done, stable); --where still applies"),
+    store: Path = _STORE,
+    where: str = typer.Option(None, "--where", metavar="EXPR",
+                              help='pandas filter on the columns, added to the default filter unless --all, e.g. '
+                                   '\'n_odours >= 2 and recall_score_min > 0.6\''),
+    fmt: TableFormat = typer.Option(TableFormat.table, "--format", metavar="FORMAT", help=_FORMAT_HELP),
+    everything: bool = typer.Option(False, "--all", help="drop the default filter (done, stable); --where still "
+                                    "applies"),
+    wide: bool = typer.Option(False, "--wide", help=_WIDE_HELP),
 ) -> None:
-    """List points with their outcome and metrics in sweep order (default: the done, stable ones).
+    """List points with their status, success, outcome and metrics in sweep order (default: the done, stable ones).
 
-    The table names its filter on stderr. Columns of csv and json: the sweep axes in sweep-file order,
-    replicate, point_id, status, the scalar metrics, then per-point summaries. Integers have no decimals;
-    missing values are empty (csv) or null (json). csv: a column with a physical unit (the store's CF units)
-    is headed 'name [unit]' unless its name ends in the unit (wall_time_s). json: one object
-    {"units": {column: unit}, "filter": expression, "rows": [{column: value}, ...]}.
+    The filter applied is stated on stderr in every format. success: the point is done, stable and recalls
+    every assembly (NA unless done). Columns of csv and json: the sweep axes in sweep-file order,
+    replicate, point_id, status, success, the scalar metrics, then per-point summaries. Integers have no
+    decimals; missing values are empty (csv) or null (json). csv: a column with a physical unit (the
+    store's CF units) is headed 'name [unit]' unless its name ends in the unit (wall_time_s). json: one
+    object {"units": {column: unit}, "filter": expression, "rows": [{column: value}, ...]}, as capacity
+    writes it.
     """
-    from .query import active_filter, column_units, open_store, point_table, select, sweep_dims, table_csv, table_json
+    from .capacity import point_success
+    from .query import active_filter, column_units, open_store, point_table, select, sweep_dims
 
     ds = open_store(store, "query")
     expression, description = active_filter(where, everything)
-    rows = select(point_table(ds), expression)
+    rows = select(point_table(ds, point_success(ds)), expression)
+    _note(f"filter: {description}")
     if fmt is TableFormat.table:
-        err.print(f"filter: {description}", markup=False, highlight=False, soft_wrap=True)
-        _emit(rows[[*sweep_dims(ds), *SUMMARY_COLUMNS]], fmt)
+        _table(rows[[*sweep_dims(ds), *SUMMARY_COLUMNS]], sweep_dims(ds), wide, durations=TIMINGS)
         return
-    units = column_units(ds, list(rows.columns))
-    sys.stdout.write(table_csv(rows, units) if fmt is TableFormat.csv else table_json(rows, units, expression))
+    _emit(rows, fmt, column_units(ds, list(rows.columns)), expression)
 
 
 @app.command()
 @user_errors
 def capacity(
-    store: Path = typer.Argument(..., help="Zarr store directory"),
-    min_fraction: float = typer.Option(MIN_FRACTION, "--min-fraction",
+    store: Path = _STORE,
+    min_fraction: float = typer.Option(MIN_FRACTION, "--min-fraction", metavar="F",
                                        help="fraction of replicates in which each count up to capacity must succeed"),
-    per_count: bool = typer.Option(False, "--per-count", help="csv/json: the per-count success table instead"),
-    fmt: TableFormat = typer.Option(TableFormat.table, "--format", help="table, csv or json"),
+    per_count: bool = typer.Option(False, "--per-count", help="only the per-count success table (every format)"),
+    controls: bool = typer.Option(False, "--controls",
+                                  help="csv/json: each control's success per condition instead (control dim)"),
+    fmt: TableFormat = typer.Option(TableFormat.table, "--format", metavar="FORMAT", help=_FORMAT_HELP),
+    wide: bool = typer.Option(False, "--wide", help=_WIDE_HELP),
 ) -> None:
     """Capacity per condition (combination of the other axes): largest assembly count whose every smaller count
     succeeds.
 
-    A point succeeds when it is done, stable and recalls every assembly. The table shows each
-    count's success fraction with its 95 % Wilson interval, then the capacity with the range of
-    the per-replicate capacities; 'at least' marks the top of the grid, NA a condition with pending points.
+    A point succeeds when it is done, stable and recalls every assembly. The table shows each count's
+    success fraction with its 95 % Wilson interval, then the capacity with the range of the per-replicate
+    capacities: 'censored' marks a capacity at the top of the grid (a lower bound), NA a condition with
+    pending points. csv and json write one table (the capacity table, or with --per-count the per-count
+    table); json as {"units", "filter", "rows"}, as query writes it. A store with controls ([controls] in the
+    sweep file) also shows each condition's capacity beside its controls' success, and flags a condition whose
+    sham or unstructured control succeeds beyond chance at the recall test's false-positive rate
+    (detection.recall_alpha); with --controls, csv and json write that table.
     """
     from .capacity import capacity_table, count_dim, scaling_fit, success_table
-    from .query import open_store
+    from .control_table import control_success
+    from .query import open_store, sweep_dims
 
     ds = open_store(store, "capacity")
     table = capacity_table(ds, min_fraction)
+    labels = [d for d in sweep_dims(ds) if d in table.columns or d == count_dim(ds)]
     if fmt is not TableFormat.table:
-        _emit(success_table(ds) if per_count else table, fmt)
+        _emit(success_table(ds) if per_count else control_success(ds) if controls else table, fmt, {}, "")
         return
     _say("success per count (n = done replicates; 95 % Wilson interval; crashed points left out):")
-    _emit(success_table(ds), fmt)
+    _table(success_table(ds), labels, wide, hide_zero=_STATUS_COUNTS)
+    if per_count:
+        return
     _say(f"\ncapacity (every count up to it succeeds in >= {min_fraction:g} of replicates; "
          "range over replicates):")
-    _emit(_capacity_display(table), fmt)
+    _table(_capacity_display(table), labels, wide, hide_zero=_STATUS_COUNTS)
+    _print_controls(control_success(ds), _capacity_display(table), labels)
     fit = scaling_fit(ds)
     if fit is not None:
         _say(f"capacity ~ {fit.prefactor:.3g} x n_exc^b, b = {fit.exponent:.2f} "
@@ -319,41 +362,63 @@ def capacity(
              "after a smaller one failed")
 
 
+def _print_controls(controls: Any, shown: Any, labels: Sequence[str]) -> None:
+    """Each condition's capacity (as ``shown``) beside its ``controls``' success, and one warning per flag."""
+    from .control_table import STAT_COLUMNS, controls_beside
+
+    if controls.empty:
+        return
+    _say("\ncontrols beside each condition (success over every count and replicate, 95 % Wilson interval; "
+         "over_alpha: sham or unstructured succeeding beyond chance at the recall test's false-positive rate):")
+    _table(controls_beside(shown, controls, ("capacity", CENSORED)), labels, wide=True)
+    others = [c for c in controls.columns if c not in (*STAT_COLUMNS, CONTROL_DIM)]
+    for _, row in controls[controls["flagged"]].iterrows():
+        where = ", ".join(f"{c}={row[c]}" for c in others) or "the grid"
+        _say(f"warning: the {row[CONTROL_DIM]} control of {where} succeeds in {row['successes']} of {row['n']} points "
+             f"(95 % Wilson interval {row['wilson_lo']:.3f}-{row['wilson_hi']:.3f}), above the recall test's "
+             f"false-positive rate {row['alpha']:g}: success there does not need the memory or its cue")
+
+
 def _say(line: str) -> None:
-    """One line of the capacity report, never wrapped at the terminal width (so it stays greppable)."""
+    """One line of a report on stdout, never wrapped at the terminal width (so it stays greppable)."""
     out.print(line, highlight=False, markup=False, soft_wrap=True)
 
 
+_STATUS_COUNTS = (PENDING, FAILED, UNNEEDED)
 _CAPACITY_COLUMNS = ("capacity", "capacity_lo", "capacity_hi", "at_least", "non_monotone", "replicates_used",
-                     PENDING, FAILED, UNNEEDED)
+                     *_STATUS_COUNTS)
+CENSORED = "censored"
+"""Column of the shown capacity table: 'lower bound' where the capacity is the top of the count grid."""
 
 
 def _capacity_display(table: Any) -> Any:
-    """The capacity table as shown on screen: 'at least k' at the top of the grid, NA for undecided conditions."""
+    """The capacity table as shown: capacity stays a number, its censoring a column of its own, the replicate range
+    as 'lo-hi'."""
     import pandas as pd
 
     shown = table.drop(columns=["capacity_lo", "capacity_hi", "at_least"])
-    shown["capacity"] = ["NA" if pd.isna(row.capacity) else f"at least {row.capacity}" if row.at_least
-                         else str(row.capacity) for row in table.itertuples()]
-    shown.insert(shown.columns.get_loc("capacity") + 1, "replicate_range",
-                 ["NA" if pd.isna(row.capacity_lo) else f"{row.capacity_lo}-{row.capacity_hi}"
-                  for row in table.itertuples()])
+    at = shown.columns.get_loc("capacity") + 1
+    shown.insert(at, CENSORED, ["lower bound" if row.at_least else "" for row in table.itertuples()])
+    shown.insert(at + 1, "replicate_range", ["NA" if pd.isna(row.capacity_lo) else
+                                             f"{row.capacity_lo}-{row.capacity_hi}" for row in table.itertuples()])
     return shown
 
 
 @app.command()
 @user_errors
 def plot(
-    store: Path = typer.Argument(..., help="Zarr store directory"),
-    out_dir: Path = typer.Option(Path("plots"), "--out", help="folder for the figures (created if missing)"),
-    x: str = typer.Option(None, "--x", help="sweep dim across the stability map (default: the first axis)"),
-    y: str = typer.Option(None, "--y", help="sweep dim up the stability map (default: the first other axis; "
-                          "none: one row)"),
-    capacity_axis: str = typer.Option(None, "--capacity-against",
+    store: Path = _STORE,
+    out_dir: Path = typer.Option(Path("plots"), "--out", metavar="DIR",
+                                 help="folder for the figures (created if missing)"),
+    x: str = typer.Option(None, "--x", metavar="DIM",
+                          help="sweep dim across the stability map (default: the first axis)"),
+    y: str = typer.Option(None, "--y", metavar="DIM", help="sweep dim up the stability map (default: the first "
+                          "other axis; none: one row)"),
+    capacity_axis: str = typer.Option(None, "--capacity-against", metavar="AXIS",
                                       help="axis to draw capacity against (default: every axis but the count)"),
-    formats: list[str] = typer.Option(None, "--format", help="png, svg or pdf; repeat or comma-separate "
-                                      "(default: png)"),
-    dpi: int = typer.Option(None, "--dpi", help="resolution of PNG files, dots per inch (default: 200)"),
+    formats: list[str] = typer.Option(None, "--format", metavar="FORMAT",
+                                      help="png, svg or pdf; repeat or comma-separate (default: png)"),
+    dpi: int = typer.Option(None, "--dpi", metavar="N", help="resolution of PNG files, dots per inch (default: 200)"),
 ) -> None:
     """Write figures: stability map, capacity curves and against each axis, recall per assembly, prediction
     against simulation, rate traces with the protocol shaded, weight drift."""
@@ -370,15 +435,18 @@ def plot(
 @app.command()
 @user_errors
 def export(
-    store: Path = typer.Argument(..., help="Zarr store directory"),
-    netcdf: Path = typer.Option(None, "--netcdf", help="new netCDF-4 file: the whole store, CF conventions"),
-    csv: Path = typer.Option(None, "--csv", help="new CSV file: every point, columns as `query --format csv`"),
+    store: Path = _STORE,
+    netcdf: Path = typer.Option(None, "--netcdf", metavar="FILE",
+                                help="new netCDF-4 file: the whole store, CF conventions"),
+    csv: Path = typer.Option(None, "--csv", metavar="FILE",
+                             help="new CSV file: every point, columns as `query --all --format csv`"),
 ) -> None:
-    """Write the store for other tools; existing files are never overwritten.
+    """Write the store for other tools; folders are created as needed, existing files never overwritten.
 
     --netcdf writes every variable with its CF metadata (checked with the IOOS compliance checker's CF
     suite); text axes become an index with the values in '<axis>_value'. --csv writes the point table of
-    every point, with units in the headers as `capsweep query --format csv` writes them.
+    every point, with units in the headers as `capsweep query --format csv` writes them. Each file is
+    written even if the other cannot be; each fault is one error line.
     """
     from .export import write_csv, write_netcdf
     from .query import open_store
@@ -386,32 +454,42 @@ def export(
     if netcdf is None and csv is None:
         raise CapsweepError("capsweep export needs --netcdf FILE, --csv FILE or both")
     ds = open_store(store, "export")
+    writers: list[tuple[Path, Callable[[], None]]] = []
     if netcdf is not None:
-        write_netcdf(ds, store, netcdf)
-        out.print(str(netcdf), markup=False, highlight=False)
+        writers.append((netcdf, lambda: write_netcdf(ds, store, netcdf)))
     if csv is not None:
-        write_csv(ds, csv)
-        out.print(str(csv), markup=False, highlight=False)
+        writers.append((csv, lambda: write_csv(ds, csv)))
+    faults = []
+    for path, write in writers:
+        try:
+            write()
+            _say(str(path))
+        except CapsweepError as exc:
+            faults.append(exc)
+            _note(f"capsweep: error: {exc}")
+    if faults:
+        raise typer.Exit(faults[0].exit_code)
 
 
 @app.command("prescreen")
 @user_errors
 def prescreen_command(
-    sweep_file: Path = typer.Argument(..., help="TOML sweep file"),
-    plots: Path = typer.Option(None, "--plots", help="folder for transfer-curve and drift-curve PNGs per grid point"),
-    workers: int = typer.Option(None, "--workers", min=1, help="local Dask worker processes"),
-    scheduler: str = typer.Option(None, "--scheduler", help="address of a running Dask scheduler"),
-    cluster: str = typer.Option(None, "--cluster", help=_CLUSTER_HELP),
+    sweep_file: Path = typer.Argument(..., metavar="SWEEP", help="TOML sweep file"),
+    plots: Path = typer.Option(None, "--plots", metavar="DIR",
+                               help="folder for transfer-curve and drift-curve PNGs per grid point"),
+    workers: int = typer.Option(None, "--workers", min=1, metavar="N", help="local Dask worker processes"),
+    scheduler: str = typer.Option(None, "--scheduler", metavar="ADDR", help="address of a running Dask scheduler"),
+    cluster: str = typer.Option(None, "--cluster", metavar="KIND", help=_CLUSTER_HELP),
     cluster_set: list[str] = typer.Option(None, "--cluster-set", metavar="NAME=VALUE", help=_CLUSTER_SET_HELP),
-    fmt: TableFormat = typer.Option(TableFormat.table, "--format", help="table, csv or json"),
-    against: Path = typer.Option(None, "--against",
+    fmt: TableFormat = typer.Option(TableFormat.table, "--format", metavar="FORMAT", help=_FORMAT_HELP),
+    against: Path = typer.Option(None, "--against", metavar="STORE",
                                  help="store this sweep ran into: print agreement with it and write a PNG "
                                       "(into --plots, else next to the store)"),
 ) -> None:
-    r"""Predict each grid point's outcome without simulating: a surrogate fitted to simulations, built on
+    """Predict each grid point's outcome without simulating: a surrogate fitted to simulations, built on
     mean-field quantities. Also each condition's stability bound (the largest count up to which every count is
     predicted stable; recall does not enter). Points outside the surrogate's calibration box are named in a
-    warning. Runs on the sweep's \[execution.cluster] like `capsweep run`."""
+    warning. Runs on the sweep's [execution.cluster] like `capsweep run`."""
     from .prescreen import (
         OUTSIDE_CALIBRATION,
         agreement_plot_path,
@@ -464,35 +542,42 @@ def _warn_outside_calibration(table: Any, column: str) -> None:
 
 @app.command()
 @user_errors
-def check(sweep_file: Path = typer.Argument(..., help="TOML sweep file")) -> None:
-    r"""Validate SWEEP_FILE and show its grid, distinct builds and simulated time, without simulating anything.
+def check(sweep_file: Path = typer.Argument(..., metavar="SWEEP", help="TOML sweep file")) -> None:
+    """Validate SWEEP and show its grid, the engine of each distinct build and the simulated time, without
+    simulating anything.
 
-    A value outside its key's plausible range (a likely unit slip) prints a warning and is still accepted.
-    To silence it, list the key in the sweep file: \[sweep] quiet_warnings = ["protocol.hold_s"].
-    `capsweep keys` shows every key's allowed and plausible range.
+    Keys that contradict each other (assemblies.size beside a coding level, initial weights above w_max)
+    are refused. A value outside its key's plausible range (a likely unit slip) prints a warning and is
+    still accepted; to silence it, list the key in the sweep file: [sweep] quiet_warnings =
+    ["protocol.hold_s"]. `capsweep keys` shows every key's allowed and plausible range.
     """
     from .sweepfile import load_sweep
-    from .workload import workload
+    from .workload import engine_plan, workload
 
     sweep = load_sweep(sweep_file)
     work = workload(sweep)
     _say(f"{sweep_file}: valid; sweep {sweep.name!r}, store {sweep.store}")
     _print_workload(work)
+    for build in engine_plan(work.grid):
+        _say(f"  {build.describe()}")
 
 
 def _print_workload(work: Any) -> None:
     """A workload.Workload: points by axis and replicates, each axis's values, builds and simulated time."""
+    from .tables import duration_text
+
     axes = " x ".join(f"{name} {len(values)}" for name, values in work.axes.items()) or "no axes"
-    _say(f"{len(work.points)} points: {axes} x {work.replicates} replicates")
+    _say(f"{work.n_points} points: {axes} x {work.replicates} replicates")
     for name, values in work.axes.items():
         _say(f"  {name}: {', '.join(map(str, values))}")
-    _say(f"distinct network builds: {work.builds}; simulated time in all: {work.simulated_s:.0f} s")
+    _say(f"simulated time in all: {duration_text(work.simulated_s)}; distinct network builds: {work.builds}")
 
 
 @app.command()
 @user_errors
 def keys(
-    table: str = typer.Option(None, "--table", help="only the keys under this table, e.g. plasticity.triplet"),
+    table: str = typer.Option(None, "--table", metavar="TABLE",
+                              help="only the keys under this table, e.g. plasticity.triplet"),
     markdown: bool = typer.Option(False, "--markdown", help="a markdown table (as in the README)"),
 ) -> None:
     """Every sweep-file key: default, unit, allowed values (and plausible range), description."""
@@ -505,8 +590,9 @@ def keys(
 @app.command("examples")
 @user_errors
 def examples_command(
-    name: str = typer.Argument(None, help="the example to copy (without it: list the examples)"),
-    to: Path = typer.Option(Path("."), "--to", help="folder to copy the example into"),
+    name: str = typer.Argument(None, metavar="NAME", help="the example to copy (without it: list the examples)"),
+    to: Path = typer.Option(Path("."), "--to", metavar="DIR", help="folder to copy the example into (created if "
+                            "missing)"),
 ) -> None:
     """List the example sweep files shipped with capsweep, or copy example NAME into the working directory."""
     from .reference import copy_example, example_summary, examples
@@ -525,28 +611,37 @@ def examples_command(
 @app.command()
 @user_errors
 def estimate(
-    sweep_file: Path = typer.Argument(..., help="TOML sweep file"),
-    workers: int = typer.Option(None, "--workers", min=1, help="worker count to estimate for"),
-    engine: str = typer.Option(None, "--engine", help=f"engine to estimate for: {', '.join(NAMES)}"),
+    sweep_file: Path = typer.Argument(..., metavar="SWEEP", help="TOML sweep file"),
+    workers: int = typer.Option(None, "--workers", min=1, metavar="N", help="worker count to estimate for"),
+    engine: str = typer.Option(None, "--engine", metavar="NAME", help=f"engine to estimate for: {', '.join(NAMES)}"),
 ) -> None:
-    """Show the expanded grid, distinct builds and an estimated wall time (calibrated by probe runs)."""
+    """Show the expanded grid, distinct builds and an estimated wall time from this machine's cost model.
+
+    The model (kept in $CAPSWEEP_COST_FILE, default ~/.cache/capsweep/costs.json) learns from the sweep's store when
+    it holds done points, and probes a network size it does not cover yet (a few short runs, once per size).
+    """
+    from .costs import cost_file
+    from .tables import duration_text
     from .workload import estimate_sweep
 
     _check_engine(engine)
     result = estimate_sweep(sweep_file, workers, engine,
                             on_probe=lambda n: err.print(f"probing a network of {n} E cells ..."))
     _print_workload(result.workload)
-    for size, cost in sorted(result.costs.items()):
-        out.print(f"  N_E {size}: {cost.per_sim_s:.2f} s wall per simulated s + {cost.overhead_s:.1f} s per point "
-                  f"({result.engine})", highlight=False)
-    out.print(f"estimated wall time on {result.workers} workers: {_duration(result.estimate_s)} "
-              "(upper bound: points that run away stop early)", highlight=False)
-
-
-def _duration(seconds: float) -> str:
-    minutes, secs = divmod(int(round(seconds)), 60)
-    hours, minutes = divmod(minutes, 60)
-    return f"{hours} h {minutes:02d} min" if hours else f"{minutes} min {secs:02d} s"
+    measured = result.measured
+    if measured is not None:
+        out.print(f"measured: {measured.points} done points took {measured.measured_s:.1f} s (set-up + run); the cost "
+                  f"model without them gave {measured.estimated_s:.1f} s ({measured.error:+.0%})",
+                  highlight=False)
+    for size, entry in sorted(result.model.sizes.items()):
+        cost = entry.cost
+        out.print(f"  N_E {size}: {cost.per_sim_s:.3f} s wall per simulated s + {cost.overhead_s:.2f} s per point "
+                  f"({result.engine}; {entry.source}, {entry.on})", markup=False, highlight=False)
+    compiles = (f"; {result.uncompiled} build(s) to compile, {result.model.compile_s:.0f} s each"
+                if result.uncompiled else "")
+    out.print(f"estimated wall time on {result.workers} workers: {duration_text(result.estimate_s)} "
+              f"(upper bound: points that run away stop early{compiles}); cost model: {cost_file()}",
+              markup=False, highlight=False)
 
 
 def _check_engine(engine: str | None) -> None:
@@ -554,27 +649,71 @@ def _check_engine(engine: str | None) -> None:
         raise CapsweepError(f"--engine {engine!r} is not allowed: expected one of {', '.join(NAMES)}")
 
 
-@app.command("trim-builds")
+@app.command()
 @user_errors
-def trim_builds_command(
-    max_mib: float = typer.Option(2048.0, "--max-mib", min=0.0, help="disk the build cache may keep, MiB"),
+def replay(
+    store: Path = _STORE,
+    point_id: str = typer.Argument(..., metavar="POINT_ID",
+                                   help="the point to rerun (the point_id column of `query --all --format csv`)"),
+    out_dir: Path = typer.Option(Path("replays"), "--out", metavar="DIR",
+                                 help="folder for the figures and the NWB file (created if missing)"),
 ) -> None:
-    """Remove least-recently-used compiled builds until the cache fits in --max-mib."""
+    """Rerun one done point with its own seeds on the engine that ran it, check that it reproduces its stored
+    metrics exactly, and write its spike raster, population and assembly rates and E->E weight matrices as PNG
+    figures and its spikes as an NWB file (readable with pynwb). Exits 1 if a stored metric is not reproduced.
+    """
+    from .outputs import check_folder
+    from .replay import replay as rerun
+    from .replay import summary, write_outputs
+
+    check_folder(out_dir, "--out")
+    run = rerun(store, point_id)
+    for line in summary(run):
+        _say(line)
+    for path in write_outputs(run, out_dir):
+        _say(str(path))
+    if run.differing:
+        raise typer.Exit(1)
+
+
+@app.command("shrink-builds")
+@user_errors
+def shrink_builds_command(
+    to_mib: float = typer.Option(2048.0, "--to-mib", min=0.0, metavar="M",
+                                 help="size the build cache may keep, MiB"),
+) -> None:
+    """Remove the compiled builds used longest ago until the build cache takes at most --to-mib MiB."""
     from ..runners.builds import build_root, prune_builds
 
-    removed = prune_builds(int(max_mib * 2**20))
-    out.print(f"removed {removed} builds from {build_root()}", markup=False, highlight=False)
+    removed = prune_builds(int(to_mib * 2**20))
+    _say(f"removed {removed} builds from {build_root()}")
 
 
-def _emit(frame: Any, fmt: TableFormat) -> None:
+def _emit(frame: Any, fmt: TableFormat, units: dict[str, str] | None = None, where: str = "") -> None:
+    """``frame`` as csv, json (``{"units", "filter", "rows"}``) or a table with every column."""
+    from .query import table_csv, table_json
+
     if fmt is TableFormat.csv:
-        sys.stdout.write(frame.to_csv(index=False))
+        sys.stdout.write(table_csv(frame, units or {}))
     elif fmt is TableFormat.json:
-        sys.stdout.write(frame.to_json(orient="records", indent=1) + "\n")
-    elif frame.empty:
-        out.print("no matching points")
+        sys.stdout.write(table_json(frame, units or {}, where))
     else:
-        sys.stdout.write(frame.to_string(index=False, float_format=lambda x: f"{x:.3g}") + "\n")
+        _table(frame, [], wide=True)
+
+
+def _table(frame: Any, labels: Sequence[str], wide: bool, hide_zero: Sequence[str] = (),
+           durations: Sequence[str] = ()) -> None:
+    """``frame`` as an aligned table on stdout (:func:`capsweep.sweeps.tables.render`); what was left out on
+    stderr."""
+    from .tables import render
+
+    if frame.empty:
+        _say("no matching points")
+        return
+    shown = render(frame, keep=labels, hide_zero=hide_zero, durations=durations, wide=wide)
+    sys.stdout.write(shown.text)
+    if shown.note():
+        _note(shown.note())
 
 
 def main() -> None:

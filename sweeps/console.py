@@ -8,6 +8,10 @@ key registry: 0.1-0.3 s of imports) keeps that cost off every worker's start.
 
 from __future__ import annotations
 
+from ..interrupts import ignore_interrupts_if_spawned
+
+ignore_interrupts_if_spawned()
+
 
 def main() -> None:
     """Run the command line (see :func:`capsweep.sweeps.cli.main`)."""

@@ -21,23 +21,26 @@ import shlex
 import signal
 import sys
 import threading
+from collections import deque
 from collections.abc import Callable, Iterable, Iterator, Mapping
 from concurrent.futures import Future, ThreadPoolExecutor
 from pathlib import Path
 from types import ModuleType
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import dask
+import numpy as np
 from dask.distributed import Client, KilledWorker, LocalCluster, as_completed
 
 from ..clusters import SCHEDULER, cluster_kind
-from ..engines import engine
 from ..errors import CapsweepError, ConfigError
 from ..registry import BY_PATH, lookup, overlay, with_execution
-from ..runners.builds import BUILD_DIR_ENV, build_key, build_root
-from ..runners.protocol import total_duration_s
+from ..runners.builds import BUILD_DIR_ENV, build_root
 from ..runners.task import WORKER_PRELOAD, PrepareWorker, TaskFailure
-from .identity import Point
+from .ids import Point
+
+if TYPE_CHECKING:
+    from .expand import Grid
 
 Job = tuple[Any, tuple[Any, ...]]
 """A task to run: (tag the caller gets back, the task function's arguments)."""
@@ -67,6 +70,11 @@ CLUSTER_SETTINGS = {
   an unknown task is 0.5 s): adaptive scaling of batch jobs then asks for a worker per remaining
   point (up to ``execution.cluster.max_jobs``) from the start instead of one.
 """
+
+
+QUIET_HTTP_ADDRESS = "127.0.0.1:0"
+"""Where a local scheduler without dashboard serves its small HTTP endpoint (health, metrics): any free port on
+this host. Dask's default, port 8787, warns whenever another Dask cluster on the machine holds it."""
 
 
 def cluster_table(cluster: Mapping[str, Any] | None = None) -> dict[str, Any]:
@@ -122,6 +130,7 @@ def dask_client(workers: int, scheduler: str = "", dashboard: bool = False,
     else:
         with dask.config.set({**CLUSTER_SETTINGS, **_fault_settings(table)}), LocalCluster(
             n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=":0" if dashboard else None,
+            scheduler_kwargs={} if dashboard else {"dashboard_address": QUIET_HTTP_ADDRESS},
             silence_logs=50, preload=[WORKER_PRELOAD],
         ) as local, contextlib.closing(Client(local)) as client:
             client.register_plugin(PrepareWorker(leave_fast=True))
@@ -251,9 +260,11 @@ class EarlyClient:
     def __init__(self, workers: int, scheduler: str = "", dashboard: bool = False,
                  cluster: Mapping[str, Any] | None = None) -> None:
         self._context = dask_client(workers, scheduler, dashboard, cluster)
-        kind = cluster_kind(cluster_table(cluster)["kind"])
+        table = cluster_table(cluster)
+        kind = cluster_kind(table["kind"])
         if kind.batch:
             jobqueue_module(kind.name)
+        self._planned_slots = table["max_jobs"] * table["cores"] if kind.batch else None if scheduler else workers
         self.has_dashboard = dashboard or (bool(scheduler) and not kind.batch)  # a running one serves one
         self._stack = contextlib.ExitStack()
         self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="capsweep-dask-start")
@@ -268,6 +279,13 @@ class EarlyClient:
     def client(self) -> Client:
         """The started client; raises what starting it raised (e.g. an unreachable scheduler)."""
         return self.start().result()
+
+    def slots(self) -> int:
+        """Worker threads the cluster has or may grow to: local workers, batch jobs x cores each, or those of an
+        attached scheduler's workers now (the client is started first)."""
+        if self._planned_slots is not None:
+            return int(self._planned_slots)
+        return sum(self.client().nthreads().values())
 
     def worker_count(self) -> int:
         """Workers connected now; 0 before the client has started. Any thread may ask (a progress view does)."""
@@ -290,32 +308,50 @@ class EarlyClient:
         self._stack.close()
 
 
+MIN_WINDOW = 512
+"""Fewest tasks :func:`run_tasks` keeps in flight (more on a cluster with more worker threads: :func:`task_window`)."""
+
+
+def task_window(slots: int) -> int:
+    """Tasks to keep in flight for ``slots`` worker threads: twice as many (a queued task per thread while each
+    runs one), at least :data:`MIN_WINDOW` (batch jobs scale adaptively to the tasks the scheduler sees)."""
+    return max(MIN_WINDOW, 2 * slots)
+
+
 def run_tasks(
     client: Client,
     task: Callable[..., Any],
     jobs: Iterable[Job],
     follow_up: Callable[[Any, Any], Iterable[Job]] = lambda tag, result: (),
+    window: int = MIN_WINDOW,
 ) -> Iterator[tuple[Any, Any]]:
     """Submit ``task(*args)`` for each ``(tag, args)`` job and yield ``(tag, result)`` as each finishes.
 
-    After the caller has taken a result, ``follow_up(tag, result)`` may return more jobs, which
-    are submitted at once (an adaptive search decides its next points this way); the iteration
-    ends when nothing is left in flight. Tasks carry ``pure=False`` so that repeated submissions
-    are never merged. A task whose worker died is rerun elsewhere by the scheduler (at most
-    ``execution.cluster.max_tries`` tries, its ``allowed-failures``); it is yielded once, after the
-    try that finished it, or as a TaskFailure when every try lost its worker. Results come back in
-    completion order.
+    At most ``window`` tasks are in flight: ``jobs`` is read lazily, a job submitted as an earlier
+    one's result is taken, so the client's memory and the scheduler's load do not grow with the
+    sweep. After the caller has taken a result, ``follow_up(tag, result)`` may return more jobs,
+    which go before the rest of ``jobs`` (an adaptive search decides its next points this way); the
+    iteration ends when nothing is left to submit or in flight. Tasks carry ``pure=False`` so that
+    repeated submissions are never merged. A task whose worker died is rerun elsewhere by the
+    scheduler (at most ``execution.cluster.max_tries`` tries, its ``allowed-failures``); it is
+    yielded once, after the try that finished it, or as a TaskFailure when every try lost its
+    worker. Results come back in completion order.
     """
     futures: dict[Any, Any] = {}  # dask future -> tag
     finished = as_completed()
+    source, follow_ups = iter(jobs), deque[Job]()
 
-    def submit(batch: Iterable[Job]) -> None:
-        for tag, args in batch:
+    def refill() -> None:
+        while len(futures) < window:
+            job = follow_ups.popleft() if follow_ups else next(source, None)
+            if job is None:
+                return
+            tag, args = job
             future = client.submit(task, *args, pure=False)
             futures[future] = tag
             finished.add(future)
 
-    submit(jobs)
+    refill()
     try:
         for future in finished:
             tag = futures.pop(future)
@@ -327,45 +363,38 @@ def run_tasks(
             except Exception as exc:  # a failed point, not a dead sweep
                 result = TaskFailure(f"worker lost: {type(exc).__name__}: {exc}")
             yield tag, result
-            submit(follow_up(tag, result))
+            follow_ups.extend(follow_up(tag, result))
+            refill()
     finally:
         for future in futures:
             future.cancel()
 
 
-def point_jobs(points: Iterable[Point], engine: str | None = None, prescreen: bool | None = None) -> list[Job]:
-    """The ``simulate_task`` jobs of ``points``: (point, (config, seed, wiring seed)), each config with the
-    command line's ``engine`` and ``prescreen`` over its ``[execution]`` entries when given."""
-    return [(p, (with_execution(p.config, engine=engine, prescreen=prescreen), p.seed, p.wiring_seed)) for p in points]
+def point_jobs(points: Iterable[Point], engine: str | None = None, prescreen: bool | None = None) -> Iterator[Job]:
+    """The ``simulate_task`` jobs of ``points`` (made as they are read): (point, (config, seed, wiring seed)), each
+    config with the command line's ``engine`` and ``prescreen`` over its ``[execution]`` entries when given."""
+    for p in points:
+        yield p, (with_execution(p.config, engine=engine, prescreen=prescreen), p.seed, p.wiring_seed)
 
 
-def submission_order(config: dict[str, Any]) -> tuple[str, float]:
-    """Sort key of a point task with config ``config``: its compiled-build key ('' unless standalone), then longest
-    planned run first.
+def submission_sequence(grid: Grid, indices: np.ndarray, engine: str | None = None) -> np.ndarray:
+    """The flat point indices ``indices`` of ``grid`` in the order to submit them: one point of every compiled build
+    first, then the rest grouped by build, longest planned run first within a build (then in grid order).
 
-    Grouping by build lets each worker rerun one compiled binary many times before it has to
-    switch; longest-first within a group (Dask hands out tasks in submission order) leaves the
-    short points for the end, so the workers finish close together.
+    Dask hands out tasks in submission order. Grouping by build lets each worker rerun one compiled
+    binary many times before it has to switch; longest-first within a group leaves the short points
+    for the end, so the workers finish close together. With several builds (network sizes) the
+    first tasks go to different workers, each compiling a different build at the same time (the
+    compile lock is per build key) instead of waiting for the one compile of a build its neighbour
+    holds. Points of engines without builds keep longest first alone. Build keys and durations are
+    computed once per combination of the axes they depend on.
     """
-    group = build_key(config) if engine(config["execution"]["engine"]).reuses_builds else ""
-    return group, -total_duration_s(config)
-
-
-def submission_sequence(jobs: list[Job]) -> list[Job]:
-    """Point tasks ``(tag, (config, ...))`` in the order to submit them: one point of every compiled build first,
-    then the rest by build.
-
-    Dask hands out tasks in submission order, so with several builds (network sizes) the first
-    tasks go to different workers and each compiles a different build at the same time (the compile
-    lock is per build key) instead of waiting for the one compile of a build its neighbour holds;
-    the remaining points follow grouped by build (:func:`submission_order`). Jobs of engines without
-    builds keep :func:`submission_order` alone.
-    """
-    keyed = sorted(((submission_order(job[1][0]), i) for i, job in enumerate(jobs)))  # each build key hashed once
-    leaders: dict[str, int] = {}
-    for (group, _), i in keyed:
-        if group:
-            leaders.setdefault(group, i)
-    first = sorted(leaders.values(), key=lambda i: -total_duration_s(jobs[i][1][0]))
-    chosen = set(first)
-    return [jobs[i] for i in first] + [jobs[i] for _, i in keyed if i not in chosen]
+    indices = np.asarray(indices, dtype=np.int64)
+    cells = indices // grid.shape[-1]
+    names, rank = np.unique(np.asarray(grid.build_keys(engine)).ravel(), return_inverse=True)
+    group, duration = rank[cells], np.asarray(grid.durations()).ravel()[cells]
+    order = np.lexsort((indices, -duration, group))
+    starts = np.flatnonzero(np.diff(group[order], prepend=-1))  # first position of each build in that order
+    starts = starts[names[group[order][starts]] != ""]
+    leaders = starts[np.argsort(-duration[order][starts], kind="stable")]
+    return np.concatenate([indices[order][leaders], np.delete(indices[order], leaders)])

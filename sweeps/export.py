@@ -10,7 +10,6 @@ must be both), and capsweep's relative weight unit becomes "1" with a comment.
 
 from __future__ import annotations
 
-import importlib.util
 import json
 from datetime import UTC, datetime
 from pathlib import Path
@@ -19,8 +18,9 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
-from ..errors import CapsweepError
 from ..results_schema import attrs
+from .capacity import point_success
+from .outputs import fault, new_file
 from .query import axis_keys, column_units, point_table, table_csv
 
 # Units of the store that UDUNITS does not know: CF unit to write and the comment that says what it means.
@@ -31,31 +31,34 @@ AXIS_VALUE_SUFFIX = "_value"
 
 
 def write_netcdf(ds: xr.Dataset, source: Path, path: Path) -> None:
-    """Write the whole store ``ds`` (opened from ``source``) as a CF netCDF-4 file at ``path`` (a new file).
+    """Write the whole store ``ds`` (opened from ``source``) as a CF netCDF-4 file at ``path`` (a new file; its
+    folder is created if missing), through h5netcdf (pure Python on h5py, installed with capsweep).
 
-    Raises CapsweepError if ``path`` exists or the netCDF4 package is missing.
+    Raises CapsweepError if ``path`` exists or cannot be written.
     """
-    _refuse_existing(path)
-    if importlib.util.find_spec("netCDF4") is None:
-        raise CapsweepError("--netcdf needs the netCDF4 package: pip install netCDF4")
+    new_file(path, "--netcdf")
     partial = path.with_name(path.name + ".partial")
     try:
-        netcdf_dataset(ds, f"capsweep export: {source} -> {path}").to_netcdf(partial, engine="netcdf4",
+        netcdf_dataset(ds, f"capsweep export: {source} -> {path}").to_netcdf(partial, engine="h5netcdf",
                                                                              format="NETCDF4")
         partial.rename(path)
+    except OSError as exc:
+        raise fault(path, exc) from None
     finally:
         partial.unlink(missing_ok=True)
 
 
 def write_csv(ds: xr.Dataset, path: Path) -> None:
-    """Write every point of ``ds`` as CSV at ``path`` (a new file), headers with units as ``query`` writes them."""
-    frame = point_table(ds)
+    """Write every point of ``ds`` as CSV at ``path`` (a new file; its folder is created if missing), columns as
+    ``query --all --format csv`` writes them."""
+    frame = point_table(ds, point_success(ds))
     text = table_csv(frame, column_units(ds, list(frame.columns)))
+    new_file(path, "--csv")
     try:
         with path.open("x") as handle:
             handle.write(text)
-    except FileExistsError:
-        _refuse_existing(path)
+    except OSError as exc:
+        raise fault(path, exc) from None
 
 
 def netcdf_dataset(ds: xr.Dataset, history_line: str) -> xr.Dataset:
@@ -112,7 +115,3 @@ def _netcdf_attr(value: Any) -> Any:
         return np.asarray(value)
     return json.dumps(value)
 
-
-def _refuse_existing(path: Path) -> None:
-    if path.exists():
-        raise CapsweepError(f"{path} already exists; capsweep export never overwrites a file: choose another path")

@@ -1,11 +1,14 @@
-"""What identifies a point and a store: point ids and seeds, the grid fingerprint, the store's layout and record,
-and whether an existing store may take this sweep (open it, lay it out, grow it, or refuse).
+"""What identifies a store: the grid fingerprint, the store's layout and record, and whether an existing store may
+take this sweep (open it, lay it out, grow it, or refuse).
 
-A point's id is a hash of its fully resolved config (execution settings excluded) and its replicate
-number; its seed derives from ``base_seed`` and that id, so results never depend on execution order or
-worker count. The grid's fingerprint hashes everything that fixes the grid. A store holds the fingerprint
-and the record of the sweep that made it (:func:`capsweep.results_schema.attrs.sweep_record`); a sweep
-that only appends axis values or replicates grows it, any other change is refused with one line.
+The grid's fingerprint hashes everything that fixes the grid, the base config as its id entries on the
+store's defaults table (:mod:`capsweep.sweeps.ids`), so a key added to the registry at its default
+leaves it unchanged. A store records the sweep that made it and what its ids rest on: the defaults
+table, the resolved base config and the axes' settings. An existing store's ids stay relative to the
+table it recorded (:func:`~capsweep.sweeps.ids.store_basis`). A default that changed since and that
+the store's sweep took must be set in the sweep file to its old value to resume or grow the store
+(:func:`default_change`). A sweep that only appends axis values or replicates grows a store; any other
+change is refused with one line.
 """
 
 from __future__ import annotations
@@ -15,7 +18,7 @@ import hashlib
 import json
 import math
 import warnings
-from dataclasses import dataclass
+from collections.abc import Mapping
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -24,60 +27,31 @@ import numpy as np
 from ..axes import Axis
 from ..errors import ConfigError, StoreError
 from ..locks import store_lock
-from ..registry import ImplausibleValue
+from ..registry import ImplausibleValue, defaults, resolve_derived
 from ..results_schema import attrs
 from ..results_schema.layout import GridSpec
-from ..runners.protocol import total_duration_s
+from .ids import EXECUTION, id_entries, identity_defaults, store_basis
 from .success import MIN_FRACTION
 from .sweepfile import PRESCREEN_START, Sweep, parse_sweep
 
 if TYPE_CHECKING:
     from ..results_schema.store import ResultStore
+    from .expand import Grid
+
+def science(flat: Mapping[str, Any]) -> dict[str, Any]:
+    """The entries of a flat config outside ``[execution]`` (execution settings never enter an id), sorted."""
+    return {k: v for k, v in sorted(flat.items()) if not k.startswith(EXECUTION)}
 
 
-@dataclass(frozen=True)
-class Point:
-    """One simulation of the sweep."""
-
-    index: tuple[int, ...]  # position along each axis, then the replicate number
-    labels: dict[str, Any]  # axis name -> value, plus the replicate (capsweep.axes.REPLICATE)
-    config: dict[str, Any]  # nested, fully resolved config
-    point_id: str
-    seed: int  # noise, initial voltages, cued members
-    wiring_seed: int  # connectivity and membership: shared by every point of one replicate (paired design)
-
-
-def identity_config(flat: dict[str, Any]) -> dict[str, Any]:
-    """The part of a flat config that defines a point's science (execution settings left out)."""
-    return {k: v for k, v in sorted(flat.items()) if not k.startswith("execution.")}
-
-
-def point_id(flat: dict[str, Any], replicate: int) -> str:
-    """16-hex-digit id: SHA-256 of the resolved science config and the replicate number."""
-    # "replicate" is part of the hashed text, spelled out: renaming the dim must not change any stored id.
-    blob = json.dumps({"config": identity_config(flat), "replicate": replicate}, sort_keys=True)
-    return hashlib.sha256(blob.encode()).hexdigest()[:16]
-
-
-def point_seed(base_seed: int, pid: str) -> int:
-    """Seed in [0, 2**31) derived from ``base_seed`` and the point id."""
-    digest = hashlib.sha256(f"{base_seed}/{pid}".encode()).digest()
-    return int.from_bytes(digest[:4], "little") & 0x7FFFFFFF
-
-
-def grid_shape(sweep: Sweep) -> tuple[int, ...]:
-    """Number of entries along each axis, then replicates."""
-    return tuple(len(a.values) for a in sweep.axes) + (sweep.replicates,)
-
-
-def fingerprint(sweep: Sweep) -> str:
-    """Hash of everything that fixes the grid: axes, replicates, base seed, base science config, count search."""
+def fingerprint(sweep: Sweep, basis: Mapping[str, Any] | None = None) -> str:
+    """Hash of everything that fixes the grid: axes, replicates, base seed, the base config's :func:`id_entries` on
+    ``basis`` (default: today's table), count search."""
     identity: dict[str, Any] = {
         "axes": [[a.name, a.key, list(a.values)] for a in sweep.axes],
         "variants": sweep.variants,
         "replicates": sweep.replicates,
         "base_seed": sweep.base_seed,
-        "base": identity_config(sweep.base),
+        "base": id_entries(sweep.base, identity_defaults() if basis is None else basis),
     }
     if sweep.search is not None:  # only then, so that stores of grids without a search keep their fingerprint
         identity["search"] = dataclasses.asdict(sweep.search)
@@ -85,81 +59,113 @@ def fingerprint(sweep: Sweep) -> str:
     return hashlib.sha256(blob.encode()).hexdigest()[:16]
 
 
-def grid_spec(sweep: Sweep, points: list[Point]) -> GridSpec:
-    """Store layout of ``sweep``: axes, replicates and inner-dim sizes over all ``points``, and the sweep's record."""
+def grid_spec(grid: Grid) -> GridSpec:
+    """Store layout of ``grid``: axes, replicates and inner-dim sizes over all its points, and the sweep's record."""
+    sweep = grid.sweep
     bin_s = sweep.base["detection.trace_bin_ms"] / 1000.0
-    longest = max(total_duration_s(p.config) for p in points)
+    longest = float(np.max(grid.durations()))
+    counts = grid.over(("assemblies.count",), lambda flat: flat["assemblies.count"], np.int64)
     return GridSpec(
         axes=sweep.axes,
         replicates=sweep.replicates,
-        n_assembly=max(1, max(p.config["assemblies"]["count"] for p in points)),
+        n_assembly=max(1, int(np.max(counts))),
         n_snapshot=sweep.base["protocol.snapshots"],
         n_retention=len(sweep.base["protocol.retention_delays_s"]) + 1,
         n_time_bin=int(math.ceil(longest / bin_s - 1e-9)),
         time_bin_s=bin_s,
-        fingerprint=fingerprint(sweep),
-        attrs=_record(sweep),
+        fingerprint=fingerprint(sweep, grid.basis),
+        attrs=_record(sweep, grid.basis),
     )
 
 
-def _record(sweep: Sweep) -> dict[str, Any]:
-    """The store's record of ``sweep``; a count search is recorded with its first probe and the pass fraction."""
+def _record(sweep: Sweep, basis: Mapping[str, Any]) -> dict[str, Any]:
+    """The store's record of ``sweep``: the sweep record (a count search with its first probe and the pass
+    fraction) and what its ids rest on (defaults table, resolved base config, axis settings)."""
     search = None if sweep.search is None else {
         "axis": sweep.search.axis, "method": sweep.search.method,
         "start": PRESCREEN_START if sweep.search.start is None else sweep.search.start, "min_fraction": MIN_FRACTION}
-    return attrs.sweep_record(sweep.name, str(sweep.source), sweep.text, sweep.text_sha256, sweep.replicates,
-                              sweep.base_seed, search)
+    settings = [{"name": a.name, "key": a.key, "values": list(a.values),
+                 **({"variants": sweep.variants[a.name]} if a.name in sweep.variants else {})} for a in sweep.axes]
+    base = science(resolve_derived(sweep.base))
+    return {**attrs.sweep_record(sweep.name, str(sweep.source), sweep.text, sweep.text_sha256, sweep.replicates,
+                                 sweep.base_seed, search),
+            **attrs.identity_record(dict(basis), base, settings)}
 
 
-def id_and_seed_arrays(sweep: Sweep, points: list[Point]) -> tuple[np.ndarray, np.ndarray]:
-    """Point ids (str) and seeds (int64) laid out over the grid shape."""
-    ids = np.empty(grid_shape(sweep), dtype=object)
-    seeds = np.zeros(grid_shape(sweep), dtype=np.int64)
-    for p in points:
-        ids[p.index] = p.point_id
-        seeds[p.index] = p.seed
-    return ids.astype(str), seeds
-
-
-def open_or_create(sweep: Sweep, points: list[Point]) -> ResultStore:
-    """Open the sweep's store, lay out a new one, or grow the stored grid in place to the sweep's.
+def open_or_create(grid: Grid) -> tuple[ResultStore, Grid]:
+    """Open the sweep's store, lay out a new one, or grow the stored grid in place to the sweep's; with the grid
+    on the defaults table the store's ids rest on.
 
     A sweep that only appends values to the stored axes or adds replicates grows the store (new
-    points pending); any other change of grid or base config is refused with StoreError.
+    points pending); a changed default the stored points ran with (unless the sweep file sets the
+    key), or any other change of grid or base config, is refused with StoreError.
     """
     # Imported here, not at the top: Zarr takes about 0.4 s to import, which run_sweep spends
     # while the Dask workers start.
     from ..results_schema import store
 
-    path, target = Path(sweep.store), fingerprint(sweep)
+    sweep = grid.sweep
+    path = Path(sweep.store)
     if not path.exists():
-        store.create_store(path, grid_spec(sweep, points), *id_and_seed_arrays(sweep, points))
-    elif store.growing_to(path) == target or store.stored_attrs(path)[attrs.FINGERPRINT] != target:
-        reason = growth_refusal(_recorded_sweep(path, store.stored_attrs(path, growing=target)), sweep)
+        grid = grid.on_basis(identity_defaults())
+        store.create_store(path, grid_spec(grid), *grid.ids_and_seeds())
+        return store.ResultStore.open(path, fingerprint=fingerprint(sweep), batching=store.WRITER_BATCHING), grid
+    growing = store.growing_to(path)
+    stored = store.stored_attrs(path, growing=growing)
+    grid = grid.on_basis(store_basis(stored))
+    target = fingerprint(sweep, grid.basis)
+    if growing == target or stored[attrs.FINGERPRINT] != target:
+        recorded = recorded_sweep(path, stored, grid.basis)
+        changed = default_change(recorded, sweep, grid.basis)
+        if changed:
+            raise StoreError(f"{path}: {changed}")
+        reason = growth_refusal(recorded, sweep)
         if reason:
             raise StoreError(f"{path} was built from a different sweep grid: {reason}; a store grows only by values "
                              "appended to its axes and by more replicates (use another store path for another grid)")
         with store_lock(path):
-            store.grow_store(path, grid_spec(sweep, points), *id_and_seed_arrays(sweep, points))
-    return store.ResultStore.open(path, fingerprint=target, batching=store.WRITER_BATCHING)
+            store.grow_store(path, grid_spec(grid), *grid.ids_and_seeds())
+    return store.ResultStore.open(path, fingerprint=target, batching=store.WRITER_BATCHING), grid
 
 
-def _recorded_sweep(path: Path, stored: dict[str, Any]) -> Sweep:
-    """The sweep a store was built from, parsed from its recorded sweep text (StoreError if unreadable)."""
+def recorded_sweep(path: Path, stored: dict[str, Any], basis: Mapping[str, Any]) -> Sweep:
+    """The sweep a store was built from: its recorded sweep text on the defaults it was made under (StoreError if
+    unreadable)."""
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", ImplausibleValue)  # shown when that sweep ran
-            return parse_sweep(str(stored[attrs.SWEEP_TEXT]), source=Path(str(stored.get(attrs.SWEEP_FILE, path))))
+            return parse_sweep(str(stored[attrs.SWEEP_TEXT]), source=Path(str(stored.get(attrs.SWEEP_FILE, path))),
+                               defaults={**defaults(), **basis})
     except (KeyError, ConfigError) as exc:
         raise StoreError(f"{path} was built from a different sweep grid whose recorded sweep file cannot be read "
                          f"({exc}); use another store path") from None
+
+
+def default_change(stored: Sweep, sweep: Sweep, basis: Mapping[str, Any]) -> str:
+    """Why ``sweep`` cannot take the store of ``stored``: a registry default has changed since ``basis`` (the store's
+    table), ``stored`` took the old default and ``sweep`` leaves the key to today's ('' if no such key)."""
+    today = identity_defaults()
+    for key in sorted(basis):
+        was, now = basis[key], today[key]
+        if was != now and stored.base.get(key) == was and key not in sweep.explicit:
+            table, _, leaf = key.rpartition(".")
+            return (f"the default of {key} changed from {_toml(was)} to {_toml(now)} since this store was made, and "
+                    f"its points ran with {_toml(was)}; to resume or grow the store, set {key} = {_toml(was)} in the "
+                    f"sweep file ([{table}] {leaf} = {_toml(was)}), or use another store path to run with "
+                    f"{_toml(now)}")
+    return ""
+
+
+def _toml(value: Any) -> str:
+    """A config value as a sweep file writes it."""
+    return json.dumps(list(value) if isinstance(value, tuple) else value)
 
 
 def growth_refusal(stored: Sweep, sweep: Sweep) -> str:
     """Why ``sweep`` is not ``stored`` grown by appended axis values and more replicates ('' if it is)."""
     if sweep.base_seed != stored.base_seed:
         return f"base_seed changed from {stored.base_seed} to {sweep.base_seed}"
-    old, new = identity_config(stored.base), identity_config(sweep.base)
+    old, new = science(stored.base), science(sweep.base)
     changed = sorted(key for key in old.keys() | new.keys() if old.get(key) != new.get(key))
     if changed:
         return f"base config {changed[0]} changed from {old.get(changed[0])!r} to {new.get(changed[0])!r}"

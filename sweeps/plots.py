@@ -32,7 +32,7 @@ from matplotlib.transforms import blended_transform_factory
 from matplotlib.typing import ColorType
 
 from ..axes import COUNT_KEY, REPLICATE
-from ..errors import CapsweepError, ConfigError
+from ..errors import CapsweepError
 from ..flags import DONE, OUTCOMES, PENDING, RUNAWAY, UNNEEDED
 from ..results_schema import attrs
 from ..runners.protocol import Schedule, cue_order, recall_end, schedule
@@ -46,10 +46,9 @@ from .capacity import (
     success_table,
     wilson_interval,
 )
-from .expand import expand
-from .identity import grid_shape
+from .expand import recorded_points
+from .outputs import check_folder, make_folder
 from .query import QueryError, axis_keys, labelled, sweep_dims
-from .sweepfile import parse_sweep
 
 OUTCOME_COLOURS = dict(zip(OUTCOMES, ("tab:green", "tab:red", "tab:grey")))
 FORMATS = ("png", "svg", "pdf")
@@ -104,15 +103,6 @@ def check_dpi(dpi: int) -> int:
         raise CapsweepError(f"--dpi {dpi} is not allowed: expected a whole number from {DPI_RANGE[0]} to "
                             f"{DPI_RANGE[1]}")
     return dpi
-
-
-def check_folder(out_dir: Path) -> Path:
-    """``out_dir`` if it is a folder or can become one (its nearest existing ancestor is a folder)."""
-    existing = next(p for p in (out_dir, *out_dir.absolute().parents) if p.exists())
-    if not existing.is_dir():
-        what = "is a file" if existing == out_dir else f"lies under the file {existing}"
-        raise CapsweepError(f"--out {out_dir} {what}; expected a folder (existing or new)")
-    return out_dir
 
 
 def capacity_axes(ds: xr.Dataset, axis: str | None = None) -> list[str]:
@@ -393,12 +383,7 @@ def point_schedules(ds: xr.Dataset) -> dict[tuple[int, ...], Schedule]:
     A timeline is kept only where it agrees with what the point stored: the start of each assembly's
     final cue (``cue_time_s``), where written. None at all when the store holds no readable sweep text.
     """
-    ids = ds["point_id"].values
-    try:
-        sweep = parse_sweep(str(ds.attrs.get(attrs.SWEEP_TEXT, "")))
-        points = expand(sweep) if grid_shape(sweep) == ids.shape else []
-    except ConfigError:
-        return {}
+    points = recorded_points(ds.attrs, ds["point_id"].shape)
     seeds, stored = ds["seed"].values, ds["cue_time_s"].values
     timelines = {}
     for p in points:
@@ -416,7 +401,8 @@ def rate_traces(ds: xr.Dataset, schedules: dict[tuple[int, ...], Schedule], per_
                 smooth_s: float = 0.1) -> Figure:
     """Excitatory population rate (Hz; moving average over ``smooth_s`` s) of up to ``per_outcome`` done
     points per outcome spread over the grid, one panel per point titled with its labels; protocol phases
-    and cue windows of ``schedules`` shaded, a dotted line where a run stopped before its planned end."""
+    and cue windows of ``schedules`` shaded up to where the run stopped, a dotted line where it stopped before its
+    planned end."""
     outcome, status = labelled(ds, "outcome").values, labelled(ds, "status").values
     present = [o for o in OUTCOMES if np.any((status == DONE) & (outcome == o))]
     width = max(1, int(round(smooth_s / float(ds.attrs[attrs.TIME_BIN]))))
@@ -433,8 +419,8 @@ def rate_traces(ds: xr.Dataset, schedules: dict[tuple[int, ...], Schedule], per_
                 continue
             rate = ds["rate_exc_hz"].values[index]
             ax.plot(t, np.convolve(rate, np.ones(width) / width, mode="same"), lw=0.7, color=OUTCOME_COLOURS[name])
-            shaded |= _shade_schedule(ax, schedules.get(index))
             stopped = float(ds["simulated_time_s"].values[index])
+            shaded |= _shade_schedule(ax, schedules.get(index), stopped)
             if index in schedules and stopped < schedules[index].seconds(schedules[index].end):
                 ax.axvline(stopped, color="k", ls=":", lw=1, gid="stopped")
                 shaded.add("run stopped early")
@@ -457,21 +443,22 @@ def _alpha(phase: str) -> float:
     return 0.35 if phase == "cue" else 0.12 if phase in ("imprint", "final recall") else 0.6
 
 
-def _shade_schedule(ax: plt.Axes, sched: Schedule | None) -> set[str]:
-    """Shade the phases and every cue window of ``sched`` on ``ax``; the names shaded."""
+def _shade_schedule(ax: plt.Axes, sched: Schedule | None, until_s: float = np.inf) -> set[str]:
+    """Shade the phases and every cue window of ``sched`` on ``ax`` up to ``until_s`` (s; where a run stopped
+    early, nothing after it ran); the names shaded."""
     if sched is None:
         return set()
     spans = {"settle": (0, sched.settle_end), "imprint": (sched.settle_end, sched.imprint_end),
              "final recall": (sched.hold_end, recall_end(sched)), "tail": (recall_end(sched), sched.end)}
-    drawn = {name for name, (a, b) in spans.items() if b > a}
-    for name in drawn:
-        a, b = spans[name]
-        ax.axvspan(sched.seconds(a), sched.seconds(b), color=PHASE_COLOURS[name], alpha=_alpha(name), lw=0,
-                   gid=name, zorder=0)
-    for _, a, b in sched.all_cues:
-        ax.axvspan(sched.seconds(a), sched.seconds(b), color=CUE_COLOUR, alpha=_alpha("cue"), lw=0, gid="cue",
-                   zorder=0)
-    return drawn | ({"cue"} if sched.all_cues else set())
+    windows = [(name, sched.seconds(a), sched.seconds(b)) for name, (a, b) in spans.items() if b > a]
+    windows += [("cue", sched.seconds(a), sched.seconds(b)) for _, a, b in sched.all_cues]
+    drawn = set()
+    for name, start, stop in windows:
+        if start < until_s:
+            ax.axvspan(start, min(stop, until_s), color=CUE_COLOUR if name == "cue" else PHASE_COLOURS[name],
+                       alpha=_alpha(name), lw=0, gid=name, zorder=0)
+            drawn.add(name)
+    return drawn
 
 
 def weight_drift(ds: xr.Dataset) -> Figure:
@@ -503,10 +490,10 @@ def all_plots(ds: xr.Dataset, out_dir: Path, x: str | None = None, y: str | None
     x, y = map_axes(ds, x, y)
     kinds, dpi = output_formats(formats), check_dpi(DEFAULT_DPI if dpi is None else dpi)
     against = capacity_axes(ds, capacity_axis)
-    check_folder(out_dir)
+    check_folder(out_dir, "--out")
     figures, notes = _figures(ds, x, y, against)
     try:
-        out_dir.mkdir(parents=True, exist_ok=True)
+        make_folder(out_dir, "--out")
         paths = [_save(fig, out_dir / f"{stem}.{kind}", dpi) for stem, fig in figures.items() for kind in kinds]
     finally:
         for fig in figures.values():

@@ -31,8 +31,9 @@ from ..flags import DONE
 from ..results_schema import attrs
 from ..runners.task import TaskFailure, predict_task
 from .dispatch import early_client, run_tasks
-from .expand import expand
-from .identity import Point, fingerprint
+from .expand import Grid
+from .identity import fingerprint
+from .ids import Point
 from .search import condition_key
 from .success import capacity_of
 from .sweepfile import Sweep, load_sweep
@@ -46,7 +47,8 @@ OUTSIDE_CALIBRATION = "outside_calibration"
 
 def grid_points(sweep: Sweep) -> list[Point]:
     """One point of ``sweep`` per grid point (replicate 0): replicates share the prediction."""
-    return [p for p in expand(sweep) if p.labels[REPLICATE] == 0]
+    grid = Grid(sweep)
+    return list(grid.points(range(0, grid.n_points, sweep.replicates)))
 
 
 def prescreen_sweep(

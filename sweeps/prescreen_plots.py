@@ -18,7 +18,7 @@ from ..runners.metrics import active_threshold
 from ..runners.theory.drift import bcm_threshold_hz, drift_zero_crossings, rule_drift
 from ..runners.theory.link import RUNAWAY_AT
 from ..runners.theory.meanfield import TransferCurve, initial_weights, population_rates
-from .identity import Point
+from .ids import Point
 from .prescreen import Comparison, grid_axes
 
 

@@ -25,6 +25,8 @@ from ..results_schema.dataset import flag_labels, open_dataset
 from ..results_schema.layout import STATUS
 
 DEFAULT_WHERE = f'status == "{DONE}" and outcome == "{STABLE}"'
+SUCCESS = "success"
+"""Column of the point table: whether a done point succeeds (the success rule of ``capsweep.sweeps.success``)."""
 
 # Per-point summaries of inner-dim variables: column -> (source variable, reduction).
 SUMMARIES: dict[str, tuple[str, Callable[[xr.DataArray], xr.DataArray]]] = {
@@ -70,21 +72,28 @@ def open_store(path: str | Path, command: str) -> xr.Dataset:
     return open_dataset(path)
 
 
-def point_table(ds: xr.Dataset) -> pd.DataFrame:
+def point_table(ds: xr.Dataset, success: xr.DataArray | None = None) -> pd.DataFrame:
     """One row per point, in sweep order (axes and values as in the sweep file, then replicate).
 
-    Columns: the sweep dims, ``point_id``, ``status``, the scalar variables in layout order (flags
-    as labels, integers as pandas ``Int64`` with missing values as NA), then the ``SUMMARIES``.
+    Columns: the sweep dims, ``point_id``, ``status``, ``success`` when given (per point 1.0, 0.0 or NaN,
+    as ``capsweep.sweeps.capacity.point_success`` gives it: shown True, False or NA), the scalar variables in
+    layout order (flags as labels, integers as pandas ``Int64`` with missing values as NA), then the
+    ``SUMMARIES``.
     """
     dims = sweep_dims(ds)
     scalars = [v for v in layout.VARIABLES if tuple(ds[v.name].dims) == tuple(dims)]
     columns: dict[str, xr.DataArray] = {"point_id": ds[layout.POINT_ID], "status": labelled(ds, STATUS.name)}
+    if success is not None:
+        columns[SUCCESS] = success
     for var in scalars:
         columns[var.name] = labelled(ds, var.name) if var.flags else ds[var.name]
     columns.update({name: reduce(ds[source]) for name, (source, reduce) in SUMMARIES.items()})
     frame = xr.Dataset(columns).reset_coords(drop=True).to_dataframe(dim_order=dims).reset_index()
     integers = [v.name for v in scalars if v.dtype.startswith("int") and not v.flags]
-    return frame.astype({name: "Int64" for name in integers})
+    frame = frame.astype({name: "Int64" for name in integers})
+    if success is not None:
+        frame[SUCCESS] = frame[SUCCESS].map({1.0: True, 0.0: False}).astype("boolean")
+    return frame
 
 
 def column_units(ds: xr.Dataset, columns: list[str]) -> dict[str, str]:
@@ -98,17 +107,25 @@ def column_units(ds: xr.Dataset, columns: list[str]) -> dict[str, str]:
     return units
 
 
+CSV_DIGITS = 15
+"""Significant digits of floats in CSV: every digit a float64 holds reliably, without the last one's noise
+(0.9999999999999999 is written 1)."""
+
+
 def table_csv(frame: pd.DataFrame, units: dict[str, str]) -> str:
     """``frame`` as CSV; a column whose name does not already end in its unit is headed ``name [unit]``."""
     def header(name: str) -> str:
         unit = units.get(name)
         return name if unit is None or name.lower().endswith("_" + unit.lower()) else f"{name} [{unit}]"
 
-    return frame.rename(columns=header).to_csv(index=False)
+    return frame.rename(columns=header).to_csv(index=False, float_format=f"%.{CSV_DIGITS}g")
 
 
 def table_json(frame: pd.DataFrame, units: dict[str, str], where: str) -> str:
-    """``frame`` as one JSON document: ``{"units": {column: unit}, "filter": where, "rows": [...]}``."""
+    """``frame`` as one JSON document: ``{"units": {column: unit}, "filter": where, "rows": [...]}``.
+
+    The one JSON shape of every table capsweep writes (query, capacity); ``where`` is '' for no filter.
+    """
     rows = json.loads(frame.to_json(orient="records"))
     return json.dumps({"units": units, "filter": where, "rows": rows}, indent=1) + "\n"
 
@@ -116,13 +133,13 @@ def table_json(frame: pd.DataFrame, units: dict[str, str], where: str) -> str:
 def active_filter(where: str | None, every_point: bool) -> tuple[str, str]:
     """The filter expression a query applies and how to describe it.
 
-    ``where`` replaces the default filter (done and stable points); ``every_point`` (``--all``) only
-    drops the default, so ``where`` applies with it too.
+    ``where`` narrows the default filter (done and stable points); ``every_point`` (``--all``) drops the
+    default, so ``where`` alone applies.
     """
-    if where:
-        return where, where
     if every_point:
-        return "", "none (--all: every point)"
+        return (where, f"{where} (--all: the default filter dropped)") if where else ("", "none (--all: every point)")
+    if where:
+        return f"{DEFAULT_WHERE} and ({where})", f"{DEFAULT_WHERE} (default) and ({where}); --all drops the default"
     return DEFAULT_WHERE, f"{DEFAULT_WHERE} (default; --all for every point)"
 
 
@@ -166,6 +183,14 @@ def failed_points(ds: xr.Dataset) -> list[FailedPoint]:
     return [FailedPoint({d: row[d] for d in sweep_dims(ds)}, str(row["point_id"]),
                         (str(row["error"]).strip().splitlines() or [""])[0])
             for _, row in failed.iterrows()]
+
+
+def failures_by_error(ds: xr.Dataset) -> dict[str, list[FailedPoint]]:
+    """Failed points grouped by the first line of their error, the most frequent error first (then sweep order)."""
+    groups: dict[str, list[FailedPoint]] = {}
+    for point in failed_points(ds):
+        groups.setdefault(point.error, []).append(point)
+    return dict(sorted(groups.items(), key=lambda item: -len(item[1])))
 
 
 @dataclass(frozen=True)

@@ -20,6 +20,7 @@ from typing import Any
 
 from ..errors import ConfigError
 from ..registry import KEYS, SECTIONS, Key, did_you_mean
+from .outputs import fault, new_file
 
 KEYS_START = "<!-- keys:start -->"
 KEYS_END = "<!-- keys:end -->"
@@ -102,17 +103,17 @@ def example_summary(example: Traversable) -> str:
 
 
 def copy_example(name: str, folder: Path) -> Path:
-    """Copy example ``name`` (with or without ``.toml``) into ``folder`` under its file name; never overwrite."""
+    """Copy example ``name`` (with or without ``.toml``) into ``folder`` (created if missing) under its file name;
+    never overwrite."""
     available = examples()
     name = name.removesuffix(".toml")
     if name not in available:
         raise ConfigError(f"no example named {name!r}; {did_you_mean(name, available, 'examples')}")
-    if not folder.is_dir():
-        raise ConfigError(f"--to {folder}: no such folder")
-    target = folder / f"{name}.toml"
-    if target.exists():
-        raise ConfigError(f"{target} exists already; remove it or copy into another folder with --to DIR")
-    target.write_text(available[name].read_text())
+    target = new_file(folder / f"{name}.toml", "--to")
+    try:
+        target.write_text(available[name].read_text())
+    except OSError as exc:
+        raise fault(target, exc) from None
     return target
 
 

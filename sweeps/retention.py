@@ -18,18 +18,12 @@ import xarray as xr
 from scipy import stats
 
 from ..axes import REPLICATE
-from ..errors import ConfigError
 from ..flags import DONE
-from ..results_schema import attrs
-from .expand import expand
-from .identity import grid_shape
+from .expand import recorded_points
 from .query import labelled, sweep_dims
-from .sweepfile import parse_sweep
 
 CONFIDENCE = 0.95
 """Coverage of the interval across replicates."""
-
-TAU_KEY = "plasticity.heterosynaptic.tau_consolidation_s"
 
 
 def in_tau(seconds: Any, tau_s: Any) -> Any:
@@ -37,22 +31,11 @@ def in_tau(seconds: Any, tau_s: Any) -> Any:
     return np.asarray(seconds, dtype=float) / np.asarray(tau_s, dtype=float)
 
 
-def point_configs(ds: xr.Dataset) -> dict[tuple[int, ...], dict]:
-    """Resolved config of each point, by its index, from the sweep file text the store holds (empty when it holds
-    none that expands to the store's grid)."""
-    try:
-        sweep = parse_sweep(str(ds.attrs.get(attrs.SWEEP_TEXT, "")))
-        points = expand(sweep) if grid_shape(sweep) == ds["point_id"].shape else []
-    except ConfigError:
-        return {}
-    return {p.index: p.config for p in points}
-
-
 def _tau_per_point(ds: xr.Dataset) -> np.ndarray:
     """tau_consolidation_s (s) of every point, over the sweep dims (NaN where the store's sweep text is unreadable)."""
     taus = np.full(ds["point_id"].shape, np.nan)
-    for index, cfg in point_configs(ds).items():
-        taus[index] = cfg["plasticity"]["heterosynaptic"]["tau_consolidation_s"]
+    for p in recorded_points(ds.attrs, ds["point_id"].shape):
+        taus[p.index] = p.config["plasticity"]["heterosynaptic"]["tau_consolidation_s"]
     return taus
 
 
@@ -61,9 +44,9 @@ def _rows(ds: xr.Dataset, recalled: str, tested: str, delay: str, inner: str) ->
     dims = sweep_dims(ds)
     done = (labelled(ds, "status") == DONE).transpose(*dims)
     taus = xr.DataArray(_tau_per_point(ds), dims=dims, coords=done.coords)
-    table = xr.Dataset({"recalled": ds[recalled], "tested": ds[tested], "delay_s": ds[delay], "done": done,
+    table = xr.Dataset({"recalled": ds[recalled], "tested": ds[tested], "delay_s": ds[delay], "finished": done,
                         "tau_s": taus}).to_dataframe().reset_index()
-    table = table[table["done"] & (table["tested"] > 0)]
+    table = table[table["finished"] & (table["tested"] > 0)]
     table = table.assign(fraction=table["recalled"] / table["tested"], delay_tau=in_tau(table["delay_s"],
                                                                                         table["tau_s"]))
     return table[[d for d in dims if d != REPLICATE] + [REPLICATE, inner, "fraction", "delay_s", "delay_tau"]]

@@ -36,7 +36,6 @@ from typing import Any
 import numpy as np
 
 from ..flags import DONE, FAILED, OUTCOMES, STATUSES, UNNEEDED
-from .identity import Point
 from .success import count_passes, leading_passes, succeeds
 
 Verdict = bool | None
@@ -86,96 +85,109 @@ class ConditionSearch:
         return (lo + hi) // 2
 
 
+NO_VERDICT, CRASHED = -2, -1
+"""Codes of :attr:`SearchRun.verdicts` besides 0 (failed) and 1 (succeeded): not finished yet; crashed (None)."""
+
+
 @dataclass
 class SearchRun:
-    """Every condition's search over one sweep's points, fed with point verdicts as they are stored."""
+    """Every condition's search over one sweep's points, fed with point verdicts as they are stored.
+
+    Points are index tuples (position along each axis, then the replicate); their state lives in
+    arrays over the grid shape, so a search over many points holds no object per point.
+    """
 
     count_pos: int  # position of the count axis in a point's index
+    counts: tuple[int, ...]  # the count axis's values
     conditions: dict[tuple[int, ...], ConditionSearch]
-    points: dict[tuple[tuple[int, ...], int], list[Point]]  # (condition, count index) -> its replicates
-    verdicts: dict[tuple[int, ...], Verdict]  # point index -> verdict, for finished points
-    submitted: set[tuple[int, ...]] = field(default_factory=set)
-    marked: set[tuple[int, ...]] = field(default_factory=set)  # points already given status unneeded
+    verdicts: np.ndarray  # int8 over the grid shape: 1 succeeded, 0 failed, CRASHED, NO_VERDICT
+    taken: np.ndarray  # bool over the grid shape: submitted, or marked unneeded
     closed: set[tuple[int, ...]] = field(default_factory=set)  # conditions whose capacity is decided
 
-    def record(self, point: Point, verdict: Verdict) -> tuple[int, ...]:
-        """A point finished with ``verdict``; returns its condition."""
-        self.verdicts[point.index] = verdict
-        return condition_key(point.index, self.count_pos)
+    def replicates(self, key: tuple[int, ...], k: int) -> list[tuple[int, ...]]:
+        """The points of condition ``key`` at count index ``k``: one per replicate."""
+        where = self.count_pos
+        return [(*key[:where], k, *key[where:], r) for r in range(self.verdicts.shape[-1])]
 
-    def record_result(self, point: Point, result: Mapping[str, Any] | None) -> tuple[int, ...]:
-        """A point finished with ``result`` (its store values; None when it failed); returns its condition."""
-        count = point.config["assemblies"]["count"]
-        return self.record(point, None if result is None else
+    def record(self, index: tuple[int, ...], verdict: Verdict) -> tuple[int, ...]:
+        """The point at ``index`` finished with ``verdict``; returns its condition."""
+        self.verdicts[index] = CRASHED if verdict is None else int(verdict)
+        return condition_key(index, self.count_pos)
+
+    def record_result(self, index: tuple[int, ...], result: Mapping[str, Any] | None) -> tuple[int, ...]:
+        """The point at ``index`` finished with ``result`` (its store values; None when it failed); returns its
+        condition."""
+        count = self.counts[index[self.count_pos]]
+        return self.record(index, None if result is None else
                            bool(succeeds(result["outcome"], result["recalled_count"], result["stuck_count"], count)))
 
-    def advance(self, keys: Iterable[tuple[int, ...]] | None = None) -> tuple[list[Point], list[Point]]:
+    def advance(self, keys: Iterable[tuple[int, ...]] | None = None) -> tuple[list[tuple[int, ...]],
+                                                                              list[tuple[int, ...]]]:
         """For the conditions ``keys`` (default: all), the points to submit now and the points newly unneeded.
 
         An open condition wants the unfinished, unsubmitted replicates of its next probes; a condition that
         has just closed gives up every point it never ran (they are counted as marked unneeded).
         """
-        wanted: list[Point] = []
-        unneeded: list[Point] = []
+        wanted: list[tuple[int, ...]] = []
+        unneeded: list[tuple[int, ...]] = []
         for key in self.conditions if keys is None else keys:
             search = self.conditions[key]
             probes = self._advance(key, search)
             if probes:
-                wanted += [p for k in probes for p in self.points[key, k] if self._untouched(p)]
-                self.submitted.update(p.index for p in wanted)
+                fresh = [i for k in probes for i in self.replicates(key, k) if self._untouched(i)]
+                wanted += fresh
             elif key not in self.closed:
                 self.closed.add(key)
-                unneeded += [p for k in range(search.n_counts) for p in self.points[key, k] if self._untouched(p)]
-        self.marked.update(p.index for p in unneeded)
+                fresh = [i for k in range(search.n_counts) for i in self.replicates(key, k) if self._untouched(i)]
+                unneeded += fresh
+            else:
+                continue
+            for index in fresh:
+                self.taken[index] = True
         return wanted, unneeded
 
-    def _untouched(self, point: Point) -> bool:
+    def _untouched(self, index: tuple[int, ...]) -> bool:
         """Neither finished, submitted nor marked unneeded."""
-        index = point.index
-        return index not in self.verdicts and index not in self.submitted and index not in self.marked
+        return bool(self.verdicts[index] == NO_VERDICT and not self.taken[index])
 
     def _advance(self, key: tuple[int, ...], search: ConditionSearch) -> list[int]:
         """Record whether the finished probes pass; the condition's probes still open (empty: decided)."""
         while probes := search.next_probes():
             still_open = []
             for probe in probes:
-                replicates = [p.index for p in self.points[key, probe]]
-                if any(index not in self.verdicts for index in replicates):
+                verdicts = [int(self.verdicts[i]) for i in self.replicates(key, probe)]
+                if NO_VERDICT in verdicts:
                     still_open.append(probe)
                     continue
-                done = [v for index in replicates if (v := self.verdicts[index]) is not None]
+                done = [v for v in verdicts if v != CRASHED]
                 search.passes[probe] = bool(count_passes(sum(done), len(done)))  # all crashed: a failing count
             if len(still_open) == len(probes):
                 return still_open
         return []
 
 
-def plan_search(points: list[Point], count_pos: int, starts: dict[tuple[int, ...], int], method: str,
+def plan_search(counts: tuple[int, ...], count_pos: int, starts: Mapping[tuple[int, ...], int], method: str,
                 status: np.ndarray, outcome: np.ndarray, recalled: np.ndarray, stuck: np.ndarray,
                 retry_failed: bool) -> SearchRun:
-    """A SearchRun over ``points`` with the verdicts already stored (status/outcome/recalled_count/stuck_count codes).
+    """A SearchRun over a grid whose count axis (values ``counts``) sits at ``count_pos``, with the verdicts already
+    stored (status/outcome/recalled_count/stuck_count codes, over the grid shape).
 
     ``starts`` maps each condition key to its start index; ``method`` is "scan" or "bisect". Failed points count
     as crashed verdicts unless ``retry_failed``; unneeded points as not yet run.
     """
-    run = SearchRun(count_pos, {}, {}, {})
-    n_counts = max(p.index[count_pos] for p in points) + 1
-    for point in points:
-        key, k = condition_key(point.index, count_pos), point.index[count_pos]
-        run.conditions.setdefault(key, ConditionSearch(n_counts, starts[key], method))
-        run.points.setdefault((key, k), []).append(point)
-        label = STATUSES[int(status[point.index])]
-        if label == DONE:
-            count = point.config["assemblies"]["count"]
-            run.record(point, bool(succeeds(OUTCOMES[int(outcome[point.index])], int(recalled[point.index]),
-                                            int(stuck[point.index]), count)))
-        elif label == FAILED and not retry_failed:
-            run.record(point, None)
-        elif label == UNNEEDED:
-            run.marked.add(point.index)
-    return run
+    shape = status.shape
+    count = np.reshape(counts, [len(counts) if d == count_pos else 1 for d in range(len(shape))])
+    done = status == STATUSES.index(DONE)
+    labels = np.where(done, np.asarray(OUTCOMES, dtype=object)[np.clip(outcome, 0, None)], "")
+    verdicts = np.full(shape, NO_VERDICT, dtype=np.int8)
+    verdicts[done] = np.broadcast_to(succeeds(labels, recalled, stuck, count), shape)[done]
+    if not retry_failed:
+        verdicts[status == STATUSES.index(FAILED)] = CRASHED
+    conditions = {key: ConditionSearch(len(counts), starts[key], method)
+                  for key in np.ndindex(shape[:count_pos] + shape[count_pos + 1:-1])}
+    return SearchRun(count_pos, tuple(counts), conditions, verdicts, status == STATUSES.index(UNNEEDED))
 
 
 def condition_key(index: tuple[int, ...], count_pos: int) -> tuple[int, ...]:
     """A point's condition: its grid index without the count position and the replicate."""
-    return index[:count_pos] + index[count_pos + 1:-1]
+    return tuple(int(i) for i in index[:count_pos] + index[count_pos + 1:-1])

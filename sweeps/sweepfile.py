@@ -10,16 +10,19 @@ in ``[sweep] quiet_warnings``.
 from __future__ import annotations
 
 import hashlib
-import re
+import keyword
 import tomllib
 import warnings
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 from ..axes import COUNT_KEY, REPLICATE, VARIANT_KEY, Axis, key_axis, variant_axis
+from ..controls import AS_IS, BY_NAME, CONTROL_DIM, control_axis
 from ..errors import ConfigError
-from ..registry import BY_PATH, SECTIONS, ImplausibleValue, Key, defaults, did_you_mean, flatten, lookup
+from ..registry import BY_PATH, SECTIONS, ImplausibleValue, Key, did_you_mean, flatten, lookup
+from ..registry import defaults as registry_defaults
 from ..results_schema.layout import INNER_DIMS
 
 SWEEP_KEYS = {
@@ -39,13 +42,18 @@ AXIS_KEYS = {
               "{low = 1, high = 32, start = 1, method = \"scan\"} (start: a count, or \"prescreen\" for the "
               "prescreen's stability bound; method: \"scan\" (exact) or \"bisect\" (assumes monotone success))",
 }
+CONTROLS_TABLE = "controls"
+"""The sweep file's table that adds controls beside every condition."""
+CONTROL_KEYS = {
+    "kinds": "non-empty list of control kinds, each added beside every condition on the dim "
+             f"{CONTROL_DIM!r}: " + ", ".join(repr(k) for k in BY_NAME),
+}
 SEARCH_KEYS = ("low", "high", "start", "method")
 SEARCH_METHODS = ("scan", "bisect")
 """How a count search moves: see ``capsweep.sweeps.search``."""
 PRESCREEN_START = "prescreen"
 """``start`` value that seeds a count search with the prescreen's stability bound."""
-_DIM_NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
-_RESERVED_DIMS = set(INNER_DIMS) | {REPLICATE}
+_RESERVED_DIMS = set(INNER_DIMS) | {REPLICATE, CONTROL_DIM}
 
 
 @dataclass(frozen=True)
@@ -71,6 +79,7 @@ class Sweep:
     source: Path = Path("<memory>")
     variants: dict[str, dict[str, dict[str, Any]]] = field(default_factory=dict, repr=False)
     search: CountSearch | None = None
+    explicit: frozenset[str] = frozenset()  # keys the file's tables set (the others hold their defaults)
 
     @property
     def text_sha256(self) -> str:
@@ -93,17 +102,20 @@ def load_sweep(path: str | Path, store: str | Path | None = None) -> Sweep:
     return parse_sweep(text, source=path, store=store)
 
 
-def parse_sweep(text: str, source: Path = Path("<memory>"), store: str | Path | None = None) -> Sweep:
-    """Validate sweep-file ``text``; ``source`` names it in messages."""
+def parse_sweep(text: str, source: Path = Path("<memory>"), store: str | Path | None = None,
+                defaults: Mapping[str, Any] | None = None) -> Sweep:
+    """Validate sweep-file ``text``; ``source`` names it in messages. Keys the file leaves out take ``defaults`` (a
+    flat table of every key; default: the registry's)."""
     try:
         doc = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"{source}: not valid TOML: {exc}") from None
-    unknown = sorted(set(doc) - {"sweep", *SECTIONS})
+    unknown = sorted(set(doc) - {"sweep", CONTROLS_TABLE, *SECTIONS})
     if unknown:
-        hint = did_you_mean(f"[{unknown[0]}]", [f"[{s}]" for s in ("sweep", *SECTIONS)], "valid tables")
+        hint = did_you_mean(f"[{unknown[0]}]", [f"[{s}]" for s in ("sweep", CONTROLS_TABLE, *SECTIONS)],
+                            "valid tables")
         raise ConfigError(f"{source}: unknown table [{unknown[0]}]; {hint}")
-    base = _base_config(doc, source)
+    base, explicit = _base_config(doc, source, registry_defaults() if defaults is None else defaults)
     head = _sweep_table(doc, source)
     parsed = [_axis(raw, i, source) for i, raw in enumerate(head.get("axis", []))]
     axes = tuple(axis for axis, _ in parsed)
@@ -112,6 +124,8 @@ def parse_sweep(text: str, source: Path = Path("<memory>"), store: str | Path | 
     clash = sorted(touched & {a.key for a in axes})
     if clash:
         raise ConfigError(f"{source}: {clash[0]} is set both by an axis and by a variant; set it in one place")
+    parsed += _controls(doc, source)  # last: a control's overrides win over the axes it contradicts
+    axes = tuple(axis for axis, _ in parsed)
     sweep = Sweep(
         name=head["name"],
         store=Path(store) if store is not None else Path(head["store"]),
@@ -123,6 +137,7 @@ def parse_sweep(text: str, source: Path = Path("<memory>"), store: str | Path | 
         search=_count_search(head.get("axis", []), axes, source),
         text=text,
         source=source,
+        explicit=explicit,
     )
     _warn_implausible(sweep, head["quiet_warnings"])
     return sweep
@@ -178,15 +193,18 @@ def _quiet_warnings(head: dict[str, Any], source: Path) -> frozenset[str]:
     return frozenset(lookup(k, where=f"{source} (sweep.quiet_warnings)").path for k in keys)
 
 
-def _base_config(doc: dict[str, Any], source: Path) -> dict[str, Any]:
-    """Flat config: registry defaults overlaid with the file's sections, every value checked."""
-    flat = defaults()
+def _base_config(doc: dict[str, Any], source: Path, defaults: Mapping[str, Any]) -> tuple[dict[str, Any],
+                                                                                           frozenset[str]]:
+    """Flat config: ``defaults`` overlaid with the file's sections, every value checked; and the keys the file set."""
+    flat = dict(defaults)
+    explicit = set()
     for section in SECTIONS:
         node = doc.get(section, {})
         leaves = flatten(node, section + ".") if isinstance(node, dict) else {section: node}
         for path, value in leaves.items():
             flat[path] = lookup(path, where=str(source)).check(value, where=str(source))
-    return flat
+            explicit.add(path)
+    return flat, frozenset(explicit)
 
 
 def _axis(raw: Any, position: int, source: Path) -> tuple[Axis, dict[str, dict[str, Any]]]:
@@ -198,9 +216,10 @@ def _axis(raw: Any, position: int, source: Path) -> tuple[Axis, dict[str, dict[s
         if key not in AXIS_KEYS:
             raise ConfigError(f"{where}: unknown key {key!r}; {did_you_mean(key, AXIS_KEYS)}")
     name = raw.get("name")
-    if not isinstance(name, str) or not _DIM_NAME.match(name) or name in _RESERVED_DIMS:
+    if not isinstance(name, str) or not name.isidentifier() or keyword.iskeyword(name) or name in _RESERVED_DIMS:
         raise ConfigError(
-            f"{where}: name {name!r} is not allowed: a Python-style identifier other than "
+            f"{where}: name {name!r} is not allowed: a Python identifier (letters of any script, digits, '_'; not "
+            "a keyword) other than "
             + ", ".join(sorted(_RESERVED_DIMS))
         )
     if "variants" in raw:
@@ -244,6 +263,26 @@ def _variant_axis(raw: dict[str, Any], name: str, where: str) -> tuple[Axis, dic
         place = f"{where} (variant {label})"
         checked[label] = {k: _sweepable(k, place).check(v, where=place) for k, v in flatten(overrides).items()}
     return variant_axis(name, tuple(checked)), checked
+
+
+def _controls(doc: dict[str, Any], source: Path) -> list[tuple[Axis, dict[str, dict[str, Any]]]]:
+    """The control axis that the ``[controls]`` table asks for, with each kind's overrides (none without it)."""
+    if CONTROLS_TABLE not in doc:
+        return []
+    table, where = doc[CONTROLS_TABLE], f"{source}: [{CONTROLS_TABLE}]"
+    unknown = sorted(set(table) - set(CONTROL_KEYS)) if isinstance(table, dict) else []
+    if unknown:
+        raise ConfigError(f"{where}: unknown key {unknown[0]!r}; {did_you_mean(unknown[0], CONTROL_KEYS)}")
+    kinds = table.get("kinds") if isinstance(table, dict) else None
+    if not isinstance(kinds, list) or not kinds or not all(isinstance(k, str) for k in kinds) \
+            or len(set(kinds)) != len(kinds):
+        raise ConfigError(f"{where}: kinds = {kinds!r} is not allowed: {CONTROL_KEYS['kinds']}, none repeated")
+    for kind in kinds:
+        if kind not in BY_NAME:
+            raise ConfigError(f"{where}: unknown control kind {kind!r}; {did_you_mean(kind, BY_NAME, 'valid kinds')}")
+    variants = {AS_IS: {}, **{kind: {k: _sweepable(k, where).check(v, where=where)
+                                     for k, v in BY_NAME[kind].overrides.items()} for kind in kinds}}
+    return [(control_axis(tuple(variants)), variants)]
 
 
 def _check_axis_names(axes: tuple[Axis, ...], source: Path) -> None:

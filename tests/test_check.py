@@ -60,7 +60,10 @@ def test_check_shows_the_grid_builds_and_simulated_time(tmp_path: Path) -> None:
     assert "distinct network builds: 2" in result.stdout
     # Per point: settle 1 + hold 4 + 2 cues x (0.2 s cue + 0.5 s gap) + the tail that completes
     # runaway_hold_s + smoothing_s (1 + 0.5 s) after the last cue (1.5 - 0.5 s) = 7.4 s (registry defaults); 12 points.
-    assert f"simulated time in all: {12 * 7.4:.0f} s" in result.stdout
+    assert "simulated time in all: 1 min 29 s" in result.stdout  # 12 x 7.4 s = 88.8 s
+    # each build named with its engine (standalone expresses these settings: no fallback)
+    assert "  build n_exc=200 (6 points): standalone engine, which compiles one binary" in result.stdout
+    assert "  build n_exc=300 (6 points): standalone engine" in result.stdout and "instead of" not in result.stdout
     assert not (tmp_path / "odours.zarr").exists()
 
 
@@ -209,12 +212,58 @@ def test_run_help_shows_the_sweep_table_name() -> None:
     assert "(default: [sweep].store)" in result.stdout
 
 
-@pytest.mark.parametrize(("old", "new"), [("plan", "estimate"), ("prune-builds", "trim-builds")])
+@pytest.mark.parametrize(("old", "new"), [("plan", "estimate"), ("prune-builds", "shrink-builds"),
+                                          ("trim-builds", "shrink-builds")])
 def test_renamed_commands_answer_only_to_their_new_names(old: str, new: str) -> None:
     assert invoke(new, "--help").exit_code == 0
     assert invoke(old, "--help").exit_code != 0
 
 
-def test_trim_builds_takes_max_mib() -> None:
-    help_text = CliRunner().invoke(app, ["trim-builds", "--help"], env={"COLUMNS": "200"}).stdout
-    assert "--max-mib" in help_text and "--keep-mib" not in help_text
+def test_shrink_builds_takes_to_mib() -> None:
+    """The cache command's option is worded in our own terms (the issue: --max-mib echoed a compiler cache's)."""
+    help_text = CliRunner().invoke(app, ["shrink-builds", "--help"], env={"COLUMNS": "200"}).stdout
+    assert "--to-mib" in help_text and "--max-mib" not in help_text
+
+
+def test_check_names_a_fallback_engine_and_its_cost(tmp_path: Path) -> None:
+    """A trace bin that is not a whole number of steps forces the cython fallback (minutes of compiling); check
+    used not to say so."""
+    result = invoke("check", str(write(tmp_path, SWEEP + "[detection]\ntrace_bin_ms = 10.05\n")))
+    assert result.exit_code == 0, result.output
+    builds = [line for line in result.stdout.splitlines() if line.startswith("  build ")]
+    assert len(builds) == 2
+    for line in builds:
+        assert "cython engine instead of standalone, because" in line and "trace_bin_ms" in line
+        assert "compiles its code cache once per machine" in line
+
+
+@pytest.mark.parametrize(("tables", "named"), [
+    ("size = 40\ncoding_level = 0.1\n", ("assemblies.size", "assemblies.coding_level")),
+    ("size = 40\n[network]\nw_e_to_e = 0.2\n[plasticity.triplet]\nw_max = 0.5\n",  # 0.2 x prewire_gain 5 > 0.5
+     ("network.w_e_to_e", "assemblies.prewire_gain", "plasticity.triplet.w_max")),
+])
+def test_check_refuses_keys_that_contradict_each_other(tmp_path: Path, tables: str, named: tuple[str, ...]) -> None:
+    """size beside coding_level (the level silently won) and a w_max below the initial weights were accepted."""
+    result = invoke("check", str(write(tmp_path, SWEEP.replace("size = 40\n", tables))))
+    assert result.exit_code != 0
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("capsweep: error:") and "Traceback" not in result.output
+    assert all(key in lines[0] for key in named), lines[0]
+
+
+def test_help_shows_brackets_as_written_and_no_type_placeholders() -> None:
+    """`query --help` printed headed 'name ': the formatter ate '[unit]'; flags showed '<bool>'."""
+    for command in ("run", "query", "capacity", "export", "replay", "shrink-builds", "status", "check"):
+        help_text = CliRunner().invoke(app, [command, "--help"], env={"COLUMNS": "200"}).stdout
+        assert "<bool>" not in help_text and "\\[" not in help_text, command
+    assert "'name [unit]'" in CliRunner().invoke(app, ["query", "--help"], env={"COLUMNS": "200"}).stdout
+
+
+@pytest.mark.parametrize("args", [("query",), ("run", "odours.toml", "--bogus"), ("status", "a", "b")])
+def test_a_command_line_that_does_not_parse_gets_one_error_line(args: tuple[str, ...]) -> None:
+    """Usage errors came in the framework's box, other errors as one line: now both are one line."""
+    proc = subprocess.run([sys.executable, "-m", "capsweep.sweeps.cli", *args], capture_output=True, text=True,
+                          timeout=120)
+    assert proc.returncode == 2
+    lines = proc.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("capsweep: error: ") and f"capsweep {args[0]} --help" in lines[0]

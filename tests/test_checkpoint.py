@@ -33,7 +33,7 @@ from capsweep.runners import protocol
 from capsweep.runners.checkpoints import CHECKPOINT_DIR_ENV
 from capsweep.runners.point import run_point
 from capsweep.runners.standalone import read_checkpoint
-from capsweep.sweeps.identity import point_id
+from capsweep.sweeps.ids import point_id
 
 SEED, WIRING = 5, 9
 STANDALONE = {"plasticity.heterosynaptic.w_ref_mode": "bistable", "protocol.hold_s": 20.0, "protocol.cue_gap_s": 0.5}

@@ -352,3 +352,22 @@ def test_prescreen_of_a_slurm_sweep_runs_in_slurm_jobs_and_predicts_as_locally(s
     assert not _slurm_jobs(tmp_path), "worker jobs outlived the prescreen"
     assert output == local.stdout
     assert len(output.strip().splitlines()) == 1 + 2  # a header and the sweep's two grid points
+
+
+def test_a_busy_dashboard_port_gives_no_warning_when_the_dashboard_is_off() -> None:
+    """With another Dask cluster on the machine holding port 8787 (Dask's default for the scheduler's HTTP
+    endpoint), every run printed a 4-line warning about it although the dashboard is off by default."""
+    holder = socket.socket()
+    try:
+        holder.bind(("127.0.0.1", 8787))
+    except OSError:
+        pytest.skip("port 8787 is already held by another program: the situation of the finding itself")
+    holder.listen()
+    code = ("from capsweep.sweeps.dispatch import dask_client\n"
+            "with dask_client(1) as client:\n    print(len(client.scheduler_info()['workers']))")
+    try:
+        proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=180)
+    finally:
+        holder.close()
+    assert proc.returncode == 0 and proc.stdout.split() == ["1"], proc.stderr
+    assert "8787" not in proc.stderr and "Port" not in proc.stderr, proc.stderr

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import signal
 import subprocess
 import sys
@@ -22,6 +23,7 @@ from cli_runs import capsweep, tiny_network
 
 from capsweep.results_schema.dataset import flag_labels
 from capsweep.sweeps.capacity import point_success
+from capsweep.sweeps.control_table import control_success
 
 pytestmark = pytest.mark.e2e
 
@@ -63,14 +65,11 @@ store = "{store}"
 replicates = 1
 base_seed = 3
 [[sweep.axis]]
-name = "cue"
-[sweep.axis.variants]
-cued = {{}}
-sham = {{ "protocol.cue_rate_hz" = 0.0 }}
-[[sweep.axis]]
 name = "n_odours"
 key = "assemblies.count"
 values = [1]
+[controls]
+kinds = ["sham"]
 """
 
 
@@ -117,6 +116,18 @@ def test_store_holds_labelled_results(rules_store) -> None:
     assert ds.attrs["sweep_name"] == "odour-e2e"
     # one assembly scored for count 1, the second entry padded
     assert np.isnan(ds["recall_quality"].sel(rule="full", n_assemblies=1).values[0, 1])
+
+
+def test_a_run_into_a_pipe_logs_plain_progress_lines_and_a_closing_line(rules_store) -> None:
+    """Output to a file or pipe used to show nothing between the start line and one garbled last line; the
+    closing line said 'workers 0' and named neither the store nor the next command."""
+    _, store, proc = rules_store
+    lines = proc.stderr.splitlines()
+    progress = [line for line in lines if re.fullmatch(r"\[[^]]+\] \d+/4 points, \d+ failed, ETA .*", line)]
+    assert len(progress) >= 2 and progress[-1].split("] ", 1)[1].startswith("4/4 points, 0 failed")
+    assert "\r" not in proc.stderr and "\x1b" not in proc.stderr, "no terminal control codes in a log"
+    assert " on 2 workers " in lines[-2]
+    assert lines[-1] == f"store: {store}; next: capsweep capacity {store}"
 
 
 def test_triplet_alone_runs_away_and_full_rule_recalls(rules_store) -> None:
@@ -188,9 +199,11 @@ def test_query_status_and_rerun(rules_store) -> None:
     rows = json.loads(query.stdout)["rows"]
     assert {r["rule"] for r in rows} == {"full"} and len(rows) == 2
     narrowed = json.loads(capsweep("query", str(store), "--where", "n_assemblies == 3", "--format", "json").stdout)["rows"]
-    # --where replaces the default "done and stable" filter
-    assert sorted((r["rule"], r["n_assemblies"], r["outcome"]) for r in narrowed) == [
-        ("full", 3, "stable"), ("triplet_only", 3, "runaway")]
+    # --where narrows the default "done and stable" filter; --all drops the default
+    assert [(r["rule"], r["n_assemblies"], r["outcome"], r["success"]) for r in narrowed] == [("full", 3, "stable", True)]
+    every = json.loads(capsweep("query", str(store), "--all", "--where", "n_assemblies == 3", "--format", "json").stdout)
+    assert sorted((r["rule"], r["status"], r["outcome"], r["success"]) for r in every["rows"]) == [
+        ("full", "done", "stable", True), ("triplet_only", "done", "runaway", False)]
     bad = capsweep("query", str(store), "--where", "nonsense >")
     assert bad.returncode != 0 and "--where" in bad.stderr and "Traceback" not in bad.stderr
     status = capsweep("status", str(store))
@@ -198,6 +211,7 @@ def test_query_status_and_rerun(rules_store) -> None:
     before = xr.open_zarr(store)["wall_time_s"].values.copy()
     again = capsweep("run", str(sweep))
     assert again.returncode == 0 and "0 to run" in again.stderr
+    assert again.stderr.splitlines()[-1] == f"store: {store}; next: capsweep capacity {store}"
     np.testing.assert_array_equal(xr.open_zarr(store)["wall_time_s"].values, before)
 
 
@@ -220,14 +234,20 @@ def _done(store: Path) -> np.ndarray:
         return np.zeros(1, dtype=bool)
 
 
+def run_until_stored(sweep: Path, store: Path, points: int) -> subprocess.Popen[str]:
+    """Start `capsweep run SWEEP` in a session of its own and return once ``points`` points are done."""
+    run = subprocess.Popen([sys.executable, "-m", "capsweep.sweeps.cli", "run", str(sweep)], start_new_session=True,
+                           stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    deadline = time.monotonic() + 300
+    while time.monotonic() < deadline and not (store.exists() and _done(store).sum() >= points):
+        time.sleep(0.2)
+    assert store.exists() and _done(store).sum() >= points, "the run stored nothing in time"
+    return run
+
+
 def test_killed_sweep_resumes_without_recomputing(tmp_path: Path) -> None:
     sweep, store = write_sweep(tmp_path, RESUME_SWEEP, hold_s=8.0)
-    first = subprocess.Popen([sys.executable, "-m", "capsweep.sweeps.cli", "run", str(sweep)], start_new_session=True,
-                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-    deadline = time.monotonic() + 300
-    while time.monotonic() < deadline and not (store.exists() and _done(store).sum() >= 2):
-        time.sleep(0.2)
-    assert store.exists() and _done(store).sum() >= 2, "first run stored nothing in time"
+    first = run_until_stored(sweep, store, 2)
     second = capsweep("run", str(sweep))  # concurrent run on a locked store
     assert second.returncode == 3 and "locked" in second.stderr, second.stderr
     os.killpg(first.pid, signal.SIGKILL)
@@ -269,16 +289,79 @@ def test_unreachable_scheduler_is_named_and_the_new_store_kept(tmp_path: Path) -
 
 def test_a_sham_cue_is_not_a_success_while_the_same_point_with_its_cue_is(tmp_path: Path) -> None:
     """The control of the recall test on a real simulation: the demo's network (the tiny network with adaptation)
-    with one prewired odour, once with its cue and once with the cue input off (protocol.cue_rate_hz = 0), everything else equal. Only the cued point
-    recalls its odour and succeeds; without a cue nothing is evoked (the recall test's null of times sees the
-    members' spontaneous activity), so the sham point is not a success, whatever the overlap score says."""
+    with one prewired odour and its sham control ([controls] kinds = ["sham"]: the cue input off, everything else
+    equal). Only the cued point recalls its odour and succeeds; without a cue nothing is evoked (the recall test's
+    null of times sees the members' spontaneous activity), so the sham point is not a success, whatever the overlap
+    score says. `capsweep capacity` shows the sham's 0 of 1 beside the condition's capacity and flags nothing."""
     sweep, store = write_sweep(tmp_path, SHAM_SWEEP, hold_s=7.0, adapt_jump=0.1)
     proc = capsweep("run", str(sweep), "--workers", "1")
     assert proc.returncode == 0, proc.stderr
     ds = xr.open_zarr(store).load()
     success = point_success(ds).sel(n_odours=1).isel(replicate=0)
-    assert success.sel(cue="cued").item() == 1.0 and success.sel(cue="sham").item() == 0.0
+    assert success.sel(control="none").item() == 1.0 and success.sel(control="sham").item() == 0.0
     state = flag_labels(ds["recall_state"]).sel(n_odours=1, assembly=0).isel(replicate=0)
-    assert state.sel(cue="cued").item() == "recalled" and state.sel(cue="sham").item() != "recalled"
+    assert state.sel(control="none").item() == "recalled" and state.sel(control="sham").item() != "recalled"
     evoked = ds["evoked_completion_hz"].sel(n_odours=1, assembly=0).isel(replicate=0)
-    assert float(evoked.sel(cue="cued")) > 5.0 > float(evoked.sel(cue="sham"))
+    assert float(evoked.sel(control="none")) > 5.0 > float(evoked.sel(control="sham"))
+    sham = control_success(ds).set_index("control").loc["sham"]
+    assert (sham["n"], sham["successes"], sham["alpha"], sham["flagged"]) == (1, 0, 0.01, False)
+    report = capsweep("capacity", str(store))
+    assert report.returncode == 0, report.stderr
+    beside = report.stdout.split("controls beside each condition")[1]
+    assert "lower bound" in beside and "0/1 (0-79 %)" in beside, "capacity 1 of 1 beside the sham's 0 of 1"
+    assert "warning" not in report.stdout
+
+
+def test_ctrl_c_mid_run_stops_quietly_and_keeps_what_was_stored(tmp_path: Path) -> None:
+    """Ctrl-C printed about 30 lines of Dask worker tracebacks. A terminal's Ctrl-C sends SIGINT to the whole
+    foreground process group [POSIX, General Terminal Interface, 11.1.9]: here, to the run's new session."""
+    sweep, store = write_sweep(tmp_path, RESUME_SWEEP, hold_s=8.0)
+    run = run_until_stored(sweep, store, 1)
+    os.killpg(run.pid, signal.SIGINT)
+    _, stderr = run.communicate(timeout=120)
+    assert run.returncode == 130, stderr
+    assert "Traceback" not in stderr and "KeyboardInterrupt" not in stderr, stderr
+    assert stderr.splitlines()[-1].startswith("capsweep: interrupted; results stored so far are kept")
+    assert not _done(store).all() and _done(store).sum() >= 1
+
+
+@pytest.mark.reference
+def test_replay_reproduces_the_stored_point_and_its_nwb_spikes_give_the_stored_rates(rules_store,
+                                                                                      tmp_path: Path) -> None:
+    """`capsweep replay` reruns one point in this process; its metrics equal the stored ones bit for bit, and the
+    spikes of its NWB file, read back with pynwb (the format's reference library), binned by whole simulation
+    steps, give the E and I population rates the original run stored (rate per cell = spikes / (cells x bin))
+    [derived]. Control: a result one ulp off in one variable, or with another outcome, is caught."""
+    from pynwb import NWBHDF5IO
+
+    from capsweep.sweeps.replay import INHIBITORY_UNIT, differing_variables, replay, write_outputs
+
+    _, store, _ = rules_store
+    ds = xr.open_zarr(store)
+    point_id = str(ds["point_id"].sel(rule="full", n_assemblies=3).values[0])
+    run = replay(store, point_id)
+    assert run.differing == []
+    off = dict(run.result, rate_exc_baseline_hz=np.nextafter(run.result["rate_exc_baseline_hz"], np.inf),
+               outcome="runaway")
+    assert differing_variables(store, run.point, off) == ["outcome", "rate_exc_baseline_hz"]
+
+    written = write_outputs(run, tmp_path / "new" / "dir")
+    assert sorted(p.suffix for p in written) == [".nwb", ".png", ".png", ".png"]
+    assert all(p.stat().st_size > 10_000 for p in written if p.suffix == ".png")
+    stored = ds.sel(rule="full", n_assemblies=3, replicate=0)
+    cfg = run.point.config
+    dt_s, bin_s = cfg["network"]["dt_ms"] * 1e-3, cfg["detection"]["trace_bin_ms"] * 1e-3
+    steps_per_bin = round(bin_s / dt_s)
+    n_bins = int(float(stored["simulated_time_s"]) / bin_s + 1e-9)  # whole bins (a last partial one is left out)
+    with NWBHDF5IO(str(next(p for p in written if p.suffix == ".nwb")), mode="r") as io:
+        units = io.read().units.to_dataframe()
+    excitatory = units[units["population"] == "E"]
+    assert len(excitatory) == cfg["network"]["n_exc"]
+    members = excitatory["assemblies"].str.split(",").map(lambda ks: [k for k in ks if k])
+    assert sorted(len([m for m in members if str(k) in m]) for k in range(3)) == [cfg["assemblies"]["size"]] * 3
+    for spikes, cells, name in ((np.concatenate(excitatory["spike_times"].to_list()), len(excitatory), "rate_exc_hz"),
+                                (units[units["population"] == INHIBITORY_UNIT]["spike_times"].iloc[0],
+                                 len(run.handles.inh), "rate_inh_hz")):
+        step = np.rint(np.asarray(spikes) / dt_s).astype(int)
+        counts = np.bincount(step // steps_per_bin, minlength=n_bins)[:n_bins]
+        np.testing.assert_allclose(counts / (cells * bin_s), stored[name].values[:n_bins], rtol=1e-12)

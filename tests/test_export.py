@@ -7,6 +7,9 @@ variable, derived from the point's position); the simulation is tested elsewhere
 from __future__ import annotations
 
 import json
+import subprocess
+import sys
+import tomllib
 from pathlib import Path
 
 import netCDF4
@@ -58,7 +61,7 @@ def store(tmp_path_factory: pytest.TempPathFactory) -> Path:
 
 @pytest.fixture(scope="module")
 def exported(store: Path, tmp_path_factory: pytest.TempPathFactory) -> Path:
-    path = tmp_path_factory.mktemp("netcdf") / "odour.nc"
+    path = tmp_path_factory.mktemp("netcdf") / "new" / "dir" / "odour.nc"  # folders that do not exist yet
     shown = CliRunner().invoke(app, ["export", str(store), "--netcdf", str(path)])
     assert shown.exit_code == 0, shown.output
     return path
@@ -114,3 +117,38 @@ def test_csv_export_has_every_point_with_units(store: Path, tmp_path: Path) -> N
     header = lines[0].split(",")
     assert header[:6] == ["imprint", "n_odours", "inhibitory_stdp", "replicate", "point_id", "status"]
     assert "wall_time_s" in header and "recalled_count" in header
+
+
+def test_netcdf_export_needs_nothing_beyond_the_plain_install(store: Path, tmp_path: Path) -> None:
+    """--netcdf needed the netCDF4 package, which the README's plain install leaves out: with netCDF4 made
+    unimportable the export still writes a file that netCDF4 (the format's reference library) reads back."""
+    path = tmp_path / "new" / "dir" / "x.nc"
+    code = ("import sys; sys.modules['netCDF4'] = None\n"
+            "from capsweep.sweeps.cli import main\n"
+            f"sys.argv = ['capsweep', 'export', {str(store)!r}, '--netcdf', {str(path)!r}]\nmain()")
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=300)
+    assert proc.returncode == 0, proc.stderr
+    with netCDF4.Dataset(path) as nc:
+        np.testing.assert_array_equal(nc["seed"][:], SEEDS)
+
+
+def test_a_file_system_fault_is_one_line_and_the_other_file_is_still_written(store: Path, tmp_path: Path) -> None:
+    """A folder that could not be made gave a 46-78-line traceback ending in a misleading PermissionError on
+    '.partial', and the --csv of the same command was not written."""
+    blocker = tmp_path / "a_file"
+    blocker.write_text("not a folder")
+    csv = tmp_path / "out" / "points.csv"
+    shown = CliRunner().invoke(app, ["export", str(store), "--netcdf", str(blocker / "x.nc"), "--csv", str(csv)])
+    assert shown.exit_code != 0
+    errors = shown.stderr.strip().splitlines()
+    assert len(errors) == 1 and errors[0].startswith("capsweep: error: --netcdf") and str(blocker) in errors[0]
+    assert "partial" not in shown.stderr and "Traceback" not in shown.output
+    assert len(csv.read_text().splitlines()) == 1 + np.prod(SHAPE)
+
+
+def test_examples_copy_into_a_folder_that_does_not_exist_yet(tmp_path: Path) -> None:
+    """`plot --out` created its folder; `examples --to` refused one that did not exist."""
+    target = tmp_path / "new" / "dir"
+    shown = CliRunner().invoke(app, ["examples", "demo", "--to", str(target)])
+    assert shown.exit_code == 0, shown.output
+    assert tomllib.loads((target / "demo.toml").read_text())["sweep"]["name"]

@@ -2,9 +2,13 @@
 
 from __future__ import annotations
 
-from capsweep.sweeps.expand import expand
+import numpy as np
+import pytest
+
+from capsweep.sweeps.costs import Cost, CostModel, Entry
+from capsweep.sweeps.expand import Grid
 from capsweep.sweeps.sweepfile import parse_sweep
-from capsweep.sweeps.workload import Cost, makespan, point_cost, structure_key
+from capsweep.sweeps.workload import makespan
 
 SWEEP = """
 [sweep]
@@ -32,11 +36,12 @@ hold_s = 4.0
 
 def test_builds_follow_structure_not_coefficients_or_switches() -> None:
     """Network size changes the compiled code; rule coefficients and switched-off terms do not."""
-    points = expand(parse_sweep(SWEEP))
-    assert len(points) == 8
-    assert len({structure_key(p) for p in points}) == 2
-    by_size = {p.labels["n_exc"]: structure_key(p) for p in points}
-    assert by_size[300] != by_size[600]
+    grid = Grid(parse_sweep(SWEEP))
+    assert grid.n_points == 8
+    keys = grid.build_keys()
+    assert len(set(keys.flat)) == 2
+    assert keys[0, 0, 0] != keys[0, 1, 0], "300 and 600 cells"
+    assert (keys[1] == keys[0]).all() and (keys[:, :, 1] == keys[:, :, 0]).all(), "rules and beta share builds"
 
 
 def test_makespan_packs_longest_first() -> None:
@@ -48,12 +53,29 @@ def test_makespan_packs_longest_first() -> None:
 
 
 def test_point_cost_scales_with_size_and_duration() -> None:
-    points = expand(parse_sweep(SWEEP))
-    small = next(p for p in points if p.labels["n_exc"] == 300)
-    large = next(p for p in points if p.labels["n_exc"] == 600)
-    costs = {300: Cost(overhead_s=1.0, per_sim_s=0.5)}
+    grid = Grid(parse_sweep(SWEEP))
+    model = CostModel({300: Entry(Cost(overhead_s=1.0, per_sim_s=0.5), "test")})
     # settle + hold + four cues with gaps + the tail that completes runaway_hold_s + smoothing_s (1 + 0.5 s)
     # after the last cue, s (registry defaults)
     planned = 1.0 + 4.0 + 4 * (0.2 + 0.5) + (1.5 - 0.5)
-    assert abs(point_cost(small, costs) - (1.0 + 0.5 * planned)) < 1e-9
-    assert abs(point_cost(large, costs) - (1.0 + 0.5 * 2 * planned)) < 1e-9  # twice the cells
+    assert np.allclose(grid.durations(), planned)
+    assert abs(model.point_s(300, planned) - (1.0 + 0.5 * planned)) < 1e-9
+    assert abs(model.point_s(600, planned) - (1.0 + 0.5 * 2 * planned)) < 1e-9  # twice the cells
+
+
+def test_the_cost_model_learns_a_line_and_a_compile_from_stored_points(tmp_path, monkeypatch) -> None:
+    """[derived] points whose wall time is exactly 2 s + 0.5 x simulated time and whose set-up is 1 s, except 41 s for
+    the first point of build "a" (its compile): the fit must return that line, the median set-up and a 40 s compile."""
+    from capsweep.sweeps import costs
+
+    simulated = np.array([4.0, 8.0, 12.0, 16.0, 4.0, 8.0])
+    setup = np.array([41.0, 1.0, 1.0, 1.0, 1.0, 1.0])
+    builds = np.array(["a", "a", "a", "b", "b", "b"])
+    model = costs.learn(CostModel(), "store", np.full(6, 300), setup, 2.0 + 0.5 * simulated, simulated, builds)
+    cost = model.sizes[300].cost
+    assert cost.per_sim_s == pytest.approx(0.5) and cost.overhead_s == pytest.approx(1.0 + 2.0)
+    assert model.compile_s == pytest.approx(40.0)
+    assert model.covers(500) and not model.covers(700), "an entry covers sizes within a factor 2"
+    monkeypatch.setenv(costs.COST_FILE_ENV, str(tmp_path / "costs.json"))
+    costs.save("standalone", model)
+    assert costs.load("standalone") == model and costs.load("cython").sizes == {}

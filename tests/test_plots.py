@@ -20,8 +20,8 @@ from capsweep.results_schema.layout import VARIABLES
 from capsweep.results_schema.store import ResultStore, create_store
 from capsweep.sweeps.capacity import capacity_table, success_table
 from capsweep.sweeps.cli import app
-from capsweep.sweeps.expand import expand
-from capsweep.sweeps.identity import grid_spec, id_and_seed_arrays
+from capsweep.sweeps.expand import Grid, expand
+from capsweep.sweeps.identity import grid_spec
 from capsweep.sweeps.plots import (
     all_plots,
     capacity_against,
@@ -88,7 +88,8 @@ def invented(count: int, outcome: str, recalled: int, predicted: str, seed: int,
         "outcome": outcome, "predicted_outcome": predicted, "engine": "cython", "seed": seed,
         "recalled_count": recalled, "overlap_recalled_count": recalled, "already_active_count": 0, "stuck_count": 0,
         "recall_state": ["recalled"] * recalled + ["not_recalled"] * (count - recalled),
-        "test_position": np.arange(count), "n_synapses": 1000, "retention_recalled": [recalled], "retention_tested": [count], "age_recalled": [-1], "age_tested": [-1], "recall_score": score,
+        "test_position": np.arange(count), "n_synapses": 1000, "threads": 1, "retention_recalled": [recalled],
+        "retention_tested": [count], "age_recalled": [-1], "age_tested": [-1], "recall_score": score,
         "simulated_time_s": stopped if outcome == "runaway" else 20.0,
         "weight_correlation": np.array([1.0, 0.9, 0.8]), "snapshot_time_s": np.array([1.0, 2.0, 3.0]),
         "rate_exc_hz": np.full(n_bins, 3.0), "cue_time_s": np.full(count, cue_time_s),
@@ -102,8 +103,8 @@ def store(tmp_path_factory: pytest.TempPathFactory) -> Path:
     sweep = parse_sweep(SWEEP)
     points = expand(sweep)
     path = tmp_path_factory.mktemp("plots") / "odour.zarr"
-    grid = grid_spec(sweep, points)
-    create_store(path, grid, *id_and_seed_arrays(sweep, points))
+    grid = grid_spec(Grid(sweep))
+    create_store(path, grid, *Grid(sweep).ids_and_seeds())
     writer = ResultStore.open(path)
     for p in points:
         count = p.config["assemblies"]["count"]
@@ -206,8 +207,13 @@ def test_rate_trace_panels_name_their_point_and_shade_the_cues(ds: xr.Dataset) -
     runaway = panels[1]
     starts = [SETTLE_S + RETENTION_S, SETTLE_S + HOLD_S]
     expected = sorted((s + k * (CUE_S + GAP_S), s + k * (CUE_S + GAP_S) + CUE_S) for s in starts for k in range(3))
-    np.testing.assert_allclose(_spans(runaway, "cue"), expected, atol=1e-9)
+    np.testing.assert_allclose(_spans(panels[0], "cue"), [(s, s + CUE_S) for s in starts], atol=1e-9)  # 1 odour
+    # the runaway run stopped at STOPPED_S: nothing after it is shaded (it used to be, as if the run went on)
+    until_stop = [(a, min(b, STOPPED_S)) for a, b in expected if a < STOPPED_S]
+    assert len(until_stop) == 3 and until_stop[-1][1] == STOPPED_S  # 1.5-1.7, 2.2-2.4, 2.9-3.0 (cut)
+    np.testing.assert_allclose(_spans(runaway, "cue"), until_stop, atol=1e-9)
     np.testing.assert_allclose(_spans(runaway, "settle"), [(0.0, SETTLE_S)])
+    assert not _spans(runaway, "tail") and _spans(panels[0], "tail")
     assert not _spans(runaway, "imprint")
     assert [line.get_xdata()[0] for line in runaway.lines if line.get_gid() == "stopped"] == [STOPPED_S]
     assert not [line for line in panels[0].lines if line.get_gid() == "stopped"]

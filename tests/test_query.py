@@ -182,7 +182,7 @@ def test_capacity_csv_and_json_keep_integers_and_write_na_as_empty(store: Path) 
     rows = pd.read_csv(io.StringIO(csv_out.output), dtype=str, keep_default_na=False)
     assert list(rows["capacity"]) == ["3", ""] and list(rows["capacity_lo"]) == ["2", ""]
     assert list(rows["pending"]) == ["0", "1"]
-    records = json.loads(runner.invoke(app, ["capacity", str(store), "--format", "json"]).output)
+    records = json.loads(runner.invoke(app, ["capacity", str(store), "--format", "json"]).output)["rows"]
     assert records[0]["capacity"] == 3 and isinstance(records[0]["capacity"], int)
     assert records[1]["capacity"] is None
     per_count = runner.invoke(app, ["capacity", str(store), "--format", "csv", "--per-count"])
@@ -286,14 +286,18 @@ def test_crashes_above_the_deciding_count_do_not_hide_the_capacity(tmp_path: Pat
 
 def test_where_applies_together_with_all_and_the_table_names_its_filter(store: Path) -> None:
     """--all drops only the default filter: with --where, only the matching points remain (all 4 count-4
-    points are done, one runs away in each replicate of beta 0 per SPECIAL)."""
+    points are done, one runs away in each replicate of beta 0 per SPECIAL). Without --all, --where narrows
+    the default filter (the issue: it used to replace it, so runaway points came back)."""
     runner = CliRunner()
     shown = json.loads(runner.invoke(app, ["query", str(store), "--all", "--where", "n_odours == 4",
                                            "--format", "json"]).stdout)
     assert [(r["beta"], r["replicate"], r["outcome"]) for r in shown["rows"]] == [
         (0.0, 0, "runaway"), (0.0, 1, "runaway"), (0.05, 0, "stable"), (0.05, 1, "stable")]
     assert shown["filter"] == "n_odours == 4"
-    table = runner.invoke(app, ["query", str(store)])
+    narrowed = runner.invoke(app, ["query", str(store), "--where", "n_odours == 4", "--format", "json"])
+    assert [(r["beta"], r["outcome"]) for r in json.loads(narrowed.stdout)["rows"]] == [(0.05, "stable")] * 2
+    assert narrowed.stderr.startswith('filter: status == "done" and outcome == "stable" (default) and (n_odours == 4)')
+    table = runner.invoke(app, ["query", str(store), "--wide"])
     assert table.exit_code == 0 and table.stderr.splitlines() == [
         'filter: status == "done" and outcome == "stable" (default; --all for every point)']
     everything = runner.invoke(app, ["query", str(store), "--all", "--format", "json"])
@@ -355,8 +359,8 @@ def test_status_lists_every_label_and_each_failed_point_with_its_error(tmp_path:
     counts = next(line for line in lines if line.startswith("status:")).removeprefix("status:").split(",")
     assert [c.split()[0] for c in counts] == list(STATUSES)
     assert dict(c.split() for c in counts) == {**{s: "0" for s in STATUSES}, "done": "7", "failed": "1"}
-    failed = [line for line in lines if line.startswith("failed ")]
-    assert failed == ["failed n_odours=2 beta=0.0 replicate=0 (p2): RuntimeError: worker lost"]
+    failed = lines[lines.index(next(line for line in lines if line.startswith("failed "))):][:2]
+    assert failed == ["failed 1x: RuntimeError: worker lost", "  n_odours=2 beta=0.0 replicate=0 (p2)"]
 
 
 def test_status_of_a_store_with_nothing_done_says_so(tmp_path: Path) -> None:
@@ -378,3 +382,53 @@ def test_a_sweep_file_instead_of_a_store_names_its_store(tmp_path: Path, command
     assert shown.exit_code != 0 and "Traceback" not in shown.output and shown.output.count("\n") == 1
     assert shown.stderr.strip() == (f"capsweep: error: {sweep} is a sweep file; its store is results/odour-pointer.zarr "
                                     f"(run `capsweep {command} results/odour-pointer.zarr`)")
+
+
+def test_success_and_status_columns_tell_partial_recall_from_success(store: Path) -> None:
+    """Stable points that recalled only some odours looked like successes; `query --all` had no status column
+    and its pending point was a blank row. SPECIAL: (count 3, beta 0, replicate 1) is stable but recalls 2 of 3;
+    (count 1, beta 0.05, replicate 1) is pending."""
+    shown = CliRunner().invoke(app, ["query", str(store), "--all", "--format", "json"])
+    rows = {(r["n_odours"], r["beta"], r["replicate"]): r for r in json.loads(shown.stdout)["rows"]}
+    partial = rows[(3, 0.0, 1)]
+    assert (partial["status"], partial["outcome"], partial["recalled_count"], partial["success"]) == (
+        "done", "stable", 2, False)
+    assert (rows[(4, 0.0, 0)]["outcome"], rows[(4, 0.0, 0)]["success"]) == ("runaway", False)
+    assert rows[(3, 0.0, 0)]["success"] is True
+    assert (rows[(1, 0.05, 1)]["status"], rows[(1, 0.05, 1)]["success"]) == ("pending", None)
+    table = CliRunner().invoke(app, ["query", str(store), "--all", "--wide"]).stdout.splitlines()
+    assert table[0].split()[:5] == ["n_odours", "beta", "replicate", "status", "success"]
+    assert [line.split()[3:5] for line in table[1:] if line.split()[:3] == ["1", "0.05", "1"]] == [["pending", "NA"]]
+
+
+@pytest.mark.parametrize("fmt", ["csv", "json"])
+def test_every_format_states_its_filter_on_stderr(store: Path, fmt: str) -> None:
+    shown = CliRunner().invoke(app, ["query", str(store), "--format", fmt])
+    assert shown.stderr == 'filter: status == "done" and outcome == "stable" (default; --all for every point)\n'
+
+
+def test_query_and_capacity_json_share_one_shape(store: Path) -> None:
+    """`capacity --format json` was a bare list, `query --format json` an object with units and filter."""
+    query = json.loads(CliRunner().invoke(app, ["query", str(store), "--format", "json"]).stdout)
+    capacity = json.loads(CliRunner().invoke(app, ["capacity", str(store), "--format", "json"]).stdout)
+    assert set(query) == set(capacity) == {"units", "filter", "rows"}
+    assert query["units"]["rate_exc_baseline_hz"] == "Hz"
+
+
+def test_capacity_table_keeps_capacity_numeric_and_per_count_applies_to_the_table(store: Path) -> None:
+    """The capacity column mixed numbers and 'at least 4'; `--per-count` without csv/json was silently ignored.
+    SPECIAL: beta 0.05 succeeds at every count but its pending point leaves it undecided (NA); a store whose
+    every point succeeds has capacity 4 = the top of the grid, a lower bound."""
+    shown = CliRunner().invoke(app, ["capacity", str(store), "--wide"]).stdout
+    capacity_rows = shown.split("capacity (every count")[1].splitlines()[1:]
+    header = capacity_rows[0].split()
+    assert header[:4] == ["beta", "capacity", "censored", "replicate_range"]
+    assert capacity_rows[1].split()[:3] == ["0", "3", "2-3"]
+    per_count = CliRunner().invoke(app, ["capacity", str(store), "--per-count"]).stdout
+    assert "success per count" in per_count and "capacity (every count" not in per_count
+
+
+def test_a_censored_capacity_is_a_number_with_a_lower_bound_mark(tmp_path: Path) -> None:
+    shown = CliRunner().invoke(app, ["capacity", str(_filled_store(tmp_path, {}))]).stdout
+    row = shown.split("capacity (every count")[1].splitlines()[2].split()
+    assert row[1:4] == ["4", "lower", "bound"]

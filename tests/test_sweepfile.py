@@ -20,7 +20,7 @@ from capsweep.errors import ConfigError
 from capsweep.registry import KEYS, defaults
 from capsweep.sweeps.cli import app
 from capsweep.sweeps.expand import expand
-from capsweep.sweeps.identity import grid_shape, point_id
+from capsweep.sweeps.ids import grid_shape, point_id
 from capsweep.sweeps.sweepfile import parse_sweep
 
 GOOD = """
@@ -233,3 +233,28 @@ values = [300, 1200]
     points = expand(parse_sweep(text))
     sizes = {(p.labels["n_exc"], p.config["assemblies"]["size"]) for p in points}
     assert sizes == {(300, 30), (1200, 120)}
+
+
+@pytest.mark.parametrize("name", ["règle", "odeur_2", "Δw"])
+def test_axis_names_may_use_any_script_python_accepts(name: str) -> None:
+    """'règle' was refused as "not a Python-style identifier" though Python accepts it: Python's own compiler
+    is the reference here."""
+    compile(f"{name} = 1", "<axis name>", "exec")  # the language accepts it as a name
+    sweep = parse_sweep(GOOD.replace('name = "n_assemblies"', f'name = "{name}"'))
+    assert [axis.name for axis in sweep.axes] == [name]
+
+
+@pytest.mark.parametrize("name", ["class", "2odours", "rule-set"])
+def test_axis_names_python_refuses_are_refused(name: str) -> None:
+    with pytest.raises(SyntaxError):
+        compile(f"{name} = 1", "<axis name>", "exec")
+    with pytest.raises(ConfigError, match="not allowed"):
+        parse_sweep(GOOD.replace('name = "n_assemblies"', f'name = "{name}"'))
+
+
+def test_a_coding_level_axis_beside_a_fixed_size_is_refused_per_point() -> None:
+    """A size in [assemblies] and a coding_level from an axis: the level silently decided the size."""
+    text = GOOD + '[[sweep.axis]]\nname = "level"\nkey = "assemblies.coding_level"\nvalues = [0.1]\n'
+    with pytest.raises(ConfigError, match=r"assemblies\.size \(40\) and assemblies\.coding_level \(0\.1\)"):
+        expand(parse_sweep(text))
+    assert len(expand(parse_sweep(text.replace("size = 40\n", "")))) == 4
