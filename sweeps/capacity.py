@@ -1,5 +1,10 @@
 """Capacity from a store: success of each point, success fractions with intervals, capacity per condition.
 
+The capacity reported first (:func:`capacity_report`) is fitted: where a monotone success curve,
+fitted to every decided replicate of the condition, crosses ``min_fraction``, with a 95 % interval
+and a censoring side when the grid does not bracket the crossing (:mod:`capsweep.sweeps.capacity_fit`).
+Beside it, the *first-failure* capacity of :func:`capacity_table`, defined below.
+
 Definitions (the same words are stored in every store's attrs, see
 ``capsweep.results_schema.definitions``):
 
@@ -8,6 +13,8 @@ Definitions (the same words are stored in every store's attrs, see
   pseudo-assemblies, ``capsweep.runners.metrics.recall_test``) and none is stuck on
   (``stuck_count == 0``). A failed (crashed) point is neither success nor failure: it is left
   out and counted. A pending point leaves its condition undecided.
+- Fitted capacities read per-count tallies (:func:`condition_tallies`): pending, unneeded and
+  crashed points are in no fraction, so they never count as failures.
 - Per condition (one combination of the axes other than the count axis) and count: the success
   fraction over the done replicates, with a 95 % Wilson score interval (Wilson 1927, J Am Stat
   Assoc 22:209).
@@ -31,19 +38,22 @@ from __future__ import annotations
 import itertools
 from collections.abc import Iterator
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import pandas as pd
 import xarray as xr
-from scipy.stats import binomtest
 
 from ..axes import COUNT_KEY, REPLICATE
+from ..errors import ConfigError
 from ..flags import DONE, FAILED, PENDING, UNNEEDED
+from ..results_schema import attrs
+from .capacity_fit import CapacityFit, fit_capacity
 from .query import QueryError, axis_keys, labelled
+from .scaling_fit import ScalingFit, fit_scaling
+from .sequential import Tally, wilson_interval
 from .success import MIN_FRACTION, count_passes, leading_passes, succeeds
-
-CONFIDENCE = 0.95
-"""Confidence level of the Wilson intervals."""
+from .sweepfile import parse_sweep
 
 
 def point_success(ds: xr.Dataset) -> xr.DataArray:
@@ -90,14 +100,6 @@ def _conditions(ds: xr.Dataset) -> Iterator[_Condition]:
         yield _Condition(labels, ds[count].values[order],
                          success.isel(where).transpose(count, REPLICATE).values[order],
                          status.isel(where).transpose(count, REPLICATE).values[order])
-
-
-def wilson_interval(successes: int, trials: int) -> tuple[float, float]:
-    """95 % Wilson score interval of a success fraction (NaN, NaN for no trials)."""
-    if trials == 0:
-        return float("nan"), float("nan")
-    ci = binomtest(successes, trials).proportion_ci(confidence_level=CONFIDENCE, method="wilson")
-    return float(ci.low), float(ci.high)
 
 
 def success_table(ds: xr.Dataset) -> pd.DataFrame:
@@ -152,6 +154,12 @@ def _replicate_capacities(condition: _Condition, passes: np.ndarray) -> list[int
     return capacities
 
 
+def _rises(passes: np.ndarray) -> bool:
+    """Whether a count passes after a smaller one fell short (undecided counts, NaN, break no order)."""
+    short = np.flatnonzero(passes == 0.0)
+    return bool(len(short) and np.any(passes[short[0]:] == 1.0))
+
+
 def capacity_table(ds: xr.Dataset, min_fraction: float = MIN_FRACTION) -> pd.DataFrame:
     """Capacity per condition with its replicate range and flags (see the module docstring)."""
     if not 0.0 < min_fraction <= 1.0:
@@ -169,7 +177,7 @@ def capacity_table(ds: xr.Dataset, min_fraction: float = MIN_FRACTION) -> pd.Dat
             "capacity_lo": min(replicates) if replicates else pd.NA,
             "capacity_hi": max(replicates) if replicates else pd.NA,
             "at_least": not undecided and lead == len(condition.counts),
-            "non_monotone": bool(np.any(passes[lead:] == 1.0)),
+            "non_monotone": _rises(passes),
             "replicates_used": len(replicates),
             **{label: counts[label] for label in (PENDING, FAILED, UNNEEDED)},
         })
@@ -180,60 +188,89 @@ def capacity_table(ds: xr.Dataset, min_fraction: float = MIN_FRACTION) -> pd.Dat
 
 
 SIZE_KEY = "network.n_exc"
-BOOTSTRAP_RESAMPLES = 2000
 
 
-@dataclass(frozen=True)
-class ScalingFit:
-    """Capacity against network size: capacity ~ prefactor * n_exc ** exponent."""
+def condition_tallies(success: np.ndarray, status: np.ndarray, counts: np.ndarray) -> dict[int, Tally]:
+    """Per assembly count: successes among the decided (done) replicates, and the crashed ones.
 
-    exponent: float
-    exponent_lo: float  # 95 % bootstrap interval over replicates
-    exponent_hi: float
-    prefactor: float
-    sizes: list[int]  # network sizes used in the fit
-    mean_capacity: list[float]  # mean per-replicate capacity at each size
-    lower_bounds: list[int]  # sizes whose capacity reached the top of the grid (only a lower bound)
-
-
-def size_dim(ds: xr.Dataset) -> str | None:
-    """The sweep dim over ``network.n_exc``, if any."""
-    return next((d for d, k in axis_keys(ds).items() if k == SIZE_KEY), None)
-
-
-def scaling_fit(ds: xr.Dataset, seed: int = 0) -> ScalingFit | None:
-    """Least-squares fit of log capacity against log n_exc, with a bootstrap interval on the exponent.
-
-    Per size, the mean of the per-replicate capacities (see the module docstring); sizes with a
-    mean of 0 are left out (no logarithm). The interval resamples each size's replicates with
-    replacement (``BOOTSTRAP_RESAMPLES`` times, percentile 2.5-97.5). Needs axes over n_exc and
-    the assembly count and no other axis with more than one value; None with fewer than two
-    usable sizes. Sizes whose capacity is the top of the count grid are named in
-    ``lower_bounds``: there the fit underestimates.
+    ``success`` and ``status`` have shape (count, replicate), ``counts`` the ascending counts; pending and
+    unneeded points are in no tally, so they never count as failures.
     """
-    size = size_dim(ds)
-    if size is None or any(ds.sizes[d] > 1 for d in axis_keys(ds) if d not in (size, count_dim(ds))):
+    return {int(c): Tally(int(np.nansum(row)), int(np.sum(np.isfinite(row))), int(np.sum(labels == FAILED)))
+            for c, row, labels in zip(counts, success, status)}
+
+
+def _fit_of(condition: _Condition, threshold: float) -> CapacityFit | None:
+    """The fitted capacity of one condition (None with nothing decided, or at threshold 1: no finite crossing)."""
+    if threshold >= 1.0:
         return None
-    per_size: dict[int, np.ndarray] = {}
-    top: list[int] = []
-    for condition in _conditions(ds):
-        n = int(condition.labels[size])  # type: ignore[call-overload]
-        capacities = np.array(_replicate_capacities(condition, _passes(condition, MIN_FRACTION)), dtype=float)
-        if len(capacities) and capacities.mean() > 0:
-            per_size[n] = capacities
-            top += [n] if capacities.max() >= condition.counts[-1] else []
-    if len(per_size) < 2:
+    return fit_capacity(condition_tallies(condition.success, condition.status, condition.counts), threshold)
+
+
+def _fit_columns(fit: CapacityFit | None) -> dict[str, object]:
+    """The fitted capacity's columns: estimate, 95 % interval, censoring side and bound, flag, replicates used."""
+    if fit is None:
+        return {"capacity": np.nan, "capacity_lo": np.nan, "capacity_hi": np.nan, "censored": "", "bound": pd.NA,
+                "non_monotone": False, "replicates": 0}
+    return {"capacity": np.nan if fit.estimate is None else round(fit.estimate, 2),
+            "capacity_lo": np.nan if fit.low is None else round(fit.low, 2),
+            "capacity_hi": np.nan if fit.high is None else round(fit.high, 2),
+            "censored": "" if fit.censoring == "inside" else fit.censoring,
+            "bound": pd.NA if fit.bound is None else fit.bound,
+            "non_monotone": fit.non_monotone, "replicates": fit.replicates}
+
+
+def capacity_report(ds: xr.Dataset, min_fraction: float = MIN_FRACTION) -> pd.DataFrame:
+    """Per condition: the fitted capacity (:mod:`capsweep.sweeps.capacity_fit`) with its 95 % interval and
+    censoring, the first-failure capacity of :func:`capacity_table` beside it, replicates and point counts.
+
+    Columns: the condition's axes; ``capacity`` (assemblies, where the fitted success curve crosses
+    ``min_fraction``; NaN when censored or nothing is decided), ``capacity_lo``/``capacity_hi`` (95 %
+    interval; NaN for an open end), ``censored`` ("below": the capacity lies under ``bound``, the
+    smallest decided count; "above": it is at least ``bound``, the largest; empty inside the grid),
+    ``first_failure`` (the capacity rule of :func:`capacity_table`; NA while undecided) with
+    ``first_failure_at_least`` (it is the top of the grid), ``non_monotone`` (the fit's test: success
+    rises with the count beyond chance), ``replicates`` (decided replicates the fit used), and the
+    pending, failed and unneeded point counts.
+    """
+    rule = capacity_table(ds, min_fraction)
+    rows = []
+    for condition, first in zip(_conditions(ds), rule.itertuples(index=False)):
+        rows.append({**condition.labels, **_fit_columns(_fit_of(condition, min_fraction)),
+                     "first_failure": first.capacity, "first_failure_at_least": first.at_least,
+                     **{label: getattr(first, label) for label in (PENDING, FAILED, UNNEEDED)}})
+    table = pd.DataFrame(rows)
+    for column in ("bound", "first_failure"):
+        table[column] = table[column].astype("Int64")
+    return table
+
+
+def network_sizes(ds: xr.Dataset) -> tuple[str, dict[Any, float]] | None:
+    """The dim that sets the network size and the n_exc (cells) of each of its values: an axis over
+    ``network.n_exc``, or a variants axis whose every variant sets it (e.g. n_exc with its in-degrees and
+    weights), read from the sweep text the store holds; None when there is neither."""
+    size = next((d for d, k in axis_keys(ds).items() if k == SIZE_KEY), None)
+    if size is not None:
+        return size, {v: float(v) for v in ds[size].values.tolist()}
+    try:
+        sweep = parse_sweep(str(ds.attrs.get(attrs.SWEEP_TEXT, "")))
+    except ConfigError:
         return None
-    sizes = sorted(per_size)
-    log_n = np.log(sizes)
-    means = np.array([per_size[n].mean() for n in sizes])
-    slope, intercept = np.polyfit(log_n, np.log(means), 1)
-    rng = np.random.default_rng(seed)
-    slopes = []
-    for _ in range(BOOTSTRAP_RESAMPLES):
-        resampled = np.array([rng.choice(per_size[n], len(per_size[n])).mean() for n in sizes])
-        if np.all(resampled > 0):
-            slopes.append(np.polyfit(log_n, np.log(resampled), 1)[0])
-    lo, hi = np.percentile(slopes, [2.5, 97.5])
-    return ScalingFit(float(slope), float(lo), float(hi), float(np.exp(intercept)), sizes,
-                      [float(m) for m in means], top)
+    return next(((name, {label: float(overrides[SIZE_KEY]) for label, overrides in table.items()})
+                 for name, table in sweep.variants.items()
+                 if table and all(SIZE_KEY in overrides for overrides in table.values())), None)
+
+
+def scaling_fit(ds: xr.Dataset, min_fraction: float = MIN_FRACTION) -> ScalingFit | None:
+    """capacity ~ a n_exc^b over the store's sizes from the fitted capacities, censored ones included.
+
+    Needs an axis that sets n_exc (:func:`network_sizes`) and one over the assembly count, and no other axis
+    with more than one value; None otherwise or when :func:`capsweep.sweeps.scaling_fit.fit_scaling` has too
+    little to fit. Its ``caveats`` say when to read b with care (few sizes, non-monotone success, censoring).
+    """
+    sizes = network_sizes(ds)
+    if sizes is None or any(ds.sizes[d] > 1 for d in axis_keys(ds) if d not in (sizes[0], count_dim(ds))):
+        return None
+    fits = [(sizes[1][condition.labels[sizes[0]]], fit) for condition in _conditions(ds)
+            if (fit := _fit_of(condition, min_fraction)) is not None]
+    return fit_scaling(fits)

@@ -8,6 +8,7 @@ Help is plain text (no markup: ``[unit]`` and ``[sweep]`` show as written).
 from __future__ import annotations
 
 import functools
+import math
 import os
 import sys
 import tomllib
@@ -311,31 +312,37 @@ def query(
 def capacity(
     store: Path = _STORE,
     min_fraction: float = typer.Option(MIN_FRACTION, "--min-fraction", metavar="F",
-                                       help="fraction of replicates in which each count up to capacity must succeed"),
+                                       help="success fraction where the fitted curve gives the capacity, and that each "
+                                            "count up to the first-failure capacity must reach (at 1 the fit is NA)"),
     per_count: bool = typer.Option(False, "--per-count", help="only the per-count success table (every format)"),
     controls: bool = typer.Option(False, "--controls",
                                   help="csv/json: each control's success per condition instead (control dim)"),
     fmt: TableFormat = typer.Option(TableFormat.table, "--format", metavar="FORMAT", help=_FORMAT_HELP),
     wide: bool = typer.Option(False, "--wide", help=_WIDE_HELP),
 ) -> None:
-    """Capacity per condition (combination of the other axes): largest assembly count whose every smaller count
-    succeeds.
+    """Capacity per condition (combination of the other axes): where the fitted success curve crosses the
+    fraction, with its 95 % interval.
 
-    A point succeeds when it is done, stable and recalls every assembly. The table shows each count's
-    success fraction with its 95 % Wilson interval, then the capacity with the range of the per-replicate
-    capacities: 'censored' marks a capacity at the top of the grid (a lower bound), NA a condition with
-    pending points. csv and json write one table (the capacity table, or with --per-count the per-count
-    table); json as {"units", "filter", "rows"}, as query writes it. A store with controls ([controls] in the
-    sweep file) also shows each condition's capacity beside its controls' success, and flags a condition whose
-    sham or unstructured control succeeds beyond chance at the recall test's false-positive rate
-    (detection.recall_alpha); with --controls, csv and json write that table.
+    A point succeeds when it is done, stable and recalls every assembly; pending, unneeded and crashed
+    points never count as failures. The table shows each count's success fraction with its 95 % Wilson
+    interval, then per condition the fitted capacity with its 95 % interval; 'censored' marks a capacity the
+    grid does not bracket: 'lower bound' (the fitted crossing lies above the largest count decided: the
+    capacity is at least the number shown) or 'upper bound' (below the smallest: the capacity lies under it),
+    with an open interval end shown as '..'. Beside it the
+    first-failure capacity (largest count whose every smaller count passes; a lower bound at the top count;
+    NA while a point is pending) and the decided replicates the fit used. csv and json write one table (the
+    capacity table, or with --per-count the per-count table); json as {"units", "filter", "rows"}, as query
+    writes it. A store with controls ([controls] in the sweep file) also shows each condition's capacity
+    beside its controls' success, and flags a condition whose sham or unstructured control succeeds beyond
+    chance at the recall test's false-positive rate (detection.recall_alpha); with --controls, csv and json
+    write that table.
     """
-    from .capacity import capacity_table, count_dim, scaling_fit, success_table
+    from .capacity import capacity_report, count_dim, scaling_fit, success_table
     from .control_table import control_success
     from .query import open_store, sweep_dims
 
     ds = open_store(store, "capacity")
-    table = capacity_table(ds, min_fraction)
+    table = capacity_report(ds, min_fraction)
     labels = [d for d in sweep_dims(ds) if d in table.columns or d == count_dim(ds)]
     if fmt is not TableFormat.table:
         _emit(success_table(ds) if per_count else control_success(ds) if controls else table, fmt, {}, "")
@@ -344,22 +351,18 @@ def capacity(
     _table(success_table(ds), labels, wide, hide_zero=_STATUS_COUNTS)
     if per_count:
         return
-    _say(f"\ncapacity (every count up to it succeeds in >= {min_fraction:g} of replicates; "
-         "range over replicates):")
-    _table(_capacity_display(table), labels, wide, hide_zero=_STATUS_COUNTS)
-    _print_controls(control_success(ds), _capacity_display(table), labels)
-    fit = scaling_fit(ds)
-    if fit is not None:
-        _say(f"capacity ~ {fit.prefactor:.3g} x n_exc^b, b = {fit.exponent:.2f} "
-             f"[{fit.exponent_lo:.2f}, {fit.exponent_hi:.2f}] (95 % bootstrap over replicates; sizes "
-             f"{', '.join(map(str, fit.sizes))}"
-             + (f"; at the top of the grid, so underestimated: {fit.lower_bounds}" if fit.lower_bounds else "")
-             + ")")
+    _say(f"\ncapacity (fitted success curve crosses {min_fraction:g}; 95 % profile-likelihood interval; censored: "
+         "the crossing lies beyond the counts decided; first_failure: largest count whose every smaller count "
+         "passes, a lower bound at the top count):")
+    shown = _capacity_display(table)
+    _table(shown, labels, wide, hide_zero=_STATUS_COUNTS)
+    _print_controls(control_success(ds), shown, labels)
+    _say_scaling(scaling_fit(ds, min_fraction))
     others = [c for c in table.columns if c not in _CAPACITY_COLUMNS]
     for _, row in table[table["non_monotone"]].iterrows():
         where = ", ".join(f"{c}={row[c]}" for c in others) or "the grid"
-        _say(f"warning: success is not monotone in {count_dim(ds)} for {where}: a larger count succeeds "
-             "after a smaller one failed")
+        _say(f"warning: success is not monotone in {count_dim(ds)} for {where}: larger counts succeed more often "
+             "than chance allows after smaller ones failed")
 
 
 def _print_controls(controls: Any, shown: Any, labels: Sequence[str]) -> None:
@@ -370,7 +373,7 @@ def _print_controls(controls: Any, shown: Any, labels: Sequence[str]) -> None:
         return
     _say("\ncontrols beside each condition (success over every count and replicate, 95 % Wilson interval; "
          "over_alpha: sham or unstructured succeeding beyond chance at the recall test's false-positive rate):")
-    _table(controls_beside(shown, controls, ("capacity", CENSORED)), labels, wide=True)
+    _table(controls_beside(shown, controls, ("capacity", CENSORED, "interval_95")), labels, wide=True)
     others = [c for c in controls.columns if c not in (*STAT_COLUMNS, CONTROL_DIM)]
     for _, row in controls[controls["flagged"]].iterrows():
         where = ", ".join(f"{c}={row[c]}" for c in others) or "the grid"
@@ -384,24 +387,45 @@ def _say(line: str) -> None:
     out.print(line, highlight=False, markup=False, soft_wrap=True)
 
 
+def _say_scaling(fit: Any) -> None:
+    """The power-law fit of capacity against n_exc with its interval and caveats (nothing when there is none)."""
+    if fit is None:
+        return
+    _say(f"capacity ~ {fit.prefactor:.3g} x n_exc^b, b = {fit.exponent:.2f} "
+         f"[{fit.exponent_low:.2f}, {fit.exponent_high:.2f}] (95 % profile likelihood, censored capacities as "
+         f"bounds; sizes {', '.join(f'{n:g}' for n in sorted(set(fit.sizes)))})")
+    for caveat in fit.caveats:
+        _say(f"caveat: {caveat}")
+
+
 _STATUS_COUNTS = (PENDING, FAILED, UNNEEDED)
-_CAPACITY_COLUMNS = ("capacity", "capacity_lo", "capacity_hi", "at_least", "non_monotone", "replicates_used",
-                     *_STATUS_COUNTS)
 CENSORED = "censored"
-"""Column of the shown capacity table: 'lower bound' where the capacity is the top of the count grid."""
+"""Column of the capacity tables: where the count grid does not bracket the fitted capacity (see
+:data:`_CENSORED_TEXT` for how it is shown)."""
+_CAPACITY_COLUMNS = ("capacity", "capacity_lo", "capacity_hi", CENSORED, "bound", "first_failure",
+                     "first_failure_at_least", "non_monotone", "replicates", *_STATUS_COUNTS)
+_CENSORED_TEXT = {"above": "lower bound", "below": "upper bound", "": ""}
+"""The censoring side of :func:`capsweep.sweeps.capacity.capacity_report` as shown beside the bound it makes."""
 
 
 def _capacity_display(table: Any) -> Any:
-    """The capacity table as shown: capacity stays a number, its censoring a column of its own, the replicate range
-    as 'lo-hi'."""
-    import pandas as pd
-
-    shown = table.drop(columns=["capacity_lo", "capacity_hi", "at_least"])
-    at = shown.columns.get_loc("capacity") + 1
-    shown.insert(at, CENSORED, ["lower bound" if row.at_least else "" for row in table.itertuples()])
-    shown.insert(at + 1, "replicate_range", ["NA" if pd.isna(row.capacity_lo) else
-                                             f"{row.capacity_lo}-{row.capacity_hi}" for row in table.itertuples()])
+    """The capacity table as shown: the fitted capacity stays a number (its bound when censored), its censoring a
+    column of its own, the 95 % interval as 'lo-hi', then the first-failure capacity and the replicates used."""
+    shown = table[[c for c in table.columns if c not in _CAPACITY_COLUMNS]].copy()
+    inside = table[CENSORED] == ""
+    shown["capacity"] = table["capacity"].where(inside, table["bound"].astype(float))
+    shown[CENSORED] = table[CENSORED].map(_CENSORED_TEXT)
+    shown["interval_95"] = [_interval_text(row.capacity_lo, row.capacity_hi) for row in table.itertuples()]
+    for column in ("first_failure", "replicates", "non_monotone", *_STATUS_COUNTS):
+        shown[column] = table[column]
     return shown
+
+
+def _interval_text(low: float, high: float) -> str:
+    """'4.90-6.70'; an open end (beyond the grid) is '..'; 'NA' when both are open."""
+    if math.isnan(low) and math.isnan(high):
+        return "NA"
+    return f"{'..' if math.isnan(low) else f'{low:.2f}'}-{'..' if math.isnan(high) else f'{high:.2f}'}"
 
 
 @app.command()

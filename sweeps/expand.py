@@ -352,6 +352,7 @@ RULES: tuple[Rule, ...] = (
          "({assemblies.prewire_gain}) within prewired assemblies) must not exceed their clip plasticity.triplet.w_max "
          "({plasticity.triplet.w_max}): the first spike would cut them down"),
 )
+"""Rules between keys, each checked on every combination of the axes that set its keys."""
 GIVEN_TOGETHER = (("assemblies.size", "assemblies.coding_level"),)
 """Keys a point may not both set: the second, when above 0, derives the first (size = round(level x n_exc))."""
 
@@ -360,4 +361,3 @@ def _initial_ee_weight(flat: Mapping[str, Any]) -> float:
     """The largest initial E->E weight of a point (g_leak): within a prewired assembly it is multiplied by the gain."""
     prewired = flat["assemblies.imprint"] == "prewired" and flat["assemblies.count"] > 0
     return float(flat["network.w_e_to_e"] * (max(flat["assemblies.prewire_gain"], 1.0) if prewired else 1.0))
-"""Rules between keys, each checked on every combination of the axes that set its keys."""

@@ -54,7 +54,8 @@ def fingerprint(sweep: Sweep, basis: Mapping[str, Any] | None = None) -> str:
         "base": id_entries(sweep.base, identity_defaults() if basis is None else basis),
     }
     if sweep.search is not None:  # only then, so that stores of grids without a search keep their fingerprint
-        identity["search"] = dataclasses.asdict(sweep.search)
+        identity["search"] = {k: v for k, v in dataclasses.asdict(sweep.search).items()  # unset replicate keys left
+                              if v is not None or k == "start"}  # out: older search stores keep their fingerprint
     blob = json.dumps(identity, sort_keys=True)
     return hashlib.sha256(blob.encode()).hexdigest()[:16]
 
@@ -83,7 +84,9 @@ def _record(sweep: Sweep, basis: Mapping[str, Any]) -> dict[str, Any]:
     fraction) and what its ids rest on (defaults table, resolved base config, axis settings)."""
     search = None if sweep.search is None else {
         "axis": sweep.search.axis, "method": sweep.search.method,
-        "start": PRESCREEN_START if sweep.search.start is None else sweep.search.start, "min_fraction": MIN_FRACTION}
+        "start": PRESCREEN_START if sweep.search.start is None else sweep.search.start, "min_fraction": MIN_FRACTION,
+        **({} if sweep.search.replicate_rule is None else dict(zip(("first_replicates", "more_replicates"),
+                                                                   sweep.search.replicate_rule)))}
     settings = [{"name": a.name, "key": a.key, "values": list(a.values),
                  **({"variants": sweep.variants[a.name]} if a.name in sweep.variants else {})} for a in sweep.axes]
     base = science(resolve_derived(sweep.base))

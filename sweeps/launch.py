@@ -161,7 +161,7 @@ def _execute_search(dask: EarlyClient, grid: Grid, store: ResultStore, options: 
     search = plan_search(sweep.axes[count_pos].values, count_pos, search_starts(grid, count_pos, client),
                          sweep.search.method, store.status(), store.scalar_values("outcome"),
                          store.scalar_values("recalled_count"), store.scalar_values("stuck_count"),
-                         options.retry_failed)
+                         options.retry_failed, sweep.search.replicate_rule)
 
     def advance(keys: list[tuple[int, ...]] | None = None) -> Iterator[Job]:
         """The jobs the search wants next (in the conditions ``keys``, default all); points decided without marked."""

@@ -38,11 +38,12 @@ from ..results_schema import attrs
 from ..runners.protocol import Schedule, cue_order, recall_end, schedule
 from .capacity import (
     MIN_FRACTION,
+    capacity_report,
     capacity_table,
     count_dim,
+    network_sizes,
     point_success,
     scaling_fit,
-    size_dim,
     success_table,
     wilson_interval,
 )
@@ -288,38 +289,45 @@ def capacity_against(ds: xr.Dataset, axis: str, min_fraction: float = MIN_FRACTI
 
 
 def capacity_scaling(ds: xr.Dataset) -> Figure | None:
-    """Capacity against network size (log-log): per-replicate capacities, their mean, the fitted power law.
+    """Capacity against network size (log-log): fitted capacities with their 95 % intervals, censored ones as
+    arrows from their bound, and the fitted power law.
 
-    None when the store has no axis over network.n_exc (see :func:`capsweep.sweeps.capacity.scaling_fit`).
+    None when there is no scaling fit (see :func:`capsweep.sweeps.capacity.scaling_fit`).
     """
     fit = scaling_fit(ds)
     if fit is None:
         return None
-    size, count = size_dim(ds), count_dim(ds)
+    sizes, count = network_sizes(ds), count_dim(ds)
+    assert sizes is not None, "a scaling fit has network sizes"
+    size = sizes[0]
     fig, ax = plt.subplots(figsize=(5.5, 4.0))
-    capacities = capacity_table(ds)
-    for row in capacities.itertuples():
-        n = getattr(row, str(size))
-        if not pd.isna(row.capacity_lo):
-            ax.plot([n, n], [row.capacity_lo, row.capacity_hi], color="grey", lw=2, alpha=0.6)
-    ax.plot(fit.sizes, fit.mean_capacity, "o", color="C0", label="mean over replicates (bar: range)")
+    table = capacity_report(ds)
+    table["n_exc_cells"] = table[size].map(sizes[1])
+    inside = table[table["censored"] == ""]
+    bars = [(inside["capacity"] - inside["capacity_lo"]).fillna(0),
+            (inside["capacity_hi"] - inside["capacity"]).fillna(0)]
+    ax.errorbar(inside["n_exc_cells"], inside["capacity"], yerr=bars, fmt="o", color="C0",
+                label="fitted capacity (bar: 95 % interval)")
+    for side, marker in (("above", "^"), ("below", "v")):
+        rows = table[table["censored"] == side]
+        ax.plot(rows["n_exc_cells"], rows["bound"].astype(float), marker, color="C2", ls="none",
+                label=f"censored {side} (bound)" if len(rows) else None)
     grid = np.geomspace(min(fit.sizes), max(fit.sizes), 50)
     ax.plot(grid, fit.prefactor * grid**fit.exponent, color="C1",
-            label=f"fit: exponent {fit.exponent:.2f} [{fit.exponent_lo:.2f}, {fit.exponent_hi:.2f}]")
-    for n in fit.lower_bounds:
-        ax.annotate("top of grid", (n, fit.mean_capacity[fit.sizes.index(n)]), fontsize=7,
-                    xytext=(4, 4), textcoords="offset points")
+            label=f"fit: exponent {fit.exponent:.2f} [{fit.exponent_low:.2f}, {fit.exponent_high:.2f}]")
     ax.set_xscale("log")
     ax.set_yscale("log")
-    _integer_ticks(ax.set_xticks, fit.sizes)
-    top = int(np.nanmax(capacities["capacity_hi"].astype(float))) + 1
-    _integer_ticks(ax.set_yticks, range(1, top + 1))
+    _integer_ticks(ax.set_xticks, sorted(set(fit.sizes)))
+    top = np.nanmax(table[["capacity", "capacity_hi"]].to_numpy(float).ravel().tolist()
+                    + table["bound"].astype(float).tolist())
+    _integer_ticks(ax.set_yticks, range(1, int(top) + 2))
     for axis in (ax.xaxis, ax.yaxis):
         axis.set_minor_formatter(NullFormatter())
-    ax.set_xlabel(_axis_label(ds, str(size)))
-    ax.set_ylabel(f"capacity ({count}, per replicate)")
+    ax.set_xlabel(_axis_label(ds, str(size)) if ds[size].dtype.kind in "iuf" else "excitatory cells (n_exc)")
+    ax.set_ylabel(f"capacity ({count})")
     ax.legend(fontsize=7)
-    ax.set_title("capacity against network size (95 % bootstrap interval on the exponent)", fontsize=8)
+    ax.set_title("capacity against network size (95 % profile-likelihood interval on the exponent)"
+                 + ("\n" + "; ".join(fit.caveats) if fit.caveats else ""), fontsize=7)
     return _finish(fig)
 
 

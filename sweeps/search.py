@@ -4,19 +4,30 @@ capacity.
 A sweep whose count axis says ``search = {low, high, start, method}`` lays out every count from
 low to high in the store, but runs only the counts that decide each condition's capacity. A count
 *passes* when its replicates succeed in at least ``MIN_FRACTION`` of the done ones (the rule of
-the capacity table, :func:`capsweep.sweeps.success.count_passes`). Two methods:
+the capacity table, :func:`capsweep.sweeps.success.count_passes`). Three methods:
 
 - ``scan`` (default, exact): the capacity is the largest k whose every count <= k passes, so the
   counts 1..capacity + 1 are exactly what certifies it, and nothing above the first failing count
   is needed. The scan runs every count from the bottom up to ``start`` at once (a seed, e.g. the
   prescreen's stability bound, buys parallel wall time), then one count at a time, and stops
   at the first failing count. It gives the full grid's capacity on any grid.
+- ``grow`` (open upper end): probe the start count, double while every probe passes (up to
+  ``high``, the ceiling laid out in the store), halve while none does, then close in on the
+  geometric midpoint of the largest passing and the smallest failing count until they are adjacent
+  (:func:`capsweep.sweeps.sequential.next_count`). A grown capacity is bracketed by a passing and a
+  failing count, or censored at ``high`` or ``low``. It assumes monotone success as bisect does.
 - ``bisect`` (fewer points for large capacities, assumes success falls monotonically with the
   count): keep the largest passing index ``lo`` (-1: none yet) and the smallest failing index
   ``hi`` (len: none yet), probe the start count first, gallop up (start + 1, + 3, + 7, ...) while
   nothing failed, gallop down (start - 1, - 3, - 7, ...) while nothing passed, then bisect until
   ``hi - lo == 1``. Counts it skipped below the capacity are assumed to pass: on a noisy grid (a
   failing count below a passing one) it can report more than the full grid would.
+
+Replicates where they decide: with ``first_replicates`` set, a probed count runs its first
+``first_replicates`` replicates; while their 95 % Wilson interval still holds the pass fraction, it
+runs ``more_replicates`` more (always the next replicate indices), up to every replicate laid out
+(the sweep's ``replicates``) (:func:`capsweep.sweeps.sequential.replicates_to_add`). The count then
+passes or fails on all its decided replicates. Replicates never needed get status ``unneeded``.
 
 Every step is a function of the verdicts stored so far, so a killed search resumes exactly where
 it stopped and gives the same capacities. When a condition closes, its points never run get status
@@ -36,6 +47,7 @@ from typing import Any
 import numpy as np
 
 from ..flags import DONE, FAILED, OUTCOMES, STATUSES, UNNEEDED
+from .sequential import Tally, next_count, replicates_to_add
 from .success import count_passes, leading_passes, succeeds
 
 Verdict = bool | None
@@ -50,6 +62,7 @@ class ConditionSearch:
     start: int  # index of the count probed first (bisect) or scanned up to at once (scan)
     method: str = "scan"  # one of SEARCH_METHODS
     passes: dict[int, bool] = field(default_factory=dict)  # count index -> whether the count passes
+    first_count: int = 1  # the count at index 0 (a searched axis holds every count from low to high)
 
     def bounds(self) -> tuple[int, int]:
         """(largest passing index or -1, smallest failing index or n_counts)."""
@@ -61,8 +74,15 @@ class ConditionSearch:
         """Count indices to run now (empty when the condition's capacity is decided)."""
         if self.method == "scan":
             return self._scan()
-        probe = self._bisect()
+        probe = self._grow() if self.method == "grow" else self._bisect()
         return [] if probe is None else [probe]
+
+    def _grow(self) -> int | None:
+        """Next index of the open-ended search (:func:`capsweep.sweeps.sequential.next_count`), None when decided."""
+        low = self.first_count
+        count = next_count({low + k: ok for k, ok in self.passes.items()}, low + self.start,
+                           low + self.n_counts - 1, floor=low)
+        return None if count is None else count - low
 
     def _scan(self) -> list[int]:
         """Every undecided index from the bottom up to max(start, first index not yet known to pass)."""
@@ -103,6 +123,7 @@ class SearchRun:
     verdicts: np.ndarray  # int8 over the grid shape: 1 succeeded, 0 failed, CRASHED, NO_VERDICT
     taken: np.ndarray  # bool over the grid shape: submitted, or marked unneeded
     closed: set[tuple[int, ...]] = field(default_factory=set)  # conditions whose capacity is decided
+    replicate_rule: tuple[int, int] | None = None  # (first, more) replicates per probed count; None: all at once
 
     def replicates(self, key: tuple[int, ...], k: int) -> list[tuple[int, ...]]:
         """The points of condition ``key`` at count index ``k``: one per replicate."""
@@ -134,7 +155,7 @@ class SearchRun:
             search = self.conditions[key]
             probes = self._advance(key, search)
             if probes:
-                fresh = [i for k in probes for i in self.replicates(key, k) if self._untouched(i)]
+                fresh = [i for k in probes for i in self._in_play(key, k) if self._untouched(i)]
                 wanted += fresh
             elif key not in self.closed:
                 self.closed.add(key)
@@ -146,6 +167,27 @@ class SearchRun:
                 self.taken[index] = True
         return wanted, unneeded
 
+    def _in_play(self, key: tuple[int, ...], k: int) -> list[tuple[int, ...]]:
+        """The replicates of count index ``k`` that run: all, or under ``replicate_rule`` the first ones and more
+        while their decided verdicts leave the count undecided (a function of the stored verdicts: resumes exactly).
+        """
+        indices = self.replicates(key, k)
+        if self.replicate_rule is None:
+            return indices
+        first, more = self.replicate_rule
+        n = min(first, len(indices))
+        while n < len(indices):
+            verdicts = [int(self.verdicts[i]) for i in indices[:n]]
+            if NO_VERDICT in verdicts:
+                break
+            done = [v for v in verdicts if v != CRASHED]
+            tally = Tally(sum(done), len(done), len(verdicts) - len(done))
+            added = replicates_to_add({k: tally}, batch=more, cap=len(indices)).get(k, 0)
+            if not added:
+                break
+            n += added
+        return indices[:n]
+
     def _untouched(self, index: tuple[int, ...]) -> bool:
         """Neither finished, submitted nor marked unneeded."""
         return bool(self.verdicts[index] == NO_VERDICT and not self.taken[index])
@@ -155,7 +197,7 @@ class SearchRun:
         while probes := search.next_probes():
             still_open = []
             for probe in probes:
-                verdicts = [int(self.verdicts[i]) for i in self.replicates(key, probe)]
+                verdicts = [int(self.verdicts[i]) for i in self._in_play(key, probe)]
                 if NO_VERDICT in verdicts:
                     still_open.append(probe)
                     continue
@@ -168,12 +210,14 @@ class SearchRun:
 
 def plan_search(counts: tuple[int, ...], count_pos: int, starts: Mapping[tuple[int, ...], int], method: str,
                 status: np.ndarray, outcome: np.ndarray, recalled: np.ndarray, stuck: np.ndarray,
-                retry_failed: bool) -> SearchRun:
-    """A SearchRun over a grid whose count axis (values ``counts``) sits at ``count_pos``, with the verdicts already
-    stored (status/outcome/recalled_count/stuck_count codes, over the grid shape).
+                retry_failed: bool, replicate_rule: tuple[int, int] | None = None) -> SearchRun:
+    """A SearchRun over a grid whose count axis (values ``counts``, every count from low to high) sits at
+    ``count_pos``, with the verdicts already stored (status/outcome/recalled_count/stuck_count codes, over the grid
+    shape).
 
-    ``starts`` maps each condition key to its start index; ``method`` is "scan" or "bisect". Failed points count
-    as crashed verdicts unless ``retry_failed``; unneeded points as not yet run.
+    ``starts`` maps each condition key to its start index; ``method`` is one of SEARCH_METHODS;
+    ``replicate_rule`` (first, more) replicates per probed count, None for all at once.
+    Failed points count as crashed verdicts unless ``retry_failed``; unneeded points as not yet run.
     """
     shape = status.shape
     count = np.reshape(counts, [len(counts) if d == count_pos else 1 for d in range(len(shape))])
@@ -183,9 +227,10 @@ def plan_search(counts: tuple[int, ...], count_pos: int, starts: Mapping[tuple[i
     verdicts[done] = np.broadcast_to(succeeds(labels, recalled, stuck, count), shape)[done]
     if not retry_failed:
         verdicts[status == STATUSES.index(FAILED)] = CRASHED
-    conditions = {key: ConditionSearch(len(counts), starts[key], method)
+    conditions = {key: ConditionSearch(len(counts), starts[key], method, first_count=int(counts[0]))
                   for key in np.ndindex(shape[:count_pos] + shape[count_pos + 1:-1])}
-    return SearchRun(count_pos, tuple(counts), conditions, verdicts, status == STATUSES.index(UNNEEDED))
+    return SearchRun(count_pos, tuple(counts), conditions, verdicts, status == STATUSES.index(UNNEEDED),
+                     replicate_rule=replicate_rule)
 
 
 def condition_key(index: tuple[int, ...], count_pos: int) -> tuple[int, ...]:

@@ -40,7 +40,10 @@ AXIS_KEYS = {
     "variants": "table of named variants, each a table of config overrides (instead of key and values)",
     "search": "adaptive capacity search over assemblies.count instead of values: "
               "{low = 1, high = 32, start = 1, method = \"scan\"} (start: a count, or \"prescreen\" for the "
-              "prescreen's stability bound; method: \"scan\" (exact) or \"bisect\" (assumes monotone success))",
+              "prescreen's stability bound; method: \"scan\" (exact), \"bisect\" or \"grow\" (double from start "
+              "until a count fails, high the ceiling; both assume monotone success); first_replicates = 3 runs "
+              "3 replicates per count and more_replicates (default 2) more while their 95 % Wilson interval holds "
+              "the pass fraction, up to sweep.replicates)",
 }
 CONTROLS_TABLE = "controls"
 """The sweep file's table that adds controls beside every condition."""
@@ -48,9 +51,11 @@ CONTROL_KEYS = {
     "kinds": "non-empty list of control kinds, each added beside every condition on the dim "
              f"{CONTROL_DIM!r}: " + ", ".join(repr(k) for k in BY_NAME),
 }
-SEARCH_KEYS = ("low", "high", "start", "method")
-SEARCH_METHODS = ("scan", "bisect")
+SEARCH_KEYS = ("low", "high", "start", "method", "first_replicates", "more_replicates")
+SEARCH_METHODS = ("scan", "bisect", "grow")
 """How a count search moves: see ``capsweep.sweeps.search``."""
+DEFAULT_MORE_REPLICATES = 2
+"""Replicates a count search adds per round to an undecided count (``search.more_replicates``)."""
 PRESCREEN_START = "prescreen"
 """``start`` value that seeds a count search with the prescreen's stability bound."""
 _RESERVED_DIMS = set(INNER_DIMS) | {REPLICATE, CONTROL_DIM}
@@ -63,6 +68,15 @@ class CountSearch:
     axis: str
     start: int | None  # count probed first (bisect) or scanned up to at once (scan); None: the prescreen's bound
     method: str = "scan"  # one of SEARCH_METHODS
+    first_replicates: int | None = None  # replicates a probed count runs first; None: all of them at once
+    more_replicates: int | None = None  # replicates added while the count is undecided (with first_replicates)
+
+    @property
+    def replicate_rule(self) -> tuple[int, int] | None:
+        """(first, more) replicates per probed count, or None when every replicate runs at once."""
+        if self.first_replicates is None:
+            return None
+        return self.first_replicates, self.more_replicates or DEFAULT_MORE_REPLICATES
 
 
 @dataclass(frozen=True)
@@ -134,7 +148,7 @@ def parse_sweep(text: str, source: Path = Path("<memory>"), store: str | Path | 
         axes=axes,
         base=base,
         variants={axis.name: table for axis, table in parsed if table},
-        search=_count_search(head.get("axis", []), axes, source),
+        search=_count_search(head.get("axis", []), axes, head["replicates"], source),
         text=text,
         source=source,
         explicit=explicit,
@@ -311,20 +325,34 @@ def _search_values(raw: dict[str, Any], where: str) -> list[int]:
     return list(range(low, high + 1))
 
 
-def _count_search(raw_axes: list[Any], axes: tuple[Axis, ...], source: Path) -> CountSearch | None:
+def _count_search(raw_axes: list[Any], axes: tuple[Axis, ...], replicates: int, source: Path) -> CountSearch | None:
     """The sweep's count search, if an axis asks for one (its table was checked by ``_search_values``)."""
     searched = [(raw["search"], axis) for raw, axis in zip(raw_axes, axes) if "search" in raw]
     if not searched:
         return None
     table, axis = searched[0]
+    where = f"{source}: sweep.axis {axis.name!r}: search"
     method = table.get("method", SEARCH_METHODS[0])
     if method not in SEARCH_METHODS:
-        raise ConfigError(f"{source}: sweep.axis {axis.name!r}: search.method = {method!r} is not allowed: expected "
+        raise ConfigError(f"{where}.method = {method!r} is not allowed: expected "
                           + " or ".join(repr(m) for m in SEARCH_METHODS))
+    first, more = _replicate_rule(table, replicates, where)
     start = table.get("start", axis.values[0])
     if start == PRESCREEN_START:
-        return CountSearch(axis.name, None, method)
+        return CountSearch(axis.name, None, method, first, more)
     if isinstance(start, bool) or start not in axis.values:
-        raise ConfigError(f"{source}: sweep.axis {axis.name!r}: search.start = {start!r} is not allowed: expected "
+        raise ConfigError(f"{where}.start = {start!r} is not allowed: expected "
                           f"a count from {axis.values[0]} to {axis.values[-1]} or {PRESCREEN_START!r}")
-    return CountSearch(axis.name, int(start), method)
+    return CountSearch(axis.name, int(start), method, first, more)
+
+
+def _replicate_rule(table: dict[str, Any], replicates: int, where: str) -> tuple[int | None, int | None]:
+    """``search.first_replicates`` (1 to sweep.replicates) and ``search.more_replicates`` (>= 1, needs the first)."""
+    first, more = table.get("first_replicates"), table.get("more_replicates")
+    if first is not None and (isinstance(first, bool) or not isinstance(first, int) or not 1 <= first <= replicates):
+        raise ConfigError(f"{where}.first_replicates = {first!r} is not allowed: expected an integer from 1 to "
+                          f"sweep.replicates ({replicates}), the most a count may use")
+    if more is not None and (first is None or isinstance(more, bool) or not isinstance(more, int) or more < 1):
+        raise ConfigError(f"{where}.more_replicates = {more!r} is not allowed: expected an integer >= 1, "
+                          "together with search.first_replicates")
+    return first, more

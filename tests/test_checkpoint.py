@@ -62,7 +62,8 @@ def _equal(a: object, b: object) -> bool:
     """Same value, NaN equal to NaN, arrays element by element (bitwise for floats)."""
     if isinstance(a, (str, int)) and not isinstance(a, bool):
         return a == b
-    return np.array_equal(np.asarray(a), np.asarray(b), equal_nan=True)
+    left, right = np.asarray(a), np.asarray(b)
+    return np.array_equal(left, right, equal_nan=left.dtype.kind == "f")  # lists of labels (recall_state) hold no NaN
 
 
 def _different(a: dict, b: dict) -> list[str]:

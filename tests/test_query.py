@@ -14,16 +14,20 @@ import numpy as np
 import pandas as pd
 import pytest
 from scipy.stats import linregress, norm
+from scipy.stats import t as student
 from typer.testing import CliRunner
 
-from capsweep.axes import key_axis
-from capsweep.flags import STATUSES
+from capsweep.axes import key_axis, variant_axis
+from capsweep.flags import PENDING, STATUSES
+from capsweep.results_schema import attrs
 from capsweep.results_schema.dataset import open_dataset
 from capsweep.results_schema.layout import VARIABLES, GridSpec
 from capsweep.results_schema.store import ResultStore, create_store
-from capsweep.sweeps.capacity import capacity_table, scaling_fit, success_table, wilson_interval
+from capsweep.sweeps.capacity import capacity_report, capacity_table, scaling_fit, success_table, wilson_interval
+from capsweep.sweeps.capacity_fit import fit_capacity
 from capsweep.sweeps.cli import app
 from capsweep.sweeps.query import QueryError, plausibility, point_table, select, status_counts
+from capsweep.sweeps.sequential import Tally
 
 AXES = (key_axis("n_odours", "assemblies.count", (1, 2, 3, 4)), key_axis("beta", "plasticity.heterosynaptic.beta", (0.0, 0.05)))
 SHAPE = (4, 2, 2)
@@ -88,10 +92,10 @@ def test_capacity_needs_every_smaller_count_to_succeed_and_waits_for_pending_poi
     assert strict.loc[0.0, "capacity"] == 2  # count 3 succeeds in only one of two replicates
 
 
-def _filled_store(tmp_path: Path, pattern: dict[tuple[int, int, int], tuple[str, int] | None],
+def _filled_store(tmp_path: Path, pattern: dict[tuple[int, int, int], tuple[str, int] | str | None],
                   replicates: int = 2) -> Path:
     """A store over n_odours 1-4 x beta (one value) x replicates; every point stable and fully
-    recalled unless ``pattern`` says otherwise ((outcome, recalled), or None for a crash)."""
+    recalled unless ``pattern`` says otherwise ((outcome, recalled), None for a crash, PENDING to leave it)."""
     axes = (AXES[0], key_axis("beta", "plasticity.heterosynaptic.beta", (0.0,)))
     shape = (4, 1, replicates)
     path = tmp_path / "pattern.zarr"
@@ -102,24 +106,45 @@ def _filled_store(tmp_path: Path, pattern: dict[tuple[int, int, int], tuple[str,
     for index in np.ndindex(*shape):
         count = axes[0].values[index[0]]
         spec = pattern.get(index, ("stable", count))
+        if spec == PENDING:
+            continue
         if spec is None:
             writer.write_failure(index, "RuntimeError: worker lost")
         else:
-            writer.write_point(index, result(count, spec[0], spec[1], int(seeds[index])))
+            writer.write_point(index, result(count, spec[0], int(spec[1]), int(seeds[index])))
     return path
 
 
 def test_non_monotone_success_is_flagged_and_warned(tmp_path: Path) -> None:
-    """Count 2 fails in 2 of 3 replicates while count 3 succeeds in all: capacity 1, non-monotone."""
-    path = _filled_store(tmp_path, {(1, 0, 0): ("stable", 1), (1, 0, 1): ("runaway", 0),
-                                    (3, 0, 0): ("runaway", 0), (3, 0, 1): ("runaway", 0), (3, 0, 2): ("runaway", 0)},
-                         replicates=3)
+    """Counts 1-4 succeed in 3, 0, 3, 0 of 3 replicates: first-failure capacity 1, non-monotone.
+
+    The warning follows the fit's test [derived]: the isotonic fit pools counts 2 and 3 to 0.5, deviance
+    G^2 = 2 (3 ln 2 + 3 ln 2) = 8.3; under that fit a draw as extreme needs 0 of 3 at count 2 and 3 of 3
+    at count 3 (or a pooled pair as skewed), probability about 2 / 64 < 0.05."""
+    path = _filled_store(tmp_path, {(k, 0, r): ("runaway", 0) for k in (1, 3) for r in range(3)}, replicates=3)
     row = capacity_table(open_dataset(path)).iloc[0]
     assert row["capacity"] == 1 and bool(row["non_monotone"]) and not bool(row["at_least"])
     result_ = CliRunner().invoke(app, ["capacity", str(path)])
     assert result_.exit_code == 0, result_.output
     warnings = [line for line in result_.output.splitlines() if line.startswith("warning:")]
-    assert len(warnings) == 1 and "beta=0.0" in warnings[0] and warnings[0].endswith("after a smaller one failed")
+    assert len(warnings) == 1 and "beta=0.0" in warnings[0] and "not monotone" in warnings[0]
+
+
+def test_an_interrupted_store_reports_no_pending_count_as_failed_or_non_monotone(tmp_path: Path) -> None:
+    """As after Ctrl-C on a run that starts with the highest counts: counts 3 and 4 done (3 passes in both
+    replicates, 4 fails in both), counts 1 and 2 pending. No count below 3 is read as a failure: the
+    first-failure capacity waits (NA), nothing is flagged non-monotone, and the fit uses counts 3-4 only
+    (4 replicates), its crossing between them."""
+    pending = {(k, 0, r): PENDING for k in (0, 1) for r in range(2)}
+    path = _filled_store(tmp_path, {**pending, (3, 0, 0): ("runaway", 0), (3, 0, 1): ("runaway", 0)})
+    ds = open_dataset(path)
+    assert not bool(capacity_table(ds).iloc[0]["non_monotone"])
+    row = capacity_report(ds).iloc[0]
+    assert pd.isna(row["first_failure"]) and not bool(row["non_monotone"])
+    assert (row["replicates"], row["pending"], row["censored"]) == (4, 4, "")
+    assert 3 < row["capacity"] < 4
+    result_ = CliRunner().invoke(app, ["capacity", str(path)])
+    assert result_.exit_code == 0 and "warning" not in result_.output, result_.output
 
 
 def test_top_of_the_grid_is_only_a_lower_bound(tmp_path: Path) -> None:
@@ -175,16 +200,24 @@ def test_capacity_and_replicate_range_on_a_hand_worked_pattern(tmp_path: Path) -
 
 
 def test_capacity_csv_and_json_keep_integers_and_write_na_as_empty(store: Path) -> None:
-    """SPECIAL: beta 0 has capacity 3 (replicates 2-3), beta 0.05 a pending point (NA)."""
+    """SPECIAL by hand: beta 0 succeeds in 2, 2, 1, 0 of 2 replicates at counts 1-4: first-failure capacity 3,
+    fitted from exactly those tallies. beta 0.05 has count 1 pending in one replicate (first failure NA) and
+    succeeds in 1/1, 1/2, 2/2, 2/2: no fall with the count, so the fit is censored above 4 [derived: the flat
+    penalized fit is (7 + 1) / (7 + 2) = 0.89 > 0.5]."""
     runner = CliRunner()
     csv_out = runner.invoke(app, ["capacity", str(store), "--format", "csv"])
     assert csv_out.exit_code == 0, csv_out.output
     rows = pd.read_csv(io.StringIO(csv_out.output), dtype=str, keep_default_na=False)
-    assert list(rows["capacity"]) == ["3", ""] and list(rows["capacity_lo"]) == ["2", ""]
-    assert list(rows["pending"]) == ["0", "1"]
+    assert list(rows["first_failure"]) == ["3", ""] and list(rows["pending"]) == ["0", "1"]
+    assert list(rows["censored"]) == ["", "above"] and list(rows["bound"]) == ["", "4"]
+    assert list(rows["replicates"]) == ["8", "7"] and rows["capacity"][1] == ""
+    expected = fit_capacity({1: Tally(2, 2), 2: Tally(2, 2), 3: Tally(1, 2), 4: Tally(0, 2)})
+    assert expected is not None and expected.estimate is not None and expected.low is not None
+    assert float(rows["capacity"][0]) == pytest.approx(expected.estimate, abs=0.005)
+    assert float(rows["capacity_lo"][0]) == pytest.approx(expected.low, abs=0.005)
     records = json.loads(runner.invoke(app, ["capacity", str(store), "--format", "json"]).output)["rows"]
-    assert records[0]["capacity"] == 3 and isinstance(records[0]["capacity"], int)
-    assert records[1]["capacity"] is None
+    assert records[0]["first_failure"] == 3 and isinstance(records[0]["first_failure"], int)
+    assert records[1]["first_failure"] is None and records[1]["bound"] == 4 and records[1]["capacity"] is None
     per_count = runner.invoke(app, ["capacity", str(store), "--format", "csv", "--per-count"])
     counts = pd.read_csv(io.StringIO(per_count.output), dtype=str)
     assert list(counts.columns[2:]) == ["n", "successes", "fraction", "wilson_lo", "wilson_hi", "failed", "pending",
@@ -232,16 +265,25 @@ def test_plausibility_flags_nothing_for_a_few_hertz_irregular_base(store: Path) 
     assert check.rate_exc_hz == (3.0, 3.0) and check.warnings == ()
 
 
-def _scaling_store(tmp_path: Path, capacities: dict[int, list[int]]) -> Path:
+def _scaling_store(tmp_path: Path, capacities: dict[int, list[int]], as_variants: bool = False) -> Path:
     """A store over n_exc x n_odours (1-8) x 3 replicates where replicate r of size n succeeds up to
-    ``capacities[n][r]`` assemblies and runs away above."""
+    ``capacities[n][r]`` assemblies and runs away above; ``as_variants``: the sizes as named variants that each
+    set network.n_exc (and an in-degree), recorded in the store's sweep text as ``capsweep run`` records it."""
     counts = (1, 2, 3, 4, 5, 6, 7, 8)
-    axes = (key_axis("n_exc", "network.n_exc", tuple(capacities)), key_axis("n_odours", "assemblies.count", counts))
+    sizes = key_axis("n_exc", "network.n_exc", tuple(capacities))
+    text = ""
+    if as_variants:
+        sizes = variant_axis("size", tuple(f"n{n}" for n in capacities))
+        text = ('[sweep]\nname = "odour-sizes"\nstore = "s.zarr"\nreplicates = 3\n[[sweep.axis]]\nname = "size"\n'
+                "[sweep.axis.variants]\n" + "".join(f'n{n} = {{ "network.n_exc" = {n}, "network.indegree_exc" = '
+                                                    f"{n // 10} }}\n" for n in capacities)
+                + '[[sweep.axis]]\nname = "n_odours"\nkey = "assemblies.count"\nvalues = [1, 2, 3, 4, 5, 6, 7, 8]\n')
+    axes = (sizes, key_axis("n_odours", "assemblies.count", counts))
     shape = (len(capacities), len(counts), 3)
-    path = tmp_path / "scaling.zarr"
+    path = tmp_path / ("variants.zarr" if as_variants else "scaling.zarr")
     seeds = np.arange(np.prod(shape)).reshape(shape)
     ids = np.array([f"p{i}" for i in range(np.prod(shape))], dtype=object).reshape(shape)
-    create_store(path, GridSpec(axes, 3, 8, 3, 20, 0.5, "fp", {}), ids, seeds)
+    create_store(path, GridSpec(axes, 3, 8, 3, 20, 0.5, "fp", {attrs.SWEEP_TEXT: text}), ids, seeds)
     writer = ResultStore.open(path)
     for (i, j, r) in np.ndindex(*shape):
         count = counts[j]
@@ -250,19 +292,25 @@ def _scaling_store(tmp_path: Path, capacities: dict[int, list[int]]) -> Path:
     return path
 
 
-def test_scaling_exponent_is_the_log_log_slope_of_mean_capacities(tmp_path: Path) -> None:
-    """Per-replicate capacities 1-3 at 300, 2-5 at 1200, 5-7 at 4800 cells: the exponent is the
-    least-squares slope of log(mean capacity) on log(n_exc), checked with scipy.stats.linregress;
-    the bootstrap interval contains it, and a size at the top of the grid is named."""
+def test_scaling_fits_the_fitted_capacities_and_says_three_sizes_are_few(tmp_path: Path) -> None:
+    """Per-replicate capacities 1-3 at 300, 2-5 at 1200, 5-8 at 4800 cells (grid 1-8): every fitted capacity
+    lies inside the grid, so the exponent is the least-squares slope of ln(fitted capacity) on ln(n_exc)
+    (scipy.stats.linregress) and its interval the t-interval with 1 degree of freedom; with three sizes the
+    CLI states the caveat."""
     capacities = {300: [1, 2, 3], 1200: [2, 4, 5], 4800: [5, 6, 8]}
-    fit = scaling_fit(open_dataset(_scaling_store(tmp_path, capacities)))
-    assert fit is not None
-    means = [np.mean(c) for c in capacities.values()]
-    expected = linregress(np.log(list(capacities)), np.log(means))
-    assert fit.exponent == pytest.approx(expected.slope, rel=1e-9)
-    assert fit.prefactor == pytest.approx(np.exp(expected.intercept), rel=1e-9)
-    assert fit.exponent_lo < fit.exponent < fit.exponent_hi
-    assert fit.lower_bounds == [4800]  # replicate 2 succeeds at the top count 8
+    path = _scaling_store(tmp_path, capacities)
+    fit = scaling_fit(open_dataset(path))
+    report = capacity_report(open_dataset(path))
+    assert fit is not None and list(report["censored"]) == ["", "", ""]
+    expected = linregress(np.log(list(capacities)), np.log(report["capacity"].to_numpy(float)))
+    assert fit.exponent == pytest.approx(expected.slope, abs=0.005)  # the report rounds to 0.01 assemblies
+    half = student.ppf(0.975, 1) * expected.stderr
+    assert (fit.exponent_low, fit.exponent_high) == pytest.approx((expected.slope - half, expected.slope + half),
+                                                                  abs=0.05)
+    output = CliRunner().invoke(app, ["capacity", str(path)]).output
+    assert "caveat: only 3 network sizes" in output
+    by_variants = scaling_fit(open_dataset(_scaling_store(tmp_path, capacities, as_variants=True)))
+    assert by_variants is not None and by_variants.sizes == fit.sizes and by_variants.exponent == fit.exponent
 
 
 def test_point_table_rows_keep_their_own_point_id_and_sweep_order(store: Path) -> None:
@@ -417,18 +465,23 @@ def test_query_and_capacity_json_share_one_shape(store: Path) -> None:
 
 def test_capacity_table_keeps_capacity_numeric_and_per_count_applies_to_the_table(store: Path) -> None:
     """The capacity column mixed numbers and 'at least 4'; `--per-count` without csv/json was silently ignored.
-    SPECIAL: beta 0.05 succeeds at every count but its pending point leaves it undecided (NA); a store whose
-    every point succeeds has capacity 4 = the top of the grid, a lower bound."""
+    SPECIAL: beta 0 succeeds in 2, 2, 1, 0 of 2 replicates at counts 1-4 (fitted crossing inside the grid, first
+    failure 3); beta 0.05 succeeds at every count, so its fit is censored above 4 (a number with a 'lower bound'
+    mark), and its pending point leaves the first-failure capacity NA."""
     shown = CliRunner().invoke(app, ["capacity", str(store), "--wide"]).stdout
-    capacity_rows = shown.split("capacity (every count")[1].splitlines()[1:]
+    capacity_rows = shown.split("capacity (fitted")[1].splitlines()[1:]
     header = capacity_rows[0].split()
-    assert header[:4] == ["beta", "capacity", "censored", "replicate_range"]
-    assert capacity_rows[1].split()[:3] == ["0", "3", "2-3"]
+    assert header[:5] == ["beta", "capacity", "censored", "interval_95", "first_failure"]
+    expected = fit_capacity({1: Tally(2, 2), 2: Tally(2, 2), 3: Tally(1, 2), 4: Tally(0, 2)})
+    assert expected is not None and expected.estimate is not None
+    inside, censored = capacity_rows[1].split(), capacity_rows[2].split()
+    assert inside[0] == "0" and float(inside[1]) == pytest.approx(expected.estimate, abs=0.005) and inside[3] == "3"
+    assert censored[:4] == ["0.05", "4.00", "lower", "bound"] and censored[5] == "NA"
     per_count = CliRunner().invoke(app, ["capacity", str(store), "--per-count"]).stdout
-    assert "success per count" in per_count and "capacity (every count" not in per_count
+    assert "success per count" in per_count and "capacity (fitted" not in per_count
 
 
 def test_a_censored_capacity_is_a_number_with_a_lower_bound_mark(tmp_path: Path) -> None:
     shown = CliRunner().invoke(app, ["capacity", str(_filled_store(tmp_path, {}))]).stdout
-    row = shown.split("capacity (every count")[1].splitlines()[2].split()
+    row = shown.split("capacity (fitted")[1].splitlines()[2].split()
     assert row[1:4] == ["4", "lower", "bound"]
