@@ -128,3 +128,60 @@ def test_blocked_learning_stores_recall_by_memory_age(blocked_points) -> None:
         assert 0.2 - 1e-9 <= point["age_s"][0] < 0.2 + 0.5 + 1e-9 < 1.2 - 1e-9 <= point["age_s"][1]
     np.testing.assert_array_equal(null["age_recalled"], [0, 0])
     assert learned["age_recalled"][0] >= 1
+
+
+ONCE: dict[str, object] = {
+    **TINY_BLOCKED, "assemblies.count": 3, "protocol.imprint_order": "interleaved", "protocol.imprint_rate_hz": 0.0,
+    "protocol.retention_delays_s": [0.3, 1.8], "protocol.hold_s": 3.3, "plasticity.freeze_after_imprint": True,
+}
+"""Three odours of 25 cells, no learning input, two tests during a 3.3 s hold and the final one; hold start at
+0.3 + 3 x (0.3 + 0.2) = 1.8 s, so the tests start at 2.1, 3.6 and 5.1 s [derived]. Weights frozen from hold start so
+that the cued cells' spikes show the cue input alone: with plasticity on, this tiny network links the cued sets
+after a few cues (5 December 2026, seed 5, repeated design: cueing odour 0 in the second test drove the cued cells
+of odours 1 and 2 to 72 and 96 Hz). Same structure as TINY_BLOCKED: one compiled binary."""
+
+CUE_BIN_S = 0.05
+"""Bin (s) of the cued cells' rate in which cue input is looked for (cues of 0.2 s fill four)."""
+
+
+def _cue_windows_seen(times: np.ndarray, cells: np.ndarray, cued: np.ndarray, from_s: float) -> list[float]:
+    """Start times (s) of the stretches after ``from_s`` in which the cued cells of one assembly fire at > 50 Hz per
+    cell (bins of CUE_BIN_S; stretches with fewer than two quiet bins between are one): the cue input as the simulation delivered it.
+    A cue of 2000 Hz x 0.1 conductance drove them to 67-98 Hz per 50 ms bin, the background to at most 20 Hz
+    [measured 5 December 2026, this point, both designs]."""
+    members = np.flatnonzero(cued)
+    mine = times[np.isin(cells, members) & (times >= from_s)]
+    edges = from_s + CUE_BIN_S * np.arange(int((mine.max(initial=from_s) - from_s) / CUE_BIN_S) + 2)
+    rate = np.histogram(mine, edges)[0] / (len(members) * CUE_BIN_S)
+    above = edges[:-1][rate > 50.0]
+    return [float(t) for n, t in enumerate(above) if n == 0 or t - above[n - 1] > 2.5 * CUE_BIN_S]
+
+
+@pytest.fixture(scope="module")
+def once_points(build_root) -> dict[str, tuple]:
+    """The three-odour point under each retention design, through the standalone engine, with what it recorded."""
+    from capsweep.runners.point import run_point_recorded
+
+    for design in ("once", "repeated"):
+        check_consistency({**defaults(), **ONCE, "protocol.retention_design": design}, "t")
+    return {design: run_point_recorded(nest({**defaults(), **ONCE, "protocol.retention_design": design}), 5, 7)
+            for design in ("once", "repeated")}
+
+
+def test_once_design_delivers_one_cue_per_assembly_in_the_simulation(once_points) -> None:
+    """Counted in the spikes of a real run: under "once" the cued cells of each assembly receive their cue input in
+    exactly one window after hold start, the three windows falling one in each test (starting 2.1, 3.6, 5.1 s);
+    under "repeated" in three, one per test, at the test's start plus 0, 0.5 or 1.0 s (cue + gap) [derived]. The
+    stored retention_tested says the same: 1 per test, against 3."""
+    tests = np.array([2.1, 3.6, 5.1])
+    for design, slots in (("once", (0.0,)), ("repeated", (0.0, 0.5, 1.0))):
+        result, handles, rec = once_points[design]
+        assert result["engine"] == "standalone" and rec.sim_time_s >= 5.1 + len(slots) * 0.5
+        seen = [_cue_windows_seen(rec.t_exc, rec.i_exc, cued, 1.8) for cued in handles.cued]
+        assert [len(s) for s in seen] == [len(slots)] * 3, (design, seen)
+        starts = np.array([t for s in seen for t in s])
+        test_of = np.searchsorted(tests, starts + 1e-6) - 1
+        assert sorted(test_of) == sorted(list(range(3)) * len(slots)), (design, seen)
+        late = [min(abs(t - tests[j] - slot) for slot in slots) for t, j in zip(starts, test_of)]
+        assert max(late) <= CUE_BIN_S + 1e-9, (design, seen)  # the first bin over 50 Hz: at most one bin in
+        np.testing.assert_array_equal(result["retention_tested"], [len(slots)] * 3)
