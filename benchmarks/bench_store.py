@@ -7,12 +7,16 @@ files on disk per point, peak RSS of this process (layout, writer and result poo
 of a whole-store read with plain ``xarray.open_zarr``; checks that every point reads back done
 with the values written.
 
-    python benchmarks/bench_store.py [--points 20000] [--order grid|shuffled] [--batch 64]
+    python benchmarks/bench_store.py [--points 20000] [--order grid|shuffled] [--batch 64] [--no-sync]
+
+``--no-sync`` writes as capsweep did before durable writes (files and folders not synced before the status):
+the baseline of the cost of syncing, run beside the default.
 """
 
 from __future__ import annotations
 
 import argparse
+import contextlib
 import os
 import resource
 import tempfile
@@ -22,12 +26,13 @@ from typing import Any
 
 import numpy as np
 import xarray as xr
+from zarr.storage import LocalStore
 
 from capsweep.axes import key_axis, variant_axis
 from capsweep.flags import STATUSES
 from capsweep.results_schema import layout
 from capsweep.results_schema.layout import GridSpec
-from capsweep.results_schema.store import WRITER_BATCHING, Batching, ResultStore, create_store
+from capsweep.results_schema.store import WRITER_BATCHING, Batching, DurableStore, ResultStore, create_store
 
 RULES = ("triplet_only", "triplet_inhibitory", "full", "full_no_transmitter")
 COUNTS = tuple(range(1, 51))
@@ -50,7 +55,9 @@ def synthetic_result(rng: np.random.Generator, count: int) -> dict[str, Any]:
     for var in layout.VARIABLES:
         if var.name == "seed":
             continue
-        if var.flags:
+        if var.flags and var.inner is not None:
+            result[var.name] = [var.flags[int(i)] for i in rng.integers(len(var.flags), size=count)]
+        elif var.flags:
             result[var.name] = var.flags[int(rng.integers(len(var.flags)))]
         elif var.inner is not None:
             size = count if var.inner == "assembly" else INNER[var.inner]
@@ -72,7 +79,25 @@ def main() -> None:
     parser.add_argument("--order", choices=("grid", "shuffled"), default="grid",
                         help="write order: grid order (as capsweep run submits) or random")
     parser.add_argument("--batch", type=int, default=WRITER_BATCHING.points, help="points per write batch")
+    parser.add_argument("--no-sync", action="store_true", help="baseline: no file or folder synced")
     args = parser.parse_args()
+    with unsynced() if args.no_sync else contextlib.nullcontext():
+        measure(args)
+
+
+@contextlib.contextmanager
+def unsynced() -> Any:
+    """The store's writes without their syncs (Zarr's plain local store)."""
+    durable = DurableStore._set
+    DurableStore._set = LocalStore._set  # type: ignore[method-assign]
+    try:
+        yield
+    finally:
+        DurableStore._set = durable  # type: ignore[method-assign]
+
+
+def measure(args: argparse.Namespace) -> None:
+    """Lay out, write and read back the grid of ``args``; print the figures."""
     grid = odour_grid(args.points)
     shape = (len(RULES), len(COUNTS), grid.replicates)
     n = int(np.prod(shape))
@@ -107,7 +132,8 @@ def main() -> None:
             assert int(ds.n_synapses.values[order[k]]) == k, order[k]
             np.testing.assert_array_equal(ds.rate_exc_hz.values[order[k]], pool[k % POOL]["rate_exc_hz"])
 
-    print(f"grid {shape} = {n} points, {args.order} order, batches of {args.batch}")
+    print(f"grid {shape} = {n} points, {args.order} order, batches of {args.batch}, "
+          f"{'no sync' if args.no_sync else 'synced'}")
     print(f"layout: {layout_s:.2f} s, {layout_files} files")
     print(f"writer: {n / write_s:.0f} points/s ({write_s:.1f} s)")
     print(f"files: {files} = {files / n:.3f} per point")

@@ -10,7 +10,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any
 
-from .registry import BY_PATH
+from .registry import BY_PATH, cf_unit, in_units_of, relative_scale
 
 COUNT_KEY = "assemblies.count"
 """The config key of an assembly-count axis (the axis capacity is measured along)."""
@@ -29,12 +29,14 @@ class Axis:
     values: tuple[Any, ...]
     units: str = "1"
     long_name: str = ""
+    scale: str = ""  # for units "1": the unit the values are multiples of, e.g. g_leak ('' if none)
 
 
 def key_axis(name: str, key: str, values: tuple[Any, ...]) -> Axis:
-    """An axis over one registry key; units and long name are the key's."""
+    """An axis over one registry key; units and long name are the key's (a weight's units "1", its scale named)."""
     spec = BY_PATH[key]
-    return Axis(name, key, tuple(values), spec.unit, spec.description)
+    scale = relative_scale(spec.unit)
+    return Axis(name, key, tuple(values), cf_unit(spec.unit), spec.description + in_units_of(scale), scale)
 
 
 def variant_axis(name: str, labels: tuple[str, ...]) -> Axis:

@@ -143,6 +143,24 @@ def _shown(value: Any) -> str:
 
 DIMENSIONLESS = "1"
 """The unit of counts, fractions, switches and choices (shown as no unit)."""
+WEIGHT_UNIT = "g_leak"
+"""Weights are multiples of the leak conductance: dimensionless numbers on this scale."""
+
+
+def cf_unit(unit: str) -> str:
+    """``unit`` as a store records it, a string UDUNITS and pint parse: one relative to g_leak is the number "1"."""
+    return DIMENSIONLESS if WEIGHT_UNIT in unit else unit
+
+
+def relative_scale(unit: str) -> str:
+    """The scale a dimensionless stored value of ``unit`` is relative to ('' for a unit stored as it is)."""
+    return unit if cf_unit(unit) != unit else ""
+
+
+def in_units_of(scale: str) -> str:
+    """The suffix of a long name that names the scale of a dimensionless value ('' for no scale)."""
+    return f" (in units of {scale}; g_leak: the leak conductance)" if scale else ""
+
 PLAUSIBLE_BY_SUFFIX: dict[str, tuple[float, float]] = {
     "_hz": (0.0, 1000.0),
     "_ms": (0.0, 10_000.0),

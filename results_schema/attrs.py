@@ -34,6 +34,9 @@ DEFINITIONS = "metric_definitions"
 COUNT_SEARCH = "count_search"
 IDENTITY_DEFAULTS = "identity_defaults"
 """The defaults table (flat key -> default, execution settings left out) the store's point ids are relative to."""
+ID_WHOLE_KEYS = "id_whole_keys"
+"""The keys every point id of the store hashes with their value, whatever it is (the first stores hashed whole
+configs); a store without this attr: the keys of ``first_defaults.FIRST_DEFAULTS``. Only an upgrade writes it."""
 BASE_CONFIG = "base_config"
 """The sweep's resolved base config (flat key -> value, execution settings left out)."""
 AXIS_SETTINGS = "axis_settings"
@@ -41,12 +44,14 @@ AXIS_SETTINGS = "axis_settings"
 POINT_ID_SCHEME = "point_id_scheme"
 """How the stored point ids were made (:data:`ID_SCHEME`)."""
 ID_SCHEME = ("sha256(json.dumps({'config': the point's resolved config minus [execution] entries, keeping the keys "
-             "of the first defaults table (store schema 3.0) and any other key where it differs from "
-             "identity_defaults, 'replicate': replicate}, sort_keys=True))[:16]; seed: "
+             "of id_whole_keys (default: the first defaults table, store schema 3.0) and any other key where it "
+             "differs from identity_defaults, 'replicate': replicate}, sort_keys=True))[:16]; seed: "
              "sha256(f'{base_seed}/{point_id}')[:4] little-endian & 0x7FFFFFFF")
 """The value of :data:`POINT_ID_SCHEME` this capsweep writes (see ``capsweep.sweeps.identity``)."""
 AXIS_KEY = "config_key"
 """Attribute of an axis coordinate (not a root attr): the config key the axis sets."""
+RELATIVE_TO = "relative_to"
+"""Attribute of a variable or coordinate of units "1" (not a root attr): the unit its values are multiples of."""
 
 CF_CONVENTIONS = "CF-1.11"  # the newest CF version the IOOS compliance checker (6.1) has a suite for
 VERSIONED_PACKAGES: tuple[str, ...] = ("capsweep", "brian2", "numpy", "xarray", "zarr", "dask")

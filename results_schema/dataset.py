@@ -9,16 +9,18 @@ import numpy as np
 import xarray as xr
 
 from .store import check_store
+from .upgrade import as_current
 
 
 def open_dataset(path: str | Path, chunks: Any = None) -> xr.Dataset:
     """Open a store as an xarray Dataset (``xr.open_zarr``; ``chunks=None`` loads lazily without dask).
 
-    Flag variables decode to float with NaN where unset; ``flag_labels`` turns them into labels.
+    Flag variables decode to float with NaN where unset; ``flag_labels`` turns them into labels. A store of an
+    earlier schema reads as this schema lays it out (its variables added since read as missing; nothing written).
     Raises StoreError if ``path`` is not a capsweep store, or one whose growth was cut short.
     """
     check_store(path)
-    return xr.open_zarr(path, chunks=chunks)
+    return as_current(xr.open_zarr(path, chunks=chunks))
 
 
 def flag_labels(flags: xr.DataArray) -> xr.DataArray:

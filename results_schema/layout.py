@@ -20,10 +20,16 @@ import numpy as np
 from ..axes import Axis
 from ..engines import NAMES as ENGINE_NAMES
 from ..flags import OUTCOMES, RECALL_STATES, STATUSES
+from ..registry import WEIGHT_UNIT as G_LEAK
+from ..registry import in_units_of
 
-SCHEMA_VERSION = "3.1"
+READABLE: tuple[str, ...] = ("2.0", "2.1", "3.0", "3.1", "3.2")
+"""Every store schema version this capsweep reads, oldest first; it writes the last (CHANGELOG.md says what each
+changed; ``upgrade.STEPS`` holds the step from each earlier one to the next)."""
+SCHEMA_VERSION = READABLE[-1]
 
 FLAG_FILL = -1
+IN_G_LEAK = in_units_of(G_LEAK)
 INNER_DIMS: tuple[str, ...] = ("assembly", "snapshot", "time_bin", "retention", "age")
 
 
@@ -52,6 +58,7 @@ class Variable:
     inner: str | None = None
     dtype: str = "float64"
     flags: tuple[str, ...] = ()
+    scale: str = ""  # for units "1": the unit the value is a multiple of (stored as attrs.RELATIVE_TO)
 
     @property
     def fill(self) -> float | int:
@@ -142,13 +149,14 @@ VARIABLES: tuple[Variable, ...] = (
              inner="snapshot"),
     Variable("assembly_contrast", "1", "mean within-assembly E->E weight / mean other E->E weight",
              inner="snapshot"),
-    Variable("weight_in", "g_leak", "mean E->E weight into assembly members from cells in no assembly",
-             inner="snapshot"),
-    Variable("weight_out", "g_leak", "mean E->E weight from assembly members to cells in no assembly",
-             inner="snapshot"),
-    Variable("weight_within", "g_leak", "mean E->E weight between members of a shared assembly", inner="snapshot"),
-    Variable("weight_between", "g_leak", "mean E->E weight between members of different assemblies (pre and post "
-             "each in some assembly, sharing none)", inner="snapshot"),
+    Variable("weight_in", "1", f"mean E->E weight into assembly members from cells in no assembly{IN_G_LEAK}",
+             inner="snapshot", scale=G_LEAK),
+    Variable("weight_out", "1", f"mean E->E weight from assembly members to cells in no assembly{IN_G_LEAK}",
+             inner="snapshot", scale=G_LEAK),
+    Variable("weight_within", "1", f"mean E->E weight between members of a shared assembly{IN_G_LEAK}",
+             inner="snapshot", scale=G_LEAK),
+    Variable("weight_between", "1", "mean E->E weight between members of different assemblies (pre and post "
+             f"each in some assembly, sharing none){IN_G_LEAK}", inner="snapshot", scale=G_LEAK),
     Variable("upper_share_within", "1", "share of within-assembly E->E synapses whose reference weight is in the "
              "upper state (w_ref > w_P/2; bistable w_ref_mode only)", inner="snapshot"),
     Variable("upper_share_between", "1", "share of between-assembly E->E synapses whose reference weight is in the "
@@ -169,3 +177,4 @@ TIMINGS: tuple[str, ...] = ("wall_time_s", "setup_time_s")
 STATUS = Variable("status", "1", "run status of the point", dtype="int8", flags=STATUSES)
 ERROR = "error"  # per-point error text for failed points (string variable, '' when none)
 POINT_ID = "point_id"  # per-point hash of the resolved config (string variable)
+WRITER_VERSION = "capsweep_version"  # per-point version of the capsweep that wrote the point (string variable)

@@ -16,6 +16,7 @@ See SPEC.md beside this module for the full layout.
 
 from __future__ import annotations
 
+import asyncio
 import base64
 import json
 import math
@@ -33,12 +34,15 @@ from typing import Any, Literal
 
 import numpy as np
 import zarr
+from zarr.core.buffer import Buffer
 from zarr.errors import ZarrUserWarning
+from zarr.storage import LocalStore, MemoryStore
 
 from ..axes import REPLICATE, Axis
 from ..errors import StoreError
 from ..flags import DONE, FAILED, PENDING, STATUSES, UNNEEDED
-from . import attrs, layout
+from . import attrs, journal, layout
+from .durable import check_new_store, check_writable, remove_strays, sync_written
 from .layout import GridSpec
 
 # Variables whose every entry holds a value from creation on: no _FillValue, so they decode to
@@ -47,6 +51,8 @@ ALWAYS_SET: frozenset[str] = frozenset({layout.STATUS.name, "seed"})
 STRING_VARIABLES: dict[str, str] = {
     layout.ERROR: "error text of a failed point ('' when none)",
     layout.POINT_ID: "hash of the point's resolved config on the store's defaults table",
+    layout.WRITER_VERSION: "version of the capsweep that wrote the point ('' if unwritten or written before store "
+                           "schema 3.1)",
 }
 # Result variables a runner result must hold; seed is fixed at creation, the prediction optional.
 OPTIONAL_RESULTS: frozenset[str] = frozenset({"seed", "predicted_outcome"})
@@ -86,12 +92,23 @@ def create_store(path: str | Path, grid: GridSpec, point_ids: np.ndarray, seeds:
             f"{path} already exists; capsweep never overwrites a store. To resume the sweep that made it, "
             "run that sweep against it; to start afresh choose another store path or delete it"
         )
+    check_new_store(path)
     sweep_shape = _check_grid(grid, point_ids, seeds)
     try:
         _write_template(path, grid, sweep_shape, point_ids, seeds)
     except BaseException:
         shutil.rmtree(path, ignore_errors=True)
         raise
+
+
+class DurableStore(LocalStore):
+    """Zarr's local store, but a write is on disk (file and directory entries synced) when it returns."""
+
+    async def _set(self, key: str, value: Buffer, exclusive: bool = False) -> None:
+        path = self.root / key
+        new_dirs = not path.parent.exists()
+        await super()._set(key, value, exclusive)
+        await asyncio.to_thread(sync_written, path, self.root, new_dirs)
 
 
 class ResultStore:
@@ -106,9 +123,10 @@ class ResultStore:
     def __init__(self, path: Path, group: zarr.Group, batching: Batching = IMMEDIATE) -> None:
         self.path = path
         self._group = group
-        self._arrays: dict[str, zarr.Array] = {name: _array(group, name) for name in _stored_variables()}
+        self._arrays: dict[str, zarr.Array] = {name: _array(group, name) for name in stored_variables()}
         self._seeds = np.asarray(self._arrays["seed"][...])
         self._fills = {name: self._fill_block(layout.BY_NAME[name]) for name in REQUIRED_RESULTS}
+        self._version = attrs.package_version("capsweep")
         self._batching = batching
         self._buffer: dict[tuple[int, ...], tuple[dict[str, Any], str]] = {}
         self._oldest = 0.0  # time.monotonic() when the oldest buffered point arrived
@@ -124,13 +142,14 @@ class ResultStore:
     def open(cls, path: str | Path, fingerprint: str | None = None, batching: Batching = IMMEDIATE) -> ResultStore:
         """Open the store at ``path`` for writing.
 
-        Raises StoreError naming the path if it is missing, not a capsweep store, of another
+        Raises StoreError naming the path if it is missing, read-only, not a capsweep store, of another
         schema version, damaged, half grown, or (with ``fingerprint``) built from another grid.
         """
         path = Path(path)
         group = _open_group(path, consolidated=False)
-        _check_identity(path, dict(group.attrs), fingerprint)
-        missing = [name for name in _stored_variables() if name not in group]  # no listing: the lock file is there
+        _check_identity(path, dict(group.attrs), fingerprint, writing=True)
+        check_writable(path)
+        missing = [name for name in stored_variables() if name not in group]  # no listing: the lock file is there
         if missing:
             raise StoreError(f"{path} is damaged: variables {', '.join(missing)} are missing")
         return cls(path, group, batching)
@@ -164,8 +183,15 @@ class ResultStore:
         self.flush()
         return np.asarray(self._arrays[name][...])
 
+    def tidy(self) -> list[Path]:
+        """Remove what writes and upgrades killed midway left (temporary files, an uncommitted upgrade's journal);
+        return the files removed. Only the holder of the store's lock may call it."""
+        journal.discard(self.path)
+        return remove_strays(self.path)
+
     def mark_unneeded(self, indices: Iterable[tuple[int, ...]]) -> None:
-        """Set pending points' status to unneeded: an adaptive search decided without them (nothing else written).
+        """Set pending points' status to unneeded: an adaptive search decided without them (their writer recorded,
+        nothing else written).
 
         Written with the next batch of points, however many there are.
         """
@@ -174,7 +200,7 @@ class ResultStore:
             self._raise_failure()
             if checked and not self._buffer:
                 self._oldest = time.monotonic()
-            self._buffer.update((index, ({}, UNNEEDED)) for index in checked)
+            self._buffer.update((index, ({layout.WRITER_VERSION: self._version}, UNNEEDED)) for index in checked)
 
     def write_point(self, index: tuple[int, ...], result: Mapping[str, Any]) -> None:
         """Write a finished point: every result variable and an empty error, then status done.
@@ -187,6 +213,7 @@ class ResultStore:
         index = self._check_index(index)
         values = self._encode_result(index, result)
         values[layout.ERROR] = ""
+        values[layout.WRITER_VERSION] = self._version
         self._queue(index, values, DONE)
 
     def write_failure(self, index: tuple[int, ...], error_text: str) -> None:
@@ -194,6 +221,7 @@ class ResultStore:
         index = self._check_index(index)
         values = {name: self._fills[name] for name in REQUIRED_RESULTS}
         values[layout.ERROR] = str(error_text)
+        values[layout.WRITER_VERSION] = self._version
         self._queue(index, values, FAILED)
 
     def flush(self) -> None:
@@ -291,7 +319,8 @@ def _set_points(array: zarr.Array, values: Mapping[tuple[int, ...], Any]) -> Non
 
 
 def check_store(path: str | Path) -> None:
-    """Raise StoreError unless ``path`` is a capsweep store of this schema, not half grown (opens it read-only)."""
+    """Raise StoreError unless ``path`` is a capsweep store of a readable schema, not half grown (opens it
+    read-only)."""
     stored_attrs(path)
 
 
@@ -333,7 +362,7 @@ def grow_store(path: str | Path, grid: GridSpec, point_ids: np.ndarray, seeds: n
     """
     path = Path(path)
     group = _open_group(path, consolidated=False)
-    _check_identity(path, dict(group.attrs), None, growing=grid.fingerprint)
+    _check_identity(path, dict(group.attrs), None, growing=grid.fingerprint, writing=True)
     shape = _check_grid(grid, point_ids, seeds)
     if growing_to(path) is None:
         _check_extension(path, group, grid, shape, point_ids)
@@ -378,7 +407,8 @@ def _kind(values: np.ndarray) -> str:
     return "s" if values.dtype.kind in "OTU" else values.dtype.kind
 
 
-def _stored_variables() -> tuple[str, ...]:
+def stored_variables() -> tuple[str, ...]:
+    """Every per-point array of the layout: the result variables, status, then the string variables."""
     return (*(v.name for v in layout.VARIABLES), layout.STATUS.name, *STRING_VARIABLES)
 
 
@@ -417,7 +447,7 @@ def _encode_scalar(var: layout.Variable, value: Any) -> Any:
 def _check_grid(grid: GridSpec, point_ids: np.ndarray, seeds: np.ndarray) -> tuple[int, ...]:
     """Return the sweep shape, or raise ValueError for a grid the layout cannot hold."""
     names = [axis.name for axis in grid.axes]
-    taken = {REPLICATE, *layout.INNER_DIMS, *_stored_variables()}
+    taken = {REPLICATE, *layout.INNER_DIMS, *stored_variables()}
     clashes = sorted(set(names) & taken)
     if clashes or len(set(names)) != len(names):
         raise ValueError(f"axis names must be unique and not among {sorted(taken)}: {names}")
@@ -439,7 +469,7 @@ def _check_grid(grid: GridSpec, point_ids: np.ndarray, seeds: np.ndarray) -> tup
 def _write_template(path: Path, grid: GridSpec, sweep_shape: tuple[int, ...],
                     point_ids: np.ndarray, seeds: np.ndarray) -> None:
     """Create the group, coordinates and empty variables; mark it a capsweep store last."""
-    group = zarr.create_group(path, zarr_format=3, attributes=attrs.root_attrs(grid, _now()))
+    group = zarr.create_group(DurableStore(path), zarr_format=3, attributes=attrs.root_attrs(grid, _now()))
     sweep_dims = (*(axis.name for axis in grid.axes), REPLICATE)
     sizes = _inner_sizes(grid)
     for name, (values, described) in _coordinates(grid).items():
@@ -450,7 +480,7 @@ def _write_template(path: Path, grid: GridSpec, sweep_shape: tuple[int, ...],
     for var in layout.VARIABLES + (layout.STATUS,):
         inner = () if var.inner is None else (var.inner,)
         _create_point_variable(group, var.name, sweep_dims, sweep_shape, inner, tuple(sizes[d] for d in inner),
-                               var.dtype, _zarr_fill(var), _variable_attrs(var))
+                               var.dtype, _zarr_fill(var), variable_attrs(var))
     for name, long_name in STRING_VARIABLES.items():
         _create_point_variable(group, name, sweep_dims, sweep_shape, (), (), str, "",
                                {"units": "1", "long_name": long_name})
@@ -469,7 +499,7 @@ def _consolidate(path: Path) -> None:
         # Consolidated metadata is not yet in the Zarr v3 spec; xarray reads it and without it
         # plain xr.open_zarr(path) warns on every open.
         warnings.simplefilter("ignore", ZarrUserWarning)
-        zarr.consolidate_metadata(path)
+        zarr.consolidate_metadata(DurableStore(path))
 
 
 def _inner_sizes(grid: GridSpec) -> dict[str, int]:
@@ -480,7 +510,9 @@ def _inner_sizes(grid: GridSpec) -> dict[str, int]:
 def _coordinates(grid: GridSpec) -> dict[str, tuple[np.ndarray, dict[str, Any]]]:
     """Every coordinate of ``grid``: name -> (values, attrs); axes first, then the counters and time_bin."""
     coords = {axis.name: (_axis_array(axis), {"units": axis.units, "long_name": axis.long_name,
-                                              attrs.AXIS_KEY: axis.key}) for axis in grid.axes}
+                                              attrs.AXIS_KEY: axis.key,
+                                              **({attrs.RELATIVE_TO: axis.scale} if axis.scale else {})})
+              for axis in grid.axes}
     counters = (
         (REPLICATE, grid.replicates, "replicate (independent seed) of a grid point"),
         ("assembly", grid.n_assembly, "assembly index"),
@@ -521,6 +553,23 @@ def _create_point_variable(group: zarr.Group, name: str, sweep_dims: tuple[str, 
                        compressors="auto" if inner else None)
 
 
+def unwritten_array(name: str, shape: tuple[int, ...], dims: tuple[str, ...]) -> dict[str, Any]:
+    """The Zarr metadata (``zarr.json``) of the variable ``name`` of the layout (or a string variable) as an array of
+    ``shape`` over ``dims``, chunked as a new store would be, with nothing written: what an upgrade adds. Made in
+    memory: no file is written anywhere."""
+    var = layout.BY_NAME.get(name)
+    files: dict[str, Buffer] = {}
+    group = zarr.create_group(MemoryStore(files), zarr_format=3)
+    if var is None:
+        _create_point_variable(group, name, dims, shape, (), (), str, "",
+                               {"units": "1", "long_name": STRING_VARIABLES[name]})
+    else:
+        swept = len(shape) - (1 if var.inner else 0)
+        _create_point_variable(group, name, dims[:swept], shape[:swept], dims[swept:], shape[swept:], var.dtype,
+                               _zarr_fill(var), variable_attrs(var))
+    return dict(json.loads(files[f"{name}/zarr.json"].to_bytes()))
+
+
 def point_block(sweep_shape: tuple[int, ...], points: int) -> tuple[int, ...]:
     """A block of about ``points`` neighbouring points (at most the grid): whole trailing dims first, as in C order.
 
@@ -539,8 +588,11 @@ def _zarr_fill(var: layout.Variable) -> float | int:
     return STATUSES.index(PENDING) if var is layout.STATUS else var.fill
 
 
-def _variable_attrs(var: layout.Variable) -> dict[str, Any]:
+def variable_attrs(var: layout.Variable) -> dict[str, Any]:
+    """The attrs of ``var``'s array: CF units and long name, the scale of a relative unit, flags, _FillValue."""
     described: dict[str, Any] = {"units": var.units, "long_name": var.long_name}
+    if var.scale:
+        described[attrs.RELATIVE_TO] = var.scale
     if var.flags:
         described["flag_values"] = list(range(len(var.flags)))
         described["flag_meanings"] = " ".join(var.flags)
@@ -574,27 +626,37 @@ def _names(value: Any) -> list[str]:
 
 
 def _open_group(path: Path, mode: Literal["r", "r+"] = "r+", consolidated: bool | None = None) -> zarr.Group:
-    """The store's root group; ``consolidated=False`` reads every array's own metadata (what a writer needs)."""
+    """The store's root group (an upgrade cut short after its commit finished first); ``consolidated=False`` reads
+    every array's own metadata (what a writer needs)."""
     if not path.exists():
         raise StoreError(f"no result store at {path}")
+    journal.finish(path, layout.SCHEMA_VERSION)
     try:
-        return zarr.open_group(path, mode=mode, use_consolidated=consolidated)
+        return zarr.open_group(DurableStore(path, read_only=mode == "r"), mode=mode, use_consolidated=consolidated)
     except (FileNotFoundError, NotADirectoryError, ValueError) as exc:
         raise StoreError(f"{path} is not a capsweep result store (no Zarr v3 group there: {exc})") from None
 
 
-def _check_identity(path: Path, stored: dict[str, Any], fingerprint: str | None, growing: str | None = None) -> None:
-    """Raise StoreError unless the root attrs ``stored`` are those of a capsweep store of this schema (and grid), not
-    half grown.
+def _check_identity(path: Path, stored: dict[str, Any], fingerprint: str | None, growing: str | None = None,
+                    writing: bool = False) -> None:
+    """Raise StoreError unless the root attrs ``stored`` are those of a capsweep store of a readable schema (of this
+    schema for ``writing``, and of this grid for ``fingerprint``), not half grown.
 
     ``growing``: the fingerprint of the grid the caller grows the store to (a half-grown store is then accepted).
     """
     if attrs.SCHEMA not in stored:
         raise StoreError(f"{path} is not a capsweep result store (its root attributes lack {attrs.SCHEMA})")
-    if stored[attrs.SCHEMA] != layout.SCHEMA_VERSION:
+    version = stored[attrs.SCHEMA]
+    if version not in layout.READABLE:
         raise StoreError(
-            f"{path} has store schema version {stored[attrs.SCHEMA]}, this capsweep writes version "
-            f"{layout.SCHEMA_VERSION}; use the capsweep version that made it or start a new store"
+            f"{path} has store schema version {version}; this capsweep reads versions "
+            f"{', '.join(layout.READABLE)}: use the capsweep version that made it or start a new store"
+        )
+    if writing and version != layout.SCHEMA_VERSION:
+        raise StoreError(
+            f"{path} has store schema version {version}, this capsweep writes version {layout.SCHEMA_VERSION}; "
+            f"`capsweep upgrade {path}` upgrades it in place (status, query, capacity, plot and export read it as "
+            "it is)"
         )
     target = growing_to(path)
     if target is not None and target != growing:

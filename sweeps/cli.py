@@ -27,7 +27,7 @@ from .. import __version__
 from ..clusters import NAMES as CLUSTER_KINDS
 from ..controls import CONTROL_DIM
 from ..engines import ENGINES, NAMES
-from ..errors import CapsweepError
+from ..errors import CapsweepError, StoreError, fault_line
 from ..flags import DONE, FAILED, PENDING, UNNEEDED
 from ..interrupts import ignore_interrupts_if_spawned
 from ..registry import ImplausibleValue
@@ -109,7 +109,7 @@ def _every_command(
 
 
 def user_errors(command: Callable[..., Any]) -> Callable[..., Any]:
-    """Turn CapsweepError into one line on stderr and its exit code; Ctrl-C into exit 130."""
+    """Turn CapsweepError and file-system faults into one line on stderr and an exit code; Ctrl-C into exit 130."""
 
     @functools.wraps(command)
     def wrapper(*args: Any, **kwargs: Any) -> Any:
@@ -119,9 +119,8 @@ def user_errors(command: Callable[..., Any]) -> Callable[..., Any]:
             typer.echo(f"capsweep: error: {exc}", err=True)
             raise typer.Exit(exc.exit_code) from None
         except OSError as exc:  # a file-system fault the command did not name itself
-            where = f"{exc.filename}: " if exc.filename else ""
-            typer.echo(f"capsweep: error: {where}{exc.strerror or exc}", err=True)
-            raise typer.Exit(USAGE_EXIT) from None
+            typer.echo(f"capsweep: error: {fault_line(exc)}", err=True)
+            raise typer.Exit(StoreError.exit_code) from None
         except KeyboardInterrupt:
             typer.echo("capsweep: interrupted; results stored so far are kept. Rerun the same command to resume.",
                        err=True)
@@ -671,6 +670,18 @@ def estimate(
 def _check_engine(engine: str | None) -> None:
     if engine is not None and engine not in ENGINES:
         raise CapsweepError(f"--engine {engine!r} is not allowed: expected one of {', '.join(NAMES)}")
+
+
+@app.command("upgrade")
+@user_errors
+def upgrade_command(store: Path = _STORE) -> None:
+    """Upgrade STORE in place to the store schema this capsweep writes (stored values stay as they are)."""
+    from ..results_schema.upgrade import upgrade_store
+
+    before, after = upgrade_store(store)
+    said = f"{store} already has store schema {after}" if before == after else \
+        f"{store} upgraded from store schema {before} to {after}"
+    _say(said)
 
 
 @app.command()

@@ -27,14 +27,15 @@ from ..runners.builds import KEYS_IN_CODE, build_key
 from ..runners.protocol import SCHEDULE_KEYS, test_windows, total_duration_s
 from .ids import (
     EXECUTION,
+    IdBasis,
     Point,
     grid_shape,
     id_entries,
-    identity_defaults,
     ids_and_seeds,
     point_id,
     point_seed,
     store_basis,
+    today_basis,
     wiring_seed,
 )
 from .sweepfile import Sweep, parse_sweep
@@ -47,10 +48,10 @@ _KEPT_CONFIGS = 64  # nested configs kept for reuse: replicates of a cell are su
 class Grid:
     """Every point of a sweep, made on demand: shape, cell configs, points, functions of the config per cell."""
 
-    def __init__(self, sweep: Sweep, basis: Mapping[str, Any] | None = None) -> None:
+    def __init__(self, sweep: Sweep, basis: IdBasis | None = None) -> None:
         """Check every rule between keys on every cell (ConfigError naming the first inconsistent one)."""
         self.sweep = sweep
-        self.basis = identity_defaults() if basis is None else dict(basis)
+        self.basis = today_basis() if basis is None else basis
         self.shape = grid_shape(sweep)
         self.cells = self.shape[:-1]
         self._settings = tuple(tuple(_setting(sweep, axis, value) for value in axis.values) for axis in sweep.axes)
@@ -62,10 +63,10 @@ class Grid:
         for derived, source in GIVEN_TOGETHER:
             self._check_given(derived, source)
 
-    def on_basis(self, basis: Mapping[str, Any]) -> Grid:
-        """This grid with ids relative to the defaults table ``basis`` (a store's)."""
+    def on_basis(self, basis: IdBasis) -> Grid:
+        """This grid with ids relative to ``basis`` (a store's)."""
         grid = copy.copy(self)
-        grid.basis, grid._configs = dict(basis), {}
+        grid.basis, grid._configs = basis, {}
         return grid
 
     @property

@@ -5,7 +5,7 @@ The store already carries CF metadata (``Conventions``, ``title``, ``history``, 
 only: text arrays become netCDF strings, attributes holding lists of text or mappings become JSON
 text, flag_values take their variable's dtype, a sweep axis whose values are not numeric and
 strictly monotonic becomes an index coordinate with the values beside it (CF coordinate variables
-must be both), and capsweep's relative weight unit becomes "1" with a comment.
+must be both).
 """
 
 from __future__ import annotations
@@ -23,10 +23,6 @@ from .capacity import point_success
 from .outputs import fault, new_file
 from .query import axis_keys, column_units, point_table, table_csv
 
-# Units of the store that UDUNITS does not know: CF unit to write and the comment that says what it means.
-RELATIVE_UNITS: dict[str, tuple[str, str]] = {
-    "g_leak": ("1", "weight in units of the leak conductance g_leak"),
-}
 AXIS_VALUE_SUFFIX = "_value"
 
 
@@ -85,8 +81,6 @@ def _netcdf_variable(var: xr.Variable, is_coordinate: bool) -> xr.Variable:
     attrs = {key: _netcdf_attr(value) for key, value in var.attrs.items()}
     if "flag_values" in attrs:
         attrs["flag_values"] = np.asarray(var.attrs["flag_values"], dtype=encoding.get("dtype", var.dtype))
-    if attrs.get("units") in RELATIVE_UNITS:
-        attrs["units"], attrs["comment"] = RELATIVE_UNITS[attrs["units"]]
     return xr.Variable(var.dims, data, attrs, encoding)
 
 

@@ -29,8 +29,9 @@ from ..errors import ConfigError, StoreError
 from ..locks import store_lock
 from ..registry import ImplausibleValue, defaults, resolve_derived
 from ..results_schema import attrs
+from ..results_schema.durable import check_writable
 from ..results_schema.layout import GridSpec
-from .ids import EXECUTION, id_entries, identity_defaults, store_basis
+from .ids import EXECUTION, IdBasis, id_entries, identity_defaults, store_basis, today_basis
 from .success import MIN_FRACTION
 from .sweepfile import PRESCREEN_START, Sweep, parse_sweep
 
@@ -43,7 +44,7 @@ def science(flat: Mapping[str, Any]) -> dict[str, Any]:
     return {k: v for k, v in sorted(flat.items()) if not k.startswith(EXECUTION)}
 
 
-def fingerprint(sweep: Sweep, basis: Mapping[str, Any] | None = None) -> str:
+def fingerprint(sweep: Sweep, basis: IdBasis | None = None) -> str:
     """Hash of everything that fixes the grid: axes, replicates, base seed, the base config's :func:`id_entries` on
     ``basis`` (default: today's table), count search."""
     identity: dict[str, Any] = {
@@ -51,7 +52,7 @@ def fingerprint(sweep: Sweep, basis: Mapping[str, Any] | None = None) -> str:
         "variants": sweep.variants,
         "replicates": sweep.replicates,
         "base_seed": sweep.base_seed,
-        "base": id_entries(sweep.base, identity_defaults() if basis is None else basis),
+        "base": id_entries(sweep.base, today_basis() if basis is None else basis),
     }
     if sweep.search is not None:  # only then, so that stores of grids without a search keep their fingerprint
         identity["search"] = {k: v for k, v in dataclasses.asdict(sweep.search).items()  # unset replicate keys left
@@ -79,7 +80,7 @@ def grid_spec(grid: Grid) -> GridSpec:
     )
 
 
-def _record(sweep: Sweep, basis: Mapping[str, Any]) -> dict[str, Any]:
+def _record(sweep: Sweep, basis: IdBasis) -> dict[str, Any]:
     """The store's record of ``sweep``: the sweep record (a count search with its first probe and the pass
     fraction) and what its ids rest on (defaults table, resolved base config, axis settings)."""
     search = None if sweep.search is None else {
@@ -92,7 +93,7 @@ def _record(sweep: Sweep, basis: Mapping[str, Any]) -> dict[str, Any]:
     base = science(resolve_derived(sweep.base))
     return {**attrs.sweep_record(sweep.name, str(sweep.source), sweep.text, sweep.text_sha256, sweep.replicates,
                                  sweep.base_seed, search),
-            **attrs.identity_record(dict(basis), base, settings)}
+            **attrs.identity_record(dict(basis.table), base, settings)}
 
 
 def open_or_create(grid: Grid) -> tuple[ResultStore, Grid]:
@@ -110,9 +111,10 @@ def open_or_create(grid: Grid) -> tuple[ResultStore, Grid]:
     sweep = grid.sweep
     path = Path(sweep.store)
     if not path.exists():
-        grid = grid.on_basis(identity_defaults())
+        grid = grid.on_basis(today_basis())
         store.create_store(path, grid_spec(grid), *grid.ids_and_seeds())
         return store.ResultStore.open(path, fingerprint=fingerprint(sweep), batching=store.WRITER_BATCHING), grid
+    check_writable(path)  # before the lock: whose file a read-only store cannot take
     growing = store.growing_to(path)
     stored = store.stored_attrs(path, growing=growing)
     grid = grid.on_basis(store_basis(stored))
@@ -131,25 +133,25 @@ def open_or_create(grid: Grid) -> tuple[ResultStore, Grid]:
     return store.ResultStore.open(path, fingerprint=target, batching=store.WRITER_BATCHING), grid
 
 
-def recorded_sweep(path: Path, stored: dict[str, Any], basis: Mapping[str, Any]) -> Sweep:
+def recorded_sweep(path: Path, stored: dict[str, Any], basis: IdBasis) -> Sweep:
     """The sweep a store was built from: its recorded sweep text on the defaults it was made under (StoreError if
     unreadable)."""
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", ImplausibleValue)  # shown when that sweep ran
             return parse_sweep(str(stored[attrs.SWEEP_TEXT]), source=Path(str(stored.get(attrs.SWEEP_FILE, path))),
-                               defaults={**defaults(), **basis})
+                               defaults={**defaults(), **basis.table})
     except (KeyError, ConfigError) as exc:
         raise StoreError(f"{path} was built from a different sweep grid whose recorded sweep file cannot be read "
                          f"({exc}); use another store path") from None
 
 
-def default_change(stored: Sweep, sweep: Sweep, basis: Mapping[str, Any]) -> str:
+def default_change(stored: Sweep, sweep: Sweep, basis: IdBasis) -> str:
     """Why ``sweep`` cannot take the store of ``stored``: a registry default has changed since ``basis`` (the store's
     table), ``stored`` took the old default and ``sweep`` leaves the key to today's ('' if no such key)."""
     today = identity_defaults()
-    for key in sorted(basis):
-        was, now = basis[key], today[key]
+    for key in sorted(basis.table):
+        was, now = basis.table[key], today[key]
         if was != now and stored.base.get(key) == was and key not in sweep.explicit:
             table, _, leaf = key.rpartition(".")
             return (f"the default of {key} changed from {_toml(was)} to {_toml(now)} since this store was made, and "

@@ -1,13 +1,14 @@
 """Point ids and seeds, relative to a defaults table: the one place they are computed.
 
-Every id is relative to a *defaults table* (today's: :func:`identity_defaults`, the registry's default
-of every key outside ``[execution]``), which each store records (root attr ``identity_defaults``). A
-point's id is the SHA-256 of its *id entries* (:func:`id_entries`) and its replicate number: the keys of
-the first table (:data:`~capsweep.sweeps.first_defaults.FIRST_DEFAULTS`, which the first stores hashed
-whole) with their values, and any other key only where it differs from the table. So a key added to the
-registry at its default changes no id, and ids of the first stores stay valid. A point's seed derives
-from ``base_seed`` and its id, so results never depend on execution order or worker count. An existing
-store's ids stay relative to the table it recorded (:func:`store_basis`).
+Every id is relative to an :class:`IdBasis`: a *defaults table* (today's: :func:`identity_defaults`, the
+registry's default of every key outside ``[execution]``), which each store records (root attr
+``identity_defaults``), and the keys hashed whole. A point's id is the SHA-256 of its *id entries*
+(:func:`id_entries`) and its replicate number: the keys hashed whole (those of the first table,
+:data:`~capsweep.results_schema.first_defaults.FIRST_DEFAULTS`, unless the store records fewer: the stores of
+schema 2.x hashed two keys fewer) with their values, and any other key only where it differs from the table.
+So a key added to the registry at its default changes no id, and ids of the first stores stay valid. A
+point's seed derives from ``base_seed`` and its id, so results never depend on execution order or worker
+count. An existing store's ids stay relative to the basis it recorded (:func:`store_basis`).
 """
 
 from __future__ import annotations
@@ -16,14 +17,14 @@ import hashlib
 import json
 import math
 from collections.abc import Iterable, Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 
 from ..registry import defaults
 from ..results_schema import attrs
-from .first_defaults import FIRST_DEFAULTS
+from ..results_schema.first_defaults import FIRST_DEFAULTS
 from .sweepfile import Sweep
 
 EXECUTION = "execution."
@@ -43,9 +44,26 @@ class Point:
     wiring_seed: int  # connectivity and membership: shared by every point of one replicate (paired design)
 
 
+FIRST_KEYS: frozenset[str] = frozenset(FIRST_DEFAULTS)
+"""The keys every id hashes whole unless its store records others (stores made before stores recorded theirs)."""
+
+
+@dataclass(frozen=True)
+class IdBasis:
+    """What point ids are relative to: a defaults table and the keys they hash whatever their value."""
+
+    table: dict[str, Any]  # flat key -> default, [execution] left out
+    whole: frozenset[str] = field(default=FIRST_KEYS)
+
+
 def identity_defaults() -> dict[str, Any]:
     """Today's defaults table: the registry default of every key that enters a point's identity."""
     return {path: value for path, value in defaults().items() if not path.startswith(EXECUTION)}
+
+
+def today_basis() -> IdBasis:
+    """The basis of a new store: today's defaults table, the first table's keys hashed whole."""
+    return IdBasis(identity_defaults())
 
 
 def identity_basis(recorded: Mapping[str, Any]) -> dict[str, Any]:
@@ -55,10 +73,12 @@ def identity_basis(recorded: Mapping[str, Any]) -> dict[str, Any]:
             for path, value in identity_defaults().items()}
 
 
-def store_basis(stored: Mapping[str, Any]) -> dict[str, Any]:
-    """The defaults table the ids of a store with root attrs ``stored`` rest on: the one it recorded, the first
-    table (:data:`FIRST_DEFAULTS`) if it records none (made before stores recorded theirs)."""
-    return identity_basis(stored.get(attrs.IDENTITY_DEFAULTS, FIRST_DEFAULTS))
+def store_basis(stored: Mapping[str, Any]) -> IdBasis:
+    """The basis the ids of a store with root attrs ``stored`` rest on: the defaults table it recorded, the first
+    table (:data:`FIRST_DEFAULTS`) if it records none (made before stores recorded theirs); the keys it records as
+    hashed whole (an upgraded schema 2.x store), else the first table's."""
+    return IdBasis(identity_basis(stored.get(attrs.IDENTITY_DEFAULTS, FIRST_DEFAULTS)),
+                   frozenset(stored.get(attrs.ID_WHOLE_KEYS, FIRST_KEYS)))
 
 
 def _from_json(value: Any) -> Any:
@@ -66,11 +86,11 @@ def _from_json(value: Any) -> Any:
     return tuple(value) if isinstance(value, list) else value
 
 
-def id_entries(flat: Mapping[str, Any], basis: Mapping[str, Any]) -> dict[str, Any]:
-    """The entries of a flat config that enter its id, outside ``[execution]``: every key of the first table
-    (:data:`FIRST_DEFAULTS`), any other key where it differs from ``basis``."""
+def id_entries(flat: Mapping[str, Any], basis: IdBasis) -> dict[str, Any]:
+    """The entries of a flat config that enter its id, outside ``[execution]``: every key ``basis`` hashes whole,
+    any other key where it differs from the basis's table."""
     return {path: value for path, value in flat.items() if not path.startswith(EXECUTION)
-            and (path in FIRST_DEFAULTS or basis.get(path, _ABSENT) != value)}
+            and (path in basis.whole or basis.table.get(path, _ABSENT) != value)}
 
 
 def config_text(entries: Mapping[str, Any]) -> str:
@@ -89,11 +109,11 @@ def _id_of(head: Any, replicate: int) -> str:
     return digest.hexdigest()[:16]
 
 
-def point_id(flat: Mapping[str, Any], replicate: int, basis: Mapping[str, Any] | None = None) -> str:
+def point_id(flat: Mapping[str, Any], replicate: int, basis: IdBasis | None = None) -> str:
     """16-hex-digit id: SHA-256 of ``json.dumps({"config": entries, "replicate": replicate}, sort_keys=True)``,
     where ``entries`` are the flat config's :func:`id_entries` on ``basis`` (default: today's table)."""
     # "replicate" is part of the hashed text, spelled out: renaming the dim must not change any stored id.
-    entries = id_entries(flat, identity_defaults() if basis is None else basis)
+    entries = id_entries(flat, today_basis() if basis is None else basis)
     return _id_of(_id_head(config_text(entries)), replicate)
 
 

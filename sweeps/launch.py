@@ -20,6 +20,7 @@ import numpy as np
 
 from ..flags import DONE, FAILED, STATUSES, UNNEEDED
 from ..locks import store_lock
+from ..results_schema.durable import check_new_store
 from ..runners.notices import COMPILE_TOPIC
 from ..runners.task import TaskFailure, simulate_task
 from .dispatch import EarlyClient, Job, early_client, point_jobs, run_tasks, submission_sequence, task_window
@@ -97,9 +98,11 @@ def run_sweep(
     with early_client(grid.execution, options.workers, options.scheduler, options.dashboard,
                       options.cluster) as dask:
         if not Path(sweep.store).exists():
+            check_new_store(Path(sweep.store))
             dask.start()
         store, grid = open_or_create(grid)
         with store_lock(sweep.store), store:  # closing the store writes its last batch
+            store.tidy()
             todo = pending(store, options.retry_failed)
             progress = Progress(total=grid.n_points, to_run=todo.size, already_done=grid.n_points - todo.size,
                                 failed_before=pending(store, True).size - todo.size, store=sweep.store)

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from ..errors import CapsweepError
+from ..errors import CapsweepError, fault_parts
 
 
 class FileFault(CapsweepError):
@@ -19,7 +19,8 @@ class FileFault(CapsweepError):
 
 def fault(path: Path, exc: OSError) -> FileFault:
     """The one-line error for an OSError met while writing ``path``."""
-    return FileFault(f"cannot write {path}: {exc.strerror or exc}")
+    what, fix = fault_parts(exc)
+    return FileFault(f"cannot write {path}: {what}; {fix}")
 
 
 def check_folder(folder: Path, option: str) -> Path:

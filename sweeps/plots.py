@@ -28,8 +28,6 @@ from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
 from matplotlib.ticker import MaxNLocator, NullFormatter
-from matplotlib.transforms import blended_transform_factory
-from matplotlib.typing import ColorType
 
 from ..axes import COUNT_KEY, REPLICATE
 from ..errors import CapsweepError
@@ -61,6 +59,8 @@ NO_DATA_COLOUR = "0.85"
 """Colour of map tiles and marks that hold no done point."""
 PHASE_COLOURS = {"settle": "0.85", "imprint": "tab:purple", "final recall": "tab:blue", "tail": "0.92"}
 CUE_COLOUR = "tab:orange"
+LEGEND_BESIDE_WIDTH = 9.0
+"""Width (inches) of a one-axes figure whose legend stands right of its axes."""
 
 
 @dataclass(frozen=True)
@@ -184,26 +184,26 @@ def capacity_curves(ds: xr.Dataset, min_fraction: float = MIN_FRACTION) -> Figur
     """Success fraction against assembly count with 95 % Wilson intervals, one line per condition (combination of
     the other axes).
 
-    Counts without a done replicate are not drawn but labelled "pending" (or "crashed"); the legend
-    gives each condition's capacity and its n of done replicates per count, a point with fewer or with
-    pending replicates is marked with its own n, and the dashed line is the fraction capacity requires.
+    Counts without a done replicate are not drawn; the legend (beside the axes) gives each condition's capacity,
+    its n of done replicates per count, the counts with fewer or with pending replicates and their n, and the
+    counts not drawn and why ("pending at 2"). The dashed line is the fraction capacity requires.
     """
     count = count_dim(ds)
     table = success_table(ds)
     capacities = capacity_table(ds, min_fraction)
-    others = _other_axes(ds, count)
+    others = _other_axes(ds)
     shown = ["NA" if pd.isna(c.capacity) else f"{'>=' if c.at_least else ''}{c.capacity}"
              for c in capacities.itertuples()]
     missing = np.select([table[PENDING] > 0, table[UNNEEDED] > 0], [PENDING, "not needed by the search"],
                         "crashed")
-    fig, ax = plt.subplots(figsize=(6.0, 4.0))
+    fig, ax = plt.subplots(figsize=(LEGEND_BESIDE_WIDTH, 4.0))
     _count_lines(ax, table.assign(missing=missing), count, others, ("fraction", "wilson_lo", "wilson_hi"),
                  [f": capacity {c}" for c in shown])
     ax.axhline(min_fraction, color="grey", ls="--", lw=0.8)
     ax.set_xlabel(_axis_label(ds, count))
     ax.set_ylabel("fraction of replicates: stable, all recalled")
     ax.set_ylim(-0.05, 1.05)
-    ax.legend(fontsize=7, loc="best")
+    _legend_beside(ax)
     ax.set_title("capacity curves (95 % Wilson intervals; one line per " + (", ".join(others) or "store")
                  + f"; dashed: {min_fraction:g})", fontsize=8)
     return _finish(fig)
@@ -213,76 +213,64 @@ def _count_lines(ax: plt.Axes, table: pd.DataFrame, count: str, others: list[str
                  legend_extra: list[str] | None = None) -> None:
     """One line per condition of the ``others`` axes (table order): the ``columns`` (value, low, high) against
     ``count`` with bars from low to high, integer ticks at the counts; ``legend_extra`` follows each condition's
-    legend label. Rows need ``n`` (values behind a point) and ``pending``; a row with n = 0 is not drawn but labelled
-    with its ``missing`` text."""
+    legend label. Rows need ``n`` (values behind a point) and ``pending``; a row with n = 0 is not drawn. Its
+    ``missing`` text, and the n of a point with fewer values than the condition's most or with pending ones, go in
+    the condition's legend label (beside the axes): written beside a point they covered a neighbour's bar."""
     value, low, high = columns
     groups = _groups(table, others)
     for i, ((key, rows), extra) in enumerate(zip(groups, legend_extra or [""] * len(groups))):
         dodge = 0.05 * (i - (len(groups) - 1) / 2)  # side by side, so the bars stay readable
         drawn = rows[rows["n"] > 0]
         n_most = int(drawn["n"].max()) if len(drawn) else 0
+        fewer = drawn[(drawn["n"] < n_most) | (drawn[PENDING] > 0)]
+        notes = _where([f"n={r.n}" + (f" +{r.pending} pending" if r.pending else "") for r in fewer.itertuples()],
+                       fewer[count])
+        notes += _where(rows["missing"][rows["n"] == 0], rows[count][rows["n"] == 0])
         yerr = np.vstack([drawn[value] - drawn[low], drawn[high] - drawn[value]])
-        line = ax.errorbar(drawn[count] + dodge, drawn[value], yerr=yerr, marker="o", capsize=3,
-                           label=f"{_condition_label(others, key)}{extra} (n={n_most} per count)")
-        colour = line.lines[0].get_color()
-        _mark_fewer(ax, drawn[count] + dodge, drawn[value], drawn["n"], drawn[PENDING], n_most, colour)
-        for row in rows[rows["n"] == 0].itertuples():
-            _mark_missing(ax, getattr(row, count) + dodge, str(row.missing), colour)
+        ax.errorbar(drawn[count] + dodge, drawn[value], yerr=yerr, marker="o", capsize=3,
+                    label=f"{_condition_label(others, key)}{extra} (" + "; ".join([f"n={n_most} per count", *notes])
+                    + ")")
     _integer_ticks(ax.set_xticks, sorted(table[count].unique()))
 
 
-def _mark_fewer(ax: plt.Axes, x: pd.Series, y: pd.Series, n: pd.Series, pending: pd.Series, n_most: int,
-                colour: ColorType) -> None:
-    """Write its own n beside each point with fewer done replicates than the legend's n or with pending ones."""
-    for xi, yi, ni, pi in zip(x, y, n, pending):
-        if ni < n_most or pi:
-            text = f"n={ni}" + (f" +{pi} pending" if pi else "")
-            ax.annotate(text, (xi, yi), xytext=(4, -10), textcoords="offset points", fontsize=6, color=colour)
-
-
-def _mark_missing(ax: plt.Axes, x: float, text: str, colour: ColorType) -> None:
-    """Label data position ``x`` as holding no value (e.g. pending), upright in the middle of the axes."""
-    at = blended_transform_factory(ax.transData, ax.transAxes)
-    ax.text(x, 0.5, text, transform=at, rotation=90, ha="center", va="center", fontsize=7, color=colour,
-            style="italic", bbox={"fc": "white", "ec": NO_DATA_COLOUR, "lw": 0.5})
-
-
 def capacity_against(ds: xr.Dataset, axis: str, min_fraction: float = MIN_FRACTION) -> Figure:
-    """Capacity of each condition against ``axis`` (one line per value of the remaining axes); the vertical bar is
-    the range of the per-replicate capacities, a triangle a lower bound (top of the count grid), and an
-    undecided capacity (NA) is labelled with its reason instead of drawn."""
+    """Capacity of each condition (value of the remaining axes) against ``axis``: a line on a numeric axis; on a
+    categorical one (rule names have no order) separate marks, joined by no line. The vertical bar is the range of
+    the per-replicate capacities, a triangle a lower bound (top of the count grid); an undecided capacity (NA) is
+    not drawn, its value and reason named in the legend (beside the axes, where no text covers a bar)."""
     count = count_dim(ds)
     table = capacity_table(ds, min_fraction)
-    others = [d for d in _other_axes(ds, count) if d != axis]
+    others = [d for d in _other_axes(ds) if d != axis]
     values = list(ds[axis].values)
     numeric = ds[axis].dtype.kind in "iuf"
     spacing = float(np.ptp(values)) / max(len(values) - 1, 1) if numeric else 1.0
-    fig, ax = plt.subplots(figsize=(6.0, 4.0))
+    fig, ax = plt.subplots(figsize=(LEGEND_BESIDE_WIDTH, 4.0))
     groups = _groups(table, others)
     for i, (key, rows) in enumerate(groups):
         dodge = 0.06 * spacing * (i - (len(groups) - 1) / 2)
         x = np.array([(v if numeric else values.index(v)) for v in rows[axis]], dtype=float) + dodge
         known = rows["capacity"].notna().to_numpy()
-        line, = ax.plot(x[known], rows["capacity"][known].astype(float), marker="o",
-                        label=_condition_label(others, key))
+        undecided = _where([PENDING if row.pending else "crashed" for row in rows[~known].itertuples()],
+                           rows[axis][~known])
+        line, = ax.plot(x[known], rows["capacity"][known].astype(float), marker="o", ls="-" if numeric else "none",
+                        label=_condition_label(others, key) + (f" (NA, {'; '.join(undecided)})" if undecided else ""))
         colour = line.get_color()
         ranged = rows["capacity_lo"].notna().to_numpy()
         ax.vlines(x[ranged], rows["capacity_lo"][ranged].astype(float), rows["capacity_hi"][ranged].astype(float),
                   colors=colour, lw=2.5, alpha=0.4, gid="replicate_range")
         top = (rows["at_least"] & known).to_numpy()
         ax.plot(x[top], rows["capacity"][top].astype(float), "^", ms=9, mfc="none", mec=colour)
-        for xi, row in zip(x[~known], rows[~known].itertuples()):
-            _mark_missing(ax, xi, "NA: pending" if row.pending else "NA: crashed", colour)
     if numeric:
         (_integer_ticks if ds[axis].dtype.kind in "iu" else _value_ticks)(ax.set_xticks, values)
     else:
         _category_ticks(ax.set_xticks, ds, axis)
+        ax.set_xlim(-0.5, len(values) - 0.5)
     ax.yaxis.set_major_locator(MaxNLocator(integer=True))
     ax.plot([], [], "^", mfc="none", mec="k", label="at least (top of the count grid)")
     ax.plot([], [], color="k", lw=2.5, alpha=0.4, label="range over replicates")
     ax.set_xlabel(_axis_label(ds, axis))
     ax.set_ylabel(f"capacity ({count})")
-    ax.legend(fontsize=7, loc="best")
+    _legend_beside(ax)
     ax.set_title(f"capacity against {axis} (every count up to it succeeds in >= {min_fraction:g} of replicates)",
                  fontsize=8)
     return _finish(fig)
@@ -337,8 +325,8 @@ def capacity_scaling(ds: xr.Dataset) -> Figure | None:
 def recall_per_assembly(ds: xr.Dataset) -> Figure:
     """Recall score per assembly (mean over a done point's assemblies) against assembly count: mean over
     replicates with their range as bars, one line per condition of the other axes; counts without a scored
-    replicate are labelled with the reason (pending, crashed, or done without a recall score, as after
-    an early abort), fewer replicates than the most are marked with their n."""
+    replicate are not drawn, the legend names them with the reason (pending, crashed, or done without a recall
+    score, as after an early abort) and the counts with fewer replicates than the most with their n."""
     count, status = count_dim(ds), labelled(ds, "status")
     per_point = ds["recall_score"].where(status == DONE).mean("assembly", skipna=True)
     stats = xr.Dataset({"mean": per_point.mean(REPLICATE), "lo": per_point.min(REPLICATE),
@@ -347,12 +335,12 @@ def recall_per_assembly(ds: xr.Dataset) -> Figure:
     table = stats.to_dataframe().reset_index().sort_values(count)
     missing = np.select([table[PENDING] > 0, table[UNNEEDED] > 0, table[DONE] > 0],
                         [PENDING, "not needed by the search", "no recall score"], "crashed")
-    others = _other_axes(ds, count)
-    fig, ax = plt.subplots(figsize=(6.0, 4.0))
+    others = _other_axes(ds)
+    fig, ax = plt.subplots(figsize=(LEGEND_BESIDE_WIDTH, 4.0))
     _count_lines(ax, table.assign(missing=missing), count, others, ("mean", "lo", "hi"))
     ax.set_xlabel(_axis_label(ds, count))
     ax.set_ylabel("recall score per assembly\n(1 perfect completion, 0 chance)")
-    ax.legend(fontsize=7, loc="best")
+    _legend_beside(ax)
     ax.set_title("recall per assembly: mean over replicates (bar: range over replicates)", fontsize=8)
     return _finish(fig)
 
@@ -469,22 +457,42 @@ def _shade_schedule(ax: plt.Axes, sched: Schedule | None, until_s: float = np.in
     return drawn
 
 
-def weight_drift(ds: xr.Dataset) -> Figure:
-    """Weight correlation with hold start against snapshot time (s) of every done point, coloured by outcome."""
-    done = labelled(ds, "status").values.ravel() == DONE
-    outcome = labelled(ds, "outcome").values.ravel()[done]
-    corr = ds["weight_correlation"].values.reshape(done.size, -1)[done]
-    times = ds["snapshot_time_s"].values.reshape(done.size, -1)[done]
-    fig, ax = plt.subplots(figsize=(5.5, 3.8))
-    for row, name in enumerate(outcome):
-        ax.plot(times[row], corr[row], color=OUTCOME_COLOURS[name], alpha=0.6, marker=".")
-    for name in (o for o in OUTCOMES if o in outcome):
-        ax.plot([], [], color=OUTCOME_COLOURS[name], label=f"{name} (n={int(np.sum(outcome == name))})")
-    ax.set_xlabel("time (s)")
-    ax.set_ylabel("corr(w(t), w(hold start))")
-    ax.legend(fontsize=7)
-    ax.set_title("E->E weight drift during hold (done points)", fontsize=9)
-    return _finish(fig)
+def weight_drift(ds: xr.Dataset, columns: int = 3) -> Figure:
+    """Weight correlation with hold start against snapshot time (s) of every done point, coloured by outcome, one
+    panel per condition (value of the axes other than the assembly count: each rule its own panel, never pooled
+    with another); a panel holds its condition's counts and replicates, up to ``columns`` panels a row.
+    Conditions without a done point are left out and counted in the title."""
+    others = _other_axes(ds)
+    status, outcome = labelled(ds, "status"), labelled(ds, "outcome")
+    conditions = [dict(zip(others, c)) for c in itertools.product(*(range(ds.sizes[d]) for d in others))]
+    conditions = [c for c in conditions if np.any(status.isel(c).values == DONE)]
+    rows = -(-len(conditions) // columns)
+    fig, axs = plt.subplots(rows, min(columns, len(conditions)), squeeze=False, sharex=True, sharey=True,
+                            figsize=(0.4 + 3.3 * min(columns, len(conditions)), 0.8 + 2.6 * rows))
+    for ax, condition in itertools.zip_longest(axs.flat, conditions):
+        if condition is None:
+            ax.set_visible(False)
+            continue
+        done = status.isel(condition).values.ravel() == DONE
+        corr = ds["weight_correlation"].isel(condition).values.reshape(done.size, -1)[done]
+        times = ds["snapshot_time_s"].isel(condition).values.reshape(done.size, -1)[done]
+        for t, c, name in zip(times, corr, outcome.isel(condition).values.ravel()[done]):
+            ax.plot(t, c, color=OUTCOME_COLOURS[name], alpha=0.6, marker=".")
+        label = _condition_label(others, [_tick_text(ds[d].values[i]) for d, i in condition.items()])
+        ax.set_title(f"{label} ({int(done.sum())} done)", fontsize=8)
+    for ax in axs[-1]:
+        ax.set_xlabel("time (s)")
+    for ax in axs[:, 0]:
+        ax.set_ylabel("corr(w(t), w(hold start))")
+    names = outcome.values[status.values == DONE]
+    fig.legend(handles=[Line2D([], [], color=OUTCOME_COLOURS[o], label=f"{o} (n={int(np.sum(names == o))})")
+                        for o in OUTCOMES if o in names], loc="lower center", ncol=len(OUTCOMES), fontsize=7,
+               frameon=False)
+    left_out = int(np.prod([ds.sizes[d] for d in others])) - len(conditions)
+    fig.suptitle("E->E weight drift during hold (done points)"
+                 + (f"; {left_out} conditions without a done point left out" if left_out else ""), fontsize=9)
+    fig.tight_layout(rect=(0, 0.06, 1, 1))
+    return fig
 
 
 # ---------------------------------------------------------------- all together
@@ -541,9 +549,9 @@ def _figures(ds: xr.Dataset, x: str, y: str | None, against: list[str]) -> tuple
 # ---------------------------------------------------------------- helpers
 
 
-def _other_axes(ds: xr.Dataset, count: str) -> list[str]:
+def _other_axes(ds: xr.Dataset) -> list[str]:
     """Sweep axes other than the count axis (replicate excluded), in store order."""
-    return [d for d in axis_keys(ds) if d != count]
+    return [d for d, key in axis_keys(ds).items() if key != COUNT_KEY]
 
 
 def _groups(table: pd.DataFrame, others: list[str]) -> list[tuple[Any, pd.DataFrame]]:
@@ -560,6 +568,19 @@ def _point_label(ds: xr.Dataset, index: tuple[int, ...]) -> str:
     dims = sweep_dims(ds)
     labels = [f"{d}={_tick_text(ds[d].values[i])}" for d, i in zip(dims, index) if d != REPLICATE]
     return ", ".join(labels + [f"replicate {index[-1]}: {labelled(ds, 'outcome').values[index]}"])
+
+
+def _where(labels: Sequence[str], at: Sequence[Any]) -> list[str]:
+    """'pending at 2, 3' for each distinct label (in order of first appearance): what holds at which axis values."""
+    places: dict[str, list[str]] = {}
+    for label, value in zip(labels, at):
+        places.setdefault(label, []).append(_tick_text(value))
+    return [f"{label} at {', '.join(values)}" for label, values in places.items()]
+
+
+def _legend_beside(ax: plt.Axes) -> None:
+    """The axes' legend right of it, outside the data, so no legend text covers a bar or a mark."""
+    ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0.0)
 
 
 def _tick_text(value: Any) -> str:

@@ -97,11 +97,13 @@ def point_table(ds: xr.Dataset, success: xr.DataArray | None = None) -> pd.DataF
 
 
 def column_units(ds: xr.Dataset, columns: list[str]) -> dict[str, str]:
-    """CF ``units`` of each of ``columns`` that has a physical unit (not "1"); labels have none."""
+    """Units of each of ``columns`` that has one: the CF ``units`` if not "1", else the scale of a relative unit
+    (weights: g_leak); labels have none."""
     units = {}
     for name in columns:
         source = SUMMARIES[name][0] if name in SUMMARIES else name
-        unit = str(ds[source].attrs.get("units", DIMENSIONLESS)) if source in ds.variables else DIMENSIONLESS
+        described = ds[source].attrs if source in ds.variables else {}
+        unit = str(described.get(attrs.RELATIVE_TO) or described.get("units", DIMENSIONLESS))
         if unit != DIMENSIONLESS:
             units[name] = unit
     return units

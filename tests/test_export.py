@@ -97,7 +97,7 @@ def test_netcdf_holds_the_store_values_with_their_dtypes(exported: Path) -> None
         assert np.ma.is_masked(nc["recalled_count"][PENDING]) and np.ma.is_masked(nc["recalled_count"][FAILED])
         assert nc["error"][FAILED].startswith("RuntimeError: worker lost") and nc["error"][done] == ""
         assert nc["point_id"][PENDING] == f"odour-{np.ravel_multi_index(PENDING, SHAPE):02d}"
-        assert nc["weight_in"].units == "1" and "leak conductance" in nc["weight_in"].comment
+        assert nc["weight_in"].units == "1" and nc["weight_in"].relative_to == "g_leak"
 
 
 def test_export_never_overwrites_a_file(store: Path, exported: Path, tmp_path: Path) -> None:

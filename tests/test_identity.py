@@ -49,7 +49,7 @@ CHANGED = "network.delay_ms"  # a key whose default a later version might change
 
 
 ADDED_AFTER_3_0 = ("plasticity.heterosynaptic.w_ref_start", "protocol.imprint_order", "protocol.retention_design")
-"""Registry keys that schema 3.0 configs did not have (added with schema 3.1, December 2026): a 3.0 config is
+"""Registry keys that schema 3.0 configs did not have (added with schema 3.2, December 2026): a 3.0 config is
 today's without them, and today's ids must not depend on them while they stay at their defaults."""
 
 

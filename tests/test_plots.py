@@ -2,17 +2,22 @@
 shaded cue windows, and that no option combination ends in a traceback or leaves files behind.
 
 The store is real (Zarr, created from a sweep file's text as ``capsweep run`` creates it) and filled
-with invented point results (the simulation is tested elsewhere), laid out in PATTERN.
+with invented point results (the simulation is tested elsewhere), laid out in PATTERN (numeric axes) and
+RULE_PATTERN (a categorical rule axis).
 """
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
 import pytest
 import xarray as xr
+from matplotlib import pyplot as plt
+from matplotlib.axes import Axes
 from matplotlib.collections import LineCollection
+from matplotlib.transforms import Bbox
 from typer.testing import CliRunner
 
 from capsweep.results_schema.dataset import open_dataset
@@ -30,19 +35,14 @@ from capsweep.sweeps.plots import (
     point_schedules,
     prediction_confusion,
     rate_traces,
+    recall_per_assembly,
     stability_map,
     weight_drift,
 )
 from capsweep.sweeps.sweepfile import parse_sweep
 
 SETTLE_S, HOLD_S, RETENTION_S, CUE_S, GAP_S = 1.0, 3.0, 0.5, 0.2, 0.5
-SWEEP = f"""
-[sweep]
-name = "odour-plot-test"
-store = "unused.zarr"
-replicates = 2
-base_seed = 11
-
+NUMERIC_AXES = """
 [[sweep.axis]]
 name = "n_odours"
 key = "assemblies.count"
@@ -52,7 +52,23 @@ values = [1, 2, 3]
 name = "beta"
 key = "plasticity.heterosynaptic.beta"
 values = [0.0, 0.05]
+"""
+# three rule families as in configs/demo.toml: names without an order
+RULES = ("triplet_only", "triplet_inhibitory", "full")
+RULE_AXES = """
+[[sweep.axis]]
+name = "rule"
+[sweep.axis.variants]
+triplet_only = { "plasticity.heterosynaptic.enabled" = false, "plasticity.transmitter.enabled" = false, "plasticity.inhibitory.enabled" = false }
+triplet_inhibitory = { "plasticity.heterosynaptic.enabled" = false, "plasticity.transmitter.enabled" = false }
+full = {}
 
+[[sweep.axis]]
+name = "n_odours"
+key = "assemblies.count"
+values = [1, 2]
+"""
+SWEEP_BODY = f"""
 [network]
 n_exc = 100
 
@@ -66,6 +82,18 @@ retention_delays_s = [{RETENTION_S}]
 cue_duration_s = {CUE_S}
 cue_gap_s = {GAP_S}
 """
+
+
+def sweep_text(axes: str) -> str:
+    return f"""
+[sweep]
+name = "odour-plot-test"
+store = "unused.zarr"
+replicates = 2
+base_seed = 11
+{axes}{SWEEP_BODY}"""
+
+
 # (count index, beta index, replicate) -> (outcome, recalled, predicted); not listed: stable, all recalled,
 # predicted stable. "pending" leaves the point unwritten.
 PATTERN: dict[tuple[int, int, int], tuple[str, int, str] | str] = {
@@ -74,13 +102,20 @@ PATTERN: dict[tuple[int, int, int], tuple[str, int, str] | str] = {
     (1, 1, 0): "pending", (1, 1, 1): "pending",  # beta 0.05, count 2: nothing done yet
     (2, 1, 0): ("stable", 2, "stable"),  # beta 0.05, count 3: one assembly lost in replicate 0
 }
+# (rule index, count index, replicate), the same way; drift per rule: see rule_ds
+RULE_PATTERN: dict[tuple[int, int, int], tuple[str, int, str] | str] = {
+    (0, 1, 0): "pending",  # triplet_only, count 2: one replicate done, one pending
+    (1, 1, 0): ("stable", 1, "stable"),  # triplet_inhibitory, count 2: 1 of 2 -> capacity at least 2
+    (2, 1, 0): ("stable", 1, "stable"), (2, 1, 1): ("runaway", 0, "stable"),  # full, count 2: 0 of 2 -> capacity 1
+}
 STOPPED_S = 3.0  # where the runaway points' runs stop (early abort)
 WRONG_CUES = (0, 1, 1)  # this point stores a final cue time its sweep file cannot give
 
 
 def invented(count: int, outcome: str, recalled: int, predicted: str, seed: int, n_bins: int,
-             cue_time_s: float = np.nan) -> dict:
-    """A runner result with every layout variable; recall scores 0.9 for recalled assemblies, 0.1 else."""
+             cue_time_s: float = np.nan, drift: float = 0.1) -> dict:
+    """A runner result with every layout variable; recall scores 0.9 for recalled assemblies, 0.1 else; the
+    weight correlation falls by ``drift`` per snapshot."""
     out: dict = {v.name: np.full(1, np.nan) if v.inner else np.nan for v in VARIABLES if v.dtype == "float64"}
     score = np.where(np.arange(count) < recalled, 0.9, 0.1)
     stopped = STOPPED_S if outcome == "runaway" else np.nan
@@ -91,28 +126,44 @@ def invented(count: int, outcome: str, recalled: int, predicted: str, seed: int,
         "test_position": np.arange(count), "n_synapses": 1000, "threads": 1, "retention_recalled": [recalled],
         "retention_tested": [count], "age_recalled": [-1], "age_tested": [-1], "recall_score": score,
         "simulated_time_s": stopped if outcome == "runaway" else 20.0,
-        "weight_correlation": np.array([1.0, 0.9, 0.8]), "snapshot_time_s": np.array([1.0, 2.0, 3.0]),
+        "weight_correlation": 1.0 - drift * np.arange(3), "snapshot_time_s": np.array([1.0, 2.0, 3.0]),
         "rate_exc_hz": np.full(n_bins, 3.0), "cue_time_s": np.full(count, cue_time_s),
     })
     return out
 
 
-@pytest.fixture(scope="module")
-def store(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    """The PATTERN store, created from SWEEP's text as a run creates it (root attr ``sweep_text``)."""
-    sweep = parse_sweep(SWEEP)
-    points = expand(sweep)
-    path = tmp_path_factory.mktemp("plots") / "odour.zarr"
+def filled_store(path: Path, text: str, pattern: dict, drift: Callable[[tuple[int, ...]], float],
+                 wrong_cues: tuple[int, ...] | None = None) -> Path:
+    """A store created from sweep ``text`` as a run creates it (root attr ``sweep_text``), its points written as
+    ``pattern`` says (unlisted: stable, all recalled), the weight correlation falling by ``drift(index)``; point
+    ``wrong_cues`` stores a final cue time of 99 s."""
+    sweep = parse_sweep(text)
     grid = grid_spec(Grid(sweep))
     create_store(path, grid, *Grid(sweep).ids_and_seeds())
     writer = ResultStore.open(path)
-    for p in points:
+    for p in expand(sweep):
         count = p.config["assemblies"]["count"]
-        spec = PATTERN.get(p.index, ("stable", count, "stable"))
+        spec = pattern.get(p.index, ("stable", count, "stable"))
         if spec != "pending":
-            cue_time_s = 99.0 if p.index == WRONG_CUES else np.nan
-            writer.write_point(p.index, invented(count, *spec, p.seed, grid.n_time_bin, cue_time_s))
+            cue_time_s = 99.0 if p.index == wrong_cues else np.nan
+            writer.write_point(p.index, invented(count, *spec, p.seed, grid.n_time_bin, cue_time_s, drift(p.index)))
     return path
+
+
+@pytest.fixture(scope="module")
+def store(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The PATTERN store over n_odours and beta."""
+    return filled_store(tmp_path_factory.mktemp("plots") / "odour.zarr", sweep_text(NUMERIC_AXES), PATTERN,
+                        lambda index: 0.1, WRONG_CUES)
+
+
+@pytest.fixture(scope="module")
+def rule_ds(tmp_path_factory: pytest.TempPathFactory) -> xr.Dataset:
+    """The RULE_PATTERN store over rule (categorical) and n_odours; rule i's weights drift by 0.1 (i + 1) per
+    snapshot, so each trace tells its rule."""
+    path = filled_store(tmp_path_factory.mktemp("plots") / "rules.zarr", sweep_text(RULE_AXES), RULE_PATTERN,
+                        lambda index: 0.1 * (index[0] + 1))
+    return open_dataset(path)
 
 
 @pytest.fixture(scope="module")
@@ -163,7 +214,7 @@ def test_capacity_curve_bars_are_the_wilson_intervals_and_pending_counts_are_not
         segments = container.lines[2][0].get_segments()
         np.testing.assert_allclose([s[0][1] for s in segments], done["wilson_lo"])
         np.testing.assert_allclose([s[1][1] for s in segments], done["wilson_hi"])
-    assert sum(t.get_text() == "pending" for t in ax.texts) == 1
+    assert not ax.texts and "pending at 2" in _labels(ax.get_legend().get_texts())[1]
 
 
 def test_capacity_against_beta_bars_are_the_replicate_ranges(ds: xr.Dataset) -> None:
@@ -174,14 +225,95 @@ def test_capacity_against_beta_bars_are_the_replicate_ranges(ds: xr.Dataset) -> 
     (bars,) = [c for c in ax.collections if isinstance(c, LineCollection) and c.get_gid() == "replicate_range"]
     ((x, lo), (_, hi)), = bars.get_segments()
     assert (x, lo, hi) == (0.0, table.loc[0.0, "capacity_lo"], table.loc[0.0, "capacity_hi"]) == (0.0, 1, 2)
-    assert [t.get_text() for t in ax.texts] == ["NA: pending"]
+    assert not ax.texts and _labels(ax.get_legend().get_texts())[0] == "all (NA, pending at 0.05)"
     assert _labels(ax.get_xticklabels()) == ["0", "0.05"]
+    (curve,) = [line for line in ax.lines if line.get_marker() == "o"]
+    assert curve.get_linestyle() == "-"  # a numeric axis keeps its line
     assert all(float(v).is_integer() for v in ax.yaxis.get_major_locator().tick_values(0, 2))
+
+
+def test_capacity_against_a_categorical_rule_draws_marks_joined_by_no_line(rule_ds: xr.Dataset) -> None:
+    """Rule names have no order, so no line may join them: triplet_inhibitory (capacity >= 2, replicates 2 and 1)
+    and full (1, both replicates 1) are marks at their category with their replicate range; triplet_only is
+    pending (NA), drawn nowhere and named in the legend."""
+    ax = capacity_against(rule_ds, "rule").axes[0]
+    table = capacity_table(rule_ds).set_index("rule")
+    assert table.loc[list(RULES[1:]), ["capacity", "capacity_lo", "capacity_hi"]].values.tolist() == [[2, 1, 2],
+                                                                                                     [1, 1, 1]]
+    assert _labels(ax.get_xticklabels()) == list(RULES)
+    joined = [line for line in ax.lines if line.get_linestyle() not in ("None", "") and len(set(line.get_xdata())) > 1]
+    assert not joined
+    marks = sorted(tuple(xy) for line in ax.lines if line.get_marker() == "o" for xy in line.get_xydata())
+    assert marks == [(1.0, 2.0), (2.0, 1.0)]
+    (bars,) = [c for c in ax.collections if isinstance(c, LineCollection) and c.get_gid() == "replicate_range"]
+    assert sorted((s[0][0], s[0][1], s[1][1]) for s in bars.get_segments()) == [(1, 1, 2), (2, 1, 1)]
+    assert "NA, pending at triplet_only" in " ".join(t.get_text() for t in ax.get_legend().get_texts())
+
+
+def test_weight_drift_gives_each_rule_its_own_panel(rule_ds: xr.Dataset) -> None:
+    """One panel per rule with that rule's done points only (triplet_only: 3, one pending; the others 4);
+    rule i's invented weights fall by 0.1 (i + 1) per snapshot, so a trace in the wrong panel would show."""
+    fig = weight_drift(rule_ds)
+    panels = [ax for ax in fig.axes if ax.get_visible()]
+    assert [ax.get_title() for ax in panels] == [f"rule={r} ({n} done)" for r, n in zip(RULES, (3, 4, 4))]
+    for i, ax in enumerate(panels):
+        traces = [line for line in ax.lines if len(line.get_xdata())]
+        assert len(traces) == (3, 4, 4)[i]
+        for line in traces:
+            y = np.asarray(line.get_ydata(), float)
+            np.testing.assert_allclose(y[np.isfinite(y)], 1.0 - 0.1 * (i + 1) * np.arange(3))
+
+
+def _bar_boxes(ax: Axes) -> list[Bbox]:
+    """Display extents of every error bar and replicate range (line segments, padded by their width) and cap."""
+    to_pixels = ax.figure.dpi / 72  # points to pixels (1 point = 1/72 inch)
+    boxes = [Bbox(c.get_transform().transform(segment)).padded(c.get_linewidth()[0] * to_pixels / 2)
+             for c in ax.collections if isinstance(c, LineCollection) for segment in c.get_segments()]
+    for caps in (cap for container in ax.containers for cap in container.lines[1]):
+        half = caps.get_markersize() * to_pixels / 2
+        boxes += [Bbox.from_bounds(x - half, y - half, 2 * half, 2 * half)
+                  for x, y in caps.get_transform().transform(caps.get_xydata())]
+    return boxes
+
+
+def _text_boxes(ax: Axes) -> dict[str, Bbox]:
+    """Display extents of every text on the axes (with its box, if any) and of its legend."""
+    boxes = {t.get_text(): Bbox.union([t.get_window_extent()] + ([t.get_bbox_patch().get_window_extent()]
+                                                                  if t.get_bbox_patch() else []))
+             for t in ax.texts}
+    legend = ax.get_legend()
+    return boxes | ({"legend": legend.get_window_extent()} if legend else {})
+
+
+FIGURES_WITH_BARS = {"capacity_curves": capacity_curves, "recall_per_assembly": recall_per_assembly,
+                     "capacity_against": lambda d: capacity_against(d, "beta" if "beta" in d.dims else "rule")}
+
+
+@pytest.mark.parametrize("figure", FIGURES_WITH_BARS)
+def test_no_label_or_legend_sits_on_an_error_bar(ds: xr.Dataset, rule_ds: xr.Dataset, figure: str) -> None:
+    """In both stores (a pending count beside another condition's bar, a count with one replicate pending):
+    no text or legend overlaps a bar or cap, read from the drawn figure's display coordinates."""
+    for store in (ds, rule_ds):
+        fig = FIGURES_WITH_BARS[figure](store)
+        fig.canvas.draw()
+        ax = fig.axes[0]
+        bars = _bar_boxes(ax)
+        assert bars
+        assert not [name for name, box in _text_boxes(ax).items() if any(box.overlaps(bar) for bar in bars)]
+        plt.close(fig)
+
+
+def test_what_no_bar_shows_is_in_the_legend(ds: xr.Dataset, rule_ds: xr.Dataset) -> None:
+    """beta 0.05 has no done replicate at count 2; triplet_only has one of two, the other pending."""
+    curves = _labels(capacity_curves(ds).axes[0].get_legend().get_texts())
+    assert curves[1] == "beta=0.05: capacity NA (n=2 per count; pending at 2)"
+    rules = _labels(recall_per_assembly(rule_ds).axes[0].get_legend().get_texts())
+    assert rules[0] == "rule=triplet_only (n=2 per count; n=1 +1 pending at 2)"
 
 
 def test_legends_list_only_outcomes_present(ds: xr.Dataset) -> None:
     """PATTERN has stable and runaway points, no silent one."""
-    legend = weight_drift(ds).axes[0].get_legend()
+    (legend,) = weight_drift(ds).legends
     assert [t.get_text() for t in legend.get_texts()] == ["stable (n=8)", "runaway (n=2)"]
 
 

@@ -28,6 +28,7 @@ from capsweep.results_schema.dataset import flag_labels, open_dataset
 from capsweep.results_schema.layout import GridSpec
 from capsweep.results_schema.store import (
     GROWING_NAME,
+    STRING_VARIABLES,
     Batching,
     ResultStore,
     create_store,
@@ -104,7 +105,7 @@ def test_template_opens_with_plain_xarray(tmp_path):
     assert ds.beta.attrs["config_key"] == "plasticity.heterosynaptic.beta"
     np.testing.assert_allclose(ds.time_bin.values, np.arange(50) * 0.01)
     assert ds.time_bin.attrs["units"] == "s"
-    expected = {v.name for v in layout.VARIABLES} | {layout.STATUS.name, layout.ERROR, layout.POINT_ID}
+    expected = {v.name for v in layout.VARIABLES} | {layout.STATUS.name, *STRING_VARIABLES}
     assert set(ds.data_vars) == expected
     for name in expected | set(ds.coords):
         assert ds[name].attrs["units"] and ds[name].attrs["long_name"], name

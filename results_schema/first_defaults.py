@@ -1,9 +1,11 @@
-"""The defaults table of the stores made before stores recorded theirs (store schemas up to 3.0).
+"""The defaults tables of the stores made before stores recorded theirs (store schemas up to 3.0).
 
-Those stores hashed every key below into each point id with its value, whatever it was; ids keep doing so
-(:func:`capsweep.sweeps.identity.id_entries`), so their ids stay valid. A store that records no table
-(root attr ``identity_defaults``) was made under this one. Never edit: a key added to the registry
-later enters ids only where it differs from its default.
+Those stores hashed every key of their table into each point id with its value, whatever it was; ids keep
+doing so (:func:`capsweep.sweeps.ids.id_entries`), so their ids stay valid. A store that records no table
+(root attr ``identity_defaults``) was made under :data:`FIRST_DEFAULTS`. Stores of schema 2.0 and 2.1 had
+two keys fewer (:data:`ADDED_IN_3_0`); the upgrade of such a store records their table
+(:func:`schema_2_defaults`) and its keys as the ones its ids hash whole (root attr ``id_whole_keys``). Never
+edit: a key added to the registry later enters ids only where it differs from its default.
 """
 
 from __future__ import annotations
@@ -94,3 +96,13 @@ FIRST_DEFAULTS: dict[str, Any] = {
     "protocol.settle_s": 1.0,
     "protocol.snapshots": 5,
 }
+
+ADDED_IN_3_0: tuple[str, ...] = ("detection.recall_alpha", "detection.recall_null_draws")
+"""Keys of :data:`FIRST_DEFAULTS` the registry gained with store schema 3.0: the releases that wrote schemas 2.0
+(commit 39a272a) and 2.1 (551b9ed) had every other key, at the default below (checked against their
+``registry.defaults()``), and not these."""
+
+
+def schema_2_defaults() -> dict[str, Any]:
+    """The defaults table of the stores of schema 2.0 and 2.1: every key their point ids hash, with its default."""
+    return {key: value for key, value in FIRST_DEFAULTS.items() if key not in ADDED_IN_3_0}
