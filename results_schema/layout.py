@@ -6,7 +6,7 @@ variable's inner dim). Inner dims: ``assembly`` (one entry per assembly, padded 
 value up to the largest count in the grid), ``snapshot`` (weight snapshots during hold) and
 ``time_bin`` (binned population rate trace, padded to the longest point), ``retention`` (recall
 tests of the hold, then the final one) and ``age`` (memory age in learning blocks under blocked
-learning, as long as ``assembly``). ``GridSpec``
+learning, as long as ``assembly``, without a coordinate array: :data:`SIZED_LIKE`). ``GridSpec``
 describes the sweep dims (its axes are :class:`capsweep.axes.Axis`); it lives here, free of Zarr
 and xarray, so that expanding a sweep file imports neither.
 """
@@ -31,6 +31,9 @@ SCHEMA_VERSION = READABLE[-1]
 FLAG_FILL = -1
 IN_G_LEAK = in_units_of(G_LEAK)
 INNER_DIMS: tuple[str, ...] = ("assembly", "snapshot", "time_bin", "retention", "age")
+SIZED_LIKE: dict[str, str] = {"age": "assembly"}
+"""Inner dims stored without a coordinate array (their index is their value: age 0, 1, ... blocks), each as long as
+the dim it names, whose array gives the size (so an upgrade adds no data file for them)."""
 
 
 @dataclass(frozen=True)

@@ -503,8 +503,9 @@ def _consolidate(path: Path) -> None:
 
 
 def _inner_sizes(grid: GridSpec) -> dict[str, int]:
-    return {"assembly": grid.n_assembly, "snapshot": grid.n_snapshot, "time_bin": grid.n_time_bin,
-            "retention": grid.n_retention, "age": grid.n_assembly}
+    sizes = {"assembly": grid.n_assembly, "snapshot": grid.n_snapshot, "time_bin": grid.n_time_bin,
+             "retention": grid.n_retention}
+    return {**sizes, **{dim: sizes[like] for dim, like in layout.SIZED_LIKE.items()}}
 
 
 def _coordinates(grid: GridSpec) -> dict[str, tuple[np.ndarray, dict[str, Any]]]:
@@ -518,7 +519,6 @@ def _coordinates(grid: GridSpec) -> dict[str, tuple[np.ndarray, dict[str, Any]]]
         ("assembly", grid.n_assembly, "assembly index"),
         ("snapshot", grid.n_snapshot, "weight snapshot index during the hold phase"),
         ("retention", grid.n_retention, "recall test index (tests during the hold, then the final test)"),
-        ("age", grid.n_assembly, "memory age in learning blocks under blocked learning (0: the block just learned)"),
     )
     for name, size, long_name in counters:
         coords[name] = (np.arange(size, dtype=np.int64), {"units": "1", "long_name": long_name})

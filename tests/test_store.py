@@ -562,4 +562,4 @@ def test_a_second_zarr_implementation_reads_the_same_values(tmp_path):
         theirs = np.asarray(tensorstore.open(spec, read=True).result().read().result())
         assert theirs.dtype == ours.dtype and theirs.tobytes() == ours.tobytes(), name
         compared += 1
-    assert compared == len(layout.VARIABLES) + 1 + 2 + 6  # status, 2 numeric axes, 6 counters and time_bin
+    assert compared == len(layout.VARIABLES) + 1 + 2 + 5  # status, 2 numeric axes, 4 counters (age has none), time_bin
