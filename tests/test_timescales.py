@@ -185,3 +185,60 @@ def test_once_design_delivers_one_cue_per_assembly_in_the_simulation(once_points
         late = [min(abs(t - tests[j] - slot) for slot in slots) for t, j in zip(starts, test_of)]
         assert max(late) <= CUE_BIN_S + 1e-9, (design, seen)  # the first bin over 50 Hz: at most one bin in
         np.testing.assert_array_equal(result["retention_tested"], [len(slots)] * 3)
+
+
+def _toml_tables(flat: dict[str, object]) -> str:
+    """Flat keys as sweep-file tables (``[section]`` then ``key = value``; values as TOML writes them)."""
+    sections: dict[str, list[str]] = {}
+    for path, value in flat.items():
+        section, key = path.rsplit(".", 1)
+        text = f'"{value}"' if isinstance(value, str) else str(value).lower() if isinstance(value, bool) else str(value)
+        sections.setdefault(section, []).append(f"{key} = {text}")
+    return "".join(f"\n[{section}]\n" + "\n".join(lines) + "\n" for section, lines in sections.items())
+
+
+def test_the_retention_command_reads_a_real_store(build_root, tmp_path) -> None:
+    """`capsweep run` of the tiny blocked point with and without its learning input (one replicate each, workers 1),
+    then `capsweep retention`: its rows are the store's counts summed by hand from the arrays read with xarray alone,
+    the delays in s and divided by tau_consolidation (10 s), and the null (no input) recalls nothing at any age."""
+    import io
+    import json
+
+    import pandas as pd
+    import xarray as xr
+    from cli_runs import capsweep
+
+    store = tmp_path / "blocked.zarr"
+    sweep = tmp_path / "blocked.toml"
+    sweep.write_text(f'[sweep]\nname = "blocked"\nstore = "{store}"\nreplicates = 1\nbase_seed = 3\n'
+                     '[[sweep.axis]]\nname = "input_hz"\nkey = "protocol.imprint_rate_hz"\nvalues = [600.0, 0.0]\n'
+                     + _toml_tables({**TINY_BLOCKED, "execution.workers": 1}))
+    run = capsweep("run", str(sweep))
+    assert run.returncode == 0, run.stdout + run.stderr
+    ds = xr.open_zarr(store)
+    assert (ds["status"] == 1).all(), "both points done"  # status 1: done
+
+    forgetting = capsweep("retention", str(store), "--age", "--format", "csv")
+    assert forgetting.returncode == 0, forgetting.stderr
+    table = pd.read_csv(io.StringIO(forgetting.stdout)).set_index(["input_hz", "age"])
+    for rate in (600.0, 0.0):
+        point = ds.sel(input_hz=rate, replicate=0)
+        for age in (0, 1):
+            row = table.loc[(rate, age)]
+            assert (row["tested"], row["recalled"]) == (int(point["age_tested"][age]), int(point["age_recalled"][age]))
+            assert row["delay_s"] == pytest.approx(float(point["age_s"][age]))
+            assert row["delay_tau"] == pytest.approx(float(point["age_s"][age]) / 10.0)
+            assert row["replicates"] == 1 and np.isnan(row["t_lo"])  # one replicate: no interval across replicates
+    assert table["tested"].tolist() == [2, 1, 2, 1] and table.loc[0.0, "recalled"].tolist() == [0, 0]
+    assert table.loc[(0.0, 0), "wilson_hi"] == pytest.approx(1.959964**2 / (2 + 1.959964**2), rel=1e-6)  # 0 of 2
+
+    retention = capsweep("retention", str(store), "--format", "json")
+    assert retention.returncode == 0, retention.stderr
+    rows = json.loads(retention.stdout)["rows"]
+    assert [(r["input_hz"], r["tested"]) for r in rows] == [(0.0, 2), (600.0, 2)]  # the final test cues both odours
+    for r in rows:
+        point = ds.sel(input_hz=r["input_hz"], replicate=0)
+        assert r["recalled"] == int(point["retention_recalled"][0])
+        assert r["delay_tau"] == pytest.approx(float(point["retention_delay_s"][0]) / 10.0)
+    shown = capsweep("retention", str(store))
+    assert shown.returncode == 0 and "wilson_lo" in shown.stdout, shown.stderr
