@@ -231,6 +231,10 @@ KEYS: tuple[Key, ...] = (
        "Reference weight: fixed at the initial weight, consolidating (relaxes toward the weight), or bistable "
        "(consolidates into one of two stable states, Zenke, Agnes & Gerstner 2015)",
        choices=("fixed", "consolidating", "bistable")),
+    _k("plasticity.heterosynaptic.w_ref_start", "initial", "1",
+       "Starting value of the reference weight: the synapse's initial weight, or the lower stable state 0 as in the "
+       "published bistable consolidation (Ziegler, Zenke, Kastner & Gerstner 2015, J Neurosci 35:1319)",
+       choices=("initial", "lower")),
     _k("plasticity.heterosynaptic.tau_consolidation_s", 1200.0, "s",
        "Time constant of the consolidating or bistable reference weight",
        low=0.1, high=1e6),
@@ -255,10 +259,19 @@ KEYS: tuple[Key, ...] = (
     _k("protocol.imprint_on_s", 1.0, "s", "Stimulus on-time per presentation (learned)", low=0.001, high=1e4),
     _k("protocol.imprint_off_s", 1.0, "s", "Pause after each presentation (learned)", low=0.0, high=1e4),
     _k("protocol.imprint_repeats", 4, "1", "Presentations per assembly (learned)", low=1, high=10000),
+    _k("protocol.imprint_order", "interleaved", "1",
+       "Order of the presentations (learned): interleaved (rounds of every assembly in turn) or blocked (all of one "
+       "assembly's presentations, then a recall test of every assembly learned so far, then the next: recall by "
+       "memory age)", choices=("interleaved", "blocked")),
     _k("protocol.hold_s", 10.0, "s", "Hold phase: background only, plasticity on", low=0.0, high=1e6),
     _k("protocol.retention_delays_s", (), "s",
        "Delays after hold start of recall tests during the hold (each cues every assembly); the final test after the "
        "hold is always made", low=0.0, high=1e6, sweepable=False),
+    _k("protocol.retention_design", "repeated", "1",
+       "Which assemblies each recall test cues: every one in every test (repeated: earlier tests rehearse what later "
+       "ones measure), each exactly once over the hold's tests and the final one (once), or only the final test, each "
+       "delay its own point with its own simulation (separate: sweep protocol.hold_s; protocol.retention_delays_s "
+       "must be empty)", choices=("repeated", "once", "separate")),
     _k("protocol.snapshots", 5, "1", "Weight snapshots spread over the hold phase", low=2, high=1000, sweepable=False),
     _k("protocol.cue_fraction", 0.5, "1", "Fraction of an assembly's members cued", low=0.01, high=1.0),
     _k("protocol.cue_duration_s", 0.2, "s", "Cue duration", low=0.01, high=100.0),

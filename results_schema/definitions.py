@@ -62,10 +62,15 @@ comparison; it counts assemblies that were on before their cue, and members that
 stuck_onset_s[k]: the runaway onset (below) of the mean rate of A_k's members instead of the population, from \
 hold start to the end of the run, cue periods excluded; NaN if never. stuck_count: assemblies with an onset, \
 flagged even when the population rate stays below the runaway threshold.
-retention_recalled[t], retention_score[t]: assemblies recalled (by the recall test), and their mean overlap \
-score, in recall test t; \
-retention_s[k]: the longest delay after hold start up to which assembly k was recalled in every recall test \
-(0 if not in the first).
+retention_recalled[t], retention_tested[t], retention_score[t]: assemblies recalled (by the recall test), \
+assemblies cued, and their mean overlap score, in recall test t (protocol.retention_design: every assembly in every \
+test, each in one test only, or one test per point); \
+retention_s[k]: the longest delay after hold start up to which assembly k was recalled in every recall test that \
+cued it (0 if not in the first).
+age_recalled[a], age_tested[a], age_score[a], age_s[a] (protocol.imprint_order = blocked): after each assembly's \
+block of presentations every assembly learned so far is cued once by the same recall test; a test of assembly k \
+after block j has memory age a = j - k blocks, and age_s[a] s from the end of k's last presentation to its cue \
+(mean). Recalled and reached tests at age a, and their mean overlap score.
 weight_correlation[s]: Pearson correlation over all E->E synapses between the weights at hold snapshot s and at \
 hold start. assembly_contrast[s]: mean within-assembly E->E weight / mean of all other E->E weights. \
 weight_in[s], weight_out[s], weight_within[s]: mean E->E weight into members from cells in no assembly, from \

@@ -4,7 +4,9 @@ This module is the contract between the runner (which returns one value per vari
 point) and the store (which lays out one array per variable over the sweep dims plus the
 variable's inner dim). Inner dims: ``assembly`` (one entry per assembly, padded with the fill
 value up to the largest count in the grid), ``snapshot`` (weight snapshots during hold) and
-``time_bin`` (binned population rate trace, padded to the longest point). ``GridSpec``
+``time_bin`` (binned population rate trace, padded to the longest point), ``retention`` (recall
+tests of the hold, then the final one) and ``age`` (memory age in learning blocks under blocked
+learning, as long as ``assembly``, without a coordinate array: :data:`SIZED_LIKE`). ``GridSpec``
 describes the sweep dims (its axes are :class:`capsweep.axes.Axis`); it lives here, free of Zarr
 and xarray, so that expanding a sweep file imports neither.
 """
@@ -21,14 +23,17 @@ from ..flags import OUTCOMES, RECALL_STATES, STATUSES
 from ..registry import WEIGHT_UNIT as G_LEAK
 from ..registry import in_units_of
 
-READABLE: tuple[str, ...] = ("2.0", "2.1", "3.0", "3.1")
+READABLE: tuple[str, ...] = ("2.0", "2.1", "3.0", "3.1", "3.2")
 """Every store schema version this capsweep reads, oldest first; it writes the last (CHANGELOG.md says what each
 changed; ``upgrade.STEPS`` holds the step from each earlier one to the next)."""
 SCHEMA_VERSION = READABLE[-1]
 
 FLAG_FILL = -1
 IN_G_LEAK = in_units_of(G_LEAK)
-INNER_DIMS: tuple[str, ...] = ("assembly", "snapshot", "time_bin", "retention")
+INNER_DIMS: tuple[str, ...] = ("assembly", "snapshot", "time_bin", "retention", "age")
+SIZED_LIKE: dict[str, str] = {"age": "assembly"}
+"""Inner dims stored without a coordinate array (their index is their value: age 0, 1, ... blocks), each as long as
+the dim it names, whose array gives the size (so an upgrade adds no data file for them)."""
 
 
 @dataclass(frozen=True)
@@ -127,6 +132,16 @@ VARIABLES: tuple[Variable, ...] = (
              inner="retention"),
     Variable("retention_recalled", "1", "assemblies recalled in each recall test (the test of recalled_count)",
              inner="retention", dtype="int32"),
+    Variable("retention_tested", "1", "assemblies cued in each recall test (all, or some under "
+             "protocol.retention_design = 'once')", inner="retention", dtype="int32"),
+    Variable("age_recalled", "1", "blocked learning: tests at this memory age (blocks since the assembly was learned) "
+             "that recalled their assembly", inner="age", dtype="int32"),
+    Variable("age_tested", "1", "blocked learning: tests reached at this memory age (count - age of them planned)",
+             inner="age", dtype="int32"),
+    Variable("age_score", "1", "blocked learning: mean overlap score (in detection.recall_mode) of the tests at this "
+             "memory age", inner="age"),
+    Variable("age_s", "s", "blocked learning: mean time from the end of the assembly's last presentation to its cue, "
+             "over the tests at this memory age", inner="age"),
     Variable("retention_score", "1", "mean overlap score over assemblies in each recall test (in "
              "detection.recall_mode)", inner="retention"),
     Variable("completion", "1", "fraction of uncued members active in the recall window", inner="assembly"),

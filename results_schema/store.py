@@ -503,8 +503,9 @@ def _consolidate(path: Path) -> None:
 
 
 def _inner_sizes(grid: GridSpec) -> dict[str, int]:
-    return {"assembly": grid.n_assembly, "snapshot": grid.n_snapshot, "time_bin": grid.n_time_bin,
-            "retention": grid.n_retention}
+    sizes = {"assembly": grid.n_assembly, "snapshot": grid.n_snapshot, "time_bin": grid.n_time_bin,
+             "retention": grid.n_retention}
+    return {**sizes, **{dim: sizes[like] for dim, like in layout.SIZED_LIKE.items()}}
 
 
 def _coordinates(grid: GridSpec) -> dict[str, tuple[np.ndarray, dict[str, Any]]]:

@@ -104,6 +104,11 @@ def _schema_2_identity() -> dict[str, Any]:
     return {attrs.IDENTITY_DEFAULTS: table, attrs.ID_WHOLE_KEYS: sorted(table)}
 
 
+def _unchanged(stored: dict[str, dict[str, Any]]) -> dict[str, dict[str, Any]]:
+    """A step that changes no stored variable's attrs."""
+    return {}
+
+
 def _variable_described(name: str) -> dict[str, Any]:
     from .store import variable_attrs  # the store module imports Zarr: only an upgrade needs it
 
@@ -121,7 +126,12 @@ STEPS: dict[str, Step] = {
     "2.1": Step(_recall_test,
                 ("recalled_count", "already_active_count", "stuck_count", *_PER_ASSEMBLY_3_0, *_ENGINE_3_0),
                 renamed=(("recalled_count", "overlap_recalled_count"),), root=_schema_2_identity),
-    "3.0": Step(_parseable_units, (layout.WRITER_VERSION,), adds_missing=True),
+    "3.0": Step(_parseable_units, (layout.WRITER_VERSION,)),
+    # Blocked learning and the retention designs: their variables start missing (the age variables' dim, as long as
+    # assembly, has no coordinate array; retention_tested of an earlier point is missing, not the assembly count:
+    # the retention tables count every assembly there, as every test then cued every one).
+    "3.1": Step(_unchanged, ("retention_tested", "age_recalled", "age_tested", "age_score", "age_s"),
+                adds_missing=True),
 }
 """The step from each earlier readable schema version (:data:`layout.READABLE`) to the next one."""
 
@@ -166,8 +176,9 @@ def as_current(ds: xr.Dataset) -> xr.Dataset:
             described = {k: v for k, v in added_attrs(name).items() if k != "_FillValue"}
             text = name not in layout.BY_NAME
             dims = (*ds[layout.STATUS.name].dims, *_inner(name))
-            ds[name] = xr.DataArray(np.full([ds.sizes[d] for d in dims], "" if text else np.nan,
-                                            dtype=object if text else float), dims=dims, attrs=described)
+            shape = [ds.sizes[layout.SIZED_LIKE.get(str(d), str(d))] for d in dims]
+            ds[name] = xr.DataArray(np.full(shape, "" if text else np.nan, dtype=object if text else float), dims=dims,
+                                    attrs=described)
     return ds
 
 
@@ -238,5 +249,5 @@ def _unwritten(name: str, arrays: dict[str, dict[str, Any]]) -> dict[str, Any]:
 
     status = arrays[layout.STATUS.name]
     inner = _inner(name)
-    shape = (*status["shape"], *(arrays[dim]["shape"][0] for dim in inner))
+    shape = (*status["shape"], *(arrays[layout.SIZED_LIKE.get(dim, dim)]["shape"][0] for dim in inner))
     return unwritten_array(name, tuple(shape), (*status["dimension_names"], *inner))

@@ -272,6 +272,14 @@ def records_w_ref(cfg: dict) -> bool:
     return bool(cfg["plasticity"]["heterosynaptic"]["w_ref_mode"] != "fixed")
 
 
+def reference_start(cfg: dict, w0: np.ndarray) -> np.ndarray:
+    """Starting reference weight (g_leak) of E->E synapses with initial weights ``w0``
+    (``plasticity.heterosynaptic.w_ref_start``): ``w0``, or the lower stable state 0 of the bistable
+    consolidation, where the published model starts it (Ziegler, Zenke, Kastner & Gerstner 2015,
+    J Neurosci 35:1319; Zenke, Agnes & Gerstner 2015, Nat Commun 6:6922, Methods)."""
+    return np.zeros_like(w0) if cfg["plasticity"]["heterosynaptic"]["w_ref_start"] == "lower" else w0
+
+
 def build_network(cfg: dict, seed: int, wiring_seed: int | None = None, *,
                   standalone: bool = False) -> tuple[b2.Network, dict[str, Any], Handles]:
     """Build the point's network; run it with ``net.run(duration, namespace=namespace)``.
@@ -309,7 +317,7 @@ def build_network(cfg: dict, seed: int, wiring_seed: int | None = None, *,
     prewired = cfg["assemblies"]["imprint"] == "prewired"
     w0 = net_cfg["w_e_to_e"] * np.where(within & prewired, cfg["assemblies"]["prewire_gain"], 1.0)
     const.set(s_ee, "w", w0)
-    const.set(s_ee, "w_ref", w0)
+    const.set(s_ee, "w_ref", reference_start(cfg, w0))
     consolidation = rules.consolidation_step(cfg)
     if consolidation:
         s_ee.run_regularly(consolidation, dt=rules.CONSOLIDATION_DT_S * b2.second, name="ee_consolidation")

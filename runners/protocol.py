@@ -5,20 +5,26 @@ windows and snapshots are exact. Plasticity is on in every phase. Stimuli are de
 rate table (Hz) over time and *channels*: channel ``k`` is the imprint input of assembly ``k``
 (learned mode), channel ``count + k`` the cue input of assembly ``k``.
 
-Order of the imprint phase: assemblies are presented in turn (0, 1, ..., count-1), and this
-round is repeated ``imprint_repeats`` times; each presentation is ``imprint_on_s`` of input
-followed by ``imprint_off_s`` of background. Recall tests at ``retention_delays_s`` after hold
-start (during the hold) and one after the hold: in each test every assembly is cued once for
-``cue_duration_s``, followed by ``cue_gap_s`` of background, in an order drawn per point (so that
-assembly index is not confounded with test time while plasticity acts). A background-only tail
-follows the last cue, long enough (``detection.runaway_hold_s + detection.smoothing_s``) for a
-runaway set off by that cue to be established before the run ends.
+Order of the imprint phase (``protocol.imprint_order``): *interleaved*, assemblies are presented
+in turn (0, 1, ..., count-1) and this round is repeated ``imprint_repeats`` times; *blocked*, all
+``imprint_repeats`` presentations of assembly 0, then a recall test of every assembly learned so
+far, then assembly 1, and so on (a *block* is one assembly's presentations and the test after
+them), so that the store holds recall by memory age. Each presentation is ``imprint_on_s`` of
+input followed by ``imprint_off_s`` of background. Recall tests at ``retention_delays_s`` after
+hold start (during the hold) and one after the hold; in a test each assembly it covers is cued once
+for ``cue_duration_s``, followed by ``cue_gap_s`` of background, in an order drawn per point (so
+that assembly index is not confounded with test time while plasticity acts). Which assemblies a
+test covers follows ``protocol.retention_design``: every assembly in every test ("repeated"), or
+each assembly in exactly one of the tests, dealt in cue order ("once"; so no test rehearses what
+a later one measures). A background-only tail follows the last cue, long enough
+(``detection.runaway_hold_s + detection.smoothing_s``) for a runaway set off by that cue to be
+established before the run ends.
 """
 
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from functools import reduce
 
@@ -44,6 +50,7 @@ class Schedule:
     baseline_start: int = 0  # first step of the baseline window (which ends at settle_end)
     retention_windows: tuple[tuple[int, int, int], ...] = ()  # (assembly, start, stop) of recall tests during hold
     retention_starts: tuple[int, ...] = ()  # first step of each recall test during the hold
+    block_windows: tuple[tuple[int, int, int, int], ...] = ()  # (block, assembly, start, stop) of blocked tests
 
     @property
     def test_starts(self) -> tuple[int, ...]:
@@ -51,9 +58,16 @@ class Schedule:
         return (*self.retention_starts, self.hold_end)
 
     @property
+    def tests(self) -> tuple[tuple[tuple[int, int, int], ...], ...]:
+        """The cues (assembly, start, stop) of each recall test: those during the hold, then the final one."""
+        ends = (*self.test_starts[1:], self.end)
+        return tuple(tuple(c for c in self.all_cues if start <= c[1] < stop)
+                     for start, stop in zip(self.test_starts, ends))
+
+    @property
     def all_cues(self) -> tuple[tuple[int, int, int], ...]:
-        """(assembly, start, stop) of every cue, retention tests first, in time order."""
-        return self.retention_windows + self.cue_windows
+        """(assembly, start, stop) of every cue in time order: blocked learning's tests, the hold's, the final."""
+        return tuple((k, a, b) for _, k, a, b in self.block_windows) + self.retention_windows + self.cue_windows
 
     def seconds(self, step: int) -> float:
         """Simulated time (s) of a step index."""
@@ -80,32 +94,62 @@ def schedule(cfg: dict, cue_order: Sequence[int] | None = None) -> Schedule:
     """
     dt = cfg["network"]["dt_ms"] * 1e-3
     pr, count = cfg["protocol"], cfg["assemblies"]["count"]
-    t = _steps(pr["settle_s"], dt)
-    settle_end = t
-    imprint = []
     on, off = _steps(pr["imprint_on_s"], dt), _steps(pr["imprint_off_s"], dt)
-    if cfg["assemblies"]["imprint"] == "learned":
-        for _ in range(pr["imprint_repeats"]):
-            for k in range(count):
-                imprint.append((k, t, t + on))
-                t += on + off
-    imprint_end = t
-    hold_end = t + _steps(pr["hold_s"], dt)
-    n_snap = pr["snapshots"]
-    snaps = tuple(imprint_end + round(i * (hold_end - imprint_end) / (n_snap - 1)) for i in range(n_snap))
     cue, gap = _steps(pr["cue_duration_s"], dt), _steps(pr["cue_gap_s"], dt)
     order = list(range(count)) if cue_order is None else list(cue_order)
 
-    def test(start: int) -> tuple[tuple[int, int, int], ...]:
-        return tuple((k, start + slot * (cue + gap), start + slot * (cue + gap) + cue) for slot, k in enumerate(order))
+    def test(start: int, covered: Sequence[int]) -> tuple[tuple[int, int, int], ...]:
+        return tuple((k, start + slot * (cue + gap), start + slot * (cue + gap) + cue)
+                     for slot, k in enumerate(k for k in order if k in covered))
 
+    settle_end = _steps(pr["settle_s"], dt)
+    imprint, blocks, imprint_end = _imprint(cfg, settle_end, on, off, lambda start, j: test(start, range(j + 1)))
+    hold_end = imprint_end + _steps(pr["hold_s"], dt)
+    n_snap = pr["snapshots"]
+    snaps = tuple(imprint_end + round(i * (hold_end - imprint_end) / (n_snap - 1)) for i in range(n_snap))
     retention_starts = tuple(imprint_end + _steps(d, dt) for d in pr["retention_delays_s"])
+    covered = tested_in(pr["retention_design"], order, len(retention_starts) + 1)
     det = cfg["detection"]
     tail = max(_steps(det["runaway_hold_s"] + det["smoothing_s"], dt) - gap, 0) if count else 0
-    end = hold_end + count * (cue + gap) + tail
-    return Schedule(dt, settle_end, tuple(imprint), imprint_end, hold_end, snaps, test(hold_end), end,
+    end = hold_end + len(covered[-1]) * (cue + gap) + tail
+    return Schedule(dt, settle_end, imprint, imprint_end, hold_end, snaps, test(hold_end, covered[-1]), end,
                     on, on + off, cue, cue + gap, _steps(det["baseline_start_s"], dt),
-                    tuple(w for start in retention_starts for w in test(start)), retention_starts)
+                    tuple(w for start, ks in zip(retention_starts, covered) for w in test(start, ks)),
+                    retention_starts, blocks)
+
+
+Cues = tuple[tuple[int, int, int], ...]
+
+
+def _imprint(cfg: dict, start: int, on: int, off: int, block_test: Callable[[int, int], Cues]
+             ) -> tuple[Cues, tuple[tuple[int, int, int, int], ...], int]:
+    """Imprint windows (assembly, start, stop), blocked learning's test cues (block, assembly, start, stop) and the
+    step at which imprinting ends, from step ``start``; ``block_test(step, j)`` lays out the test after block j."""
+    pr, count = cfg["protocol"], cfg["assemblies"]["count"]
+    if cfg["assemblies"]["imprint"] != "learned":
+        return (), (), start
+    t, imprint, blocks = start, [], []
+    blocked = pr["imprint_order"] == "blocked"
+    rounds = [[k] * pr["imprint_repeats"] for k in range(count)] if blocked \
+        else [list(range(count))] * pr["imprint_repeats"]
+    for j, presented in enumerate(rounds):
+        for k in presented:
+            imprint.append((k, t, t + on))
+            t += on + off
+        if blocked:
+            cues = block_test(t, j)
+            blocks += [(j, *c) for c in cues]
+            t = cues[-1][2] + _steps(pr["cue_gap_s"], cfg["network"]["dt_ms"] * 1e-3)  # the last cue's gap
+    return tuple(imprint), tuple(blocks), t
+
+
+def tested_in(design: str, order: Sequence[int], tests: int) -> list[list[int]]:
+    """Assemblies each of ``tests`` recall tests (the hold's, then the final one) covers under
+    ``protocol.retention_design``: all of ``order`` in each ("repeated"), or ``order`` dealt round robin so that
+    each assembly is tested once ("once"; the assembly cued ``i``-th goes to test ``i mod tests``)."""
+    if design == "once":
+        return [[k for i, k in enumerate(order) if i % tests == j] for j in range(tests)]
+    return [list(order) for _ in range(tests)]
 
 
 def cue_order(count: int, seed: int) -> list[int]:

@@ -8,6 +8,7 @@ Both engines (:mod:`capsweep.runners.runtime`, :mod:`capsweep.runners.standalone
 from __future__ import annotations
 
 import time
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
 
@@ -147,44 +148,92 @@ def recall_counts(recall: dict[str, object], det: dict) -> dict[str, int]:
             "overlap_recalled_count": int(np.sum(score >= det["recall_threshold"]))}
 
 
+def _verdicts(cfg: dict, h: Handles, times: np.ndarray, cells: np.ndarray, cues: Sequence[tuple[int, int, int]],
+              baseline: float, seed: int, sim_time_s: float) -> tuple[list[bool], list[float]]:
+    """Per cue of one recall test: recalled by the recall test, and the overlap score of ``detection.recall_mode``."""
+    active, score = metrics.active_threshold(cfg["detection"], baseline), success_score(cfg["detection"])
+    recalled = [_cue_test(cfg, h, times, cells, cue, active, seed, sim_time_s).state == RECALLED for cue in cues]
+    return recalled, [_cue_scores(cfg, h, times, cells, cue, active)[score] for cue in cues]
+
+
+def _reached(cues: Sequence[tuple[int, int, int]], sched: protocol.Schedule, pr: dict, sim_time_s: float) -> bool:
+    """Whether the run lasted past the persistence window of the last of a test's ``cues``."""
+    return bool(cues) and sched.seconds(cues[-1][2]) + pr["persistence_window_s"] <= sim_time_s
+
+
 def retention_metrics(cfg: dict, h: Handles, times: np.ndarray, cells: np.ndarray, final: dict[str, object],
                       sim_time_s: float, baseline: float, seed: int) -> dict[str, np.ndarray]:
     """Recall against time: every recall test (those during the hold, then the final one).
 
     A test counts as reached when the run lasted past its last cue's persistence window (the
     final one when ``final`` holds states). Recall is the recall test's (``recall_state``); the
-    mean score is the overlap score of ``detection.recall_mode``. ``retention_s`` per assembly:
-    the longest delay after hold start up to which the assembly was recalled in every reached
-    test (0 if not at the first, NaN if no test was reached).
+    mean score is the overlap score of ``detection.recall_mode``, over the assemblies the test
+    cued (every one, or some under ``protocol.retention_design = "once"``). ``retention_s`` per
+    assembly: the longest delay after hold start up to which the assembly was recalled in every
+    reached test that cued it (0 if not at the first, NaN if no such test was reached).
     """
-    det, sched, pr = cfg["detection"], h.schedule, cfg["protocol"]
-    count, score = len(h.memberships), success_score(det)
+    sched, pr = h.schedule, cfg["protocol"]
+    count, score = len(h.memberships), success_score(cfg["detection"])
     delays = np.array([*pr["retention_delays_s"], sched.seconds(sched.hold_end - sched.imprint_end)])
+    verdict = np.full((len(delays), count), np.nan)  # 1 recalled, 0 not, NaN not cued or not reached
     scores = np.full((len(delays), count), np.nan)
-    recalled = np.zeros((len(delays), count), dtype=bool)
-    reached = np.zeros(len(delays), dtype=bool)
-    active = metrics.active_threshold(det, baseline)
-    for j in range(len(delays) - 1):
-        cues = sched.retention_windows[j * count:(j + 1) * count]
-        reached[j] = bool(cues) and sched.seconds(cues[-1][2]) + pr["persistence_window_s"] <= sim_time_s
-        for cue in cues if reached[j] else ():
-            scores[j, cue[0]] = _cue_scores(cfg, h, times, cells, cue, active)[score]
-            recalled[j, cue[0]] = _cue_test(cfg, h, times, cells, cue, active, seed, sim_time_s).state == RECALLED
-    states = list(final["recall_state"])  # type: ignore[call-overload]
-    reached[-1] = count > 0 and any(s is not None for s in states)
-    scores[-1] = np.asarray(final[score])
-    recalled[-1] = [s == RECALLED for s in states]
-    leading = np.cumprod(recalled[reached], axis=0).sum(axis=0)  # tests recalled in a row from the first
-    retention = np.where(leading > 0, delays[reached][np.maximum(leading - 1, 0)], 0.0) if reached.any() \
-        else np.full(count, np.nan)
-    mean_score = np.array([np.nanmean(row) if ok and np.isfinite(row).any() else np.nan
-                           for row, ok in zip(scores, reached)])
+    for j, cues in enumerate(sched.tests[:-1]):
+        if _reached(cues, sched, pr, sim_time_s):
+            ks = [k for k, _, _ in cues]
+            verdict[j, ks], scores[j, ks] = _verdicts(cfg, h, times, cells, cues, baseline, seed, sim_time_s)
+    states: list[str | None] = list(final["recall_state"])  # type: ignore[call-overload]
+    for k, state in enumerate(states):
+        if state is not None:
+            verdict[-1, k], scores[-1, k] = state == RECALLED, np.asarray(final[score])[k]
+    tested = np.isfinite(verdict)
+    reached = tested.any(axis=1)
     return {
-        "retention_s": retention,
+        "retention_s": np.array([_leading_delay(delays[ok], v[ok]) for v, ok in zip(verdict.T, tested.T)]),
         "retention_delay_s": delays,
-        "retention_recalled": np.where(reached, recalled.sum(axis=1), -1),
-        "retention_score": mean_score,
+        "retention_recalled": np.where(reached, np.nansum(verdict, axis=1), -1).astype(int),
+        "retention_tested": np.where(reached, tested.sum(axis=1), -1),
+        "retention_score": np.array([np.nanmean(row) if np.isfinite(row).any() else np.nan for row in scores]),
     }
+
+
+def _leading_delay(delays: np.ndarray, recalled: np.ndarray) -> float:
+    """Delay (s) of the last of the tests recalled in a row from the first (0 if not the first; NaN if none)."""
+    if not len(recalled):
+        return float("nan")
+    run = int(np.cumprod(recalled).sum())
+    return float(delays[run - 1]) if run else 0.0
+
+
+def age_metrics(cfg: dict, h: Handles, times: np.ndarray, cells: np.ndarray, baseline: float, seed: int,
+                sim_time_s: float) -> dict[str, np.ndarray]:
+    """Recall by memory age under blocked learning: the test after block ``j`` cues every assembly ``k <= j``,
+    whose age is ``j - k`` blocks; its age in seconds runs from the end of ``k``'s last presentation to its cue.
+
+    Per age (blocks, index 0 to count - 1): how many of the reached tests at that age recalled their assembly
+    (-1 if none was reached), how many were reached, their mean overlap score and mean age in seconds. Fill values
+    without blocked learning.
+    """
+    count, sched, pr = len(h.memberships), h.schedule, cfg["protocol"]
+    out = {"age_recalled": np.full(count, -1), "age_tested": np.zeros(count, dtype=int),
+           "age_score": np.full(count, np.nan), "age_s": np.full(count, np.nan)}
+    if not sched.block_windows:
+        out["age_tested"][:] = -1
+        return out
+    learned = {k: b for k, _, b in sched.imprint_windows}  # end of each assembly's last presentation (step)
+    sums = np.zeros((3, count))
+    for j in range(count):
+        cues = [(k, a, b) for block, k, a, b in sched.block_windows if block == j]
+        if not _reached(cues, sched, pr, sim_time_s):
+            continue
+        recalled, scores = _verdicts(cfg, h, times, cells, cues, baseline, seed, sim_time_s)
+        for (k, a, _), hit, value in zip(cues, recalled, scores):
+            out["age_tested"][j - k] += 1
+            sums[:, j - k] += (hit, value, sched.seconds(a - learned[k]))
+    tested = out["age_tested"] > 0
+    out["age_recalled"][tested] = sums[0, tested]
+    out["age_score"][tested], out["age_s"][tested] = sums[1:, tested] / out["age_tested"][tested]
+    out["age_tested"][~tested] = -1
+    return out
 
 
 UPPER_SHARE_CLASSES = ("within", "between", "other")
@@ -232,6 +281,7 @@ def score(cfg: dict, seed: int, engine: str, h: Handles, rec: Recording, start: 
         if sim_time >= end - 0.5 * sched.dt_s else float("nan")
     recall = recall_metrics(cfg, h, t_e, i_e, baseline, bool(np.isfinite(tail_rate)), seed, sim_time)
     retention = retention_metrics(cfg, h, t_e, i_e, recall, sim_time, baseline, seed)
+    ages = age_metrics(cfg, h, t_e, i_e, baseline, seed, sim_time)
     stuck = stuck_onsets(det, h, t_e, i_e, baseline, sim_time)
     learned = cfg["assemblies"]["imprint"] == "learned" and "imprint" in weights
     return {
@@ -255,6 +305,7 @@ def score(cfg: dict, seed: int, engine: str, h: Handles, rec: Recording, start: 
         "threads": threads_of(cfg),
         **recall,
         **retention,
+        **ages,
         **_drift(cfg, h, rec, len(sched.snapshots)),
         "snapshot_time_s": np.array([sched.seconds(s) for s in sched.snapshots], dtype=float),
         "rate_exc_hz": rate_exc,

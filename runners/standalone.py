@@ -299,23 +299,26 @@ _HEAD, _TAIL = b"CAPSWCK1", b"CAPSWEND"
 
 
 _STIMULUS_CODE = """
+#include <algorithm>
 #include <fstream>
 #include <vector>
 #include <cstdint>
 static bool _capsweep_stim_loaded = false;
 static int64_t _capsweep_stim_head[STIM_HEADER];
-static std::vector<int64_t> _capsweep_stim_tests;
-static std::vector<int64_t> _capsweep_stim_order;
+static std::vector<int64_t> _capsweep_stim_starts[2], _capsweep_stim_stops[2], _capsweep_stim_which[2];
 static std::vector<std::vector<int32_t>> _capsweep_stim_cells[2];  // per kind and assembly: driven cells
 
 static void _capsweep_stim_load() {
     std::ifstream file("STIM_FILE", std::ios::binary);
     file.read((char*)_capsweep_stim_head, sizeof(_capsweep_stim_head));
-    const int64_t n = _capsweep_stim_head[0], count = _capsweep_stim_head[1];
-    _capsweep_stim_tests.resize(_capsweep_stim_head[9]);
-    file.read((char*)_capsweep_stim_tests.data(), _capsweep_stim_tests.size() * sizeof(int64_t));
-    _capsweep_stim_order.resize(count);
-    file.read((char*)_capsweep_stim_order.data(), count * sizeof(int64_t));
+    const int64_t n = _capsweep_stim_head[0], count = _capsweep_stim_head[1], windows = _capsweep_stim_head[2];
+    for (int64_t i = 0; i < windows; i++) {  // (kind, assembly, start, stop), in time order within a kind
+        int64_t w[4];
+        file.read((char*)w, sizeof(w));
+        _capsweep_stim_which[w[0]].push_back(w[1]);
+        _capsweep_stim_starts[w[0]].push_back(w[2]);
+        _capsweep_stim_stops[w[0]].push_back(w[3]);
+    }
     std::vector<char> row(n);
     for (int kind = 0; kind < 2; kind++) {
         _capsweep_stim_cells[kind].assign(count, std::vector<int32_t>());
@@ -328,24 +331,15 @@ static void _capsweep_stim_load() {
     _capsweep_stim_loaded = true;
 }
 
-// Assembly driven at this step by the imprint (kind 0) or cue (kind 1) input, or -1.
+// Assembly driven at this step by the imprint (kind 0) or cue (kind 1) input, or -1: the last window of
+// that kind starting at or before the step, if the step lies before its stop.
 static int64_t _capsweep_stim_assembly(int64_t step, int kind) {
     if (!_capsweep_stim_loaded) _capsweep_stim_load();
-    const int64_t* h = _capsweep_stim_head;
-    const int64_t count = h[1];
-    if (count == 0) return -1;
-    if (kind == 0) {
-        if (!h[2] || step < h[3] || step >= h[4]) return -1;
-        const int64_t phase = (step - h[3]) % (count * h[6]);
-        const int64_t k = phase / h[6];
-        return phase - k * h[6] < h[5] ? k : -1;
-    }
-    for (const int64_t start : _capsweep_stim_tests) {
-        if (step < start || step >= start + count * h[7]) continue;
-        const int64_t slot = (step - start) / h[7];
-        return step - start - slot * h[7] < h[8] ? _capsweep_stim_order[slot] : -1;
-    }
-    return -1;
+    const std::vector<int64_t>& starts = _capsweep_stim_starts[kind];
+    const auto after = std::upper_bound(starts.begin(), starts.end(), step);
+    if (after == starts.begin()) return -1;
+    const size_t i = (after - starts.begin()) - 1;
+    return step < _capsweep_stim_stops[kind][i] ? _capsweep_stim_which[kind][i] : -1;
 }
 
 static bool _capsweep_cue_on(int64_t step) { return _capsweep_stim_assembly(step, 1) >= 0; }
@@ -378,7 +372,7 @@ def _stimulus_function(exc: b2.NeuronGroup) -> b2.Function:
     """The C++ stimulus function :data:`STIMULUS_FUNCTION`, called once per step (``synapses`` slot).
 
     It reads :data:`STIMULUS_FILE` on its first call (see :func:`_stimulus_file` for the layout),
-    finds the imprint and cue windows open at the step from the schedule in closed form, and
+    finds the imprint and cue windows open at the step in the schedule's window table (a binary search), and
     gives each cell they drive an input of ``imprint_weight`` (``cue_weight``) with probability
     ``imprint_rate * dt`` (``cue_rate * dt``), as one Poisson source per cell and channel does in the
     runtime engines. Only driven cells are visited (a loop over all E cells per step cost a
@@ -402,29 +396,25 @@ def _stimulus_function(exc: b2.NeuronGroup) -> b2.Function:
     return fn
 
 
-_STIMULUS_HEADER = ("n_exc", "count", "learned", "settle_end", "imprint_end", "imprint_on", "imprint_slot",
-                    "cue_period", "cue_steps", "tests")
-"""Leading int64 values of the stimulus file, in this order (steps of the point's schedule)."""
+_STIMULUS_HEADER = ("n_exc", "count", "windows")
+"""Leading int64 values of the stimulus file, in this order."""
 
 
 def _stimulus_file(path: Path, handles: Handles, learned: bool) -> None:
-    """Write the stimulus function's input: header, cue order, imprint members, cued members.
+    """Write the stimulus function's input: header, input windows, imprint members, cued members.
 
-    Layout (little-endian): int64 header (:data:`_STIMULUS_HEADER`); int64 first step of each
-    recall test; int64 assembly per cue slot (the same order in every test);
-    uint8 membership matrices (count x n_exc) of the imprint input (members; zeros unless learned)
-    and of the cue input (cued members).
+    Layout (little-endian): int64 header (:data:`_STIMULUS_HEADER`); int64 (kind, assembly, first step, stop
+    step) of every imprint (kind 0; none unless learned) and cue (kind 1) window of the schedule, in time order
+    within a kind; uint8 membership matrices (count x n_exc) of the imprint input (members) and of the cue input
+    (cued members).
     """
     sched, members, cued = handles.schedule, handles.memberships, handles.cued
     count, n_exc = members.shape
-    values = {"n_exc": n_exc, "count": count, "learned": int(learned), "settle_end": sched.settle_end,
-              "imprint_end": sched.imprint_end, "imprint_on": sched.imprint_on, "imprint_slot": sched.imprint_slot,
-              "cue_period": sched.cue_period, "cue_steps": sched.cue_steps, "tests": len(sched.test_starts)}
+    windows = [(0, *w) for w in (sched.imprint_windows if learned else ())] + [(1, *w) for w in sched.all_cues]
     with open(path, "wb") as out:
-        np.array([values[name] for name in _STIMULUS_HEADER], dtype="<i8").tofile(out)
-        np.array(sched.test_starts, dtype="<i8").tofile(out)
-        np.array([k for k, _, _ in sched.cue_windows], dtype="<i8").tofile(out)
-        np.asarray(members if learned else np.zeros_like(members), dtype=np.uint8).tofile(out)
+        np.array([n_exc, count, len(windows)], dtype="<i8").tofile(out)
+        np.array(windows, dtype="<i8").reshape(-1, 4).tofile(out)
+        np.asarray(members, dtype=np.uint8).tofile(out)
         np.asarray(cued, dtype=np.uint8).tofile(out)
 
 

@@ -364,6 +364,45 @@ def capacity(
              "than chance allows after smaller ones failed")
 
 
+@app.command("retention")
+@user_errors
+def retention_command(
+    store: Path = _STORE,
+    age: bool = typer.Option(False, "--age", help="forgetting by memory age (blocked learning) instead of retention "
+                                                  "by delay after hold start"),
+    fmt: TableFormat = typer.Option(TableFormat.table, "--format", metavar="FORMAT", help=_FORMAT_HELP),
+    wide: bool = typer.Option(False, "--wide", help=_WIDE_HELP),
+) -> None:
+    """Recall against time per condition: the fraction of cued odours recalled at each recall test's delay after hold
+    start (with --age: at each memory age in learning blocks), the delay in seconds (delay_s) and in multiples of
+    the condition's plasticity.heterosynaptic.tau_consolidation_s (delay_tau).
+
+    Columns: the sweep axes, the test (retention) or age, delay_s, delay_tau, fraction (mean over done replicates),
+    replicates, recalled and tested (counts pooled over them), wilson_lo and wilson_hi (95 % Wilson interval of the
+    pooled counts: it treats tests within a replicate as independent, which they are not), t_lo and t_hi (95 %
+    Student-t interval across replicates: zero width when the replicates agree). Failed and unreached tests are left
+    out. json as {"units", "filter", "rows"}, as query writes it.
+    """
+    from .query import open_store, sweep_dims
+    from .retention import forgetting_table, retention_table
+
+    ds = open_store(store, "retention")
+    table = forgetting_table(ds) if age else retention_table(ds)
+    if fmt is not TableFormat.table:
+        _emit(table, fmt, {"delay_s": "s"}, "")
+        return
+    if table.empty:
+        _say("no recall test by memory age: no point learned in blocks (protocol.imprint_order = 'blocked')" if age
+             else "no recall test of a done point")
+        return
+    labels = [*[d for d in sweep_dims(ds) if d in table.columns], "age" if age else "retention"]
+    _say(f"recall by {'memory age (learning blocks)' if age else 'recall test'}: delay in s and in tau_consolidation; "
+         "fraction: mean over done replicates; 95 % Wilson interval of the pooled counts, 95 % t interval across "
+         "replicates (read the wider):")
+    first = [*labels, "delay_s", "delay_tau", "fraction", "wilson_lo", "wilson_hi", "t_lo", "t_hi"]
+    _table(table[[*first, *(c for c in table.columns if c not in first)]], labels, wide)
+
+
 def _print_controls(controls: Any, shown: Any, labels: Sequence[str]) -> None:
     """Each condition's capacity (as ``shown``) beside its ``controls``' success, and one warning per flag."""
     from .control_table import STAT_COLUMNS, controls_beside

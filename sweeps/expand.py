@@ -328,6 +328,20 @@ RULES: tuple[Rule, ...] = (
          "the background after the last cue (the larger of protocol.cue_gap_s ({protocol.cue_gap_s}) and "
          "detection.runaway_hold_s + detection.smoothing_s) must hold the recall test's pre-cue and recall windows "
          "once, for its null of background times"),
+    Rule(("protocol.retention_design", "protocol.retention_delays_s"),
+         lambda f: f["protocol.retention_design"] != "separate" or not f["protocol.retention_delays_s"],
+         "protocol.retention_design = 'separate' tests each point once, after its hold: protocol.retention_delays_s "
+         "({protocol.retention_delays_s}) must be empty (sweep protocol.hold_s for the delays)"),
+    Rule(("protocol.imprint_order", "assemblies.imprint"),
+         lambda f: f["protocol.imprint_order"] != "blocked" or f["assemblies.imprint"] == "learned",
+         "protocol.imprint_order = 'blocked' orders learning: it needs assemblies.imprint = 'learned' "
+         "(not {assemblies.imprint})"),
+    Rule(("protocol.", "detection.recall_mode"),
+         lambda f: f["protocol.imprint_order"] != "blocked"
+         or f["protocol.imprint_off_s"] >= _recall_window_s(f) - 1e-9,
+         "with protocol.imprint_order = 'blocked' the test after each block starts protocol.imprint_off_s "
+         "({protocol.imprint_off_s}) after the last presentation, which must hold the pre-cue window (as long as the "
+         "recall window)"),
     Rule(("detection.recall_alpha", "detection.recall_null_draws"),
          lambda f: f["detection.recall_alpha"] * (f["detection.recall_null_draws"] + 1) >= 1 - 1e-9,
          "detection.recall_null_draws ({detection.recall_null_draws}) must be at least 1 / detection.recall_alpha - 1 "

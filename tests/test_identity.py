@@ -48,11 +48,17 @@ EXTRA = "network.extra_tau_ms"  # a key a later version might add
 CHANGED = "network.delay_ms"  # a key whose default a later version might change
 
 
+ADDED_AFTER_3_0 = ("plasticity.heterosynaptic.w_ref_start", "protocol.imprint_order", "protocol.retention_design")
+"""Registry keys that schema 3.0 configs did not have (added with schema 3.2, December 2026): a 3.0 config is
+today's without them, and today's ids must not depend on them while they stay at their defaults."""
+
+
 def full_config_id(flat: dict, replicate: int) -> str:
-    """A point id as stores of schema 3.0 (before stores recorded a defaults table) made it: SHA-256 of the JSON (sorted keys) of the whole
-    resolved config without [execution] and the replicate, first 16 hex digits [derived: that
-    version's ``identity.point_id``, written out here, not imported]."""
-    config = {k: v for k, v in flat.items() if not k.startswith("execution.")}
+    """A point id as stores of schema 3.0 (before stores recorded a defaults table) made it: SHA-256 of the JSON
+    (sorted keys) of the whole resolved config of that version (without [execution] and :data:`ADDED_AFTER_3_0`)
+    and the replicate, first 16 hex digits [derived: that version's ``identity.point_id``, written out here, not
+    imported]."""
+    config = {k: v for k, v in flat.items() if not k.startswith("execution.") and k not in ADDED_AFTER_3_0}
     blob = json.dumps({"config": config, "replicate": replicate}, sort_keys=True)
     return hashlib.sha256(blob.encode()).hexdigest()[:16]
 

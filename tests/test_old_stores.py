@@ -146,6 +146,9 @@ def test_upgrade_keeps_every_stored_value(old_store: Path) -> None:
     for name in ("threads", "weight_between", "upper_share_within", "upper_share_between", "upper_share_other"):
         assert bool(ds[name].isnull().all()), f"{name} (new in 3.0) was never computed for a 2.x point"
     assert zarr.open_array(old_store / "threads", mode="r").dtype == np.dtype(layout.BY_NAME["threads"].dtype)
+    assert ds.sizes["age"] == ds.sizes["assembly"], "the age dim (new in 3.2) is as long as assembly, as in a new store"
+    for name in ("retention_tested", "age_recalled", "age_tested", "age_score", "age_s"):
+        assert bool(ds[name].isnull().all()), f"{name} (new in 3.2) was never computed for a 2.x point"
 
 
 def test_after_the_upgrade_the_old_sweep_file_runs_nothing(old_store: Path) -> None:

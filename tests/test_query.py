@@ -44,6 +44,7 @@ def result(count: int, outcome: str, recalled: int, seed: int) -> dict:
         "overlap_recalled_count": recalled, "already_active_count": 0, "stuck_count": 0,
         "recall_state": ["recalled"] * recalled + ["not_recalled"] * (count - recalled),
         "test_position": np.arange(count), "n_synapses": 1000, "retention_recalled": [recalled], "threads": 1,
+        "retention_tested": [count], "age_recalled": [-1], "age_tested": [-1],
         "rate_exc_baseline_hz": 3.0, "rate_inh_baseline_hz": 7.0, "isi_cv_exc": 0.9, "rate_exc_hold_end_hz": 3.5,
         "wall_time_s": 10.0, "simulated_time_s": 8.0,
         "recall_quality": score, "recall_score": score, "persistence": score / 2, "completion": score,

@@ -80,6 +80,8 @@ def point_result(n_assemblies: int, recalled: int) -> dict:
         "persistence_score": np.full(n_assemblies, 0.2), "recall_contrast": np.full(n_assemblies, 4.0),
         "cue_time_s": 8.0 + 0.7 * np.arange(n_assemblies), "retention_s": np.full(n_assemblies, 7.0),
         "retention_delay_s": [7.0], "retention_recalled": [recalled], "retention_score": [0.8],
+        "retention_tested": [n_assemblies], "age_recalled": np.full(n_assemblies, -1), "age_tested": np.full(n_assemblies, -1),
+        "age_score": np.full(n_assemblies, np.nan), "age_s": np.full(n_assemblies, np.nan),
         "weight_in": [0.05, 0.06], "weight_out": [0.05, 0.04], "weight_within": [0.25, 0.27],
         "overlap_recalled_count": recalled, "already_active_count": 1, "stuck_count": 0,
         "recall_state": ["already_active"] + ["recalled"] * (n_assemblies - 1),
@@ -95,7 +97,7 @@ def point_result(n_assemblies: int, recalled: int) -> dict:
 def test_template_opens_with_plain_xarray(tmp_path):
     ds = plain_open(make_store(tmp_path))  # exactly xr.open_zarr(path)
     assert dict(ds.sizes) == {"n_assemblies": 3, "beta": 2, "imprint": 2, "replicate": 2,
-                              "assembly": 4, "snapshot": 3, "time_bin": 50, "retention": 1}
+                              "assembly": 4, "snapshot": 3, "time_bin": 50, "retention": 1, "age": 4}
     assert ds.n_assemblies.values.tolist() == [1, 2, 4]
     assert ds.beta.values.tolist() == [0.0, 0.05]
     assert ds.imprint.values.tolist() == ["prewired", "learned"]
@@ -487,7 +489,7 @@ def test_grow_extends_in_place_and_keeps_stored_values_bitwise(tmp_path):
         assert new.tolist() == old.tolist() if old.dtype.kind in "OTU" else new.tobytes() == old.tobytes(), name
     ds = plain_open(path)  # exactly xr.open_zarr(path): consolidated metadata is fresh
     assert dict(ds.sizes) == {"n_assemblies": 4, "beta": 2, "imprint": 2, "replicate": 3, "assembly": 8,
-                              "snapshot": 3, "time_bin": 80, "retention": 1}
+                              "snapshot": 3, "time_bin": 80, "retention": 1, "age": 8}
     assert ds.n_assemblies.values.tolist() == [1, 2, 4, 8] and ds.replicate.values.tolist() == [0, 1, 2]
     np.testing.assert_allclose(ds.time_bin.values, np.arange(80) * 0.01)
     assert int((ds.status == 1).sum()) == 1 and int((ds.status == 2).sum()) == 1 and int((ds.status == 0).sum()) == 46
@@ -560,4 +562,4 @@ def test_a_second_zarr_implementation_reads_the_same_values(tmp_path):
         theirs = np.asarray(tensorstore.open(spec, read=True).result().read().result())
         assert theirs.dtype == ours.dtype and theirs.tobytes() == ours.tobytes(), name
         compared += 1
-    assert compared == len(layout.VARIABLES) + 1 + 2 + 5  # status, 2 numeric axes, 5 counters and time_bin
+    assert compared == len(layout.VARIABLES) + 1 + 2 + 5  # status, 2 numeric axes, 4 counters (age has none), time_bin

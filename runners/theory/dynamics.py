@@ -32,6 +32,7 @@ Rates in Hz, times in s, weights in g_leak.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass, field, replace
 
 import numpy as np
@@ -109,7 +110,8 @@ def initial_plastic(cfg: dict) -> Plastic:
         i0 = min(i0, inh["w_max"])
     paths = np.array([w0.into, w0.out, w0.across, w0.between])
     within = np.full((count, len(SUBPATHS)), w0.within)
-    return Plastic(within, within.copy(), paths, paths.copy(), np.full((count, 2), i0), i0)
+    start = REFERENCE_STARTS[cfg["plasticity"]["heterosynaptic"]["w_ref_start"]]
+    return Plastic(within, start(within), paths, start(paths), np.full((count, 2), i0), i0)
 
 
 @dataclass(frozen=True)
@@ -314,7 +316,11 @@ def bistable_reference(het: dict, w: np.ndarray, w_ref: np.ndarray, dt: float) -
 
 REFERENCE_STEPS = {"fixed": fixed_reference, "consolidating": consolidating_reference, "bistable": bistable_reference}
 """How the reference weights move over a step, per ``plasticity.heterosynaptic.w_ref_mode``."""
-HANDLED_CHOICES = {"plasticity.heterosynaptic.w_ref_mode": REFERENCE_STEPS}
+REFERENCE_STARTS: dict[str, Callable[[np.ndarray], np.ndarray]] = {"initial": np.copy, "lower": np.zeros_like}
+"""Reference weights at the start of a run from the initial weights, per ``plasticity.heterosynaptic.w_ref_start``
+(as :func:`capsweep.runners.model.reference_start` sets them in the simulation)."""
+HANDLED_CHOICES = {"plasticity.heterosynaptic.w_ref_mode": REFERENCE_STEPS,
+                   "plasticity.heterosynaptic.w_ref_start": REFERENCE_STARTS}
 """Every plasticity key with a choice of values, and the theory's handler of each value (a test holds this
 against the registry: a choice the simulation offers and the theory ignores fails it)."""
 
