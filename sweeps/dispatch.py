@@ -340,12 +340,17 @@ def run_tasks(
     Tasks go to the scheduler in chunks (one ``client.map`` per refill, each a later generation than
     the last, so the scheduler starts them in submission order) and results come back in batches
     (every result finished meanwhile in one gather): one message each way per batch, not per task.
+    The window is refilled once an eighth of it is free (or nothing is in flight), so that a chunk
+    is not a task or two whenever results trickle in.
     """
     futures: dict[Any, Any] = {}  # dask future -> tag
     finished = as_completed()
     source, follow_ups = iter(jobs), deque[Job]()
+    least = max(1, window // 8)  # fewest free places worth a refill while tasks are in flight
 
     def refill() -> None:
+        if futures and window - len(futures) < least:
+            return
         chunk: list[Job] = []
         while len(futures) + len(chunk) < window:
             job = follow_ups.popleft() if follow_ups else next(source, None)
