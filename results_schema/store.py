@@ -116,6 +116,7 @@ class ResultStore:
         self._group = group
         self._arrays: dict[str, zarr.Array] = {name: _array(group, name) for name in _stored_variables()}
         self._seeds = np.asarray(self._arrays["seed"][...])
+        self._inner_sizes = {v.name: self._arrays[v.name].shape[-1] for v in layout.VARIABLES if v.inner is not None}
         self._fills = {name: self._fill_block(layout.BY_NAME[name]) for name in REQUIRED_RESULTS}
         self._batching = batching
         self._buffer: dict[tuple[int, ...], tuple[dict[str, Any], str]] = {}
@@ -299,7 +300,7 @@ class ResultStore:
         return index
 
     def _inner_size(self, var: layout.Variable) -> int | None:
-        return None if var.inner is None else self._arrays[var.name].shape[-1]
+        return self._inner_sizes.get(var.name)
 
     def _fill_block(self, var: layout.Variable) -> Any:
         size = self._inner_size(var)
