@@ -1,17 +1,25 @@
 """The client at the size of a study: `capsweep check` of a large sweep, and the orchestration cost per point.
 
-Three measurements, each printed as one line (min / median / max over ``--repeats``):
+Four measurements, each printed as one line (min / median / max over ``--repeats``):
 
 1. ``check``: wall time and peak resident memory of ``capsweep check`` (a fresh process) on a sweep of
-   ``--check-points`` points (default 10^6: 25 x 20 x 20 rule coefficients x 10 counts x 10 replicates).
+   ``--check-points`` points (default 10^6: 25 x 20 x 20 rule coefficients x 10 counts x 10 replicates;
+   0 leaves it out).
 2. ``orchestration``: ``run_sweep`` of ``--run-points`` points (default 10^5) of the smallest real
    network with a very short protocol, on a local cluster of ``--workers`` workers, with a task that
    returns a stored result at once instead of simulating. Everything else is what ``capsweep run`` does
    (grid, ids and seeds, store layout, windowed submission, Dask scheduler and workers, batched store
    writes), so wall / points is the orchestration cost per point; the time to the first finished
-   point bounds the time to the first running point from above.
-3. ``bare engine``: the same network's points run by ``run_point`` in this process, one after another
+   point bounds the time to the first running point from above. Also per point from the first
+   finished point to the last (the steady rate, without the cluster's start and the store's layout).
+3. ``plain Dask``: the same tasks on the same kind of cluster (capsweep's settings), all given to one
+   ``client.map`` and their results gathered as they finish, with no grid, window or store: what Dask
+   alone costs per point on this machine at this moment, measured between the repeats of 2.
+4. ``bare engine``: the same network's points run by ``run_point`` in this process, one after another
    (the build compiled first, not counted): what a point costs without any orchestration.
+
+CPU is that of this process: the client, the scheduler (a local cluster's runs here) and the store
+writer; the workers' CPU is not counted.
 
 Run: ``python benchmarks/bench_client.py [--check-points N] [--run-points N] [--workers 2]``.
 """
@@ -20,12 +28,14 @@ from __future__ import annotations
 
 import argparse
 import functools
+import os
 import resource
 import statistics
 import subprocess
 import sys
 import tempfile
 import time
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -111,21 +121,78 @@ def stored_result(result: dict[str, Any], config: dict[str, Any], seed: int, wir
     return {**result, "seed": seed}
 
 
-def time_orchestration(sweep: Path, result: dict[str, Any]) -> tuple[float, float, float, int]:
-    """Wall s of the run, CPU s of this process (client, scheduler, store writer), s to its first finished point,
-    points run; each task returns ``result``."""
+@dataclass
+class Timing:
+    """A timed run: wall and CPU s of this process in all, and at its first and last finished point."""
+
+    wall: float = 0.0
+    cpu: float = 0.0
+    points: int = 0
+    first: tuple[float, float] = (0.0, 0.0)  # (wall, CPU) s from the start to the first finished point
+    last: tuple[float, float] = (0.0, 0.0)  # the same to the last
+
+    def seen(self, start: tuple[float, float]) -> None:
+        """Note a finished point at this moment (``start``: wall and CPU clock readings when the run began)."""
+        self.points += 1
+        self.last = (time.perf_counter() - start[0], time.process_time() - start[1])
+        if self.points == 1:
+            self.first = self.last
+
+    def per_point(self) -> tuple[float, float]:
+        """Wall and CPU ms per point in all."""
+        return 1000 * self.wall / self.points, 1000 * self.cpu / self.points
+
+    def steady(self) -> tuple[float, float]:
+        """Wall and CPU ms per point from the first finished point to the last."""
+        n = max(self.points - 1, 1)
+        return 1000 * (self.last[0] - self.first[0]) / n, 1000 * (self.last[1] - self.first[1]) / n
+
+
+def timed(run: Any) -> Timing:
+    """Time ``run(note)``, which calls ``note()`` once per finished point."""
+    timing, start = Timing(), (time.perf_counter(), time.process_time())
+    run(lambda: timing.seen(start))
+    timing.wall, timing.cpu = time.perf_counter() - start[0], time.process_time() - start[1]
+    return timing
+
+
+def time_orchestration(sweep: Path, result: dict[str, Any]) -> Timing:
+    """``run_sweep`` of ``sweep``, each task returning ``result``."""
     from capsweep.sweeps.launch import run_sweep
 
-    start = time.perf_counter()
-    first: list[float] = []
+    def run(note: Any) -> None:
+        counted = [0]
 
-    def seen(progress: Any) -> None:
-        if progress.finished and not first:
-            first.append(time.perf_counter() - start)
+        def seen(progress: Any) -> None:
+            while counted[0] < progress.finished:
+                counted[0] += 1
+                note()
 
-    cpu = time.process_time()
-    progress = run_sweep(sweep, on_event=seen, task=functools.partial(stored_result, result))
-    return time.perf_counter() - start, time.process_time() - cpu, first[0], progress.finished - progress.failed
+        run_sweep(sweep, on_event=seen, task=functools.partial(stored_result, result))
+
+    return timed(run)
+
+
+def time_plain_dask(sweep: Path, result: dict[str, Any], workers: int) -> Timing:
+    """The tasks of ``sweep`` on a fresh local cluster of ``workers``, all in one ``client.map``, gathered as they
+    finish: no grid window, store or progress (the cluster's start counted, as in ``run_sweep``)."""
+    from dask.distributed import as_completed
+
+    from capsweep.sweeps.dispatch import dask_client
+    from capsweep.sweeps.expand import Grid
+    from capsweep.sweeps.sweepfile import load_sweep
+
+    points = list(Grid(load_sweep(sweep)).points())
+
+    def run(note: Any) -> None:
+        with dask_client(workers) as client:
+            futures = client.map(functools.partial(stored_result, result), [p.config for p in points],
+                                 [p.seed for p in points], [p.wiring_seed for p in points], pure=False)
+            for batch in as_completed(futures).batches():
+                for _ in client.gather(batch):
+                    note()
+
+    return timed(run)
 
 
 def time_bare_engine(sweep: Path, points: int) -> tuple[float, dict[str, Any]]:
@@ -156,25 +223,34 @@ def main() -> None:
     parser.add_argument("--repeats", type=int, default=3)
     args = parser.parse_args()
     work = Path(tempfile.mkdtemp(prefix="capsweep-client-"))
-    check = work / "check.toml"
-    check.write_text(check_sweep(work / "check.zarr", args.check_points))
-    timed = [time_check(check) for _ in range(args.repeats)]
-    print(f"check of {args.check_points} points: wall {spread([w for w, _ in timed])} s, "
-          f"peak memory {spread([m for _, m in timed], '.0f')} MiB (min / median / max of {args.repeats})", flush=True)
+    if args.check_points:
+        check = work / "check.toml"
+        check.write_text(check_sweep(work / "check.zarr", args.check_points))
+        checks = [time_check(check) for _ in range(args.repeats)]
+        print(f"check of {args.check_points} points: wall {spread([w for w, _ in checks])} s, peak memory "
+              f"{spread([m for _, m in checks], '.0f')} MiB (min / median / max of {args.repeats})", flush=True)
     bare_per_point, result = time_bare_engine(_written(work / "bare.toml", work / "bare.zarr", args), args.bare_points)
     print(f"bare engine ({result['engine']}): {1000 * bare_per_point:.1f} ms per point "
           f"(mean of {args.bare_points}, one process)", flush=True)
-    rows = []
+    runs: dict[str, list[Timing]] = {"orchestration": [], "plain Dask": []}
     for repeat in range(args.repeats):
         sweep = _written(work / f"run{repeat}.toml", work / f"run{repeat}.zarr", args)
-        wall, cpu, first, n = time_orchestration(sweep, result)
-        rows.append((wall, cpu, first, n))
-        print(f"  repeat {repeat}: {n} points in {wall:.1f} s wall, {cpu:.1f} s CPU of the client process, first "
-              f"finished after {first:.1f} s", flush=True)
-    n = rows[0][3]
-    print(f"orchestration of {n} points on {args.workers} workers: {spread([1000 * r[0] / n for r in rows])} ms wall "
-          f"and {spread([1000 * r[1] / n for r in rows])} ms client CPU per point, first point after "
-          f"{spread([r[2] for r in rows], '.1f')} s; bare engine {1000 * bare_per_point:.1f} ms per point", flush=True)
+        for name, timing in (("orchestration", time_orchestration(sweep, result)),
+                             ("plain Dask", time_plain_dask(sweep, result, args.workers))):
+            runs[name].append(timing)
+            print(f"  repeat {repeat}, {name}: {timing.points} points in {timing.wall:.1f} s wall, {timing.cpu:.1f} s "
+                  f"CPU of this process, first finished after {timing.first[0]:.1f} s; load {_load()}", flush=True)
+    for name, timings in runs.items():
+        print(f"{name}, {timings[0].points} points on {args.workers} workers (ms per point, min / median / max of "
+              f"{args.repeats}): in all {spread([t.per_point()[0] for t in timings])} wall, "
+              f"{spread([t.per_point()[1] for t in timings])} CPU; after the first point "
+              f"{spread([t.steady()[0] for t in timings])} wall, {spread([t.steady()[1] for t in timings])} CPU; "
+              f"first point after {spread([t.first[0] for t in timings], '.1f')} s", flush=True)
+
+
+def _load() -> str:
+    """The 1, 5 and 15 minute load averages."""
+    return " ".join(f"{x:.1f}" for x in os.getloadavg())
 
 
 def _written(path: Path, store: Path, args: argparse.Namespace) -> Path:

@@ -68,10 +68,16 @@ GROWING_NAME = ".capsweep.growing"  # present while grow_store extends the store
 
 @dataclass(frozen=True)
 class Batching:
-    """When the writer flushes buffered points: at ``points`` points, or once the oldest waited ``delay_s`` s."""
+    """When the writer flushes buffered points: at ``points`` points, or once the oldest waited ``delay_s`` s.
+
+    With ``delay_s`` > 0 (and ``points`` > 1) a writer thread writes the batches, so that the caller
+    never waits for a write; it waits only if ``backlog`` batches' worth of points are buffered (the
+    writer has fallen that far behind), which bounds the buffer's memory.
+    """
 
     points: int = 1
     delay_s: float = 0.0
+    backlog: int = 16
 
 
 IMMEDIATE = Batching()
@@ -114,8 +120,10 @@ class DurableStore(LocalStore):
 class ResultStore:
     """An opened result store; the single writer of a sweep writes points through it.
 
-    Points are buffered and written in batches (see :class:`Batching`); a background thread
-    flushes a batch whose oldest point waited ``delay_s``. Reads (``status``, ``scalar_values``)
+    Points are buffered and written in batches (see :class:`Batching`): by the caller once a batch
+    is full, or, with a delay, by a writer thread once a batch is full or its oldest point waited
+    ``delay_s`` (taking every point buffered by then). Batches are written one at a time, in the
+    order they were taken, each data first and status last. Reads (``status``, ``scalar_values``)
     flush first. Use the store as a context manager, or call ``close``, to flush the last batch:
     points still buffered when the process dies read as pending and run again.
     """
@@ -125,18 +133,21 @@ class ResultStore:
         self._group = group
         self._arrays: dict[str, zarr.Array] = {name: _array(group, name) for name in stored_variables()}
         self._seeds = np.asarray(self._arrays["seed"][...])
+        self._inner_sizes = {v.name: self._arrays[v.name].shape[-1] for v in layout.VARIABLES if v.inner is not None}
         self._fills = {name: self._fill_block(layout.BY_NAME[name]) for name in REQUIRED_RESULTS}
         self._version = attrs.package_version("capsweep")
         self._batching = batching
         self._buffer: dict[tuple[int, ...], tuple[dict[str, Any], str]] = {}
         self._oldest = 0.0  # time.monotonic() when the oldest buffered point arrived
-        self._lock = threading.Lock()
-        self._closed = threading.Event()
-        self._failure: BaseException | None = None  # raised by the flush thread, re-raised to the caller
-        self._flusher: threading.Thread | None = None
+        self._lock = threading.Lock()  # guards the buffer, held only to change it
+        self._changed = threading.Condition(self._lock)  # points buffered or taken, the store closed, a failure
+        self._writing = threading.Lock()  # held while a batch is taken and written: one batch at a time, in order
+        self._closed = False
+        self._failure: BaseException | None = None  # raised by the writer thread, re-raised to the caller
+        self._writer: threading.Thread | None = None
         if batching.points > 1 and batching.delay_s > 0:
-            self._flusher = threading.Thread(target=self._flush_when_due, name="capsweep-store-flush", daemon=True)
-            self._flusher.start()
+            self._writer = threading.Thread(target=self._write_when_due, name="capsweep-store-writer", daemon=True)
+            self._writer.start()
 
     @classmethod
     def open(cls, path: str | Path, fingerprint: str | None = None, batching: Batching = IMMEDIATE) -> ResultStore:
@@ -201,6 +212,7 @@ class ResultStore:
             if checked and not self._buffer:
                 self._oldest = time.monotonic()
             self._buffer.update((index, ({layout.WRITER_VERSION: self._version}, UNNEEDED)) for index in checked)
+            self._changed.notify_all()
 
     def write_point(self, index: tuple[int, ...], result: Mapping[str, Any]) -> None:
         """Write a finished point: every result variable and an empty error, then status done.
@@ -225,58 +237,75 @@ class ResultStore:
         self._queue(index, values, FAILED)
 
     def flush(self) -> None:
-        """Write every buffered point now (data first, status last); returns when all are on disk."""
-        with self._lock:
-            self._raise_failure()
-            self._flush_locked()
+        """Write every buffered point now (data first, status last); returns when all are on disk, including a batch
+        the writer thread was writing."""
+        with self._writing:
+            with self._lock:
+                self._raise_failure()
+                batch = self._take()
+            _write_batch(self._arrays, batch)
 
     def close(self) -> None:
-        """Stop the flush thread and write the points still buffered."""
-        self._closed.set()
-        if self._flusher is not None:
-            self._flusher.join()
+        """Stop the writer thread and write the points still buffered."""
+        with self._lock:
+            self._closed = True
+            self._changed.notify_all()
+        if self._writer is not None:
+            self._writer.join()
         self.flush()
 
     def _queue(self, index: tuple[int, ...], values: dict[str, Any], label: str) -> None:
+        """Buffer one point; write the batch now if it is full and no writer thread does (else wake that thread)."""
+        threaded = self._writer is not None and self._writer.is_alive()  # (it stops after a failure)
         with self._lock:
             self._raise_failure()
-            if not self._buffer:
+            while threaded and len(self._buffer) >= self._batching.points * self._batching.backlog:
+                self._changed.wait()  # the writer is that far behind: let it catch up
+                self._raise_failure()
+            first = not self._buffer
+            if first:
                 self._oldest = time.monotonic()
             self._buffer[index] = (values, label)
-            if len(self._buffer) >= self._batching.points:
-                self._flush_locked()
+            full = len(self._buffer) >= self._batching.points
+            if first or full:  # the writer thread's clock starts, or its batch is due
+                self._changed.notify_all()
+        if full and not threaded:
+            self.flush()
 
-    def _flush_when_due(self) -> None:
-        """Flush thread: every quarter of ``delay_s``, flush a batch whose oldest point waited ``delay_s``."""
-        while not self._closed.wait(self._batching.delay_s / 4):
-            with self._lock:
-                if self._buffer and time.monotonic() - self._oldest >= self._batching.delay_s:
-                    try:
-                        self._flush_locked()
-                    except BaseException as exc:  # handed to the writer's next call
-                        self._failure = exc
-                        return
+    def _write_when_due(self) -> None:
+        """Writer thread: write the buffered points whenever a batch is full or its oldest point waited ``delay_s``."""
+        while self._wait_until_due():
+            try:
+                with self._writing:
+                    with self._lock:
+                        batch = self._take()
+                    _write_batch(self._arrays, batch)
+            except BaseException as exc:  # handed to the caller's next call
+                with self._lock:
+                    self._failure = exc
+                    self._changed.notify_all()
+                return
+
+    def _wait_until_due(self) -> bool:
+        """Block until a batch is due to be written (True) or the store is closed (False)."""
+        with self._lock:
+            while not self._closed:
+                waited = time.monotonic() - self._oldest
+                if self._buffer and (len(self._buffer) >= self._batching.points or waited >= self._batching.delay_s):
+                    return True
+                self._changed.wait(self._batching.delay_s - waited if self._buffer else None)
+            return False
 
     def _raise_failure(self) -> None:
         if self._failure is not None:
             failure, self._failure = self._failure, None
             raise failure
 
-    def _flush_locked(self) -> None:
-        """Write the buffered batch: each data variable in one Zarr call (one rewrite per touched file), then status.
-
-        The batch leaves the buffer first: if a data write raises, none of its points gets a
-        status, so all read as pending and run again.
-        """
+    def _take(self) -> dict[tuple[int, ...], tuple[dict[str, Any], str]]:
+        """Empty the buffer (the lock held): the batch to write; wakes a caller waiting for room."""
         batch, self._buffer = self._buffer, {}
-        if not batch:
-            return
-        names = dict.fromkeys(name for values, _ in batch.values() for name in values)
-        for name in names:
-            _set_points(self._arrays[name], {index: values[name] for index, (values, _) in batch.items()
-                                             if name in values})
-        _set_points(self._arrays[layout.STATUS.name],
-                    {index: STATUSES.index(label) for index, (_, label) in batch.items()})
+        self._changed.notify_all()
+        return batch
 
     def _encode_result(self, index: tuple[int, ...], result: Mapping[str, Any]) -> dict[str, Any]:
         unknown = sorted(set(result) - set(layout.BY_NAME))
@@ -299,11 +328,27 @@ class ResultStore:
         return index
 
     def _inner_size(self, var: layout.Variable) -> int | None:
-        return None if var.inner is None else self._arrays[var.name].shape[-1]
+        return self._inner_sizes.get(var.name)
 
     def _fill_block(self, var: layout.Variable) -> Any:
         size = self._inner_size(var)
         return var.fill if size is None else np.full(size, var.fill, dtype=var.dtype)
+
+
+def _write_batch(arrays: Mapping[str, zarr.Array],
+                 batch: Mapping[tuple[int, ...], tuple[dict[str, Any], str]]) -> None:
+    """Write a batch of points (index -> (encoded values, status label)): each data variable in one Zarr call (one
+    rewrite per touched file), then status.
+
+    The batch has left the buffer first: if a data write raises, none of its points gets a status,
+    so all read as pending and run again.
+    """
+    if not batch:
+        return
+    names = dict.fromkeys(name for values, _ in batch.values() for name in values)
+    for name in names:
+        _set_points(arrays[name], {index: values[name] for index, (values, _) in batch.items() if name in values})
+    _set_points(arrays[layout.STATUS.name], {index: STATUSES.index(label) for index, (_, label) in batch.items()})
 
 
 def _set_points(array: zarr.Array, values: Mapping[tuple[int, ...], Any]) -> None:

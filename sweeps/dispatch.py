@@ -327,47 +327,74 @@ def run_tasks(
 ) -> Iterator[tuple[Any, Any]]:
     """Submit ``task(*args)`` for each ``(tag, args)`` job and yield ``(tag, result)`` as each finishes.
 
-    At most ``window`` tasks are in flight: ``jobs`` is read lazily, a job submitted as an earlier
-    one's result is taken, so the client's memory and the scheduler's load do not grow with the
-    sweep. After the caller has taken a result, ``follow_up(tag, result)`` may return more jobs,
-    which go before the rest of ``jobs`` (an adaptive search decides its next points this way); the
-    iteration ends when nothing is left to submit or in flight. Tasks carry ``pure=False`` so that
+    At most ``window`` tasks are in flight: ``jobs`` is read lazily, the free places of the window
+    filled as earlier results are taken, so the client's memory and the scheduler's load do not grow
+    with the sweep. After the caller has taken a result, ``follow_up(tag, result)`` may return more
+    jobs, which go before the rest of ``jobs`` (an adaptive search decides its next points this way);
+    the iteration ends when nothing is left to submit or in flight. Tasks carry ``pure=False`` so that
     repeated submissions are never merged. A task whose worker died is rerun elsewhere by the
     scheduler (at most ``execution.cluster.max_tries`` tries, its ``allowed-failures``); it is
     yielded once, after the try that finished it, or as a TaskFailure when every try lost its
     worker. Results come back in completion order.
+
+    Tasks go to the scheduler in chunks (one ``client.map`` per refill, each a later generation than
+    the last, so the scheduler starts them in submission order) and results come back in batches
+    (every result finished meanwhile in one gather): one message each way per batch, not per task.
+    The window is refilled once an eighth of it is free (or nothing is in flight), so that a chunk
+    is not a task or two whenever results trickle in.
     """
     futures: dict[Any, Any] = {}  # dask future -> tag
     finished = as_completed()
     source, follow_ups = iter(jobs), deque[Job]()
+    least = max(1, window // 8)  # fewest free places worth a refill while tasks are in flight
 
     def refill() -> None:
-        while len(futures) < window:
+        if futures and window - len(futures) < least:
+            return
+        chunk: list[Job] = []
+        while len(futures) + len(chunk) < window:
             job = follow_ups.popleft() if follow_ups else next(source, None)
             if job is None:
-                return
-            tag, args = job
-            future = client.submit(task, *args, pure=False)
-            futures[future] = tag
-            finished.add(future)
+                break
+            chunk.append(job)
+        if chunk:
+            tags, arguments = zip(*chunk)
+            submitted = client.map(task, *zip(*arguments), pure=False, fifo_timeout="0ms")
+            futures.update(zip(submitted, tags))
+            finished.update(submitted)
 
     refill()
     try:
-        for future in finished:
-            tag = futures.pop(future)
-            try:
-                result = future.result()
-            except KilledWorker as exc:  # workers died on every try: a crash or memory exhaustion
-                result = TaskFailure(f"worker lost: the point took down a worker on each of its "
-                                     f"{exc.allowed_failures + 1} tries (a crash or memory exhaustion?)")
-            except Exception as exc:  # a failed point, not a dead sweep
-                result = TaskFailure(f"worker lost: {type(exc).__name__}: {exc}")
-            yield tag, result
-            follow_ups.extend(follow_up(tag, result))
+        for batch in finished.batches():
+            for future, result in zip(batch, _results(client, batch)):
+                tag = futures.pop(future)
+                yield tag, result
+                follow_ups.extend(follow_up(tag, result))
             refill()
     finally:
-        for future in futures:
-            future.cancel()
+        client.cancel(list(futures))
+
+
+def _results(client: Client, futures: list[Any]) -> list[Any]:
+    """The results of finished ``futures``, gathered at once; a TaskFailure for a task that failed or lost its
+    workers."""
+    done = [f for f in futures if f.status == "finished"]
+    try:
+        gathered = dict(zip(done, client.gather(done)))
+    except Exception:  # a result lost meanwhile: each is asked for on its own below
+        gathered = {}
+    return [gathered[f] if f in gathered else _result(f) for f in futures]
+
+
+def _result(future: Any) -> Any:
+    """The result of one finished future, or a TaskFailure naming why it has none."""
+    try:
+        return future.result()
+    except KilledWorker as exc:  # workers died on every try: a crash or memory exhaustion
+        return TaskFailure(f"worker lost: the point took down a worker on each of its "
+                           f"{exc.allowed_failures + 1} tries (a crash or memory exhaustion?)")
+    except Exception as exc:  # a failed point, not a dead sweep
+        return TaskFailure(f"worker lost: {type(exc).__name__}: {exc}")
 
 
 def point_jobs(points: Iterable[Point], engine: str | None = None, prescreen: bool | None = None) -> Iterator[Job]:

@@ -7,6 +7,7 @@ import re
 import socket
 import subprocess
 import sys
+import threading
 import time
 import warnings
 from datetime import datetime
@@ -407,6 +408,61 @@ def test_a_batch_is_written_within_its_delay_without_further_points(tmp_path):
             time.sleep(0.05)
         # Written while the store is still open and no further point came: only the delay timer can have flushed it.
         assert int(ResultStore.open(path).status()[0, 0, 0, 0]) == STATUSES.index("done")
+
+
+def test_the_writer_thread_never_makes_the_caller_wait_for_a_write_in_progress(tmp_path, monkeypatch):
+    """While the writer thread is inside a batch's write, new points are buffered at once; they reach the disk (data,
+    then status) with the next batch, after the first."""
+    path = make_store(tmp_path)
+    inside, release = threading.Event(), threading.Event()
+    real = store_module._set_points
+
+    def held_write(array, values):
+        inside.set()
+        assert release.wait(60), "the test never released the write"
+        real(array, values)
+
+    monkeypatch.setattr(store_module, "_set_points", held_write)
+    store = ResultStore.open(path, batching=Batching(points=2, delay_s=60))
+    store.write_point((0, 0, 0, 0), point_result(1, 1))
+    store.write_point((1, 0, 0, 0), point_result(2, 1))  # a full batch: the writer thread takes it and stops inside
+    assert inside.wait(30), "the writer thread did not start the full batch"
+    started = time.monotonic()
+    store.write_point((2, 0, 0, 1), point_result(4, 3))
+    store.write_failure((0, 1, 0, 0), "odour cue group has no members")
+    assert time.monotonic() - started < 5, "the caller waited for the write in progress"
+    assert (ResultStore.open(path).status() == STATUSES.index("pending")).all()
+    release.set()
+    store.close()
+    monkeypatch.undo()
+    status = ResultStore.open(path).status()
+    assert [status[0, 0, 0, 0], status[1, 0, 0, 0], status[2, 0, 0, 1], status[0, 1, 0, 0]] == [1, 1, 1, 2]
+    assert float(plain_open(path, chunks=None).rate_exc_hz[2, 0, 0, 1, 29]) == 29.0
+
+
+def test_a_failed_write_of_the_writer_thread_leaves_its_batch_pending_and_reaches_the_caller(tmp_path, monkeypatch):
+    path = make_store(tmp_path)
+    real = store_module._set_points
+
+    def full_disk(array, values):
+        if array.basename == "rate_exc_hz":
+            raise OSError(28, "No space left on device")
+        real(array, values)
+
+    monkeypatch.setattr(store_module, "_set_points", full_disk)
+    store = ResultStore.open(path, batching=Batching(points=2, delay_s=60))
+    store.write_point((0, 0, 0, 0), point_result(1, 1))
+    store.write_point((1, 0, 0, 0), point_result(2, 1))
+    deadline = time.monotonic() + 30
+    with pytest.raises(OSError, match="No space left"):
+        while time.monotonic() < deadline:  # raised by the first call after the writer thread failed
+            store.write_failure((0, 1, 0, 0), "odour cue group has no members")
+            time.sleep(0.05)
+    monkeypatch.undo()
+    store.write_point((2, 0, 0, 1), point_result(4, 3))  # written by the caller from now on
+    store.close()
+    status = ResultStore.open(path).status()
+    assert [status[0, 0, 0, 0], status[1, 0, 0, 0], status[2, 0, 0, 1]] == [0, 0, 1], "no status without its data"
 
 
 KILLED_WRITER = """
