@@ -246,8 +246,10 @@ def run_until_stored(sweep: Path, store: Path, points: int) -> subprocess.Popen[
 
 
 def test_killed_sweep_resumes_without_recomputing(tmp_path: Path) -> None:
-    sweep, store = write_sweep(tmp_path, RESUME_SWEEP, hold_s=8.0)
-    first = run_until_stored(sweep, store, 2)
+    # Long enough holds that the 7 points after the first outlast the start of the second run (about 5 s) on an idle
+    # machine: at 8 s holds the first run finished all 8 points before the second run asked for the lock.
+    sweep, store = write_sweep(tmp_path, RESUME_SWEEP, hold_s=24.0)
+    first = run_until_stored(sweep, store, 1)
     second = capsweep("run", str(sweep))  # concurrent run on a locked store
     assert second.returncode == 3 and "locked" in second.stderr, second.stderr
     os.killpg(first.pid, signal.SIGKILL)
@@ -266,6 +268,7 @@ def test_killed_sweep_resumes_without_recomputing(tmp_path: Path) -> None:
     np.testing.assert_array_equal(ds["wall_time_s"].values[done_before], kept[done_before])
 
 
+@pytest.mark.slow  # 213 s in a suite run (a two-thread build of its own); test_engines runs threads in CI
 def test_one_worker_with_two_threads_per_point(tmp_path: Path, build_root: Path) -> None:
     """execution.threads = 2 on one local worker: every point runs on the standalone binary's two OpenMP threads."""
     sweep, store = write_sweep(tmp_path, THREADS_SWEEP, hold_s=1.0)
