@@ -222,7 +222,9 @@ def test_compile_is_charged_to_setup_not_to_the_point(short_runs) -> None:
     """
     _, first, again, other = short_runs
     assert min(first["setup_time_s"], again["setup_time_s"], other["setup_time_s"]) > 0.0
-    assert first["wall_time_s"] <= 2.0 * max(again["wall_time_s"], other["wall_time_s"]) + 1.0, (
+    # Slack for a loaded machine (the numpy run failed 2x + 1 s at load 20); a compile charged to the point (tens of
+    # seconds to minutes) still breaks it.
+    assert first["wall_time_s"] <= 3.0 * max(again["wall_time_s"], other["wall_time_s"]) + 2.0, (
         first["wall_time_s"], first["setup_time_s"], again["wall_time_s"])
 
 
