@@ -373,8 +373,9 @@ def test_prescreen_of_a_slurm_sweep_runs_in_slurm_jobs_and_predicts_as_locally(s
 
 
 JOB_START_ALLOWANCE_S = 30.0
-"""Time (s) a queued worker job takes here to start and run Python up to its worker's first connection attempt
-(common practice as a margin; measured 2-3 s for the whole job on this 2-core node when lightly loaded)."""
+"""Time (s) allowed a queued worker job to start and run Python up to its worker's first connection attempt: a
+margin (common practice), not a measurement; a queued job here ended 33.6-34.4 s after the kill, 3.6-4.4 s beyond
+Dask's 30 s connect timeout (5 December 2026)."""
 
 
 def _jobs_after(submitted_from: Path, deadline: float) -> dict[str, str]:
