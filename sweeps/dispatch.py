@@ -72,6 +72,15 @@ CLUSTER_SETTINGS = {
 """
 
 
+WORKER_DEATH_TIMEOUT_S = 60.0
+"""Longest time (s) a batch worker waits for its scheduler (the ``capsweep run`` process) before its job ends.
+
+It bounds what a job costs once its client is gone: a worker whose scheduler dies mid-sweep stops within
+seconds (its connection breaks), but a job still queued then starts later, finds no scheduler, and ends after
+this long. It also bounds a worker's start (Brian2's import included) on a loaded node. dask-jobqueue's default
+is the same 60 s; set here, a user's Dask configuration cannot lift the bound (e.g. to no timeout at all)."""
+
+
 QUIET_HTTP_ADDRESS = "127.0.0.1:0"
 """Where a local scheduler without dashboard serves its small HTTP endpoint (health, metrics): any free port on
 this host. Dask's default, port 8787, warns whenever another Dask cluster on the machine holds it."""
@@ -201,7 +210,8 @@ def batch_job_settings(kind: str, table: Mapping[str, Any]) -> dict[str, Any]:
     staggered by up to ``retire_min / 2`` either way, so no job hits its wall time mid-point and the
     adaptive scaling replaces it while points remain. Worker jobs get ``$CAPSWEEP_BUILD_DIR``: the
     scratch directory's ``builds`` (a build cache per node) or, without scratch, this process's cache
-    root, which must then be on a filesystem every node shares.
+    root, which must then be on a filesystem every node shares. A worker that loses its scheduler, or
+    finds none within :data:`WORKER_DEATH_TIMEOUT_S`, exits and its job ends.
     """
     system = cluster_kind(kind)
     walltime, retire = table["walltime_min"], table["retire_min"]
@@ -216,6 +226,7 @@ def batch_job_settings(kind: str, table: Mapping[str, Any]) -> dict[str, Any]:
         "processes": table["cores"],
         "memory": f"{table['memory_gb']:g}GB",
         "python": table["python"] or sys.executable,
+        "death_timeout": WORKER_DEATH_TIMEOUT_S,
         "job_extra_directives": [d.strip() for d in table["directives"].split(";") if d.strip()],
         "job_script_prologue": [f"export {BUILD_DIR_ENV}={shlex.quote(str(builds))}", *_worker_environment()],
         "worker_extra_args": ["--lifetime", f"{(walltime - retire) * 60:.0f}s",

@@ -30,7 +30,13 @@ from capsweep.errors import ConfigError
 from capsweep.results_schema.layout import TIMINGS
 from capsweep.runners import builds
 from capsweep.runners.task import TaskFailure
-from capsweep.sweeps.dispatch import batch_job_settings, cluster_table, dask_client, run_tasks
+from capsweep.sweeps.dispatch import (
+    WORKER_DEATH_TIMEOUT_S,
+    batch_job_settings,
+    cluster_table,
+    dask_client,
+    run_tasks,
+)
 from capsweep.sweeps.expand import expand
 from capsweep.sweeps.identity import fingerprint
 from capsweep.sweeps.launch import RunOptions, run_sweep
@@ -170,6 +176,7 @@ def test_batch_jobs_retire_before_their_wall_time_and_get_the_build_cache() -> N
     # retire between 90 - 1.5 * 6 = 81 and 90 - 0.5 * 6 = 87 minutes: lifetime 84 min, stagger 3 min
     assert args[args.index("--lifetime") + 1] == "5040s" and args[args.index("--lifetime-stagger") + 1] == "180s"
     assert settings["job_extra_directives"] == ["--qos=short", "--constraint=avx2"]
+    assert settings["death_timeout"] == WORKER_DEATH_TIMEOUT_S  # whatever the user's Dask configuration says
     assert "export CAPSWEEP_BUILD_DIR='/local/odour scratch/builds'" in settings["job_script_prologue"]
     assert (settings["cores"], settings["processes"], settings["memory"]) == (2, 2, "3.5GB")
     assert (settings["queue"], settings["account"]) == ("olfactory", "lab")
@@ -267,9 +274,10 @@ def slurm() -> None:
         pytest.skip(f"no one-node SLURM: {reason}")
 
 
-def _capsweep(sweep: Path, *args: str) -> subprocess.Popen[str]:
+def _capsweep(sweep: Path, *args: str, cwd: Path | None = None) -> subprocess.Popen[str]:
+    """``capsweep run SWEEP ARGS`` in a process of its own (its batch jobs are submitted from ``cwd``)."""
     return subprocess.Popen([sys.executable, "-m", "capsweep.sweeps.cli", "run", str(sweep), *args],
-                            stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
+                            stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True, cwd=cwd)
 
 
 def _longer_slurm_sweep(tmp_path: Path, replicates: int) -> tuple[Path, int]:
@@ -293,13 +301,30 @@ def _done_points(store: Path) -> int:
         return int((opened["status"].values == _done_code()).sum())
 
 
+def _local_run(sweep: Path, store: Path) -> None:
+    """Run ``sweep`` into ``store`` on this machine (two worker processes): the uninterrupted run to compare with."""
+    local = _capsweep(sweep, "--store", str(store), "--cluster", "local", "--workers", "2")
+    assert local.wait(timeout=900) == 0, local.communicate()[0]
+
+
+def _assert_same_results(local_store: Path, batch_store: Path) -> None:
+    """Every point of ``batch_store`` is done and every stored variable but the wall-clock times equals the local
+    run's bitwise (a point's results depend only on its config and seeds, not on where or when it ran)."""
+    with xr.open_zarr(local_store) as a, xr.open_zarr(batch_store) as b:
+        assert (b["status"].values == _done_code()).all()
+        assert sorted(a.data_vars) == sorted(b.data_vars)
+        for name in sorted(set(a.data_vars) - set(TIMINGS)):
+            left, right = a[name].values, b[name].values
+            same = np.array_equal(left, right, equal_nan=left.dtype.kind == "f")
+            assert same, f"{name} differs between the local and the SLURM run"
+
+
 @pytest.mark.cluster
 def test_slurm_sweep_survives_a_cancelled_worker_job_and_matches_a_local_run(
         slurm: None, tmp_path: Path, build_root: Path) -> None:
     local_store, batch_store = tmp_path / "local.zarr", tmp_path / "slurm.zarr"
     sweep, points = _longer_slurm_sweep(tmp_path, replicates=6)
-    local = _capsweep(sweep, "--store", str(local_store), "--cluster", "local", "--workers", "2")
-    assert local.wait(timeout=900) == 0, local.communicate()[0]
+    _local_run(sweep, local_store)
 
     batch = _capsweep(sweep, "--store", str(batch_store))
     cancelled = ""
@@ -314,20 +339,13 @@ def test_slurm_sweep_survives_a_cancelled_worker_job_and_matches_a_local_run(
     assert batch.returncode == 0, output
     assert cancelled, f"the sweep ended before a worker job could be cancelled mid-sweep: {output}"
     assert _running_jobs() == [], "worker jobs outlived the sweep"
-
-    with xr.open_zarr(local_store) as a, xr.open_zarr(batch_store) as b:
-        assert (b["status"].values == _done_code()).all()
-        assert sorted(a.data_vars) == sorted(b.data_vars)
-        for name in sorted(set(a.data_vars) - set(TIMINGS)):
-            left, right = a[name].values, b[name].values
-            same = np.array_equal(left, right, equal_nan=left.dtype.kind == "f")
-            assert same, f"{name} differs between the local and the SLURM run"
+    _assert_same_results(local_store, batch_store)
 
 
-def _slurm_jobs(submitted_from: Path) -> set[str]:
-    """Ids of the SLURM jobs there are now, pending or running, that were submitted from ``submitted_from``."""
-    shown = subprocess.run(["squeue", "-h", "-o", "%i %Z"], capture_output=True, text=True, timeout=30)
-    return {job for job, _, where in (line.partition(" ") for line in shown.stdout.splitlines())
+def _slurm_jobs(submitted_from: Path) -> dict[str, str]:
+    """The SLURM jobs there are now that were submitted from ``submitted_from``: id -> state (R, PD, CG, ...)."""
+    shown = subprocess.run(["squeue", "-h", "-o", "%i %t %Z"], capture_output=True, text=True, timeout=30)
+    return {job: state for job, state, where in (line.split(" ", 2) for line in shown.stdout.splitlines())
             if Path(where) == submitted_from}
 
 
@@ -344,7 +362,7 @@ def test_prescreen_of_a_slurm_sweep_runs_in_slurm_jobs_and_predicts_as_locally(s
     seen: set[str] = set()
     deadline = time.monotonic() + 600
     while batch.poll() is None and time.monotonic() < deadline:
-        seen |= _slurm_jobs(tmp_path)
+        seen |= set(_slurm_jobs(tmp_path))
         time.sleep(0.25)
     output, errors = batch.communicate(timeout=60)
     assert batch.returncode == 0, errors
@@ -352,6 +370,59 @@ def test_prescreen_of_a_slurm_sweep_runs_in_slurm_jobs_and_predicts_as_locally(s
     assert not _slurm_jobs(tmp_path), "worker jobs outlived the prescreen"
     assert output == local.stdout
     assert len(output.strip().splitlines()) == 1 + 2  # a header and the sweep's two grid points
+
+
+JOB_START_ALLOWANCE_S = 30.0
+"""Time (s) allowed a queued worker job to start and run Python up to its worker's first connection attempt: a
+margin (common practice), not a measurement; a queued job here ended 33.6-34.4 s after the kill, 3.6-4.4 s beyond
+Dask's 30 s connect timeout (5 December 2026)."""
+
+
+def _jobs_after(submitted_from: Path, deadline: float) -> dict[str, str]:
+    """The jobs submitted from ``submitted_from`` still in the queue (any state, ending ones too) at monotonic time
+    ``deadline`` or, if sooner, none."""
+    while (jobs := _slurm_jobs(submitted_from)) and time.monotonic() < deadline:
+        time.sleep(0.25)
+    return jobs
+
+
+@pytest.mark.cluster
+@pytest.mark.slow
+def test_a_killed_slurm_client_leaves_no_jobs_and_a_rerun_completes_the_store_as_a_local_run(
+        slurm: None, tmp_path: Path, build_root: Path) -> None:
+    """kill -9 of ``capsweep run`` while two worker jobs run points and a third waits in the queue (three jobs on the
+    node's two cores): the running workers lose their scheduler and stop, the queued job starts, finds no scheduler
+    and ends within the death timeout, so no job of the run is left; the same command then resumes the store and its
+    results equal an uninterrupted local run's."""
+    local_store, batch_store = tmp_path / "local.zarr", tmp_path / "slurm.zarr"
+    sweep, points = _longer_slurm_sweep(tmp_path, replicates=3)
+    _local_run(sweep, local_store)
+
+    command = (sweep, "--store", str(batch_store), "--cluster-set", "max_jobs=3")
+    batch = _capsweep(*command, cwd=tmp_path)
+    deadline = time.monotonic() + 900
+    while batch.poll() is None and time.monotonic() < deadline:
+        states = sorted(_slurm_jobs(tmp_path).values())
+        if states == ["PD", "R", "R"] and 1 <= _done_points(batch_store) <= points - 3:
+            batch.kill()  # SIGKILL: no cleanup of any kind in the client
+            break
+        time.sleep(0.25)
+    output = batch.communicate(timeout=60)[0]
+    assert batch.returncode == -signal.SIGKILL, f"the sweep ended before its client could be killed: {output}"
+    killed = time.monotonic()
+
+    bound = WORKER_DEATH_TIMEOUT_S + JOB_START_ALLOWANCE_S
+    left = _jobs_after(tmp_path, killed + bound)
+    assert not left, f"jobs of the killed run outlived {bound:g} s: {left}"
+    stored = _done_points(batch_store)
+    assert 1 <= stored < points
+
+    rerun = _capsweep(*command, cwd=tmp_path)
+    output = rerun.communicate(timeout=900)[0]
+    assert rerun.returncode == 0, output
+    assert f"{points} points: {stored} stored before, {points - stored} to run" in output
+    assert not _jobs_after(tmp_path, time.monotonic() + JOB_START_ALLOWANCE_S), "worker jobs outlived the rerun"
+    _assert_same_results(local_store, batch_store)
 
 
 def test_a_busy_dashboard_port_gives_no_warning_when_the_dashboard_is_off() -> None:
