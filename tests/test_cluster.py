@@ -320,6 +320,7 @@ def _assert_same_results(local_store: Path, batch_store: Path) -> None:
 
 
 @pytest.mark.cluster
+@pytest.mark.slow  # 96-186 s; the prescreen's SLURM test keeps a real SLURM run in CI
 def test_slurm_sweep_survives_a_cancelled_worker_job_and_matches_a_local_run(
         slurm: None, tmp_path: Path, build_root: Path) -> None:
     local_store, batch_store = tmp_path / "local.zarr", tmp_path / "slurm.zarr"

@@ -99,6 +99,7 @@ def test_one_short_step_is_the_published_rate(point_config) -> None:
     np.testing.assert_allclose(got - starts, expected, rtol=1e-3, atol=1e-15)
 
 
+@pytest.mark.slow  # 54 s (a build of its own); the bistable equation is checked in CI by the theory tests below
 def test_bistable_point_on_standalone_consolidates_into_the_two_states(point_config, demo_network, build_root,
                                                                        monkeypatch: pytest.MonkeyPatch) -> None:
     """A demo-size prewired point on the standalone engine, weights frozen after settle, tau_cons = 0.1 s.
@@ -217,7 +218,8 @@ def _scored(cfg: dict, seed: int) -> tuple[dict, dict[str, np.ndarray]]:
     return result, expected
 
 
-@pytest.mark.parametrize("engine,hold_s", [("standalone", 20.0), ("cython", 1.0)])
+@pytest.mark.parametrize("engine,hold_s", [pytest.param("standalone", 20.0, marks=pytest.mark.slow),  # ~100 s
+                                             ("cython", 1.0)])
 def test_upper_state_shares_per_class_match_the_recorded_reference_weights(point_config, build_root, tiny_learned,
                                                                            engine: str, hold_s: float) -> None:
     """Both engines record w_ref at every hold snapshot; the stored shares and the between-assembly weight are
@@ -233,6 +235,7 @@ def test_upper_state_shares_per_class_match_the_recorded_reference_weights(point
     assert np.isnan(_scored(fixed, seed=6)[0]["upper_share_within"]).all()  # bistable consolidation only
 
 
+@pytest.mark.slow  # shares the 20 s standalone build below (about 100 s to compile and run)
 def test_learned_synapses_consolidate_and_the_unlearned_control_does_not_single_them_out(point_config, build_root,
                                                                                       tiny_learned) -> None:
     """Learned point: within-assembly synapses reach the upper state ahead of the rest. Control (the same point

@@ -179,6 +179,7 @@ def test_prescreen_prediction_is_stored_beside_each_point(rules_store) -> None:
     assert int(one["predicted_outcome"].values.ravel()[0]) == int(one["outcome"].values.ravel()[0]) == outcome["stable"]
 
 
+@pytest.mark.slow  # 68 s in a suite run; test_prescreen_regions checks the prescreen in CI
 def test_prescreen_against_its_store_counts_what_the_store_holds(rules_store, tmp_path: Path) -> None:
     """`prescreen SWEEP --against STORE`: the agreement it prints is the share of points whose stored simulated
     outcome equals the stored `run --prescreen` verdict (read here with plain xarray), and it writes its PNG."""

@@ -32,6 +32,7 @@ TRIPLET_WITH_ISTDP = {"plasticity.heterosynaptic.enabled": False, "plasticity.tr
 
 
 @pytest.mark.reference
+@pytest.mark.slow  # 51 s of simulation
 def test_inhibitory_rate_form_matches_the_simulated_rule(point_config, poisson_drift) -> None:
     """Vogels et al. 2011 (Science 334:1569): for independent Poisson trains the rule's mean drift is
     2 eta tau r_pre (r_post - rho0) [derived: E[z_exc] = r_post tau, E[z_inh] = r_pre tau], zero at rho0."""

@@ -292,6 +292,7 @@ def _scaling_store(tmp_path: Path, capacities: dict[int, list[int]], as_variants
     return path
 
 
+@pytest.mark.slow  # 38 s; tests/test_scaling_fit.py checks the fit itself in CI
 def test_scaling_fits_the_fitted_capacities_and_says_three_sizes_are_few(tmp_path: Path) -> None:
     """Per-replicate capacities 1-3 at 300, 2-5 at 1200, 5-8 at 4800 cells (grid 1-8): every fitted capacity
     lies inside the grid, so the exponent is the least-squares slope of ln(fitted capacity) on ln(n_exc)
