@@ -42,7 +42,7 @@ from ..axes import REPLICATE, Axis
 from ..errors import StoreError
 from ..flags import DONE, FAILED, PENDING, STATUSES, UNNEEDED
 from . import attrs, journal, layout
-from .durable import check_new_store, check_writable, remove_strays, sync_written
+from .durable import check_writable, make_store_folder, remove_strays, sync_written
 from .layout import GridSpec
 
 # Variables whose every entry holds a value from creation on: no _FillValue, so they decode to
@@ -98,7 +98,7 @@ def create_store(path: str | Path, grid: GridSpec, point_ids: np.ndarray, seeds:
             f"{path} already exists; capsweep never overwrites a store. To resume the sweep that made it, "
             "run that sweep against it; to start afresh choose another store path or delete it"
         )
-    check_new_store(path)
+    make_store_folder(path)
     sweep_shape = _check_grid(grid, point_ids, seeds)
     try:
         _write_template(path, grid, sweep_shape, point_ids, seeds)

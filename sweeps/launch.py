@@ -20,7 +20,7 @@ import numpy as np
 
 from ..flags import DONE, FAILED, STATUSES, UNNEEDED
 from ..locks import store_lock
-from ..results_schema.durable import check_new_store
+from ..results_schema.durable import make_store_folder
 from ..runners.notices import COMPILE_TOPIC
 from ..runners.task import TaskFailure, simulate_task
 from .dispatch import EarlyClient, Job, early_client, point_jobs, run_tasks, submission_sequence, task_window
@@ -98,7 +98,7 @@ def run_sweep(
     with early_client(grid.execution, options.workers, options.scheduler, options.dashboard,
                       options.cluster) as dask:
         if not Path(sweep.store).exists():
-            check_new_store(Path(sweep.store))
+            make_store_folder(Path(sweep.store))
             dask.start()
         store, grid = open_or_create(grid)
         with store_lock(sweep.store), store:  # closing the store writes its last batch

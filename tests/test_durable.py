@@ -14,12 +14,12 @@ import numpy as np
 import pytest
 import zarr
 from test_old_stores import SWEEP, copy_fixture, files, invoke
-from test_store import make_store, point_result
+from test_store import GRID, POINT_IDS, SEEDS, make_store, point_result
 
 from capsweep.flags import STATUSES
 from capsweep.results_schema import attrs, layout
 from capsweep.results_schema.journal import JOURNAL
-from capsweep.results_schema.store import Batching, ResultStore, stored_attrs
+from capsweep.results_schema.store import Batching, ResultStore, create_store, stored_attrs
 
 BATCH = {(1, 0, 0, 0): (2, 2), (2, 0, 0, 1): (4, 3), (0, 1, 0, 0): (1, 0)}
 """A batch of three points: index -> (assemblies, recalled)."""
@@ -117,13 +117,22 @@ def test_tidy_removes_what_killed_writes_and_upgrades_left(tmp_path: Path) -> No
     assert not (path / JOURNAL).exists() and files(path) == data
 
 
-def test_a_store_in_a_missing_folder_is_one_line_and_nothing_is_made(tmp_path: Path) -> None:
-    result = invoke("run", SWEEP, "--store", tmp_path / "no" / "such" / "odours.zarr")
+def test_a_new_store_gets_its_missing_folders_as_output_folders_do(tmp_path: Path) -> None:
+    """The README's first command writes results/odour-demo.zarr in a fresh clone, where results/ does not exist."""
+    path = tmp_path / "no" / "such" / "odour.zarr"
+    create_store(path, GRID, POINT_IDS, SEEDS)
+    with ResultStore.open(path) as store:
+        assert store.shape == SEEDS.shape
+
+
+def test_a_store_under_a_file_is_one_line_and_nothing_is_made(tmp_path: Path) -> None:
+    (tmp_path / "notes").write_text("not a folder")
+    result = invoke("run", SWEEP, "--store", tmp_path / "notes" / "such" / "odours.zarr")
     assert result.exit_code == 3
     assert result.output.strip().splitlines() == [
-        f"capsweep: error: the folder {tmp_path / 'no' / 'such'} for the store odours.zarr does not exist; create it "
-        "or choose another store path"]
-    assert not (tmp_path / "no").exists()
+        f"capsweep: error: the folder {tmp_path / 'notes' / 'such'} for the store odours.zarr is a file or lies "
+        "under one; choose another store path"]
+    assert (tmp_path / "notes").read_text() == "not a folder"
 
 
 @pytest.mark.parametrize(("call", "code", "said"), [
