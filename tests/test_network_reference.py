@@ -119,6 +119,7 @@ LEARNED = {
 
 
 @pytest.mark.reference
+@pytest.mark.slow  # 54 s; learned recall is checked in CI on the tiny learned point (tests/test_timescales.py)
 def test_learned_assemblies_form_and_recall(point_config) -> None:
     """Repeated stimulation of each group with plasticity on strengthens its internal E->E weights
     (Hebbian assembly formation under the triplet rule: Pfister & Gerstner 2006, J Neurosci 26:9673; with the
