@@ -14,7 +14,8 @@ from __future__ import annotations
 import os
 from pathlib import Path
 
-from ..errors import StoreError, fault_line
+from ..errors import StoreError
+from ..outputs import make_folder
 
 STRAY_SUFFIX = ".partial"
 
@@ -67,12 +68,4 @@ def check_writable(path: Path) -> None:
 def make_store_folder(path: Path) -> None:
     """Create the folder a new store at ``path`` goes into, and its parents, as the output folders of plot and export
     are made; a file in the way or a file-system fault (permissions, a full disk) is a StoreError of one line."""
-    folder = Path(path).absolute().parent
-    try:
-        folder.mkdir(parents=True, exist_ok=True)
-    except (FileExistsError, NotADirectoryError):
-        raise StoreError(f"the folder {folder} for the store {Path(path).name} is a file or lies under one; choose "
-                         "another store path") from None
-    except OSError as exc:
-        raise StoreError(f"the folder {folder} for the store {Path(path).name} could not be made: "
-                         f"{fault_line(exc)}") from None
+    make_folder(Path(path).absolute().parent, "store folder", StoreError)

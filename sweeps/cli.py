@@ -736,7 +736,7 @@ def replay(
     metrics exactly, and write its spike raster, population and assembly rates and E->E weight matrices as PNG
     figures and its spikes as an NWB file (readable with pynwb). Exits 1 if a stored metric is not reproduced.
     """
-    from .outputs import check_folder
+    from ..outputs import check_folder
     from .replay import replay as rerun
     from .replay import summary, write_outputs
 

@@ -18,9 +18,9 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
+from ..outputs import fault, new_file
 from ..results_schema import attrs
 from .capacity import point_success
-from .outputs import fault, new_file
 from .query import axis_keys, column_units, point_table, table_csv
 
 AXIS_VALUE_SUFFIX = "_value"

@@ -32,6 +32,7 @@ from matplotlib.ticker import MaxNLocator, NullFormatter
 from ..axes import COUNT_KEY, REPLICATE
 from ..errors import CapsweepError
 from ..flags import DONE, OUTCOMES, PENDING, RUNAWAY, UNNEEDED
+from ..outputs import check_folder, make_folder
 from ..results_schema import attrs
 from ..runners.protocol import Schedule, cue_order, recall_end, schedule
 from .capacity import (
@@ -46,7 +47,6 @@ from .capacity import (
     wilson_interval,
 )
 from .expand import recorded_points
-from .outputs import check_folder, make_folder
 from .query import QueryError, axis_keys, labelled, sweep_dims
 
 OUTCOME_COLOURS = dict(zip(OUTCOMES, ("tab:green", "tab:red", "tab:grey")))

@@ -19,8 +19,8 @@ from pathlib import Path
 from typing import Any
 
 from ..errors import ConfigError
+from ..outputs import fault, new_file
 from ..registry import KEYS, SECTIONS, Key, did_you_mean
-from .outputs import fault, new_file
 
 KEYS_START = "<!-- keys:start -->"
 KEYS_END = "<!-- keys:end -->"

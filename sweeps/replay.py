@@ -25,12 +25,12 @@ import zarr
 
 from ..errors import CapsweepError
 from ..flags import DONE
+from ..outputs import fault, make_folder, new_file
 from ..registry import with_execution
 from ..results_schema import layout
 from ..results_schema.store import encode_value, stored_attrs
 from .identity import recorded_sweep
 from .ids import Point, store_basis
-from .outputs import fault, make_folder, new_file
 
 if TYPE_CHECKING:
     from matplotlib.figure import Figure

@@ -130,8 +130,8 @@ def test_a_store_under_a_file_is_one_line_and_nothing_is_made(tmp_path: Path) ->
     result = invoke("run", SWEEP, "--store", tmp_path / "notes" / "such" / "odours.zarr")
     assert result.exit_code == 3
     assert result.output.strip().splitlines() == [
-        f"capsweep: error: the folder {tmp_path / 'notes' / 'such'} for the store odours.zarr is a file or lies "
-        "under one; choose another store path"]
+        f"capsweep: error: store folder {tmp_path / 'notes' / 'such'} lies under the file {tmp_path / 'notes'}; "
+        "expected a folder (existing or new)"]
     assert (tmp_path / "notes").read_text() == "not a folder"
 
 
