@@ -57,6 +57,7 @@ class Progress:
     failed_before: int = 0  # failed points stored before this run and not run again (no --retry-failed)
     store: Path = Path()
     compiling: dict[str, float] = field(default_factory=dict)  # build key -> expected first compile (s), while it lasts
+    searches_open: int = 0  # conditions whose count search has not closed: how many of to_run will run is not known
 
     @property
     def elapsed_s(self) -> float:
@@ -171,6 +172,7 @@ def _execute_search(dask: EarlyClient, grid: Grid, store: ResultStore, options: 
         wanted, unneeded = search.advance(keys)
         store.mark_unneeded(unneeded)
         progress.unneeded += len(unneeded)
+        progress.searches_open = len(search.conditions) - len(search.closed)
         return point_jobs(grid.points(wanted), options.engine, options.prescreen)
 
     def follow_up(point: Point, result: Any) -> Iterator[Job]:

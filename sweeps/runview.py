@@ -5,7 +5,8 @@ that fits the terminal's width: fields are left out whole, lowest priority first
 cut. When stderr is a file or a pipe (a batch job, ``nohup``), :class:`PlainLines` writes a full line at
 most every :data:`EVERY_S` seconds while points finish (every :data:`QUIET_S` seconds while none does),
 each with points done of total, failures and the time left. A standalone build's first compile is named
-in both while it lasts.
+in both while it lasts. While a searched count axis has open searches, the total is only an upper bound (the
+laid-out grid) and the time left is unknown: the line says "at most" and how many searches are open instead.
 """
 
 from __future__ import annotations
@@ -30,9 +31,10 @@ BAR_MIN = 10
 
 
 def eta_s(progress: Any) -> float | None:
-    """Seconds left, from the time per point so far (None before the first point finished)."""
+    """Seconds left, from the time per point so far (None before the first point finished, or while count searches
+    are open: how many points they will still run is not known)."""
     left = progress.to_run - progress.unneeded - progress.finished
-    if progress.finished == 0:
+    if progress.finished == 0 or progress.searches_open:
         return None
     return progress.elapsed_s / progress.finished * max(left, 0)
 
@@ -51,10 +53,13 @@ def fields(progress: Any) -> list[tuple[str, int]]:
     total = progress.to_run - progress.unneeded
     eta = eta_s(progress)
     notice = compile_notice(progress)
+    searching = progress.searches_open
+    done = f"{progress.finished} of at most {total}" if searching else f"{progress.finished}/{total}"
     return [
-        (f"{progress.finished}/{total} points", 0),
+        (f"{done} points", 0),
         (f"{progress.failed} failed", 1),
-        (f"ETA {duration_text(eta)}" if eta is not None else "ETA ?", 2),
+        (f"ETA {duration_text(eta)}" if eta is not None else
+         f"{searching} count searches open" if searching else "ETA ?", 2),
         (f"{duration_text(progress.elapsed_s)} elapsed", 4),
         (f"{progress.worker_count()} workers", 5),
         (notice, 3) if notice else ("", 9),
@@ -70,7 +75,7 @@ def status_line(progress: Any, width: int) -> str:
         shown.remove(max(shown, key=lambda item: item[1]))
     room = width - _joined_width(shown) - 2
     total = progress.to_run - progress.unneeded
-    if room >= BAR_MIN and shown:
+    if room >= BAR_MIN and shown and not progress.searches_open:
         bar = _bar(progress.finished, total, min(room, 40))
         shown.insert(1, (bar, 0))
     return "  ".join(text for text, _ in shown)

@@ -43,6 +43,18 @@ def test_the_live_line_fits_the_width_and_leaves_fields_out_whole(width: int) ->
     assert eta in ("ETA 1 min 05 s", "ETA 1 min 06 s")  # 28 s / 12 points x 28 points left = 65.3 s
 
 
+def test_an_open_count_search_gives_no_eta_from_the_laid_out_grid() -> None:
+    """A searched sweep of 3200 laid-out points said 'ETA 10 h 13 min' after 12 points (5 December 2026) although
+    its searches run a few dozen: while searches are open the total is an upper bound and the time left unknown."""
+    searching = progress(to_run=3200, finished=12, searches_open=5)
+    line = status_line(searching, 160)
+    assert "12 of at most 3200 points" in line and "5 count searches open" in line
+    assert "ETA" not in line and "#" not in line
+    closed = status_line(progress(to_run=3200, unneeded=3160, finished=12, searches_open=0), 160)
+    assert "12/40 points" in closed
+    assert "ETA 1 min 05 s" in closed or "ETA 1 min 06 s" in closed  # as in the first test: the grid is known again
+
+
 def test_a_log_gets_a_plain_line_every_few_seconds_with_the_counts_and_the_compile_notice() -> None:
     """Output to a file used to show nothing between the start line and the end. A fake clock: one point
     finishes every second for 16 s, the first 4 s compile a build."""
