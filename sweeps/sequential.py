@@ -67,7 +67,8 @@ def wilson_interval(successes: int, trials: int, confidence: float = CONFIDENCE)
     p, shrink = successes / trials, 1 + z * z / trials
     centre = (p + z * z / (2 * trials)) / shrink
     half = z * math.sqrt(p * (1 - p) / trials + z * z / (4 * trials * trials)) / shrink
-    return max(0.0, centre - half), min(1.0, centre + half)
+    # the interval contains p in exact arithmetic; rounding put 13/13's upper end at 1 - 1e-16 and 0/5's lower at 3e-17
+    return min(p, max(0.0, centre - half)), max(p, min(1.0, centre + half))
 
 
 def undecided(tally: Tally, threshold: float = MIN_FRACTION, confidence: float = CONFIDENCE) -> bool:
