@@ -292,10 +292,16 @@ def capacity_scaling(ds: xr.Dataset) -> Figure | None:
     table = capacity_report(ds)
     table["n_exc_cells"] = table[size].map(sizes[1])
     inside = table[table["censored"] == ""]
-    bars = [(inside["capacity"] - inside["capacity_lo"]).fillna(0),
-            (inside["capacity_hi"] - inside["capacity"]).fillna(0)]
+    # an interval open at an end (NA: it reaches past the counts) is drawn to the grid's end count, marked there
+    ends = {"capacity_lo": float(ds[count].min()), "capacity_hi": float(ds[count].max())}
+    bars = [(inside["capacity"] - inside["capacity_lo"].fillna(ends["capacity_lo"])).clip(lower=0),
+            (inside["capacity_hi"].fillna(ends["capacity_hi"]) - inside["capacity"]).clip(lower=0)]
     ax.errorbar(inside["n_exc_cells"], inside["capacity"], yerr=bars, fmt="o", color="C0",
                 label="fitted capacity (bar: 95 % interval)")
+    for column, marker, side in (("capacity_lo", "v", "below"), ("capacity_hi", "^", "above")):
+        open_end = inside[inside[column].isna()]
+        ax.plot(open_end["n_exc_cells"], [ends[column]] * len(open_end), marker, color="C0", ls="none",
+                label=f"interval open {side} {ends[column]:g}" if len(open_end) else None)
     for side, marker in (("above", "^"), ("below", "v")):
         rows = table[table["censored"] == side]
         ax.plot(rows["n_exc_cells"], rows["bound"].astype(float), marker, color="C2", ls="none",

@@ -409,3 +409,52 @@ def test_bad_output_options_and_a_file_as_out_are_one_line(store: Path, tmp_path
     line, = result.output.strip().splitlines()
     assert (extra[0] if extra else "--out") in line
     assert out.read_bytes() == b"keep" if not extra else not out.exists()
+
+
+SIZE_AXES = """
+[[sweep.axis]]
+name = "n_exc"
+key = "network.n_exc"
+values = [100, 200, 400, 800]
+
+[[sweep.axis]]
+name = "n_odours"
+key = "assemblies.count"
+values = [1, 2, 3]
+"""
+# (size index, count index, replicate) of 4 replicates, from "passes up to count c" per size and replicate: 100 cells
+# fail at 1 odour in 1 of 4 (an interval open below the grid), 400 cells pass 2 odours in 3 of 4 (open above)
+# and 800 cells 3 odours in 2 of 4 (censored above)
+PASSES_UP_TO = {0: (0, 1, 1, 1), 1: (1, 1, 2, 2), 2: (1, 2, 2, 2), 3: (2, 3, 2, 3)}
+SIZE_PATTERN: dict[tuple[int, int, int], tuple[str, int, str] | str] = {
+    (i, k, r): ("stable", k, "stable") for i, tops in PASSES_UP_TO.items() for r, top in enumerate(tops)
+    for k in range(3) if k + 1 > top}
+
+
+def test_capacity_scaling_bars_are_the_fitted_intervals_and_open_ends_reach_the_grid(tmp_path: Path) -> None:
+    """Each size's bar runs over its 95 % interval from `capsweep capacity`; where that interval is open (NA: it
+    reaches past the counts run), the bar reaches the grid's end count and a marker there says so. Before, an open
+    end drew no bar at all, which read as a narrow interval (the fixed-in-degree scaling store, December 2026)."""
+    from capsweep.sweeps.capacity import capacity_report
+    from capsweep.sweeps.plots import capacity_scaling
+
+    text = sweep_text(SIZE_AXES).replace("replicates = 2", "replicates = 4")
+    ds = open_dataset(filled_store(tmp_path / "sizes.zarr", text, SIZE_PATTERN, lambda index: 0.1))
+    report = capacity_report(ds).set_index("n_exc")
+    inside = report[report["censored"] == ""]
+    fig = capacity_scaling(ds)
+    assert fig is not None
+    ax = fig.axes[0]
+    for column, side, end in (("capacity_lo", "below", 1.0), ("capacity_hi", "above", 3.0)):
+        opened = inside.index[inside[column].isna()].tolist()
+        marks = [line for line in ax.get_lines() if line.get_label() == f"interval open {side} {end:g}"]
+        assert len(marks) == (1 if opened else 0), (side, opened)
+        if opened:
+            assert list(marks[0].get_xdata()) == opened and set(marks[0].get_ydata()) == {end}
+    assert inside["capacity_lo"].isna().any() and inside["capacity_hi"].isna().any()
+    assert inside["capacity_lo"].notna().any() and inside["capacity_hi"].notna().any()
+    bars = next(c for c in ax.collections if isinstance(c, LineCollection))
+    for (x, low), (_, high) in bars.get_segments():
+        row = inside.loc[round(x)]
+        assert low == pytest.approx(1.0 if np.isnan(row["capacity_lo"]) else row["capacity_lo"])
+        assert high == pytest.approx(3.0 if np.isnan(row["capacity_hi"]) else row["capacity_hi"])
