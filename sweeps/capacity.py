@@ -261,6 +261,15 @@ def network_sizes(ds: xr.Dataset) -> tuple[str, dict[Any, float]] | None:
                  if table and all(SIZE_KEY in overrides for overrides in table.values())), None)
 
 
+def scaling_sizes(ds: xr.Dataset) -> tuple[str, dict[Any, float]] | None:
+    """:func:`network_sizes` of a store that sweeps network size and the count alone (every other axis has one value):
+    the stores a scaling fit is made for; None for any other store."""
+    sizes = network_sizes(ds)
+    if sizes is None or any(ds.sizes[d] > 1 for d in axis_keys(ds) if d not in (sizes[0], count_dim(ds))):
+        return None
+    return sizes
+
+
 def scaling_fit(ds: xr.Dataset, min_fraction: float = MIN_FRACTION) -> ScalingFit | None:
     """capacity ~ a n_exc^b over the store's sizes from the fitted capacities, censored ones included.
 
@@ -268,8 +277,8 @@ def scaling_fit(ds: xr.Dataset, min_fraction: float = MIN_FRACTION) -> ScalingFi
     with more than one value; None otherwise or when :func:`capsweep.sweeps.scaling_fit.fit_scaling` has too
     little to fit. Its ``caveats`` say when to read b with care (few sizes, non-monotone success, censoring).
     """
-    sizes = network_sizes(ds)
-    if sizes is None or any(ds.sizes[d] > 1 for d in axis_keys(ds) if d not in (sizes[0], count_dim(ds))):
+    sizes = scaling_sizes(ds)
+    if sizes is None:
         return None
     fits = [(sizes[1][condition.labels[sizes[0]]], fit) for condition in _conditions(ds)
             if (fit := _fit_of(condition, min_fraction)) is not None]

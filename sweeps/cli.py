@@ -336,7 +336,7 @@ def capacity(
     chance at the recall test's false-positive rate (detection.recall_alpha); with --controls, csv and json
     write that table.
     """
-    from .capacity import capacity_report, count_dim, scaling_fit, success_table
+    from .capacity import capacity_report, count_dim, scaling_fit, scaling_sizes, success_table
     from .control_table import control_success
     from .query import open_store, sweep_dims
 
@@ -356,7 +356,7 @@ def capacity(
     shown = _capacity_display(table)
     _table(shown, labels, wide, hide_zero=_STATUS_COUNTS)
     _print_controls(control_success(ds), shown, labels)
-    _say_scaling(scaling_fit(ds, min_fraction))
+    _say_scaling(scaling_fit(ds, min_fraction), scaling_sizes(ds) is not None)
     others = [c for c in table.columns if c not in _CAPACITY_COLUMNS]
     for _, row in table[table["non_monotone"]].iterrows():
         where = ", ".join(f"{c}={row[c]}" for c in others) or "the grid"
@@ -425,9 +425,14 @@ def _say(line: str) -> None:
     out.print(line, highlight=False, markup=False, soft_wrap=True)
 
 
-def _say_scaling(fit: Any) -> None:
-    """The power-law fit of capacity against n_exc with its interval and caveats (nothing when there is none)."""
+def _say_scaling(fit: Any, over_sizes: bool) -> None:
+    """The power-law fit of capacity against n_exc with its interval and caveats; ``over_sizes``: the store sweeps
+    network sizes (then a missing fit is said, not left silent)."""
     if fit is None:
+        if over_sizes:
+            from .scaling_fit import NO_FIT
+
+            _say(NO_FIT)
         return
     _say(f"capacity ~ {fit.prefactor:.3g} x n_exc^b, b = {fit.exponent:.2f} "
          f"[{fit.exponent_low:.2f}, {fit.exponent_high:.2f}] (95 % profile likelihood, censored capacities as "

@@ -142,16 +142,23 @@ def _caveats(conditions: Sequence[tuple[float, CapacityFit]], censored: int) -> 
     return tuple(reasons)
 
 
+MIN_INSIDE = 3
+"""Fewest capacities inside their count grid (not censored) a scaling fit needs, at two sizes or more."""
+NO_FIT = (f"no fit of capacity against n_exc: it needs at least {MIN_INSIDE} capacities inside their count grid, at "
+          "two sizes or more (censored ones enter only as bounds beside them)")
+"""What `capsweep capacity` says of a store over sizes when :func:`fit_scaling` has too little to fit."""
+
+
 def fit_scaling(conditions: Sequence[tuple[float, CapacityFit]], confidence: float = CONFIDENCE) -> ScalingFit | None:
     """Fit capacity ~ a N^b over ``conditions`` (n_exc, fitted capacity), censored capacities included.
 
-    None unless at least three capacities lie inside their grid, at two sizes or more (with two,
+    None unless at least MIN_INSIDE capacities lie inside their grid, at two sizes or more (with two,
     the line would pass through both and the scatter vanish; see the module docstring for the
     model and the interval).
     """
     usable = [(float(size), fit) for size, fit in conditions]
     exact = [size for size, fit in usable if fit.censoring == "inside"]
-    if len(exact) < 3 or len(set(exact)) < 2:
+    if len(exact) < MIN_INSIDE or len(set(exact)) < 2:
         return None
     usable.sort(key=lambda item: item[0])
     side = np.array([{"inside": 0, "above": 1, "below": -1}[fit.censoring] for _, fit in usable])

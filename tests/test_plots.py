@@ -458,3 +458,19 @@ def test_capacity_scaling_bars_are_the_fitted_intervals_and_open_ends_reach_the_
         row = inside.loc[round(x)]
         assert low == pytest.approx(1.0 if np.isnan(row["capacity_lo"]) else row["capacity_lo"])
         assert high == pytest.approx(3.0 if np.isnan(row["capacity_hi"]) else row["capacity_hi"])
+
+
+def test_capacity_says_why_a_store_over_sizes_gets_no_scaling_fit(tmp_path: Path) -> None:
+    """Every size passing every count leaves every capacity censored above the grid: `capsweep capacity` used to
+    print nothing about the fit then (the proportional scaling sweep mid-run, December 2026); it says what the fit
+    needs. The SIZE_PATTERN store (three capacities inside the grid) gets its fit line and not that sentence."""
+    from capsweep.sweeps.scaling_fit import NO_FIT
+
+    text = sweep_text(SIZE_AXES).replace("replicates = 2", "replicates = 4")
+    all_pass = filled_store(tmp_path / "all_pass.zarr", text, {}, lambda index: 0.1)
+    fitted = filled_store(tmp_path / "sizes.zarr", text, SIZE_PATTERN, lambda index: 0.1)
+    said = {name: CliRunner().invoke(app, ["capacity", str(path)]) for name, path in
+            (("all_pass", all_pass), ("fitted", fitted))}
+    assert all(result.exit_code == 0 for result in said.values()), {k: r.output for k, r in said.items()}
+    assert NO_FIT in said["all_pass"].output and "capacity ~" not in said["all_pass"].output
+    assert NO_FIT not in said["fitted"].output and "capacity ~" in said["fitted"].output
