@@ -1,4 +1,4 @@
-"""Ctrl-C in processes the command spawns: for the command, not for its Dask workers."""
+"""Ctrl-C and SIGTERM: they stop the command quietly (the command closes its cluster), not its Dask workers."""
 
 from __future__ import annotations
 
@@ -13,3 +13,17 @@ def ignore_interrupts_if_spawned() -> None:
     would print tracebacks."""
     if multiprocessing.parent_process() is not None:
         signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+
+def stop_on_terminate() -> None:
+    """In the command's own process, let SIGTERM (a plain `kill`, or what a batch system sends before it kills a
+    job) stop the command as Ctrl-C does, and restore Ctrl-C where the shell that started the command in the
+    background left SIGINT ignored (POSIX: a non-interactive shell's background commands ignore it)."""
+    if multiprocessing.parent_process() is not None:
+        return
+    signal.signal(signal.SIGINT, signal.default_int_handler)
+    signal.signal(signal.SIGTERM, _as_interrupt)
+
+
+def _as_interrupt(signum: int, frame: object) -> None:
+    raise KeyboardInterrupt

@@ -29,7 +29,7 @@ from ..controls import CONTROL_DIM
 from ..engines import ENGINES, NAMES
 from ..errors import CapsweepError, StoreError, fault_line
 from ..flags import DONE, FAILED, PENDING, UNNEEDED
-from ..interrupts import ignore_interrupts_if_spawned
+from ..interrupts import ignore_interrupts_if_spawned, stop_on_terminate
 from ..registry import ImplausibleValue
 from ..results_schema import attrs
 from ..results_schema.layout import TIMINGS
@@ -153,11 +153,13 @@ def run(
     """Run every point of SWEEP not yet done, writing each result into the store as it arrives.
 
     Progress goes to stderr: one line redrawn on a terminal, a plain line every few seconds in a file or
-    pipe. The last lines name the store and the command to run next.
+    pipe. The last lines name the store and the command to run next. Ctrl-C or SIGTERM stops the run quietly,
+    keeping what was stored.
     """
     from .launch import RunOptions, run_sweep
     from .runview import ProgressView
 
+    stop_on_terminate()
     _check_engine(engine)
     options = RunOptions(store=store, workers=workers, scheduler=scheduler, dashboard=dashboard, engine=engine,
                          prescreen=prescreen, retry_failed=retry_failed,

@@ -316,12 +316,15 @@ def test_a_sham_cue_is_not_a_success_while_the_same_point_with_its_cue_is(tmp_pa
     assert "warning" not in report.stdout
 
 
-def test_ctrl_c_mid_run_stops_quietly_and_keeps_what_was_stored(tmp_path: Path) -> None:
+@pytest.mark.parametrize("stop", [signal.SIGINT, signal.SIGTERM])
+def test_ctrl_c_mid_run_stops_quietly_and_keeps_what_was_stored(tmp_path: Path, stop: signal.Signals) -> None:
     """Ctrl-C printed about 30 lines of Dask worker tracebacks. A terminal's Ctrl-C sends SIGINT to the whole
-    foreground process group [POSIX, General Terminal Interface, 11.1.9]: here, to the run's new session."""
+    foreground process group [POSIX, General Terminal Interface, 11.1.9]: here, to the run's new session. SIGTERM,
+    what `kill` and a batch system's cancel send, stops it the same way; it used to end the run at once, and a run
+    started in the background of a script (SIGINT ignored there, POSIX) could be stopped by nothing milder."""
     sweep, store = write_sweep(tmp_path, RESUME_SWEEP, hold_s=8.0)
     run = run_until_stored(sweep, store, 1)
-    os.killpg(run.pid, signal.SIGINT)
+    os.killpg(run.pid, stop)
     _, stderr = run.communicate(timeout=120)
     assert run.returncode == 130, stderr
     assert "Traceback" not in stderr and "KeyboardInterrupt" not in stderr, stderr
