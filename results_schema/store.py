@@ -239,11 +239,7 @@ class ResultStore:
     def flush(self) -> None:
         """Write every buffered point now (data first, status last); returns when all are on disk, including a batch
         the writer thread was writing."""
-        with self._writing:
-            with self._lock:
-                self._raise_failure()
-                batch = self._take()
-            _write_batch(self._arrays, batch)
+        self._write_buffered(raise_failure=True)
 
     def close(self) -> None:
         """Stop the writer thread and write the points still buffered."""
@@ -276,15 +272,22 @@ class ResultStore:
         """Writer thread: write the buffered points whenever a batch is full or its oldest point waited ``delay_s``."""
         while self._wait_until_due():
             try:
-                with self._writing:
-                    with self._lock:
-                        batch = self._take()
-                    _write_batch(self._arrays, batch)
+                self._write_buffered(raise_failure=False)
             except BaseException as exc:  # handed to the caller's next call
                 with self._lock:
                     self._failure = exc
                     self._changed.notify_all()
                 return
+
+    def _write_buffered(self, raise_failure: bool) -> None:
+        """Take every buffered point and write it (one batch at a time, in order); ``raise_failure``: first re-raise
+        a failure of the writer thread (the caller's path; the thread itself does not)."""
+        with self._writing:
+            with self._lock:
+                if raise_failure:
+                    self._raise_failure()
+                batch = self._take()
+            _write_batch(self._arrays, batch)
 
     def _wait_until_due(self) -> bool:
         """Block until a batch is due to be written (True) or the store is closed (False)."""
