@@ -8,8 +8,10 @@ This is the worker side only; creating clients and clusters, submitting tasks an
 from __future__ import annotations
 
 import atexit
+import functools
 import os
 import signal
+import time
 import traceback
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -36,6 +38,17 @@ def _guarded(work: Callable[[], T]) -> T | TaskFailure:
         return work()
     except Exception as exc:  # every failure is recorded, none may kill the sweep
         return TaskFailure(f"{type(exc).__name__}: {exc}\n{traceback.format_exc(limit=6)}")
+
+
+def run_parcel(task: Callable[..., T], arguments: list[tuple[Any, ...]]) -> list[tuple[T | TaskFailure, float]]:
+    """Run ``task(*args)`` for each of ``arguments`` in turn (a parcel of short points in one Dask task): each result,
+    a TaskFailure for one that raised, with its wall time on this worker in seconds."""
+    timed = []
+    for args in arguments:
+        start = time.perf_counter()
+        result = _guarded(functools.partial(task, *args))
+        timed.append((result, time.perf_counter() - start))
+    return timed
 
 
 def simulate_task(config: dict[str, Any], seed: int, wiring_seed: int) -> dict[str, Any] | TaskFailure:

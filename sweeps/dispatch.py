@@ -16,13 +16,14 @@ scheduler; a task whose workers died ``execution.cluster.max_tries`` times comes
 from __future__ import annotations
 
 import contextlib
+import functools
 import importlib
 import shlex
 import signal
 import sys
 import threading
 from collections import deque
-from collections.abc import Callable, Iterable, Iterator, Mapping
+from collections.abc import Callable, Hashable, Iterable, Iterator, Mapping
 from concurrent.futures import Future, ThreadPoolExecutor
 from pathlib import Path
 from types import ModuleType
@@ -36,7 +37,7 @@ from ..clusters import SCHEDULER, cluster_kind
 from ..errors import CapsweepError, ConfigError
 from ..registry import BY_PATH, lookup, overlay, with_execution
 from ..runners.builds import BUILD_DIR_ENV, build_root
-from ..runners.task import WORKER_PRELOAD, PrepareWorker, TaskFailure
+from ..runners.task import WORKER_PRELOAD, PrepareWorker, TaskFailure, run_parcel
 from .ids import Point
 
 if TYPE_CHECKING:
@@ -52,7 +53,7 @@ CLUSTER_SETTINGS = {
     "distributed.worker.memory.monitor-interval": "1s",
     "distributed.scheduler.work-stealing": False,
     "distributed.scheduler.worker-saturation": 1.0,
-    "distributed.scheduler.default-task-durations.simulate_task": "10m",
+    "distributed.scheduler.default-task-durations.run_parcel": "10m",
 }
 """Dask settings of the clusters capsweep starts: no profiler, slower housekeeping, one task per worker.
 
@@ -66,9 +67,10 @@ CLUSTER_SETTINGS = {
   one-thread worker): the next task goes to whichever worker frees up first, so the sweep's
   longest-first order is kept and no worker idles at the end while the other still has a point
   queued. Stealing then has nothing to move.
-- Until a point has finished, the scheduler guesses a point takes 10 minutes (its default guess for
-  an unknown task is 0.5 s): adaptive scaling of batch jobs then asks for a worker per remaining
-  point (up to ``execution.cluster.max_jobs``) from the start instead of one.
+- Until a task has finished, the scheduler guesses a task (a parcel, :func:`run_tasks`: one point until
+  points have been measured) takes 10 minutes (its default guess for an unknown task is 0.5 s): adaptive
+  scaling of batch jobs then asks for a worker per remaining point (up to ``execution.cluster.max_jobs``)
+  from the start instead of one.
 """
 
 
@@ -322,11 +324,48 @@ class EarlyClient:
 MIN_WINDOW = 512
 """Fewest tasks :func:`run_tasks` keeps in flight (more on a cluster with more worker threads: :func:`task_window`)."""
 
+PARCEL_TARGET_S = 1.0
+"""Worker time (s) a parcel of short points aims at. Dask costs about 10 ms of wall time per task here (a round trip
+between scheduler and worker, 2-core machine, December 2026), 1 % of a parcel this long."""
+
+MAX_PARCEL = 32
+"""Most points in one parcel: bounds the points in flight to :func:`task_window` x 32 configs (about 2.4 KB each)."""
+
 
 def task_window(slots: int) -> int:
     """Tasks to keep in flight for ``slots`` worker threads: twice as many (a queued task per thread while each
     runs one), at least :data:`MIN_WINDOW` (batch jobs scale adaptively to the tasks the scheduler sees)."""
     return max(MIN_WINDOW, 2 * slots)
+
+
+class ParcelSizes:
+    """How many jobs of one group go in one task, from the measured worker time of the group's finished jobs.
+
+    A group's jobs go one per task until one has finished; then as many as fill :data:`PARCEL_TARGET_S` at the
+    median of its last 64 measured jobs, at most :data:`MAX_PARCEL`. A point that takes longer than half the target
+    always runs alone. Jobs without a group (``group`` None) always run alone.
+    """
+
+    def __init__(self, group: Callable[[Any], Hashable] | None) -> None:
+        self._group = group
+        self._seconds: dict[Hashable, deque[float]] = {}
+
+    def group(self, tag: Any) -> Hashable | None:
+        """The group of the job tagged ``tag``; None: it runs alone."""
+        return None if self._group is None else self._group(tag)
+
+    def size(self, group: Hashable | None) -> int:
+        """Jobs of ``group`` to put in the next task."""
+        seconds = self._seconds.get(group)
+        if group is None or not seconds:
+            return 1
+        return int(min(MAX_PARCEL, max(1, PARCEL_TARGET_S // max(float(np.median(seconds)), 1e-6))))
+
+    def record(self, tag: Any, seconds: float) -> None:
+        """Note that the job tagged ``tag`` took ``seconds`` of worker time."""
+        group = self.group(tag)
+        if group is not None:
+            self._seconds.setdefault(group, deque(maxlen=64)).append(seconds)
 
 
 def run_tasks(
@@ -335,6 +374,7 @@ def run_tasks(
     jobs: Iterable[Job],
     follow_up: Callable[[Any, Any], Iterable[Job]] = lambda tag, result: (),
     window: int = MIN_WINDOW,
+    group: Callable[[Any], Hashable] | None = None,
 ) -> Iterator[tuple[Any, Any]]:
     """Submit ``task(*args)`` for each ``(tag, args)`` job and yield ``(tag, result)`` as each finishes.
 
@@ -348,39 +388,69 @@ def run_tasks(
     yielded once, after the try that finished it, or as a TaskFailure when every try lost its
     worker. Results come back in completion order.
 
+    Short jobs go in parcels: neighbouring jobs of one ``group(tag)`` (points expected to cost the same) share a
+    task, as many as :class:`ParcelSizes` says, so that Dask's cost per task is shared too. A parcel whose
+    workers all died is split: each of its jobs is tried again alone (so a point that crashes its worker fails
+    alone, after taking its parcel down ``max_tries`` times).
+
     Tasks go to the scheduler in chunks (one ``client.map`` per refill, each a later generation than
     the last, so the scheduler starts them in submission order) and results come back in batches
     (every result finished meanwhile in one gather): one message each way per batch, not per task.
     The window is refilled once an eighth of it is free (or nothing is in flight), so that a chunk
     is not a task or two whenever results trickle in.
     """
-    futures: dict[Any, Any] = {}  # dask future -> tag
+    futures: dict[Any, list[Job]] = {}  # dask future -> its parcel's jobs
     finished = as_completed()
-    source, follow_ups = iter(jobs), deque[Job]()
+    source, follow_ups, alone = iter(jobs), deque[Job](), deque[Job]()
+    sizes = ParcelSizes(group)
     least = max(1, window // 8)  # fewest free places worth a refill while tasks are in flight
+    parcel_task = functools.partial(run_parcel, task)
+
+    def next_job() -> Job | None:
+        return follow_ups.popleft() if follow_ups else next(source, None)
+
+    def next_parcel() -> list[Job]:
+        """The next job, and the jobs after it while they are of its group, up to the group's parcel size."""
+        if alone:
+            return [alone.popleft()]
+        first = next_job()
+        if first is None:
+            return []
+        parcel, kind = [first], sizes.group(first[0])
+        limit = sizes.size(kind)
+        while len(parcel) < limit and (job := next_job()) is not None:
+            if sizes.group(job[0]) != kind:
+                follow_ups.appendleft(job)
+                break
+            parcel.append(job)
+        return parcel
 
     def refill() -> None:
         if futures and window - len(futures) < least:
             return
-        chunk: list[Job] = []
-        while len(futures) + len(chunk) < window:
-            job = follow_ups.popleft() if follow_ups else next(source, None)
-            if job is None:
-                break
-            chunk.append(job)
+        chunk: list[list[Job]] = []
+        while len(futures) + len(chunk) < window and (parcel := next_parcel()):
+            chunk.append(parcel)
         if chunk:
-            tags, arguments = zip(*chunk)
-            submitted = client.map(task, *zip(*arguments), pure=False, fifo_timeout="0ms")
-            futures.update(zip(submitted, tags))
+            submitted = client.map(parcel_task, [[args for _, args in parcel] for parcel in chunk], pure=False,
+                                   fifo_timeout="0ms")
+            futures.update(zip(submitted, chunk))
             finished.update(submitted)
 
     refill()
     try:
         for batch in finished.batches():
-            for future, result in zip(batch, _results(client, batch)):
-                tag = futures.pop(future)
-                yield tag, result
-                follow_ups.extend(follow_up(tag, result))
+            for future, outcome in zip(batch, _results(client, batch)):
+                parcel = futures.pop(future)
+                if isinstance(outcome, TaskFailure) and len(parcel) > 1:
+                    alone.extend(parcel)  # its workers died: each job is tried alone
+                    continue
+                timed = [(outcome, None)] if isinstance(outcome, TaskFailure) else outcome
+                for (tag, _), (result, seconds) in zip(parcel, timed):
+                    if seconds is not None:
+                        sizes.record(tag, seconds)
+                    yield tag, result
+                    follow_ups.extend(follow_up(tag, result))
             refill()
     finally:
         client.cancel(list(futures))

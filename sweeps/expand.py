@@ -157,6 +157,13 @@ class Grid:
         """Planned simulated time of each cell's points (s, no early abort), over ``cells``."""
         return self.over(SCHEDULE_KEYS, lambda flat: total_duration_s(nest(flat)), float)
 
+    def cost_groups(self) -> np.ndarray:
+        """Each cell's group of points expected to cost about the same, over ``cells``: a tuple of the values of the
+        keys that shape its compiled code (:data:`~capsweep.runners.builds.KEYS_IN_CODE`, network size among them)
+        and its planned simulated time (s)."""
+        return self.over((*KEYS_IN_CODE, *SCHEDULE_KEYS),
+                         lambda flat: (*(flat[k] for k in KEYS_IN_CODE), total_duration_s(nest(flat))))
+
     def build_keys(self, engine: str | None = None) -> np.ndarray:
         """Key of the compiled build each cell's points rerun on ``engine`` (default: the sweep's), '' where that
         engine compiles no builds; over ``cells``."""

@@ -11,7 +11,7 @@ through an ``on_event`` callback that receives :class:`Progress` snapshots.
 from __future__ import annotations
 
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Hashable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -129,7 +129,7 @@ def _execute(dask: EarlyClient, grid: Grid, todo: np.ndarray, store: ResultStore
     jobs = point_jobs(grid.points(submission_sequence(grid, todo, options.engine)), options.engine,
                       options.prescreen)
     client = _started(dask, grid, options, progress, on_event)
-    for point, result in run_tasks(client, task, jobs, window=task_window(dask.slots())):
+    for point, result in run_tasks(client, task, jobs, window=task_window(dask.slots()), group=cost_group(grid)):
         _store_result(store, point, result, progress)
         on_event(progress)
 
@@ -180,7 +180,8 @@ def _execute_search(dask: EarlyClient, grid: Grid, store: ResultStore, options: 
 
     first = advance()
     on_event(progress)
-    for point, result in run_tasks(client, task, first, follow_up, window=task_window(dask.slots())):
+    for point, result in run_tasks(client, task, first, follow_up, window=task_window(dask.slots()),
+                                   group=cost_group(grid)):
         _store_result(store, point, result, progress)
         on_event(progress)
 
@@ -197,6 +198,13 @@ def search_starts(grid: Grid, count_pos: int, client: Client) -> dict[tuple[int,
 
     bounds = stability_bounds(client, grid_points(grid.sweep), count_pos)
     return {key: min(max(bound - counts[0], 0), len(counts) - 1) for key, bound in bounds.items()}
+
+
+def cost_group(grid: Grid) -> Callable[[Point], Hashable]:
+    """A point's group of points expected to cost the same (:meth:`~capsweep.sweeps.expand.Grid.cost_groups`): short
+    points of one group share Dask tasks (:func:`~capsweep.sweeps.dispatch.run_tasks`)."""
+    groups = grid.cost_groups()
+    return lambda point: groups[point.index[:-1]]
 
 
 def _store_result(store: ResultStore, point: Point, result: Any, progress: Progress) -> None:

@@ -225,6 +225,18 @@ def test_a_point_that_kills_its_worker_every_time_fails_after_max_tries_while_ot
     assert len(tries.read_text().split()) == 2  # two workers died, then the scheduler gave the point up
 
 
+def test_a_parcel_whose_workers_die_is_split_so_only_the_crashing_point_fails(tmp_path: Path) -> None:
+    tries = tmp_path / "tries"
+    config = {"tries_file": str(tries)}
+    jobs = [(seed, (config, seed, 0)) for seed in (1, 2, 13, 4, 5, 6)]
+    # window 1: the first job runs alone and is measured (instant), so the other five go in one parcel
+    with dask_client(2, cluster={"max_tries": 2}) as client:
+        results = dict(run_tasks(client, crash_on_seed_13, jobs, window=1, group=lambda seed: "odour"))
+    assert {seed: results[seed] for seed in (1, 2, 4, 5, 6)} == {seed: {"seed": seed} for seed in (1, 2, 4, 5, 6)}
+    assert isinstance(results[13], TaskFailure) and "on each of its 2 tries" in results[13].error
+    assert len(tries.read_text().split()) == 4  # the parcel's 2 tries, then the point's own 2
+
+
 def test_a_worker_killed_mid_point_has_its_point_rerun_and_stored_once(tmp_path: Path, build_root: Path) -> None:
     from distributed import default_client
 

@@ -5,14 +5,15 @@ bounded window of tasks in flight. Behaviour, not time: how many configs are mad
 from __future__ import annotations
 
 import itertools
+import time
 import tracemalloc
 from collections.abc import Iterator
 
 import pytest
-from dask.distributed import Client, LocalCluster
+from dask.distributed import Client, LocalCluster, get_task_stream
 
 from capsweep.errors import ConfigError
-from capsweep.sweeps.dispatch import run_tasks
+from capsweep.sweeps.dispatch import MAX_PARCEL, PARCEL_TARGET_S, ParcelSizes, run_tasks
 from capsweep.sweeps.expand import Grid
 from capsweep.sweeps.sweepfile import parse_sweep
 from capsweep.sweeps.workload import workload
@@ -107,3 +108,35 @@ def test_run_tasks_keeps_at_most_a_window_in_flight() -> None:
             seen[tag] = result
     assert most <= window, f"{most} tasks in flight for a window of {window}"
     assert sorted(seen) == sorted([*range(300), -5, -6]) and all(seen[t] == 2 * t for t in seen)
+
+
+def sleep_then_double(x: int, seconds: float) -> int:
+    time.sleep(seconds)
+    return 2 * x
+
+
+def test_short_jobs_of_one_group_share_tasks_and_long_ones_run_alone() -> None:
+    """Jobs of 5 ms go in parcels once one has been measured; jobs longer than half the parcel target never do; a
+    job without a group runs alone. Every result comes back once, to its own tag."""
+    short = [((("short", i)), (i, 0.005)) for i in range(200)]
+    long = [((("long", i)), (i, 0.6 * PARCEL_TARGET_S)) for i in range(4)]
+    with LocalCluster(n_workers=1, threads_per_worker=2, processes=False, dashboard_address=None) as cluster, \
+            Client(cluster) as client, get_task_stream(client) as stream:
+        seen = dict(run_tasks(client, sleep_then_double, short + long, window=4, group=lambda tag: tag[0]))
+    assert seen == {tag: 2 * args[0] for tag, args in short + long}
+    tasks = len(stream.data)
+    # the first window goes one job a task, then at most MAX_PARCEL jobs of 5 ms share one: far fewer than 204
+    assert len(long) + 4 < tasks < len(short) // 4, f"{tasks} tasks for {len(short)} short and {len(long)} long jobs"
+
+
+def test_parcel_sizes_follow_the_median_measured_job() -> None:
+    sizes = ParcelSizes(lambda tag: tag)
+    assert sizes.size("a") == 1  # nothing measured yet
+    for seconds in (0.1, 0.1, 5.0):  # median 0.1 s: ten jobs fill the target of 1 s
+        sizes.record("a", seconds)
+    assert sizes.size("a") == int(PARCEL_TARGET_S // 0.1)
+    sizes.record("b", 1e-9)
+    assert sizes.size("b") == MAX_PARCEL
+    sizes.record("c", 0.6 * PARCEL_TARGET_S)
+    assert sizes.size("c") == 1
+    assert ParcelSizes(None).size(None) == 1
