@@ -60,6 +60,12 @@ class Progress:
     searches_open: int = 0  # conditions whose count search has not closed: how many of to_run will run is not known
 
     @property
+    def planned(self) -> int:
+        """Points this run submits: those to run, less those a count search decided without (at most, while searches
+        are open)."""
+        return self.to_run - self.unneeded
+
+    @property
     def elapsed_s(self) -> float:
         """Wall time since the run started, in seconds."""
         return time.monotonic() - self.started_at

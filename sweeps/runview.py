@@ -33,7 +33,7 @@ BAR_MIN = 10
 def eta_s(progress: Any) -> float | None:
     """Seconds left, from the time per point so far (None before the first point finished, or while count searches
     are open: how many points they will still run is not known)."""
-    left = progress.to_run - progress.unneeded - progress.finished
+    left = progress.planned - progress.finished
     if progress.finished == 0 or progress.searches_open:
         return None
     return progress.elapsed_s / progress.finished * max(left, 0)
@@ -50,7 +50,7 @@ def compile_notice(progress: Any) -> str:
 
 def fields(progress: Any) -> list[tuple[str, int]]:
     """The progress fields as (text, priority) in display order; lower priority goes first when space is short."""
-    total = progress.to_run - progress.unneeded
+    total = progress.planned
     eta = eta_s(progress)
     notice = compile_notice(progress)
     searching = progress.searches_open
@@ -74,7 +74,7 @@ def status_line(progress: Any, width: int) -> str:
     while shown and _joined_width(shown) > width:
         shown.remove(max(shown, key=lambda item: item[1]))
     room = width - _joined_width(shown) - 2
-    total = progress.to_run - progress.unneeded
+    total = progress.planned
     if room >= BAR_MIN and shown and not progress.searches_open:
         bar = _bar(progress.finished, total, min(room, 40))
         shown.insert(1, (bar, 0))
