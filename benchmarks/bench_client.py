@@ -7,21 +7,24 @@ Four measurements, each printed as one line (min / median / max over ``--repeats
    0 leaves it out).
 2. ``orchestration``: ``run_sweep`` of ``--run-points`` points (default 10^5) of the smallest real
    network with a very short protocol, on a local cluster of ``--workers`` workers, with a task that
-   returns a stored result at once instead of simulating. Everything else is what ``capsweep run`` does
-   (grid, ids and seeds, store layout, windowed submission, Dask scheduler and workers, batched store
-   writes), so wall / points is the orchestration cost per point; the time to the first finished
+   returns a stored result at once (or after ``--task-ms``) instead of simulating. Everything else is
+   what ``capsweep run`` does (grid, ids and seeds, store layout, windowed submission in parcels,
+   Dask scheduler and workers, batched store writes), so wall / points is the orchestration cost per
+   point (with ``--task-ms``, beyond the tasks' own time); the time to the first finished
    point bounds the time to the first running point from above. Also per point from the first
    finished point to the last (the steady rate, without the cluster's start and the store's layout).
-3. ``plain Dask``: the same tasks on the same kind of cluster (capsweep's settings), all given to one
-   ``client.map`` and their results gathered as they finish, with no grid, window or store: what Dask
-   alone costs per point on this machine at this moment, measured between the repeats of 2.
+3. ``plain Dask``: the same tasks (of a sweep of ``--plain-points`` points, default 10^4: one task per point
+   costs Dask about 10 ms here) on the same kind of cluster (capsweep's settings), all given to one
+   ``client.map`` and their results gathered as they finish, with no grid, window, parcels or store: what
+   Dask alone costs per point on this machine at this moment, measured between the repeats of 2.
 4. ``bare engine``: the same network's points run by ``run_point`` in this process, one after another
    (the build compiled first, not counted): what a point costs without any orchestration.
 
 CPU is that of this process: the client, the scheduler (a local cluster's runs here) and the store
 writer; the workers' CPU is not counted.
 
-Run: ``python benchmarks/bench_client.py [--check-points N] [--run-points N] [--workers 2]``.
+Run: ``python benchmarks/bench_client.py [--check-points N] [--run-points N] [--plain-points N] [--task-ms X]
+[--workers 2]``.
 """
 
 from __future__ import annotations
@@ -116,8 +119,11 @@ def time_check(sweep: Path) -> tuple[float, float]:
     return wall, max(peak, before) / 1024
 
 
-def stored_result(result: dict[str, Any], config: dict[str, Any], seed: int, wiring_seed: int) -> dict[str, Any]:
-    """The task of the orchestration run: a point's ``result`` with this point's seed, returned at once."""
+def stored_result(result: dict[str, Any], sleep_s: float, config: dict[str, Any], seed: int,
+                  wiring_seed: int) -> dict[str, Any]:
+    """The task of the orchestration run: a point's ``result`` with this point's seed, returned after ``sleep_s``
+    seconds (0: at once)."""
+    time.sleep(sleep_s)
     return {**result, "seed": seed}
 
 
@@ -156,8 +162,8 @@ def timed(run: Any) -> Timing:
     return timing
 
 
-def time_orchestration(sweep: Path, result: dict[str, Any]) -> Timing:
-    """``run_sweep`` of ``sweep``, each task returning ``result``."""
+def time_orchestration(sweep: Path, task: Any) -> Timing:
+    """``run_sweep`` of ``sweep`` with ``task`` for its points."""
     from capsweep.sweeps.launch import run_sweep
 
     def run(note: Any) -> None:
@@ -168,12 +174,12 @@ def time_orchestration(sweep: Path, result: dict[str, Any]) -> Timing:
                 counted[0] += 1
                 note()
 
-        run_sweep(sweep, on_event=seen, task=functools.partial(stored_result, result))
+        run_sweep(sweep, on_event=seen, task=task)
 
     return timed(run)
 
 
-def time_plain_dask(sweep: Path, result: dict[str, Any], workers: int) -> Timing:
+def time_plain_dask(sweep: Path, task: Any, workers: int) -> Timing:
     """The tasks of ``sweep`` on a fresh local cluster of ``workers``, all in one ``client.map``, gathered as they
     finish: no grid window, store or progress (the cluster's start counted, as in ``run_sweep``)."""
     from dask.distributed import as_completed
@@ -186,7 +192,7 @@ def time_plain_dask(sweep: Path, result: dict[str, Any], workers: int) -> Timing
 
     def run(note: Any) -> None:
         with dask_client(workers) as client:
-            futures = client.map(functools.partial(stored_result, result), [p.config for p in points],
+            futures = client.map(task, [p.config for p in points],
                                  [p.seed for p in points], [p.wiring_seed for p in points], pure=False)
             for batch in as_completed(futures).batches():
                 for _ in client.gather(batch):
@@ -219,7 +225,12 @@ def main() -> None:
     parser.add_argument("--check-points", type=int, default=1_000_000)
     parser.add_argument("--run-points", type=int, default=100_000)
     parser.add_argument("--workers", type=int, default=2)
+    parser.add_argument("--plain-points", type=int, default=10_000,
+                        help="points of the plain-Dask baseline (a sweep of its own; 0 leaves it out)")
     parser.add_argument("--bare-points", type=int, default=20)
+    parser.add_argument("--task-ms", type=float, default=0.0,
+                        help="each task sleeps this long before it returns (e.g. the bare engine's time per point, so "
+                             "that points are parcelled as real ones would be); the overhead line subtracts it")
     parser.add_argument("--repeats", type=int, default=3)
     args = parser.parse_args()
     work = Path(tempfile.mkdtemp(prefix="capsweep-client-"))
@@ -229,23 +240,33 @@ def main() -> None:
         checks = [time_check(check) for _ in range(args.repeats)]
         print(f"check of {args.check_points} points: wall {spread([w for w, _ in checks])} s, peak memory "
               f"{spread([m for _, m in checks], '.0f')} MiB (min / median / max of {args.repeats})", flush=True)
-    bare_per_point, result = time_bare_engine(_written(work / "bare.toml", work / "bare.zarr", args), args.bare_points)
+    bare = _written(work / "bare.toml", work / "bare.zarr", args.run_points, args.workers)
+    bare_per_point, result = time_bare_engine(bare, args.bare_points)
     print(f"bare engine ({result['engine']}): {1000 * bare_per_point:.1f} ms per point "
           f"(mean of {args.bare_points}, one process)", flush=True)
+    task = functools.partial(stored_result, result, args.task_ms / 1000)
     runs: dict[str, list[Timing]] = {"orchestration": [], "plain Dask": []}
     for repeat in range(args.repeats):
-        sweep = _written(work / f"run{repeat}.toml", work / f"run{repeat}.zarr", args)
-        for name, timing in (("orchestration", time_orchestration(sweep, result)),
-                             ("plain Dask", time_plain_dask(sweep, result, args.workers))):
+        sweep = _written(work / f"run{repeat}.toml", work / f"run{repeat}.zarr", args.run_points, args.workers)
+        plain = _written(work / f"plain{repeat}.toml", work / f"plain{repeat}.zarr", args.plain_points, args.workers)
+        for name, timing in (("orchestration", time_orchestration(sweep, task)),
+                             ("plain Dask", time_plain_dask(plain, task, args.workers) if args.plain_points
+                              else None)):
+            if timing is None:
+                continue
             runs[name].append(timing)
             print(f"  repeat {repeat}, {name}: {timing.points} points in {timing.wall:.1f} s wall, {timing.cpu:.1f} s "
                   f"CPU of this process, first finished after {timing.first[0]:.1f} s; load {_load()}", flush=True)
-    for name, timings in runs.items():
+    for name, timings in ((name, timings) for name, timings in runs.items() if timings):
         print(f"{name}, {timings[0].points} points on {args.workers} workers (ms per point, min / median / max of "
               f"{args.repeats}): in all {spread([t.per_point()[0] for t in timings])} wall, "
               f"{spread([t.per_point()[1] for t in timings])} CPU; after the first point "
               f"{spread([t.steady()[0] for t in timings])} wall, {spread([t.steady()[1] for t in timings])} CPU; "
               f"first point after {spread([t.first[0] for t in timings], '.1f')} s", flush=True)
+        if args.task_ms:
+            beyond = [t.per_point()[0] - args.task_ms / args.workers for t in timings]
+            print(f"  {name}: wall per point beyond the tasks' own {args.task_ms:g} ms on {args.workers} workers: "
+                  f"{spread(beyond)} ms", flush=True)
 
 
 def _load() -> str:
@@ -253,8 +274,8 @@ def _load() -> str:
     return " ".join(f"{x:.1f}" for x in os.getloadavg())
 
 
-def _written(path: Path, store: Path, args: argparse.Namespace) -> Path:
-    path.write_text(run_sweep_text(store, args.run_points, args.workers))
+def _written(path: Path, store: Path, points: int, workers: int) -> Path:
+    path.write_text(run_sweep_text(store, points, workers))
     return path
 
 
