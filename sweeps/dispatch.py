@@ -342,8 +342,10 @@ class ParcelSizes:
     """How many jobs of one group go in one task, from the measured worker time of the group's finished jobs.
 
     A group's jobs go one per task until one has finished; then as many as fill :data:`PARCEL_TARGET_S` at the
-    median of its last 64 measured jobs, at most :data:`MAX_PARCEL`. A point that takes longer than half the target
-    always runs alone. Jobs without a group (``group`` None) always run alone.
+    mean of its last 64 measured jobs, at most :data:`MAX_PARCEL`. The mean, not the median: a parcel lasts the sum
+    of its jobs, and in a group where most points run away and stop early the median would parcel the full-length
+    ones too. Jobs of a group whose mean exceeds half the target, and jobs without a group (``group`` None), run
+    alone.
     """
 
     def __init__(self, group: Callable[[Any], Hashable] | None) -> None:
@@ -359,7 +361,7 @@ class ParcelSizes:
         seconds = self._seconds.get(group)
         if group is None or not seconds:
             return 1
-        return int(min(MAX_PARCEL, max(1, PARCEL_TARGET_S // max(float(np.median(seconds)), 1e-6))))
+        return int(min(MAX_PARCEL, max(1, PARCEL_TARGET_S // max(float(np.mean(seconds)), 1e-6))))
 
     def record(self, tag: Any, seconds: float) -> None:
         """Note that the job tagged ``tag`` took ``seconds`` of worker time."""

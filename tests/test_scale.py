@@ -129,12 +129,15 @@ def test_short_jobs_of_one_group_share_tasks_and_long_ones_run_alone() -> None:
     assert len(long) + 4 < tasks < len(short) // 4, f"{tasks} tasks for {len(short)} short and {len(long)} long jobs"
 
 
-def test_parcel_sizes_follow_the_median_measured_job() -> None:
+def test_parcel_sizes_follow_the_mean_measured_job() -> None:
     sizes = ParcelSizes(lambda tag: tag)
     assert sizes.size("a") == 1  # nothing measured yet
-    for seconds in (0.1, 0.1, 5.0):  # median 0.1 s: ten jobs fill the target of 1 s
+    for seconds in (0.0625, 0.125, 0.1875):  # mean 1/8 s: eight jobs fill the target of 1 s
         sizes.record("a", seconds)
-    assert sizes.size("a") == int(PARCEL_TARGET_S // 0.1)
+    assert sizes.size("a") == int(PARCEL_TARGET_S * 8)
+    for seconds in (0.01, 0.01, 2 * PARCEL_TARGET_S):  # two runaways stopped early, one full-length point:
+        sizes.record("runaway", seconds)  # the sum is what a parcel lasts, so the full-length one is not parcelled
+    assert sizes.size("runaway") == 1
     sizes.record("b", 1e-9)
     assert sizes.size("b") == MAX_PARCEL
     sizes.record("c", 0.6 * PARCEL_TARGET_S)
