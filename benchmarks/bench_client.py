@@ -14,7 +14,7 @@ Four measurements, each printed as one line (min / median / max over ``--repeats
    point bounds the time to the first running point from above. Also per point from the first
    finished point to the last (the steady rate, without the cluster's start and the store's layout).
 3. ``plain Dask``: the same tasks (of a sweep of ``--plain-points`` points, default 10^4: one task per point
-   costs Dask about 10 ms here) on the same kind of cluster (capsweep's settings), all given to one
+   costs Dask 4-13 ms here) on the same kind of cluster (capsweep's settings), all given to one
    ``client.map`` and their results gathered as they finish, with no grid, window, parcels or store: what
    Dask alone costs per point on this machine at this moment, measured between the repeats of 2.
 4. ``bare engine``: the same network's points run by ``run_point`` in this process, one after another

@@ -325,8 +325,8 @@ MIN_WINDOW = 512
 """Fewest tasks :func:`run_tasks` keeps in flight (more on a cluster with more worker threads: :func:`task_window`)."""
 
 PARCEL_TARGET_S = 1.0
-"""Worker time (s) a parcel of short points aims at. Dask costs about 10 ms of wall time per task here (a round trip
-between scheduler and worker, 2-core machine, December 2026), 1 % of a parcel this long."""
+"""Worker time (s) a parcel of short points aims at. Dask costs about 4-6 ms of wall time per task here, 13 ms under
+load (a round trip between scheduler and worker; 2-core machine, December 2026): under 2 % of a parcel this long."""
 
 MAX_PARCEL = 32
 """Most points in one parcel: bounds the points in flight to :func:`task_window` x 32 configs (about 2.4 KB each)."""
