@@ -691,7 +691,7 @@ def estimate(
     """
     from .costs import cost_file
     from .tables import duration_text
-    from .workload import estimate_sweep
+    from .workload import advised_layout, estimate_sweep
 
     _check_engine(engine)
     result = estimate_sweep(sweep_file, workers, engine,
@@ -711,6 +711,11 @@ def estimate(
     out.print(f"estimated wall time on {result.workers} workers: {duration_text(result.estimate_s)} "
               f"(upper bound: points that run away stop early{compiles}); cost model: {cost_file()}",
               markup=False, highlight=False)
+    cores = len(os.sched_getaffinity(0))
+    advised = advised_layout(result.workload.n_points, cores, ENGINES[result.engine].threads)
+    out.print(f"for {result.workload.n_points} points on the {cores} cores here: execution.workers = {advised[0]}, "
+              f"execution.threads = {advised[1]} (threads only where points are fewer than cores; a point's result "
+              "depends on its thread count, which the store records)", markup=False, highlight=False)
 
 
 def _check_engine(engine: str | None) -> None:

@@ -136,6 +136,15 @@ def workload(sweep: Sweep) -> Workload:
     )
 
 
+def advised_layout(points: int, cores: int, threaded: bool) -> tuple[int, int]:
+    """Workers and threads per point (``execution.workers``, ``execution.threads``) for ``points`` points on
+    ``cores`` cores: a worker process per point up to the cores (processes never wait for each other; threads wait at
+    every time step's barrier), and threads only where fewer points than cores are left, the spare cores shared among
+    the points (``threaded``: the engine runs OpenMP threads)."""
+    workers = max(1, min(points, cores))
+    return workers, max(1, cores // workers) if threaded else 1
+
+
 def estimate_sweep(
     sweep_file: str | Path,
     workers: int | None = None,

@@ -8,7 +8,7 @@ import pytest
 from capsweep.sweeps.costs import Cost, CostModel, Entry
 from capsweep.sweeps.expand import Grid
 from capsweep.sweeps.sweepfile import parse_sweep
-from capsweep.sweeps.workload import makespan
+from capsweep.sweeps.workload import advised_layout, makespan
 
 SWEEP = """
 [sweep]
@@ -79,3 +79,34 @@ def test_the_cost_model_learns_a_line_and_a_compile_from_stored_points(tmp_path,
     monkeypatch.setenv(costs.COST_FILE_ENV, str(tmp_path / "costs.json"))
     costs.save("standalone", model)
     assert costs.load("standalone") == model and costs.load("cython").sizes == {}
+
+
+@pytest.mark.parametrize(("points", "cores", "threaded", "layout"), [
+    (36, 2, True, (2, 1)),  # more points than cores: a process per core, one thread each
+    (1, 2, True, (1, 2)),  # one large network on two idle cores: both on its loop
+    (4, 32, True, (4, 8)),
+    (3, 32, True, (3, 10)),  # the spare cores shared evenly, the rest left idle
+    (1, 8, False, (1, 1)),  # an engine without threads
+])
+def test_advised_layout_uses_processes_first_and_threads_only_for_spare_cores(
+        points: int, cores: int, threaded: bool, layout: tuple[int, int]) -> None:
+    assert advised_layout(points, cores, threaded) == layout
+
+
+def test_estimate_advises_workers_and_threads_for_the_cores_it_sees(tmp_path, monkeypatch) -> None:
+    """8 points (2 rules x 2 sizes x 2 beta) on 32 cores: 8 workers of 4 threads; the cost model is given, so nothing
+    is probed."""
+    from typer.testing import CliRunner
+
+    from capsweep.sweeps import costs
+    from capsweep.sweeps.cli import app
+
+    monkeypatch.setenv(costs.COST_FILE_ENV, str(tmp_path / "costs.json"))
+    model = CostModel({n: Entry(Cost(2.0, 0.5), "probe", "2026-12-05") for n in (300, 600)})
+    costs.save("standalone", model)
+    monkeypatch.setattr("os.sched_getaffinity", lambda pid: set(range(32)))
+    sweep = tmp_path / "plan.toml"
+    sweep.write_text(SWEEP.replace('"x.zarr"', repr(str(tmp_path / "x.zarr"))))
+    result = CliRunner().invoke(app, ["estimate", str(sweep)])
+    assert result.exit_code == 0, result.output
+    assert "for 8 points on the 32 cores here: execution.workers = 8, execution.threads = 4" in result.output
