@@ -9,7 +9,7 @@ the binary (all its threads: ``RUSAGE_CHILDREN``). Each run's result (every stor
 timings) is hashed: repeats of one thread count must give one hash, and the counts are compared
 with each other. The load average of the machine is printed beside every measurement.
 
-    python benchmarks/bench_threads.py [--sizes 8000,16000] [--threads 1,2] [--repeats 3]
+    python benchmarks/bench_threads.py [--sizes 8000,16000] [--threads 1,2] [--repeats 3] [--holds 1,11]
                                        [--wait-policy PASSIVE] [--build-dir DIR]
 
 ``--build-dir`` keeps the builds in DIR (reused by a later run) instead of a temporary directory.
@@ -34,8 +34,10 @@ import time
 from collections.abc import Callable
 from typing import Any
 
-HOLDS_S = (0.5, 2.5)
-"""The two hold lengths (s) whose difference in cost gives the cost per simulated second."""
+HOLDS_S = (1.0, 11.0)
+"""The two hold lengths (s) whose difference in cost gives the cost per simulated second (``--holds``). With 0.5 and
+2.5 s the 2 s between them cost about as much as the run-to-run jitter of a point's set-up (code regeneration in a
+fresh process, 2-3 s), and an idle machine gave slopes from -0.17 to 0.79 wall s per simulated s for one point."""
 
 
 def size_config(n_exc: int, threads: int, hold_s: float, **changes: Any) -> dict[str, Any]:
@@ -75,12 +77,12 @@ def timed_point(cfg: dict) -> tuple[float, float, dict[str, Any]]:
     return time.perf_counter() - wall, children_cpu() - cpu, result
 
 
-def slope(config_at: Callable[[float], dict]) -> dict[str, Any]:
-    """Cost per simulated second (wall, binary CPU) from runs at :data:`HOLDS_S`; hash of the longer run."""
+def slope(config_at: Callable[[float], dict], holds_s: tuple[float, float]) -> dict[str, Any]:
+    """Cost per simulated second (wall, binary CPU) from runs at the two ``holds_s``; hash of the longer run."""
     from capsweep.runners.protocol import total_duration_s
 
     load = os.getloadavg()[0]
-    short, long = (config_at(hold) for hold in HOLDS_S)
+    short, long = (config_at(hold) for hold in holds_s)
     wall_short, cpu_short, _ = timed_point(short)
     wall_long, cpu_long, result = timed_point(long)
     span = total_duration_s(long) - total_duration_s(short)
@@ -88,24 +90,26 @@ def slope(config_at: Callable[[float], dict]) -> dict[str, Any]:
             "hash": result_hash(result), "load": (load + os.getloadavg()[0]) / 2}
 
 
-def child(kind: str, n_exc: int, threads: int) -> dict[str, Any]:
+def child(kind: str, n_exc: int, threads: int, holds_s: tuple[float, float]) -> dict[str, Any]:
     """``compile``: build (untimed); ``measure``: :func:`slope` with the build cached."""
     if kind == "compile":
         from capsweep.runners.point import run_point
 
         run_point(size_config(n_exc, threads, 0.0, **{"protocol.settle_s": 0.3}), 1)
         return {}
-    return slope(lambda hold: size_config(n_exc, threads, hold))
+    return slope(lambda hold: size_config(n_exc, threads, hold), holds_s)
 
 
-def run_child(args: list[str], build_dir: str, env: dict[str, str] | None = None) -> dict[str, Any]:
-    """Run the calling script's ``--child`` with ``args`` in a fresh process on the build cache ``build_dir``.
+def run_child(args: list[str], build_dir: str, env: dict[str, str] | None = None, holds: str = "") -> dict[str, Any]:
+    """Run the calling script's ``--child`` with ``args`` (and ``--holds`` when given) in a fresh process on the build
+    cache ``build_dir``.
 
     Returns the JSON object the child printed last.
     """
     from capsweep.runners.builds import BUILD_DIR_ENV
 
-    proc = subprocess.run([sys.executable, sys.argv[0], "--child", *args], capture_output=True, text=True,
+    given = ["--holds", holds] if holds else []
+    proc = subprocess.run([sys.executable, sys.argv[0], *given, "--child", *args], capture_output=True, text=True,
                           check=True, env={**os.environ, **(env or {}), BUILD_DIR_ENV: build_dir})
     return dict(json.loads(proc.stdout.strip().splitlines()[-1]))
 
@@ -122,11 +126,15 @@ def main() -> None:
     parser.add_argument("--repeats", type=int, default=3)
     parser.add_argument("--wait-policy", default="")
     parser.add_argument("--build-dir", default="")
+    parser.add_argument("--holds", default=",".join(f"{h:g}" for h in HOLDS_S),
+                        help="the two hold lengths (s) whose difference gives the cost per simulated second")
     parser.add_argument("--child", nargs=3, metavar=("KIND", "N_E", "THREADS"), help=argparse.SUPPRESS)
     args = parser.parse_args()
+    short, long = (float(h) for h in args.holds.split(","))
+    holds = (short, long)
     if args.child:
         kind, n_exc, threads = args.child
-        print(json.dumps(child(kind, int(n_exc), int(threads))), flush=True)
+        print(json.dumps(child(kind, int(n_exc), int(threads), holds)), flush=True)
         return
     sizes, counts = [int(s) for s in args.sizes.split(",")], [int(t) for t in args.threads.split(",")]
     env = {"OMP_WAIT_POLICY": args.wait_policy} if args.wait_policy else {}
@@ -139,9 +147,11 @@ def main() -> None:
         for _ in range(args.repeats):
             for n_exc in sizes:
                 for threads in counts:
-                    rows[n_exc, threads].append(run_child(["measure", str(n_exc), str(threads)], build_dir, env))
+                    rows[n_exc, threads].append(run_child(["measure", str(n_exc), str(threads)], build_dir, env,
+                                                          args.holds))
                     print(n_exc, threads, json.dumps(rows[n_exc, threads][-1]), file=sys.stderr, flush=True)
-    print(f"measured {time.strftime('%Y-%m-%d')} on {os.cpu_count()} cores, {args.repeats} repeats interleaved"
+    print(f"measured {time.strftime('%Y-%m-%d')} on {os.cpu_count()} cores, {args.repeats} repeats interleaved, "
+          f"holds {args.holds} s"
           + (f", OMP_WAIT_POLICY={args.wait_policy}" if args.wait_policy else ""))
     print("| N_E | threads | wall s / s simulated | CPU s / s simulated | load (1 min) | repeats bitwise equal |"
           " result = that of 1 thread |")

@@ -691,7 +691,7 @@ def estimate(
     """
     from .costs import cost_file
     from .tables import duration_text
-    from .workload import advised_layout, estimate_sweep
+    from .workload import estimate_sweep
 
     _check_engine(engine)
     result = estimate_sweep(sweep_file, workers, engine,
@@ -711,11 +711,21 @@ def estimate(
     out.print(f"estimated wall time on {result.workers} workers: {duration_text(result.estimate_s)} "
               f"(upper bound: points that run away stop early{compiles}); cost model: {cost_file()}",
               markup=False, highlight=False)
+    out.print(layout_advice(result.workload.n_points, result.engine), markup=False, highlight=False)
+
+
+def layout_advice(points: int, engine: str) -> str:
+    """What ``estimate`` advises for ``points`` points on ``engine`` with the cores this process may use."""
+    from .workload import advised_layout
+
     cores = len(os.sched_getaffinity(0))
-    advised = advised_layout(result.workload.n_points, cores, ENGINES[result.engine].threads)
-    out.print(f"for {result.workload.n_points} points on the {cores} cores here: execution.workers = {advised[0]}, "
-              f"execution.threads = {advised[1]} (threads only where points are fewer than cores; a point's result "
-              "depends on its thread count, which the store records)", markup=False, highlight=False)
+    workers, threads = advised_layout(points, cores, ENGINES[engine].threads)
+    advice = f"for {points} points on the {cores} cores here: execution.workers = {workers}"
+    if threads == 1:
+        return f"{advice}, execution.threads = 1 (a worker process per point, up to the cores)"
+    return (f"{advice}; the cores left spare could run execution.threads = {threads} per point, but measure the gain "
+            "first with benchmarks/bench_threads.py (on a 2-core machine 2 threads cost twice the CPU and saved no "
+            "wall time), and a point's result depends on its thread count")
 
 
 def _check_engine(engine: str | None) -> None:

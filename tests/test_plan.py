@@ -109,4 +109,5 @@ def test_estimate_advises_workers_and_threads_for_the_cores_it_sees(tmp_path, mo
     sweep.write_text(SWEEP.replace('"x.zarr"', repr(str(tmp_path / "x.zarr"))))
     result = CliRunner().invoke(app, ["estimate", str(sweep)])
     assert result.exit_code == 0, result.output
-    assert "for 8 points on the 32 cores here: execution.workers = 8, execution.threads = 4" in result.output
+    assert "for 8 points on the 32 cores here: execution.workers = 8; the cores left spare could run " \
+           "execution.threads = 4 per point" in " ".join(result.output.split())
