@@ -363,9 +363,8 @@ class ParcelSizes:
             return 1
         return int(min(MAX_PARCEL, max(1, PARCEL_TARGET_S // max(float(np.mean(seconds)), 1e-6))))
 
-    def record(self, tag: Any, seconds: float) -> None:
-        """Note that the job tagged ``tag`` took ``seconds`` of worker time."""
-        group = self.group(tag)
+    def record(self, group: Hashable | None, seconds: float) -> None:
+        """Note that a job of ``group`` took ``seconds`` of worker time."""
         if group is not None:
             self._seconds.setdefault(group, deque(maxlen=64)).append(seconds)
 
@@ -401,7 +400,7 @@ def run_tasks(
     The window is refilled once an eighth of it is free (or nothing is in flight), so that a chunk
     is not a task or two whenever results trickle in.
     """
-    futures: dict[Any, list[Job]] = {}  # dask future -> its parcel's jobs
+    futures: dict[Any, tuple[Hashable | None, list[Job]]] = {}  # dask future -> its parcel's group and jobs
     finished = as_completed()
     source, follow_ups, alone = iter(jobs), deque[Job](), deque[Job]()
     sizes = ParcelSizes(group)
@@ -411,13 +410,15 @@ def run_tasks(
     def next_job() -> Job | None:
         return follow_ups.popleft() if follow_ups else next(source, None)
 
-    def next_parcel() -> list[Job]:
-        """The next job, and the jobs after it while they are of its group, up to the group's parcel size."""
+    def next_parcel() -> tuple[Hashable | None, list[Job]]:
+        """The next job, and the jobs after it while they are of its group, up to the group's parcel size; with
+        their group."""
         if alone:
-            return [alone.popleft()]
+            retried = alone.popleft()
+            return sizes.group(retried[0]), [retried]
         first = next_job()
         if first is None:
-            return []
+            return None, []
         parcel, kind = [first], sizes.group(first[0])
         limit = sizes.size(kind)
         while len(parcel) < limit and (job := next_job()) is not None:
@@ -425,16 +426,16 @@ def run_tasks(
                 follow_ups.appendleft(job)
                 break
             parcel.append(job)
-        return parcel
+        return kind, parcel
 
     def refill() -> None:
         if futures and window - len(futures) < least:
             return
-        chunk: list[list[Job]] = []
-        while len(futures) + len(chunk) < window and (parcel := next_parcel()):
+        chunk: list[tuple[Hashable | None, list[Job]]] = []
+        while len(futures) + len(chunk) < window and (parcel := next_parcel())[1]:
             chunk.append(parcel)
         if chunk:
-            submitted = client.map(parcel_task, [[args for _, args in parcel] for parcel in chunk], pure=False,
+            submitted = client.map(parcel_task, [[args for _, args in jobs] for _, jobs in chunk], pure=False,
                                    fifo_timeout="0ms")
             futures.update(zip(submitted, chunk))
             finished.update(submitted)
@@ -443,14 +444,14 @@ def run_tasks(
     try:
         for batch in finished.batches():
             for future, outcome in zip(batch, _results(client, batch)):
-                parcel = futures.pop(future)
+                kind, parcel = futures.pop(future)
                 if isinstance(outcome, TaskFailure) and len(parcel) > 1:
                     alone.extend(parcel)  # its workers died: each job is tried alone
                     continue
                 timed = [(outcome, None)] if isinstance(outcome, TaskFailure) else outcome
                 for (tag, _), (result, seconds) in zip(parcel, timed):
                     if seconds is not None:
-                        sizes.record(tag, seconds)
+                        sizes.record(kind, seconds)
                     yield tag, result
                     follow_ups.extend(follow_up(tag, result))
             refill()

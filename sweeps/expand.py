@@ -155,14 +155,14 @@ class Grid:
 
     def durations(self) -> np.ndarray:
         """Planned simulated time of each cell's points (s, no early abort), over ``cells``."""
-        return self.over(SCHEDULE_KEYS, lambda flat: total_duration_s(nest(flat)), float)
+        return self.over(SCHEDULE_KEYS, _planned_s, float)
 
     def cost_groups(self) -> np.ndarray:
         """Each cell's group of points expected to cost about the same, over ``cells``: a tuple of the values of the
         keys that shape its compiled code (:data:`~capsweep.runners.builds.KEYS_IN_CODE`, network size among them)
         and its planned simulated time (s)."""
         return self.over((*KEYS_IN_CODE, *SCHEDULE_KEYS),
-                         lambda flat: (*(flat[k] for k in KEYS_IN_CODE), total_duration_s(nest(flat))))
+                         lambda flat: (*(flat[k] for k in KEYS_IN_CODE), _planned_s(flat)))
 
     def build_keys(self, engine: str | None = None) -> np.ndarray:
         """Key of the compiled build each cell's points rerun on ``engine`` (default: the sweep's), '' where that
@@ -195,6 +195,11 @@ class Grid:
         positions = self.axes_setting(rule.keys)
         where = ", ".join(f"{self.sweep.axes[p].name}={self.sweep.axes[p].values[cell[p]]}" for p in positions)
         raise ConfigError(f"{self.sweep.source}: {f'point {where}: ' if where else ''}{message}")
+
+
+def _planned_s(flat: dict[str, Any]) -> float:
+    """Planned simulated time (s, no early abort) of the point whose flat config is ``flat``."""
+    return total_duration_s(nest(flat))
 
 
 def expand(sweep: Sweep) -> list[Point]:
