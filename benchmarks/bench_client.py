@@ -249,15 +249,16 @@ def main() -> None:
     for repeat in range(args.repeats):
         sweep = _written(work / f"run{repeat}.toml", work / f"run{repeat}.zarr", args.run_points, args.workers)
         plain = _written(work / f"plain{repeat}.toml", work / f"plain{repeat}.zarr", args.plain_points, args.workers)
-        for name, timing in (("orchestration", time_orchestration(sweep, task)),
-                             ("plain Dask", time_plain_dask(plain, task, args.workers) if args.plain_points
-                              else None)):
-            if timing is None:
-                continue
+        measured = [("orchestration", time_orchestration(sweep, task))]
+        if args.plain_points:
+            measured.append(("plain Dask", time_plain_dask(plain, task, args.workers)))
+        for name, timing in measured:
             runs[name].append(timing)
             print(f"  repeat {repeat}, {name}: {timing.points} points in {timing.wall:.1f} s wall, {timing.cpu:.1f} s "
                   f"CPU of this process, first finished after {timing.first[0]:.1f} s; load {_load()}", flush=True)
-    for name, timings in ((name, timings) for name, timings in runs.items() if timings):
+    for name, timings in runs.items():
+        if not timings:
+            continue
         print(f"{name}, {timings[0].points} points on {args.workers} workers (ms per point, min / median / max of "
               f"{args.repeats}): in all {spread([t.per_point()[0] for t in timings])} wall, "
               f"{spread([t.per_point()[1] for t in timings])} CPU; after the first point "
